@@ -1,1 +1,58 @@
-//! plumb-firmware
+//! # plumb-firmware
+//!
+//! The plumbline drift detector for Cortex-M class microcontrollers:
+//! `#![no_std]`, no allocation, no `unsafe`, no panic reachable from model
+//! bytes or samples. The host tool links the very same crate to replay logs,
+//! so a replay on a laptop and the board agree bit for bit.
+//!
+//! ## Not a safety function
+//!
+//! plumbline is an **advisory** monitor. It is not a safety function, was not
+//! developed to any functional-safety standard, and must not stop, start or
+//! limit a machine on its own. Its drift line and messages inform people and
+//! maintenance systems. The machine's own safety system, local codes and
+//! licensed practice always take precedence.
+//!
+//! ## Per sample
+//!
+//! For a sample `x ∈ R^d` and a model (mean μ, scale s, loadings P ∈ R^{d×m},
+//! eigenvalues λ, mixture weights π_c, means ν_c, variances v_c):
+//!
+//! * `z = (x − μ) / s`, `t = Pᵀ z`, `r = z − P t`;
+//! * SPE (Q) `= Σ r_i²`, with the three largest `r_i²` named;
+//! * T² `= Σ t_j² / λ_j`;
+//! * NLL `= −log Σ_c exp(log π_c − ½ Σ_j [ln(2π v_cj) + (t_j − ν_cj)² / v_cj])`
+//!   by log-sum-exp, with the constants precomputed when the model is loaded.
+//!
+//! Non-finite features, features more than `fault_z` scales from their mean,
+//! and samples of the wrong length are sensor faults: counted and reported,
+//! never fed into any statistic.
+//!
+//! ## From scores to a flag
+//!
+//! Each score is transformed (cube root for SPE and T², identity for NLL),
+//! standardised with its calibrated centre and spread, and fed to an EWMA and
+//! an upper CUSUM. A score is *hot* when its CUSUM exceeds `h` or its EWMA
+//! exceeds `L`. States: [`DriftState::Priming`] (warm-up) →
+//! [`DriftState::Watching`] → [`DriftState::Drifting`] after `raise_dwell`
+//! consecutive hot samples; back to watching after `clear_dwell` consecutive
+//! calm samples (every CUSUM and EWMA below `clear_fraction` of its limit) and
+//! at least `min_hold` samples raised. Every parameter comes from the model.
+//!
+//! ## Numbers
+//!
+//! All arithmetic is `f32`. Transcendentals go through `libm` ([`math`]);
+//! sums run in a fixed order with no fused multiply-add. The optional
+//! `fast-math` feature swaps `exp`/`ln` for `micromath` approximations.
+#![no_std]
+#![forbid(unsafe_code)]
+#![deny(missing_docs)]
+
+mod detector;
+pub mod math;
+pub mod score;
+pub mod stats;
+
+pub use detector::*;
+pub use plumb_model;
+pub use score::{Contribution, Fault, Scores, TOP_FEATURES};

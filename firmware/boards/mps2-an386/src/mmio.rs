@@ -1,0 +1,142 @@
+//! The only module of this crate that contains `unsafe` code.
+//!
+//! Everything that touches memory-mapped registers or memory that Rust does
+//! not own (the unused part of the stack) goes through the small safe API
+//! below. Each unsafe block states why it is sound for this board.
+
+use core::ptr;
+
+/// Base address of UART0 on the mps2-an386 machine (a CMSDK APB UART).
+pub const UART0_BASE: usize = 0x4000_4000;
+
+/// Register block of one CMSDK APB UART.
+///
+/// Register offsets (all 32 bit wide):
+/// `DATA` +0x00, `STATE` +0x04, `CTRL` +0x08, `INTSTATUS/INTCLEAR` +0x0C,
+/// `BAUDDIV` +0x10.
+#[derive(Debug)]
+pub struct CmsdkUartRegs {
+    base: usize,
+}
+
+impl CmsdkUartRegs {
+    const DATA: usize = 0x00;
+    const STATE: usize = 0x04;
+    const CTRL: usize = 0x08;
+    const BAUDDIV: usize = 0x10;
+
+    /// The register block of UART0. Only fixed, board-defined bases can be
+    /// named, so every address this type touches is a valid UART register.
+    /// Exclusive use is enforced one level up, in `uart::Uart0::take`.
+    pub(crate) const fn uart0() -> Self {
+        Self { base: UART0_BASE }
+    }
+
+    fn read(&self, offset: usize) -> u32 {
+        let addr = (self.base + offset) as *const u32;
+        // SAFETY: `base` is one of the fixed CMSDK UART bases of this board and
+        // `offset` one of the register offsets above, so `addr` is an aligned,
+        // always-mapped device register; a volatile read has no side effect on
+        // Rust-visible memory.
+        unsafe { ptr::read_volatile(addr) }
+    }
+
+    fn write(&self, offset: usize, value: u32) {
+        let addr = (self.base + offset) as *mut u32;
+        // SAFETY: as in `read`: an aligned, always-mapped UART register that
+        // does not alias any Rust object.
+        unsafe { ptr::write_volatile(addr, value) }
+    }
+
+    /// Read `DATA` (pops the received byte).
+    pub fn data(&self) -> u8 {
+        (self.read(Self::DATA) & 0xFF) as u8
+    }
+
+    /// Write `DATA` (queues one byte for transmission).
+    pub fn set_data(&self, byte: u8) {
+        self.write(Self::DATA, u32::from(byte));
+    }
+
+    /// Read `STATE`: bit0 TX buffer full, bit1 RX buffer full,
+    /// bit2 TX overrun, bit3 RX overrun.
+    pub fn state(&self) -> u32 {
+        self.read(Self::STATE)
+    }
+
+    /// Write `STATE`: writing 1 to an overrun bit clears it.
+    pub fn set_state(&self, value: u32) {
+        self.write(Self::STATE, value);
+    }
+
+    /// Read `CTRL`.
+    pub fn ctrl(&self) -> u32 {
+        self.read(Self::CTRL)
+    }
+
+    /// Write `CTRL`: bit0 TX enable, bit1 RX enable (interrupt enables above).
+    pub fn set_ctrl(&self, value: u32) {
+        self.write(Self::CTRL, value);
+    }
+
+    /// Write `BAUDDIV` (baud rate = UART clock / BAUDDIV, must be >= 16).
+    pub fn set_bauddiv(&self, value: u32) {
+        self.write(Self::BAUDDIV, value);
+    }
+}
+
+/// Stack region as laid out by cortex-m-rt: `(lowest address, top address)`.
+/// The stack grows downwards from `top` (`_stack_start`) towards `bottom`
+/// (`_stack_end`, the end of `.bss`/`.uninit`).
+pub fn stack_bounds() -> (usize, usize) {
+    extern "C" {
+        static _stack_start: u32;
+        static _stack_end: u32;
+    }
+    // Taking the address of a linker-defined symbol never reads it, so these
+    // `&raw const` expressions need no unsafe block.
+    let top = (&raw const _stack_start) as usize;
+    let bottom = (&raw const _stack_end) as usize;
+    (bottom, top)
+}
+
+/// Fill the words in `[from, to)` with `pattern`.
+///
+/// Only for the unused part of the stack: the caller (`stack::paint`) passes
+/// `from` = bottom of the stack region and `to` = an address safely below the
+/// current stack pointer.
+pub(crate) fn fill_unused_stack(from: usize, to: usize, pattern: u32) {
+    let (bottom, top) = stack_bounds();
+    let from = from.max(bottom) & !3;
+    let to = to.min(top) & !3;
+    let mut addr = from;
+    while addr < to {
+        // SAFETY: `addr` is 4-byte aligned and lies inside the RAM stack region
+        // reserved by the linker script, below the live stack (see the caller
+        // contract), so no Rust object lives there and nothing else writes to it
+        // concurrently (single core, interrupts only use stack below the
+        // current SP, which is above `to` plus a guard band).
+        unsafe { ptr::write_volatile(addr as *mut u32, pattern) };
+        addr += 4;
+    }
+}
+
+/// Return the lowest address in `[from, to)` whose word differs from
+/// `pattern`, or `to` if every word still holds it.
+pub(crate) fn first_word_not(from: usize, to: usize, pattern: u32) -> usize {
+    let (bottom, top) = stack_bounds();
+    let from = from.max(bottom) & !3;
+    let to = to.min(top) & !3;
+    let mut addr = from;
+    while addr < to {
+        // SAFETY: `addr` is 4-byte aligned, inside the linker-reserved stack
+        // region in always-mapped RAM; a volatile read of a plain word there
+        // has no side effects and does not create a reference to any object.
+        let word = unsafe { ptr::read_volatile(addr as *const u32) };
+        if word != pattern {
+            return addr;
+        }
+        addr += 4;
+    }
+    to
+}

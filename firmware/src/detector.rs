@@ -1,0 +1,427 @@
+//! The detector: scores, streaming statistics per score, and drift states.
+
+use crate::score::{self, Contribution, Derived, Fault, Scores, TOP_FEATURES};
+use crate::stats::{Cusum, Ewma, Welford};
+use plumb_model::{Capacity, Model, ModelError, ScoreLimits};
+
+/// The three monitored scores.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub enum Score {
+    /// SPE (Q).
+    Spe = 0,
+    /// Hotelling T².
+    T2 = 1,
+    /// Mixture negative log-likelihood.
+    Nll = 2,
+}
+
+impl Score {
+    /// All scores, in bit order.
+    pub const ALL: [Score; 3] = [Score::Spe, Score::T2, Score::Nll];
+
+    /// Short fixed name.
+    pub const fn name(self) -> &'static str {
+        match self {
+            Score::Spe => "spe",
+            Score::T2 => "t2",
+            Score::Nll => "nll",
+        }
+    }
+}
+
+/// A set of scores, one bit each (bit 0 SPE, bit 1 T², bit 2 NLL).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct ScoreSet(pub u8);
+
+impl ScoreSet {
+    /// No score.
+    pub const EMPTY: ScoreSet = ScoreSet(0);
+
+    /// Adds a score.
+    pub fn insert(&mut self, s: Score) {
+        self.0 |= 1 << (s as u8);
+    }
+
+    /// Whether `s` is in the set.
+    pub fn contains(self, s: Score) -> bool {
+        self.0 & (1 << (s as u8)) != 0
+    }
+
+    /// Whether the set is empty.
+    pub fn is_empty(self) -> bool {
+        self.0 == 0
+    }
+
+    /// The scores in the set.
+    pub fn iter(self) -> impl Iterator<Item = Score> {
+        Score::ALL.into_iter().filter(move |s| self.contains(*s))
+    }
+}
+
+/// Where the detector stands.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub enum DriftState {
+    /// Warm-up after a reset or model switch: statistics run, no flag rises.
+    Priming,
+    /// Data resembles the model.
+    Watching,
+    /// A drift flag is up.
+    Drifting,
+}
+
+/// A change of state, reported by the sample that caused it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub enum Event {
+    /// Warm-up finished.
+    Primed,
+    /// A drift flag rose; the scores whose limits were crossed.
+    Raised {
+        /// Scores over their limits when the flag rose.
+        drivers: ScoreSet,
+    },
+    /// The drift flag cleared.
+    Cleared,
+}
+
+/// Streaming statistics of one score.
+#[derive(Debug, Clone, Copy, PartialEq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Track {
+    /// Mean and variance of the raw score since the last reset.
+    pub since_reset: Welford<f32>,
+    /// Mean and variance of the raw score in the current window.
+    pub window: Welford<f32>,
+    /// Mean and variance of the raw score over the last complete window.
+    pub last_window: Welford<f32>,
+    /// EWMA of the standardised transformed score.
+    pub ewma: Ewma,
+    /// Upper CUSUM of the standardised transformed score.
+    pub cusum: Cusum,
+    /// Samples whose raw score exceeded the per-sample limit.
+    pub over_sample_limit: u32,
+}
+
+impl Track {
+    fn new(lambda: f32, limits: &ScoreLimits) -> Self {
+        Track {
+            since_reset: Welford::new(),
+            window: Welford::new(),
+            last_window: Welford::new(),
+            ewma: Ewma::new(lambda, 0.0),
+            cusum: Cusum::new(limits.cusum_slack, 2.0 * limits.cusum_limit),
+            over_sample_limit: 0,
+        }
+    }
+}
+
+/// Variance-stabilising transform of a score before standardisation: cube root
+/// for the chi-square-like SPE and T² (Wilson & Hilferty 1931), identity for
+/// the NLL, which is already on a log scale.
+pub fn transform(score: Score, value: f32) -> f32 {
+    match score {
+        Score::Spe | Score::T2 => crate::math::cbrt(value),
+        Score::Nll => value,
+    }
+}
+
+/// Counts of faulted samples by cause.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct FaultCounts {
+    /// Wrong number of features.
+    pub wrong_length: u32,
+    /// NaN or infinite features.
+    pub non_finite: u32,
+    /// Features beyond `fault_z`.
+    pub out_of_range: u32,
+    /// Score overflow.
+    pub overflow: u32,
+}
+
+impl FaultCounts {
+    /// All faults.
+    pub fn total(&self) -> u32 {
+        self.wrong_length
+            .saturating_add(self.non_finite)
+            .saturating_add(self.out_of_range)
+            .saturating_add(self.overflow)
+    }
+
+    fn count(&mut self, f: Fault) {
+        let slot = match f {
+            Fault::WrongLength { .. } => &mut self.wrong_length,
+            Fault::NonFinite { .. } => &mut self.non_finite,
+            Fault::OutOfRange { .. } => &mut self.out_of_range,
+            Fault::Overflow => &mut self.overflow,
+        };
+        *slot = slot.saturating_add(1);
+    }
+}
+
+/// What one call to [`Detector::update`] found.
+#[derive(Debug, Clone, Copy, PartialEq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Outcome {
+    /// Index of this sample since the last reset (faulted samples count).
+    pub index: u64,
+    /// Scores, unless the sample was a fault.
+    pub scores: Option<Scores>,
+    /// The fault, if the sample was not scored.
+    pub fault: Option<Fault>,
+    /// State after this sample.
+    pub state: DriftState,
+    /// State change caused by this sample.
+    pub event: Option<Event>,
+    /// Scores whose CUSUM or EWMA is over its limit after this sample.
+    pub hot: ScoreSet,
+    /// Largest SPE contributions (zeros on a fault).
+    pub top: [Contribution; TOP_FEATURES],
+}
+
+/// The on-device drift detector. Fixed memory, no allocation, no panics.
+///
+/// Replaying a log through this type on the host gives the same bits as on
+/// the board: see the crate documentation.
+#[derive(Debug, Clone)]
+pub struct Detector {
+    model: Model,
+    derived: Derived,
+    tracks: [Track; 3],
+    state: DriftState,
+    index: u64,
+    valid: u64,
+    hot_run: u32,
+    calm_run: u32,
+    held: u32,
+    faults: FaultCounts,
+    window_len: u32,
+}
+
+/// Samples per telemetry window of [`Track::window`].
+pub const WINDOW: u32 = 1024;
+
+impl Detector {
+    /// Validates `model` against the device capacities and starts a detector.
+    pub fn new(model: Model) -> Result<Self, ModelError> {
+        Capacity::DEVICE.admits(&model.dims)?;
+        model.validate()?;
+        let derived = Derived::new(&model)?;
+        let lambda = model.monitor.ewma_lambda;
+        let tracks = [
+            Track::new(lambda, &model.monitor.spe),
+            Track::new(lambda, &model.monitor.t2),
+            Track::new(lambda, &model.monitor.nll),
+        ];
+        let mut det = Detector {
+            model,
+            derived,
+            tracks,
+            state: DriftState::Priming,
+            index: 0,
+            valid: 0,
+            hot_run: 0,
+            calm_run: 0,
+            held: 0,
+            faults: FaultCounts::default(),
+            window_len: 0,
+        };
+        det.reset();
+        Ok(det)
+    }
+
+    /// Decodes a model file and starts a detector on it.
+    pub fn from_file(bytes: &[u8]) -> Result<Self, ModelError> {
+        Self::new(plumb_model::file::decode(bytes, &Capacity::DEVICE)?)
+    }
+
+    /// Replaces the model. On error the running model and its statistics are
+    /// untouched; on success the statistics restart with warm-up.
+    pub fn install(&mut self, model: Model) -> Result<(), ModelError> {
+        let fresh = Detector::new(model)?;
+        *self = fresh;
+        Ok(())
+    }
+
+    /// Forgets all statistics and restarts warm-up.
+    pub fn reset(&mut self) {
+        let mp = &self.model.monitor;
+        self.tracks = [
+            Track::new(mp.ewma_lambda, &mp.spe),
+            Track::new(mp.ewma_lambda, &mp.t2),
+            Track::new(mp.ewma_lambda, &mp.nll),
+        ];
+        self.state = if mp.warmup == 0 {
+            DriftState::Watching
+        } else {
+            DriftState::Priming
+        };
+        self.index = 0;
+        self.valid = 0;
+        self.hot_run = 0;
+        self.calm_run = 0;
+        self.held = 0;
+        self.faults = FaultCounts::default();
+        self.window_len = 0;
+    }
+
+    /// The running model.
+    pub fn model(&self) -> &Model {
+        &self.model
+    }
+
+    /// Current state.
+    pub fn state(&self) -> DriftState {
+        self.state
+    }
+
+    /// Statistics of one score.
+    pub fn track(&self, s: Score) -> &Track {
+        &self.tracks[s as usize]
+    }
+
+    /// Faults since the last reset.
+    pub fn faults(&self) -> FaultCounts {
+        self.faults
+    }
+
+    /// Samples seen since the last reset (faults included).
+    pub fn samples(&self) -> u64 {
+        self.index
+    }
+
+    /// Scores one sample without touching any statistic (used by calibration).
+    pub fn score(&self, x: &[f32]) -> Result<score::Scored, Fault> {
+        score::score(&self.model, &self.derived, x)
+    }
+
+    /// Feeds one sample: score it, update the statistics, step the states.
+    pub fn update(&mut self, x: &[f32]) -> Outcome {
+        let index = self.index;
+        self.index = self.index.wrapping_add(1);
+        let scored = match score::score(&self.model, &self.derived, x) {
+            Ok(s) => s,
+            Err(fault) => {
+                self.faults.count(fault);
+                return Outcome {
+                    index,
+                    scores: None,
+                    fault: Some(fault),
+                    state: self.state,
+                    event: None,
+                    hot: self.hot_set(),
+                    top: [Contribution {
+                        feature: score::NO_FEATURE,
+                        value: 0.0,
+                    }; TOP_FEATURES],
+                };
+            }
+        };
+        let s = scored.scores;
+        self.valid += 1;
+        self.window_len += 1;
+        let roll = self.window_len >= WINDOW;
+        if roll {
+            self.window_len = 0;
+        }
+        let mp = self.model.monitor;
+        let limits = [&mp.spe, &mp.t2, &mp.nll];
+        let values = [s.spe, s.t2, s.nll];
+        for ((track, lim), (which, value)) in self
+            .tracks
+            .iter_mut()
+            .zip(limits)
+            .zip(Score::ALL.into_iter().zip(values))
+        {
+            track.since_reset.push(value);
+            track.window.push(value);
+            if roll {
+                track.last_window = track.window;
+                track.window = Welford::new();
+            }
+            if value > lim.sample_limit {
+                track.over_sample_limit = track.over_sample_limit.saturating_add(1);
+            }
+            let u = (transform(which, value) - lim.center) / lim.spread;
+            track.ewma.push(u);
+            track.cusum.push(u);
+        }
+        let hot = self.hot_set();
+        let event = self.step(hot);
+        Outcome {
+            index,
+            scores: Some(s),
+            fault: None,
+            state: self.state,
+            event,
+            hot,
+            top: scored.top,
+        }
+    }
+
+    fn hot_set(&self) -> ScoreSet {
+        let mp = &self.model.monitor;
+        let limits = [&mp.spe, &mp.t2, &mp.nll];
+        let mut set = ScoreSet::EMPTY;
+        for ((track, lim), which) in self.tracks.iter().zip(limits).zip(Score::ALL) {
+            if track.cusum.value() > lim.cusum_limit || track.ewma.value() > lim.ewma_limit {
+                set.insert(which);
+            }
+        }
+        set
+    }
+
+    fn calm(&self) -> bool {
+        let mp = &self.model.monitor;
+        let f = mp.clear_fraction;
+        let limits = [&mp.spe, &mp.t2, &mp.nll];
+        self.tracks.iter().zip(limits).all(|(track, lim)| {
+            track.cusum.value() <= f * lim.cusum_limit && track.ewma.value() <= f * lim.ewma_limit
+        })
+    }
+
+    fn step(&mut self, hot: ScoreSet) -> Option<Event> {
+        let mp = self.model.monitor;
+        match self.state {
+            DriftState::Priming => {
+                if self.valid >= u64::from(mp.warmup) {
+                    self.state = DriftState::Watching;
+                    self.hot_run = 0;
+                    return Some(Event::Primed);
+                }
+                None
+            }
+            DriftState::Watching => {
+                self.hot_run = if hot.is_empty() {
+                    0
+                } else {
+                    self.hot_run.saturating_add(1)
+                };
+                if self.hot_run >= u32::from(mp.raise_dwell) {
+                    self.state = DriftState::Drifting;
+                    self.held = 0;
+                    self.calm_run = 0;
+                    return Some(Event::Raised { drivers: hot });
+                }
+                None
+            }
+            DriftState::Drifting => {
+                self.held = self.held.saturating_add(1);
+                self.calm_run = if self.calm() {
+                    self.calm_run.saturating_add(1)
+                } else {
+                    0
+                };
+                if self.calm_run >= u32::from(mp.clear_dwell) && self.held >= mp.min_hold {
+                    self.state = DriftState::Watching;
+                    self.hot_run = 0;
+                    return Some(Event::Cleared);
+                }
+                None
+            }
+        }
+    }
+}

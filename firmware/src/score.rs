@@ -1,0 +1,250 @@
+//! Per-sample scores: standardise, project, reconstruct, SPE, T², mixture NLL.
+
+use crate::math;
+use plumb_model::{Model, ModelError, MAX_COMPONENTS, MAX_FEATURES, MAX_MIXTURE, MAX_MIX_PARAMS};
+
+/// How many features the residual contributions name.
+pub const TOP_FEATURES: usize = 3;
+
+/// Feature index of an unused contribution slot.
+pub const NO_FEATURE: u8 = u8::MAX;
+
+/// The three scores of one sample.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Scores {
+    /// Squared prediction error (Q): squared norm of the residual.
+    pub spe: f32,
+    /// Hotelling T² of the latent scores.
+    pub t2: f32,
+    /// Negative log-likelihood under the diagonal Gaussian mixture.
+    pub nll: f32,
+}
+
+/// One feature's share of the SPE.
+#[derive(Debug, Clone, Copy, PartialEq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Contribution {
+    /// Feature index in model order.
+    pub feature: u8,
+    /// Squared residual `r_i²` of that feature.
+    pub value: f32,
+}
+
+/// Why a sample was not scored. A faulted sample never reaches any statistic.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub enum Fault {
+    /// The sample has the wrong number of features.
+    WrongLength {
+        /// Features received.
+        got: u16,
+    },
+    /// A feature is NaN or infinite.
+    NonFinite {
+        /// Feature index.
+        feature: u8,
+    },
+    /// A feature is further than the model's `fault_z` from its mean.
+    OutOfRange {
+        /// Feature index.
+        feature: u8,
+    },
+    /// A score overflowed f32 (possible only with extreme models).
+    Overflow,
+}
+
+/// A scored sample: scores, residual contributions and the latent scores.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Scored {
+    /// The scores.
+    pub scores: Scores,
+    /// The largest residual contributions, largest first.
+    pub top: [Contribution; TOP_FEATURES],
+    /// Number of latent scores in `latent`.
+    pub m: usize,
+    /// Latent scores `t = Pᵀ z` (first `m` valid).
+    pub latent: [f32; MAX_COMPONENTS],
+}
+
+/// Constants derived from a model at load time, so the per-sample path does
+/// only multiply-adds plus `k` exponentials and one logarithm.
+#[derive(Debug, Clone)]
+pub struct Derived {
+    inv_scale: [f32; MAX_FEATURES],
+    inv_eigen: [f32; MAX_COMPONENTS],
+    inv_var: [f32; MAX_MIX_PARAMS],
+    log_norm: [f32; MAX_MIXTURE],
+}
+
+impl Derived {
+    /// Precomputes reciprocals and the per-component log normalising
+    /// constants `ln π_c − ½ Σ_j ln(2π v_cj)`. The model must be validated.
+    pub fn new(model: &Model) -> Result<Self, ModelError> {
+        let mut d = Derived {
+            inv_scale: [0.0; MAX_FEATURES],
+            inv_eigen: [0.0; MAX_COMPONENTS],
+            inv_var: [0.0; MAX_MIX_PARAMS],
+            log_norm: [0.0; MAX_MIXTURE],
+        };
+        for (o, s) in d.inv_scale.iter_mut().zip(model.scale.iter()) {
+            *o = 1.0 / s;
+        }
+        for (o, l) in d.inv_eigen.iter_mut().zip(model.eigenvalues.iter()) {
+            *o = 1.0 / l;
+        }
+        for (o, v) in d.inv_var.iter_mut().zip(model.mix_variances.iter()) {
+            *o = 1.0 / v;
+        }
+        let m = usize::from(model.dims.components);
+        let two_pi = 2.0 * core::f32::consts::PI;
+        for ((o, w), vars) in d
+            .log_norm
+            .iter_mut()
+            .zip(model.weights.iter())
+            .zip(model.mix_variances.chunks_exact(m.max(1)))
+        {
+            let mut acc = math::ln_exact(*w);
+            for v in vars {
+                acc -= 0.5 * math::ln_exact(two_pi * v);
+            }
+            *o = acc;
+        }
+        let all = d
+            .inv_scale
+            .iter()
+            .chain(d.inv_eigen.iter())
+            .chain(d.inv_var.iter())
+            .chain(d.log_norm.iter());
+        if all.clone().any(|v| !v.is_finite()) {
+            return Err(ModelError::OutOfRange {
+                field: plumb_model::Field::MixVariances,
+            });
+        }
+        Ok(d)
+    }
+}
+
+fn insert_top(top: &mut [Contribution; TOP_FEATURES], feature: usize, value: f32) {
+    // Strictly greater: ties keep the lower feature index first.
+    if value > top[TOP_FEATURES - 1].value {
+        let mut at = TOP_FEATURES - 1;
+        while at > 0 && value > top[at - 1].value {
+            top[at] = top[at - 1];
+            at -= 1;
+        }
+        top[at] = Contribution {
+            feature: feature as u8,
+            value,
+        };
+    }
+}
+
+/// Scores one sample. `x` must have `d` features in model order.
+///
+/// Operation order is fixed (sums run in index order, no fused multiply-add),
+/// so the host and the board produce the same bits.
+pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Fault> {
+    let d = usize::from(model.dims.features);
+    let m = usize::from(model.dims.components);
+    let k = usize::from(model.dims.mixture);
+    if x.len() != d {
+        return Err(Fault::WrongLength {
+            got: x.len().min(u16::MAX as usize) as u16,
+        });
+    }
+    if let Some(i) = x.iter().position(|v| !v.is_finite()) {
+        return Err(Fault::NonFinite { feature: i as u8 });
+    }
+    let fault_z = model.monitor.fault_z;
+    let mut z = [0.0f32; MAX_FEATURES];
+    for (i, (((zi, xi), mu), inv)) in z
+        .iter_mut()
+        .zip(x)
+        .zip(model.mean.iter())
+        .zip(derived.inv_scale.iter())
+        .enumerate()
+    {
+        let v = (xi - mu) * inv;
+        if v.is_nan() || v.abs() > fault_z {
+            return Err(Fault::OutOfRange { feature: i as u8 });
+        }
+        *zi = v;
+    }
+    let z = &z[..d];
+
+    // t = Pᵀ z, accumulated row by row (P is d × m, row-major).
+    let mut latent = [0.0f32; MAX_COMPONENTS];
+    let t = &mut latent[..m];
+    for (zi, row) in z.iter().zip(model.loadings.chunks_exact(m)) {
+        for (tj, p) in t.iter_mut().zip(row) {
+            *tj += zi * p;
+        }
+    }
+    let t = &latent[..m];
+
+    // r = z − P t; SPE = Σ r_i²; keep the top contributions.
+    let mut spe = 0.0f32;
+    // Sentinel below any real contribution; slots still unused after the loop
+    // (only when d < TOP_FEATURES) name feature NO_FEATURE with value 0.
+    let mut top = [Contribution {
+        feature: NO_FEATURE,
+        value: -1.0,
+    }; TOP_FEATURES];
+    for (i, (zi, row)) in z.iter().zip(model.loadings.chunks_exact(m)).enumerate() {
+        let mut recon = 0.0f32;
+        for (p, tj) in row.iter().zip(t) {
+            recon += p * tj;
+        }
+        let r = zi - recon;
+        let c = r * r;
+        spe += c;
+        insert_top(&mut top, i, c);
+    }
+
+    for c in top.iter_mut().filter(|c| c.feature == NO_FEATURE) {
+        c.value = 0.0;
+    }
+
+    let mut t2 = 0.0f32;
+    for (tj, inv) in t.iter().zip(derived.inv_eigen.iter()) {
+        t2 += tj * tj * inv;
+    }
+
+    // Mixture NLL by log-sum-exp over components.
+    let mut logp = [0.0f32; MAX_MIXTURE];
+    let mut best = f32::NEG_INFINITY;
+    for (((lp, norm), mu), inv) in logp
+        .iter_mut()
+        .zip(derived.log_norm.iter())
+        .zip(model.mix_means.chunks_exact(m))
+        .zip(derived.inv_var.chunks_exact(m))
+        .take(k)
+    {
+        let mut quad = 0.0f32;
+        for ((tj, mj), ij) in t.iter().zip(mu).zip(inv) {
+            let e = tj - mj;
+            quad += e * e * ij;
+        }
+        *lp = norm - 0.5 * quad;
+        if *lp > best {
+            best = *lp;
+        }
+    }
+    let mut sum = 0.0f32;
+    for lp in &logp[..k] {
+        sum += math::exp(lp - best);
+    }
+    let nll = -(best + math::ln(sum));
+
+    let scores = Scores { spe, t2, nll };
+    if !(spe.is_finite() && t2.is_finite() && nll.is_finite()) {
+        return Err(Fault::Overflow);
+    }
+    Ok(Scored {
+        scores,
+        top,
+        m,
+        latent,
+    })
+}

@@ -1,0 +1,263 @@
+//! The model file (`.plumb`): header, postcard payload, label section, CRC-32.
+//!
+//! ```text
+//! offset  size  field
+//! 0       4     magic "PLMD"
+//! 4       2     format version, u16 little-endian (FORMAT_VERSION)
+//! 6       2     flags, u16 little-endian (must be 0 in version 1)
+//! 8       4     payload length P, u32 little-endian
+//! 12      4     label section length L, u32 little-endian
+//! 16      P     payload: postcard encoding of the model
+//! 16+P    L     labels: postcard encoding of the feature names and units (host only)
+//! 16+P+L  4     CRC-32/ISO-HDLC of bytes [0, 16+P+L), u32 little-endian
+//! ```
+//! See `FORMAT.md` for the full specification and its stability rules.
+
+use crate::error::ModelError;
+use crate::{Capacity, Dims, Model, ModelMeta};
+
+/// The four bytes every model file starts with.
+pub const MAGIC: [u8; 4] = *b"PLMD";
+/// The model format version this crate reads and writes.
+pub const FORMAT_VERSION: u16 = 1;
+/// Header length in bytes.
+pub const HEADER_LEN: usize = 16;
+/// CRC trailer length in bytes.
+pub const CRC_LEN: usize = 4;
+/// The CRC used by model files (and by wire frames): CRC-32/ISO-HDLC, the
+/// CRC of zlib and Ethernet (check value 0xCBF43926 for "123456789").
+pub const CRC: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+
+/// The parts of a model file after the framing was checked.
+#[derive(Debug, Clone, Copy)]
+pub struct Sections<'a> {
+    /// Format version.
+    pub version: u16,
+    /// The postcard-encoded model.
+    pub payload: &'a [u8],
+    /// The postcard-encoded label section (may be empty).
+    pub labels: &'a [u8],
+}
+
+fn le16(b: &[u8], at: usize) -> u16 {
+    u16::from_le_bytes([b[at], b[at + 1]])
+}
+
+fn le32(b: &[u8], at: usize) -> u32 {
+    u32::from_le_bytes([b[at], b[at + 1], b[at + 2], b[at + 3]])
+}
+
+/// Checks magic, version, flags, lengths and CRC; returns the sections.
+pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
+    let got = bytes.len() as u32;
+    if bytes.len() < 4 {
+        return Err(ModelError::Truncated {
+            needed: HEADER_LEN as u32,
+            got,
+        });
+    }
+    if bytes[..4] != MAGIC {
+        return Err(ModelError::BadMagic);
+    }
+    if bytes.len() < HEADER_LEN {
+        return Err(ModelError::Truncated {
+            needed: HEADER_LEN as u32,
+            got,
+        });
+    }
+    let version = le16(bytes, 4);
+    if version != FORMAT_VERSION {
+        return Err(ModelError::UnknownVersion { found: version });
+    }
+    let flags = le16(bytes, 6);
+    if flags != 0 {
+        return Err(ModelError::UnknownFlags { found: flags });
+    }
+    let payload_len = le32(bytes, 8) as u64;
+    let labels_len = le32(bytes, 12) as u64;
+    let total = HEADER_LEN as u64 + payload_len + labels_len + CRC_LEN as u64;
+    if (bytes.len() as u64) < total {
+        return Err(ModelError::Truncated {
+            needed: total.min(u32::MAX as u64) as u32,
+            got,
+        });
+    }
+    if (bytes.len() as u64) > total {
+        return Err(ModelError::TrailingBytes {
+            extra: (bytes.len() as u64 - total) as u32,
+        });
+    }
+    let body_end = bytes.len() - CRC_LEN;
+    let stored = le32(bytes, body_end);
+    let computed = CRC.checksum(&bytes[..body_end]);
+    if stored != computed {
+        return Err(ModelError::BadCrc { stored, computed });
+    }
+    let payload_end = HEADER_LEN + payload_len as usize;
+    Ok(Sections {
+        version,
+        payload: &bytes[HEADER_LEN..payload_end],
+        labels: &bytes[payload_end..body_end],
+    })
+}
+
+/// Reads only the identity and dimensions of a payload (they are encoded first).
+pub fn peek(payload: &[u8]) -> Result<(ModelMeta, Dims), ModelError> {
+    postcard::take_from_bytes::<(ModelMeta, Dims)>(payload)
+        .map(|(head, _)| head)
+        .map_err(|_| ModelError::Undecodable)
+}
+
+/// Decodes a model file into fixed-capacity storage and validates it, refusing
+/// a model over `cap`. Never panics, for any input.
+pub fn decode(bytes: &[u8], cap: &Capacity) -> Result<Model, ModelError> {
+    let sections = split(bytes)?;
+    decode_payload(sections.payload, cap)
+}
+
+/// Decodes and validates a bare payload (no header, no CRC).
+pub fn decode_payload(payload: &[u8], cap: &Capacity) -> Result<Model, ModelError> {
+    let (_, dims) = peek(payload)?;
+    cap.admits(&dims)?;
+    Capacity::DEVICE.admits(&dims)?;
+    let (model, rest) =
+        postcard::take_from_bytes::<Model>(payload).map_err(|_| ModelError::Undecodable)?;
+    if !rest.is_empty() {
+        return Err(ModelError::Undecodable);
+    }
+    model.validate()?;
+    Ok(model)
+}
+
+/// Writes the framing around an already encoded payload and label section
+/// into `out`; returns the length written.
+pub fn frame_into(payload: &[u8], labels: &[u8], out: &mut [u8]) -> Result<usize, ModelError> {
+    let total = HEADER_LEN + payload.len() + labels.len() + CRC_LEN;
+    if out.len() < total {
+        return Err(ModelError::BufferTooSmall);
+    }
+    out[..4].copy_from_slice(&MAGIC);
+    out[4..6].copy_from_slice(&FORMAT_VERSION.to_le_bytes());
+    out[6..8].copy_from_slice(&0u16.to_le_bytes());
+    out[8..12].copy_from_slice(&(payload.len() as u32).to_le_bytes());
+    out[12..16].copy_from_slice(&(labels.len() as u32).to_le_bytes());
+    let p_end = HEADER_LEN + payload.len();
+    out[HEADER_LEN..p_end].copy_from_slice(payload);
+    out[p_end..p_end + labels.len()].copy_from_slice(labels);
+    let body_end = p_end + labels.len();
+    let crc = CRC.checksum(&out[..body_end]);
+    out[body_end..total].copy_from_slice(&crc.to_le_bytes());
+    Ok(total)
+}
+
+/// Encodes a device model (with an empty label section) into `out`.
+pub fn encode_into(model: &Model, out: &mut [u8]) -> Result<usize, ModelError> {
+    // Encode the payload in place after the header, then frame around it.
+    if out.len() < HEADER_LEN + CRC_LEN {
+        return Err(ModelError::BufferTooSmall);
+    }
+    let cap = out.len() - CRC_LEN;
+    let payload_len = postcard::to_slice(model, &mut out[HEADER_LEN..cap])
+        .map_err(|_| ModelError::BufferTooSmall)?
+        .len();
+    out[..4].copy_from_slice(&MAGIC);
+    out[4..6].copy_from_slice(&FORMAT_VERSION.to_le_bytes());
+    out[6..8].copy_from_slice(&0u16.to_le_bytes());
+    out[8..12].copy_from_slice(&(payload_len as u32).to_le_bytes());
+    out[12..16].copy_from_slice(&0u32.to_le_bytes());
+    let body_end = HEADER_LEN + payload_len;
+    let crc = CRC.checksum(&out[..body_end]);
+    out[body_end..body_end + CRC_LEN].copy_from_slice(&crc.to_le_bytes());
+    Ok(body_end + CRC_LEN)
+}
+
+#[cfg(feature = "alloc")]
+mod owned {
+    use super::*;
+    use crate::ModelOwned;
+    use alloc::string::String;
+    use alloc::vec::Vec;
+    use serde::{Deserialize, Serialize};
+
+    /// Name and unit of one feature, as kept in the label section.
+    #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+    pub struct Label {
+        /// Column name in the logs.
+        pub name: String,
+        /// Unit, empty when unitless.
+        pub unit: String,
+    }
+
+    /// A model file as the host sees it: the model and its labels.
+    #[derive(Debug, Clone, PartialEq)]
+    pub struct ModelFile {
+        /// The model.
+        pub model: ModelOwned,
+        /// One label per feature, in model order.
+        pub labels: Vec<Label>,
+    }
+
+    impl ModelFile {
+        /// Encodes header, payload, labels and CRC. The model is validated and
+        /// the labels must match its schema fingerprint.
+        pub fn to_bytes(&self) -> Result<Vec<u8>, ModelError> {
+            self.check_labels()?;
+            self.model.validate()?;
+            let payload =
+                postcard::to_allocvec(&self.model).map_err(|_| ModelError::BufferTooSmall)?;
+            let labels =
+                postcard::to_allocvec(&self.labels).map_err(|_| ModelError::BufferTooSmall)?;
+            let mut out = alloc::vec![0u8; HEADER_LEN + payload.len() + labels.len() + CRC_LEN];
+            frame_into(&payload, &labels, &mut out)?;
+            Ok(out)
+        }
+
+        /// Decodes and validates a model file without device capacity limits.
+        pub fn from_bytes(bytes: &[u8]) -> Result<ModelFile, ModelError> {
+            let sections = split(bytes)?;
+            let (model, rest) = postcard::take_from_bytes::<ModelOwned>(sections.payload)
+                .map_err(|_| ModelError::Undecodable)?;
+            if !rest.is_empty() {
+                return Err(ModelError::Undecodable);
+            }
+            model.validate()?;
+            let labels: Vec<Label> = if sections.labels.is_empty() {
+                Vec::new()
+            } else {
+                postcard::from_bytes(sections.labels).map_err(|_| ModelError::Undecodable)?
+            };
+            let file = ModelFile { model, labels };
+            file.check_labels()?;
+            Ok(file)
+        }
+
+        /// Labels, if present, must be one per feature and match the fingerprint.
+        fn check_labels(&self) -> Result<(), ModelError> {
+            if self.labels.is_empty() {
+                return Ok(());
+            }
+            let d = usize::from(self.model.dims.features);
+            if self.labels.len() != d {
+                return Err(ModelError::Inconsistent {
+                    field: crate::Field::Labels,
+                    expected: d as u32,
+                    found: self.labels.len() as u32,
+                });
+            }
+            let fp = crate::schema::fingerprint(
+                self.labels
+                    .iter()
+                    .map(|l| (l.name.as_str(), l.unit.as_str())),
+            );
+            if fp != self.model.meta.schema {
+                return Err(ModelError::OutOfRange {
+                    field: crate::Field::Labels,
+                });
+            }
+            Ok(())
+        }
+    }
+}
+
+#[cfg(feature = "alloc")]
+pub use owned::{Label, ModelFile};

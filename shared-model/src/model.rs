@@ -1,0 +1,373 @@
+//! The model: one layout, two storages.
+//!
+//! [`Model`] keeps every array in a fixed-capacity [`heapless::Vec`]; it is what
+//! a device decodes into. [`ModelOwned`] (feature `alloc`) has the same fields in
+//! the same order with `alloc::vec::Vec`; the host fills it in. Postcard encodes
+//! both vector kinds identically (a varint length, then the elements), so the
+//! two give the same bytes. Validation is written once, on [`ModelView`].
+
+use crate::error::{Field, ModelError};
+use crate::{MAX_COMPONENTS, MAX_FEATURES, MAX_LOADINGS, MAX_MIXTURE, MAX_MIX_PARAMS};
+use serde::{Deserialize, Serialize};
+
+/// Identity and provenance of a model. Encoded first, so a reader can learn
+/// what a file is before decoding the arrays.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct ModelMeta {
+    /// Model id, chosen by the fit (derived from the payload unless given).
+    pub id: u32,
+    /// Schema fingerprint: hash of feature names, order and units
+    /// ([`crate::schema::fingerprint`]).
+    pub schema: u64,
+    /// When the model was fitted, seconds since the Unix epoch (0 if unknown).
+    pub created_unix_s: u64,
+    /// Rows used for the fit.
+    pub train_rows: u64,
+    /// Rows used for calibration.
+    pub calib_rows: u64,
+    /// Nominal sample period of the logs in microseconds (0 if unknown).
+    pub sample_period_us: u32,
+}
+
+/// The dimensions of a model.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Dims {
+    /// Features per sample, `d`.
+    pub features: u16,
+    /// Latent components kept, `m` (1 ≤ m ≤ d).
+    pub components: u16,
+    /// Mixture components, `k`.
+    pub mixture: u16,
+}
+
+/// Limits and smoothing constants for one score.
+///
+/// The monitored quantity is the score passed through a variance-stabilising
+/// transform (cube root for SPE and T², after Wilson & Hilferty 1931; identity
+/// for the mixture NLL), then standardised: `u = (g(score) - center) / spread`.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct ScoreLimits {
+    /// Per-sample limit on the raw score (reported, counted; never raises a
+    /// flag on its own).
+    pub sample_limit: f32,
+    /// In-control mean of the transformed score.
+    pub center: f32,
+    /// In-control standard deviation of the transformed score (> 0).
+    pub spread: f32,
+    /// CUSUM reference value `k`, in units of `spread` (≥ 0).
+    pub cusum_slack: f32,
+    /// CUSUM decision limit `h`, in units of `spread` (> 0).
+    pub cusum_limit: f32,
+    /// Upper limit of the EWMA of `u` (> 0).
+    pub ewma_limit: f32,
+}
+
+/// Parameters of the streaming monitor and its drift states.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct MonitorParams {
+    /// A standardised feature with `|z|` above this is a sensor fault (> 0).
+    pub fault_z: f32,
+    /// Valid samples after a reset or model switch before a flag may rise.
+    pub warmup: u32,
+    /// EWMA smoothing constant λ, in (0, 1].
+    pub ewma_lambda: f32,
+    /// Consecutive samples over a limit before a flag rises (≥ 1).
+    pub raise_dwell: u16,
+    /// Consecutive calm samples before a flag clears (≥ 1).
+    pub clear_dwell: u16,
+    /// Fewest samples a raised flag stays raised.
+    pub min_hold: u32,
+    /// Calm means every CUSUM below `clear_fraction · h` and every EWMA below
+    /// `clear_fraction · L`; in (0, 1].
+    pub clear_fraction: f32,
+    /// Limits for SPE (Q).
+    pub spe: ScoreLimits,
+    /// Limits for Hotelling T².
+    pub t2: ScoreLimits,
+    /// Limits for the mixture negative log-likelihood.
+    pub nll: ScoreLimits,
+}
+
+/// Borrowed, storage-independent view of a model; validation lives here.
+#[derive(Debug, Clone, Copy)]
+pub struct ModelView<'a> {
+    /// Identity.
+    pub meta: &'a ModelMeta,
+    /// Dimensions.
+    pub dims: &'a Dims,
+    /// Per-feature mean, `d`.
+    pub mean: &'a [f32],
+    /// Per-feature scale, `d`.
+    pub scale: &'a [f32],
+    /// Loadings, `d × m` row-major.
+    pub loadings: &'a [f32],
+    /// Eigenvalues of the kept components, `m`.
+    pub eigenvalues: &'a [f32],
+    /// θ1, θ2, θ3 of the discarded eigenvalues.
+    pub theta: &'a [f32; 3],
+    /// Mixture weights, `k`.
+    pub weights: &'a [f32],
+    /// Mixture means, `k × m` row-major.
+    pub mix_means: &'a [f32],
+    /// Mixture variances, `k × m` row-major.
+    pub mix_variances: &'a [f32],
+    /// Monitor parameters.
+    pub monitor: &'a MonitorParams,
+}
+
+fn check_len(field: Field, slice: &[f32], expected: usize) -> Result<(), ModelError> {
+    if slice.len() != expected {
+        return Err(ModelError::Inconsistent {
+            field,
+            expected: expected as u32,
+            found: slice.len() as u32,
+        });
+    }
+    Ok(())
+}
+
+fn check_finite(field: Field, slice: &[f32]) -> Result<(), ModelError> {
+    match slice.iter().position(|v| !v.is_finite()) {
+        Some(i) => Err(ModelError::NonFinite {
+            field,
+            index: i as u16,
+        }),
+        None => Ok(()),
+    }
+}
+
+fn check_positive(field: Field, slice: &[f32]) -> Result<(), ModelError> {
+    check_finite(field, slice)?;
+    match slice.iter().position(|v| *v <= 0.0) {
+        Some(i) => Err(ModelError::NotPositive {
+            field,
+            index: i as u16,
+        }),
+        None => Ok(()),
+    }
+}
+
+impl ScoreLimits {
+    fn validate(&self, field: Field) -> Result<(), ModelError> {
+        check_finite(
+            field,
+            &[
+                self.sample_limit,
+                self.center,
+                self.spread,
+                self.cusum_slack,
+                self.cusum_limit,
+                self.ewma_limit,
+            ],
+        )?;
+        check_positive(
+            field,
+            &[
+                self.sample_limit,
+                self.spread,
+                self.cusum_limit,
+                self.ewma_limit,
+            ],
+        )?;
+        if self.cusum_slack < 0.0 {
+            return Err(ModelError::OutOfRange { field });
+        }
+        Ok(())
+    }
+}
+
+impl MonitorParams {
+    /// Checks every parameter for finiteness and range.
+    pub fn validate(&self) -> Result<(), ModelError> {
+        let field = Field::Monitor;
+        check_positive(
+            field,
+            &[self.fault_z, self.ewma_lambda, self.clear_fraction],
+        )?;
+        if self.ewma_lambda > 1.0
+            || self.clear_fraction > 1.0
+            || self.raise_dwell == 0
+            || self.clear_dwell == 0
+        {
+            return Err(ModelError::OutOfRange { field });
+        }
+        self.spe.validate(Field::SpeLimits)?;
+        self.t2.validate(Field::T2Limits)?;
+        self.nll.validate(Field::NllLimits)
+    }
+}
+
+impl ModelView<'_> {
+    /// Checks that the model is internally consistent and numerically
+    /// meaningful. It does not check capacities (see [`crate::Capacity`]).
+    pub fn validate(&self) -> Result<(), ModelError> {
+        let d = usize::from(self.dims.features);
+        let m = usize::from(self.dims.components);
+        let k = usize::from(self.dims.mixture);
+        if d == 0 || m == 0 || k == 0 || m > d {
+            return Err(ModelError::BadDimensions);
+        }
+        check_len(Field::Mean, self.mean, d)?;
+        check_len(Field::Scale, self.scale, d)?;
+        check_len(Field::Loadings, self.loadings, d * m)?;
+        check_len(Field::Eigenvalues, self.eigenvalues, m)?;
+        check_len(Field::Weights, self.weights, k)?;
+        check_len(Field::MixMeans, self.mix_means, k * m)?;
+        check_len(Field::MixVariances, self.mix_variances, k * m)?;
+
+        check_finite(Field::Mean, self.mean)?;
+        check_positive(Field::Scale, self.scale)?;
+        check_finite(Field::Loadings, self.loadings)?;
+        check_positive(Field::Eigenvalues, self.eigenvalues)?;
+        check_finite(Field::Theta, self.theta)?;
+        if self.theta.iter().any(|t| *t < 0.0) {
+            return Err(ModelError::OutOfRange {
+                field: Field::Theta,
+            });
+        }
+        check_positive(Field::Weights, self.weights)?;
+        let total: f32 = self.weights.iter().sum();
+        if (total - 1.0).abs() > 1e-3 {
+            return Err(ModelError::OutOfRange {
+                field: Field::Weights,
+            });
+        }
+        check_finite(Field::MixMeans, self.mix_means)?;
+        check_positive(Field::MixVariances, self.mix_variances)?;
+        self.monitor.validate()
+    }
+}
+
+macro_rules! model_type {
+    (
+        $(#[$attr:meta])*
+        $name:ident,
+        feat = $feat:ty, load = $load:ty, comp = $comp:ty, mix = $mix:ty, mixp = $mixp:ty
+    ) => {
+        $(#[$attr])*
+        #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+        pub struct $name {
+            /// Identity and provenance.
+            pub meta: ModelMeta,
+            /// Dimensions.
+            pub dims: Dims,
+            /// Per-feature mean μ, `d` values.
+            pub mean: $feat,
+            /// Per-feature scale s (standard deviation, ddof = 0), `d` values.
+            pub scale: $feat,
+            /// PCA loadings P, `d × m`, row-major (`loadings[i * m + j]`).
+            pub loadings: $load,
+            /// Eigenvalues λ of the kept components, `m` values, descending.
+            pub eigenvalues: $comp,
+            /// θ1, θ2, θ3: sums of the first three powers of the discarded
+            /// eigenvalues (Jackson & Mudholkar 1979).
+            pub theta: [f32; 3],
+            /// Mixture weights π, `k` values summing to one.
+            pub weights: $mix,
+            /// Mixture means ν, `k × m`, row-major.
+            pub mix_means: $mixp,
+            /// Mixture variances v (diagonal), `k × m`, row-major.
+            pub mix_variances: $mixp,
+            /// Streaming monitor parameters and limits.
+            pub monitor: MonitorParams,
+        }
+
+        impl $name {
+            /// A borrowed view, for validation and arithmetic.
+            pub fn view(&self) -> ModelView<'_> {
+                ModelView {
+                    meta: &self.meta,
+                    dims: &self.dims,
+                    mean: &self.mean,
+                    scale: &self.scale,
+                    loadings: &self.loadings,
+                    eigenvalues: &self.eigenvalues,
+                    theta: &self.theta,
+                    weights: &self.weights,
+                    mix_means: &self.mix_means,
+                    mix_variances: &self.mix_variances,
+                    monitor: &self.monitor,
+                }
+            }
+
+            /// Checks consistency and numeric sanity; see [`ModelView::validate`].
+            pub fn validate(&self) -> Result<(), ModelError> {
+                self.view().validate()
+            }
+        }
+    };
+}
+
+model_type!(
+    /// A model in fixed-capacity storage, as a device holds it.
+    ///
+    /// Capacities: [`MAX_FEATURES`], [`MAX_COMPONENTS`], [`MAX_MIXTURE`].
+    Model,
+    feat = heapless::Vec<f32, MAX_FEATURES>,
+    load = heapless::Vec<f32, MAX_LOADINGS>,
+    comp = heapless::Vec<f32, MAX_COMPONENTS>,
+    mix = heapless::Vec<f32, MAX_MIXTURE>,
+    mixp = heapless::Vec<f32, MAX_MIX_PARAMS>
+);
+
+#[cfg(feature = "alloc")]
+model_type!(
+    /// A model in growable storage, as the host builds it. Encodes to the same
+    /// bytes as [`Model`].
+    ModelOwned,
+    feat = alloc::vec::Vec<f32>,
+    load = alloc::vec::Vec<f32>,
+    comp = alloc::vec::Vec<f32>,
+    mix = alloc::vec::Vec<f32>,
+    mixp = alloc::vec::Vec<f32>
+);
+
+#[cfg(feature = "alloc")]
+impl ModelOwned {
+    /// Copies into fixed-capacity storage, refusing a model over the device
+    /// capacities.
+    pub fn to_device(&self) -> Result<Model, ModelError> {
+        crate::Capacity::DEVICE.admits(&self.dims)?;
+        self.validate()?;
+        fn copy<const N: usize>(src: &[f32]) -> heapless::Vec<f32, N> {
+            // Lengths were checked by `admits` and `validate` above.
+            src.iter().copied().take(N).collect()
+        }
+        Ok(Model {
+            meta: self.meta,
+            dims: self.dims,
+            mean: copy(&self.mean),
+            scale: copy(&self.scale),
+            loadings: copy(&self.loadings),
+            eigenvalues: copy(&self.eigenvalues),
+            theta: self.theta,
+            weights: copy(&self.weights),
+            mix_means: copy(&self.mix_means),
+            mix_variances: copy(&self.mix_variances),
+            monitor: self.monitor,
+        })
+    }
+}
+
+#[cfg(feature = "alloc")]
+impl From<&Model> for ModelOwned {
+    fn from(m: &Model) -> Self {
+        ModelOwned {
+            meta: m.meta,
+            dims: m.dims,
+            mean: m.mean.to_vec(),
+            scale: m.scale.to_vec(),
+            loadings: m.loadings.to_vec(),
+            eigenvalues: m.eigenvalues.to_vec(),
+            theta: m.theta,
+            weights: m.weights.to_vec(),
+            mix_means: m.mix_means.to_vec(),
+            mix_variances: m.mix_variances.to_vec(),
+            monitor: m.monitor,
+        }
+    }
+}
