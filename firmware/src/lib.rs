@@ -49,6 +49,7 @@
 #![deny(missing_docs)]
 
 mod detector;
+pub mod endpoint;
 pub mod math;
 pub mod score;
 pub mod stats;

@@ -27,6 +27,7 @@ mod error;
 pub mod file;
 mod model;
 pub mod schema;
+pub mod wire;
 
 pub use error::{Dim, Field, ModelError};
 pub use model::*;
