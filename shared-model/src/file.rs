@@ -205,8 +205,13 @@ mod owned {
             self.model.validate()?;
             let payload =
                 postcard::to_allocvec(&self.model).map_err(|_| ModelError::BufferTooSmall)?;
-            let labels =
-                postcard::to_allocvec(&self.labels).map_err(|_| ModelError::BufferTooSmall)?;
+            // No labels: an empty section (not an encoded empty list), so a
+            // label-less host file equals the device encoding byte for byte.
+            let labels = if self.labels.is_empty() {
+                Vec::new()
+            } else {
+                postcard::to_allocvec(&self.labels).map_err(|_| ModelError::BufferTooSmall)?
+            };
             let mut out = alloc::vec![0u8; HEADER_LEN + payload.len() + labels.len() + CRC_LEN];
             frame_into(&payload, &labels, &mut out)?;
             Ok(out)

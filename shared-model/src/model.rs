@@ -153,26 +153,30 @@ fn check_positive(field: Field, slice: &[f32]) -> Result<(), ModelError> {
 
 impl ScoreLimits {
     fn validate(&self, field: Field) -> Result<(), ModelError> {
-        check_finite(
-            field,
-            &[
-                self.sample_limit,
-                self.center,
-                self.spread,
-                self.cusum_slack,
-                self.cusum_limit,
-                self.ewma_limit,
-            ],
-        )?;
-        check_positive(
-            field,
-            &[
-                self.sample_limit,
-                self.spread,
-                self.cusum_limit,
-                self.ewma_limit,
-            ],
-        )?;
+        // (value, must be > 0), in field order; the index reported is the
+        // field's position in the struct.
+        let values = [
+            (self.sample_limit, true),
+            (self.center, false),
+            (self.spread, true),
+            (self.cusum_slack, false),
+            (self.cusum_limit, true),
+            (self.ewma_limit, true),
+        ];
+        for (i, (v, positive)) in values.iter().enumerate() {
+            if !v.is_finite() {
+                return Err(ModelError::NonFinite {
+                    field,
+                    index: i as u16,
+                });
+            }
+            if *positive && *v <= 0.0 {
+                return Err(ModelError::NotPositive {
+                    field,
+                    index: i as u16,
+                });
+            }
+        }
         if self.cusum_slack < 0.0 {
             return Err(ModelError::OutOfRange { field });
         }

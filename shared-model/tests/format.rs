@@ -1,0 +1,393 @@
+//! The model file: layout pinned to exact bytes, one test per error, and
+//! "never panics" properties over arbitrary and mutated bytes.
+
+mod support;
+
+use plumb_model::file::{self, Label, ModelFile, CRC, HEADER_LEN, MAGIC};
+use plumb_model::{Capacity, Dim, Dims, Field, ModelError, ModelMeta, ModelOwned};
+use proptest::prelude::*;
+use support::example_model;
+
+/// Frames an arbitrary (possibly invalid) model without validating it.
+fn frame(model: &ModelOwned) -> Vec<u8> {
+    let payload = postcard::to_allocvec(model).unwrap();
+    let mut out = vec![0u8; HEADER_LEN + payload.len() + 4];
+    let n = file::frame_into(&payload, &[], &mut out).unwrap();
+    assert_eq!(n, out.len());
+    out
+}
+
+fn fix_crc(bytes: &mut [u8]) {
+    let end = bytes.len() - 4;
+    let crc = CRC.checksum(&bytes[..end]);
+    bytes[end..].copy_from_slice(&crc.to_le_bytes());
+}
+
+fn decode(bytes: &[u8]) -> Result<plumb_model::Model, ModelError> {
+    file::decode(bytes, &Capacity::DEVICE)
+}
+
+/// d = 2, m = 1, k = 1 with round numbers, so every byte can be read off.
+fn tiny() -> ModelOwned {
+    let s = std::f32::consts::FRAC_1_SQRT_2;
+    ModelOwned {
+        meta: ModelMeta {
+            id: 7,
+            schema: 1,
+            created_unix_s: 0,
+            train_rows: 300,
+            calib_rows: 2,
+            sample_period_us: 100_000,
+        },
+        dims: Dims {
+            features: 2,
+            components: 1,
+            mixture: 1,
+        },
+        mean: vec![1.0, -2.0],
+        scale: vec![0.5, 4.0],
+        loadings: vec![s, s],
+        eigenvalues: vec![1.5],
+        theta: [0.5, 0.25, 0.125],
+        weights: vec![1.0],
+        mix_means: vec![0.0],
+        mix_variances: vec![1.5],
+        monitor: support::monitor(),
+    }
+}
+
+#[test]
+fn crc_is_crc32_iso_hdlc() {
+    // Check value of CRC-32/ISO-HDLC for "123456789": 0xCBF43926
+    // (Greg Cook's CRC catalogue; also zlib's crc32).
+    assert_eq!(CRC.checksum(b"123456789"), 0xcbf4_3926);
+}
+
+#[test]
+fn tiny_model_exact_bytes() {
+    let bytes = ModelFile {
+        model: tiny(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .unwrap();
+    // Header (FORMAT.md): magic, version 1, flags 0, payload length, labels length 0.
+    assert_eq!(&bytes[0..4], b"PLMD");
+    assert_eq!(&bytes[4..8], &[1, 0, 0, 0]);
+    let payload_len = u32::from_le_bytes(bytes[8..12].try_into().unwrap()) as usize;
+    assert_eq!(&bytes[12..16], &[0, 0, 0, 0]);
+    assert_eq!(bytes.len(), HEADER_LEN + payload_len + 4);
+    // Payload, field by field in the postcard encoding (varint integers,
+    // little-endian f32, varint length before each vector, none before arrays).
+    let mut expect: Vec<u8> = vec![
+        7, // id
+        1, // schema
+        0, // created
+        0xac, 0x02, // train rows 300 as varint
+        2,    // calib rows
+        0xa0, 0x8d, 0x06, // 100_000 µs as varint
+        2, 1, 1, // dims
+    ];
+    let f = |v: &[f32], with_len: bool, out: &mut Vec<u8>| {
+        if with_len {
+            out.push(v.len() as u8);
+        }
+        for x in v {
+            out.extend_from_slice(&x.to_le_bytes());
+        }
+    };
+    f(&[1.0, -2.0], true, &mut expect);
+    f(&[0.5, 4.0], true, &mut expect);
+    let s = std::f32::consts::FRAC_1_SQRT_2;
+    f(&[s, s], true, &mut expect);
+    f(&[1.5], true, &mut expect);
+    f(&[0.5, 0.25, 0.125], false, &mut expect);
+    f(&[1.0], true, &mut expect);
+    f(&[0.0], true, &mut expect);
+    f(&[1.5], true, &mut expect);
+    // monitor: fault_z, warmup (varint), lambda, raise/clear dwell, min_hold, clear_fraction
+    f(&[50.0], false, &mut expect);
+    expect.push(10);
+    f(&[0.1], false, &mut expect);
+    expect.extend_from_slice(&[3, 20, 30]);
+    f(&[0.5], false, &mut expect);
+    for (c, sd) in [(0.5, 0.3), (1.2, 0.4), (3.0, 1.0)] {
+        f(&[100.0, c, sd, 0.5, 5.0, 0.8], false, &mut expect);
+    }
+    assert_eq!(&bytes[HEADER_LEN..HEADER_LEN + payload_len], &expect[..]);
+    // And the whole file, pinned: any change to the layout shows up here.
+    let crc = u32::from_le_bytes(bytes[bytes.len() - 4..].try_into().unwrap());
+    assert_eq!(crc, CRC.checksum(&bytes[..bytes.len() - 4]));
+    assert_eq!(payload_len, 159);
+    assert_eq!(crc, 0x33fb_ccd7, "pinned CRC of the tiny model file");
+}
+
+#[test]
+fn host_and_device_encode_the_same_bytes() {
+    for (d, m, k) in [(2, 1, 1), (8, 3, 2), (64, 16, 8)] {
+        let owned = example_model(d, m, k, 42);
+        let host = ModelFile {
+            model: owned.clone(),
+            labels: vec![],
+        }
+        .to_bytes()
+        .unwrap();
+        let device = owned.to_device().unwrap();
+        let mut buf = vec![0u8; 16 * 1024];
+        let n = file::encode_into(&device, &mut buf).unwrap();
+        assert_eq!(&buf[..n], &host[..]);
+        let back = decode(&host).unwrap();
+        assert_eq!(back, device);
+        assert_eq!(ModelOwned::from(&back), owned);
+    }
+}
+
+#[test]
+fn labels_round_trip_and_must_match_fingerprint() {
+    let mut model = tiny();
+    let labels = vec![
+        Label {
+            name: "a".into(),
+            unit: "A".into(),
+        },
+        Label {
+            name: "b".into(),
+            unit: String::new(),
+        },
+    ];
+    model.meta.schema = plumb_model::schema::fingerprint([("a", "A"), ("b", "")]);
+    let file = ModelFile {
+        model: model.clone(),
+        labels: labels.clone(),
+    };
+    let bytes = file.to_bytes().unwrap();
+    assert_eq!(ModelFile::from_bytes(&bytes).unwrap(), file);
+    // The device ignores labels but still checks the CRC over them.
+    assert!(decode(&bytes).is_ok());
+    let wrong = ModelFile {
+        model,
+        labels: vec![labels[1].clone(), labels[0].clone()],
+    };
+    assert_eq!(
+        wrong.to_bytes(),
+        Err(ModelError::OutOfRange {
+            field: Field::Labels
+        })
+    );
+}
+
+#[test]
+fn each_framing_error_is_distinct() {
+    let good = frame(&tiny());
+    assert!(decode(&good).is_ok());
+
+    let mut b = good.clone();
+    b[0] = b'X';
+    assert_eq!(decode(&b), Err(ModelError::BadMagic));
+
+    let mut b = good.clone();
+    b[4] = 2;
+    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 2 }));
+
+    let mut b = good.clone();
+    b[6] = 1;
+    assert_eq!(decode(&b), Err(ModelError::UnknownFlags { found: 1 }));
+
+    let n = good.len() as u32;
+    assert_eq!(
+        decode(&good[..good.len() - 1]),
+        Err(ModelError::Truncated {
+            needed: n,
+            got: n - 1
+        })
+    );
+    assert_eq!(
+        decode(&MAGIC),
+        Err(ModelError::Truncated {
+            needed: HEADER_LEN as u32,
+            got: 4
+        })
+    );
+    assert_eq!(
+        decode(&[]),
+        Err(ModelError::Truncated { needed: 16, got: 0 })
+    );
+
+    let mut b = good.clone();
+    b.push(0);
+    assert_eq!(decode(&b), Err(ModelError::TrailingBytes { extra: 1 }));
+
+    let mut b = good.clone();
+    b[HEADER_LEN + 3] ^= 0x10;
+    assert!(matches!(decode(&b), Err(ModelError::BadCrc { .. })));
+
+    // Valid CRC around a payload that does not decode.
+    let mut b = vec![0u8; HEADER_LEN + 3 + 4];
+    file::frame_into(&[0xff, 0xff, 0xff], &[], &mut b).unwrap();
+    assert_eq!(decode(&b), Err(ModelError::Undecodable));
+}
+
+#[test]
+fn each_content_error_is_distinct() {
+    let check = |edit: &dyn Fn(&mut ModelOwned), want: ModelError| {
+        let mut m = tiny();
+        edit(&mut m);
+        assert_eq!(decode(&frame(&m)), Err(want), "after edit");
+        assert_eq!(m.validate(), Err(want));
+    };
+    check(
+        &|m| m.mean.push(0.0),
+        ModelError::Inconsistent {
+            field: Field::Mean,
+            expected: 2,
+            found: 3,
+        },
+    );
+    check(
+        &|m| m.loadings.pop().map(|_| ()).unwrap(),
+        ModelError::Inconsistent {
+            field: Field::Loadings,
+            expected: 2,
+            found: 1,
+        },
+    );
+    check(&|m| m.dims.components = 3, ModelError::BadDimensions);
+    check(&|m| m.dims.mixture = 0, ModelError::BadDimensions);
+    check(
+        &|m| m.mean[1] = f32::NAN,
+        ModelError::NonFinite {
+            field: Field::Mean,
+            index: 1,
+        },
+    );
+    check(
+        &|m| m.loadings[0] = f32::INFINITY,
+        ModelError::NonFinite {
+            field: Field::Loadings,
+            index: 0,
+        },
+    );
+    check(
+        &|m| m.scale[1] = 0.0,
+        ModelError::NotPositive {
+            field: Field::Scale,
+            index: 1,
+        },
+    );
+    check(
+        &|m| m.mix_variances[0] = -1.0,
+        ModelError::NotPositive {
+            field: Field::MixVariances,
+            index: 0,
+        },
+    );
+    check(
+        &|m| m.eigenvalues[0] = 0.0,
+        ModelError::NotPositive {
+            field: Field::Eigenvalues,
+            index: 0,
+        },
+    );
+    check(
+        &|m| m.weights[0] = 0.9,
+        ModelError::OutOfRange {
+            field: Field::Weights,
+        },
+    );
+    check(
+        &|m| m.monitor.ewma_lambda = 1.5,
+        ModelError::OutOfRange {
+            field: Field::Monitor,
+        },
+    );
+    check(
+        &|m| m.monitor.t2.spread = 0.0,
+        ModelError::NotPositive {
+            field: Field::T2Limits,
+            index: 2,
+        },
+    );
+    check(
+        &|m| m.monitor.nll.center = f32::NAN,
+        ModelError::NonFinite {
+            field: Field::NllLimits,
+            index: 1,
+        },
+    );
+}
+
+#[test]
+fn over_capacity_is_refused_before_decoding_arrays() {
+    let big = example_model(65, 2, 1, 1);
+    let bytes = frame(&big);
+    assert_eq!(
+        decode(&bytes),
+        Err(ModelError::OverCapacity {
+            dim: Dim::Features,
+            found: 65,
+            max: 64
+        })
+    );
+    // A smaller reader capacity refuses a model the default build would hold.
+    let small = Capacity {
+        features: 8,
+        components: 2,
+        mixture: 2,
+    };
+    let bytes = frame(&example_model(8, 3, 1, 1));
+    assert_eq!(
+        file::decode(&bytes, &small),
+        Err(ModelError::OverCapacity {
+            dim: Dim::Components,
+            found: 3,
+            max: 2
+        })
+    );
+    assert!(matches!(
+        example_model(8, 3, 9, 1).to_device(),
+        Err(ModelError::OverCapacity {
+            dim: Dim::Mixture,
+            ..
+        })
+    ));
+}
+
+#[test]
+fn encode_into_small_buffer_is_an_error() {
+    let device = tiny().to_device().unwrap();
+    let mut buf = [0u8; 40];
+    assert_eq!(
+        file::encode_into(&device, &mut buf),
+        Err(ModelError::BufferTooSmall)
+    );
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(2000))]
+
+    #[test]
+    fn arbitrary_bytes_never_panic(bytes in proptest::collection::vec(any::<u8>(), 0..600)) {
+        let _ = decode(&bytes);
+        let _ = ModelFile::from_bytes(&bytes);
+    }
+
+    #[test]
+    fn mutated_payload_with_fixed_crc_gives_model_or_error(
+        at in 0usize..2000, value in any::<u8>(), cut in 0usize..64, seed in 0u64..50
+    ) {
+        // Reach the deep decoder: mutate inside the payload and repair the CRC.
+        let mut bytes = frame(&example_model(6, 3, 2, seed));
+        let body = bytes.len() - 4 - HEADER_LEN;
+        bytes[HEADER_LEN + at % body] = value;
+        fix_crc(&mut bytes);
+        if let Ok(m) = decode(&bytes) {
+            prop_assert!(m.validate().is_ok());
+        }
+        // Truncate the payload but keep the header lengths consistent.
+        let payload_len = body.saturating_sub(cut % body);
+        let payload = bytes[HEADER_LEN..HEADER_LEN + payload_len].to_vec();
+        let mut out = vec![0u8; HEADER_LEN + payload_len + 4];
+        file::frame_into(&payload, &[], &mut out).unwrap();
+        let _ = decode(&out);
+    }
+}
