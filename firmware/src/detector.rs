@@ -118,13 +118,16 @@ impl Track {
     }
 }
 
-/// Variance-stabilising transform of a score before standardisation: cube root
-/// for the chi-square-like SPE and T² (Wilson & Hilferty 1931), identity for
-/// the NLL, which is already on a log scale.
-pub fn transform(score: Score, value: f32) -> f32 {
+/// Variance-stabilising transform of a score before standardisation.
+///
+/// SPE and T² are chi-square-like, so they take a cube root (Wilson &
+/// Hilferty 1931). The mixture NLL is, near each component, a chi-square/2
+/// plus a constant; it is first shifted by `nll_floor`, the smallest NLL the
+/// model can give (see [`Detector::nll_floor`]), then takes the cube root too.
+pub fn transform(score: Score, value: f32, nll_floor: f32) -> f32 {
     match score {
         Score::Spe | Score::T2 => crate::math::cbrt(value),
-        Score::Nll => value,
+        Score::Nll => crate::math::cbrt(value - nll_floor),
     }
 }
 
@@ -293,6 +296,24 @@ impl Detector {
         self.index
     }
 
+    /// The smallest NLL the model can produce: `−ln Σ_c exp(ln π_c − ½ Σ_j ln(2π v_cj))`,
+    /// the log of the sum of the component densities at their modes (an upper
+    /// bound on the mixture density). NLL minus this floor is ≥ 0.
+    pub fn nll_floor(&self) -> f32 {
+        self.derived.nll_floor()
+    }
+
+    /// Transformed scores `[g(SPE), g(T²), g(NLL)]` (see [`transform`]), the
+    /// values the monitor standardises; used by calibration.
+    pub fn transformed(&self, s: &Scores) -> [f32; 3] {
+        let floor = self.derived.nll_floor();
+        [
+            transform(Score::Spe, s.spe, floor),
+            transform(Score::T2, s.t2, floor),
+            transform(Score::Nll, s.nll, floor),
+        ]
+    }
+
     /// Scores one sample without touching any statistic (used by calibration).
     pub fn score(&self, x: &[f32]) -> Result<score::Scored, Fault> {
         score::score(&self.model, &self.derived, x)
@@ -345,7 +366,7 @@ impl Detector {
             if value > lim.sample_limit {
                 track.over_sample_limit = track.over_sample_limit.saturating_add(1);
             }
-            let u = (transform(which, value) - lim.center) / lim.spread;
+            let u = (transform(which, value, self.derived.nll_floor()) - lim.center) / lim.spread;
             track.ewma.push(u);
             track.cusum.push(u);
         }

@@ -30,7 +30,8 @@
 //!
 //! ## From scores to a flag
 //!
-//! Each score is transformed (cube root for SPE and T², identity for NLL),
+//! Each score is transformed (cube root of SPE, of T², and of the NLL above
+//! the model's floor, after Wilson & Hilferty),
 //! standardised with its calibrated centre and spread, and fed to an EWMA and
 //! an upper CUSUM. A score is *hot* when its CUSUM exceeds `h` or its EWMA
 //! exceeds `L`. States: [`DriftState::Priming`] (warm-up) →

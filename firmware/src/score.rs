@@ -75,6 +75,7 @@ pub struct Derived {
     inv_eigen: [f32; MAX_COMPONENTS],
     inv_var: [f32; MAX_MIX_PARAMS],
     log_norm: [f32; MAX_MIXTURE],
+    nll_floor: f32,
 }
 
 impl Derived {
@@ -86,6 +87,7 @@ impl Derived {
             inv_eigen: [0.0; MAX_COMPONENTS],
             inv_var: [0.0; MAX_MIX_PARAMS],
             log_norm: [0.0; MAX_MIXTURE],
+            nll_floor: 0.0,
         };
         for (o, s) in d.inv_scale.iter_mut().zip(model.scale.iter()) {
             *o = 1.0 / s;
@@ -110,18 +112,33 @@ impl Derived {
             }
             *o = acc;
         }
+        let k = usize::from(model.dims.mixture);
+        let top = d.log_norm[..k.min(MAX_MIXTURE)]
+            .iter()
+            .fold(f32::NEG_INFINITY, |a, b| a.max(*b));
+        let mut sum = 0.0f32;
+        for ln in &d.log_norm[..k.min(MAX_MIXTURE)] {
+            sum += libm::expf(ln - top);
+        }
+        d.nll_floor = -(top + math::ln_exact(sum));
         let all = d
             .inv_scale
             .iter()
             .chain(d.inv_eigen.iter())
             .chain(d.inv_var.iter())
-            .chain(d.log_norm.iter());
+            .chain(d.log_norm.iter())
+            .chain(core::iter::once(&d.nll_floor));
         if all.clone().any(|v| !v.is_finite()) {
             return Err(ModelError::OutOfRange {
                 field: plumb_model::Field::MixVariances,
             });
         }
         Ok(d)
+    }
+
+    /// The smallest NLL the model can give (computed at load time).
+    pub fn nll_floor(&self) -> f32 {
+        self.nll_floor
     }
 }
 

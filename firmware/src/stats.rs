@@ -205,7 +205,7 @@ mod tests {
         assert_eq!(w.count(), 8);
         assert_eq!(w.mean(), 5.0);
         assert_eq!(w.population_variance(), 4.0);
-        assert!((w.sample_variance() - 4.571_428_6).abs() < 1e-6);
+        assert!((w.sample_variance() - 4.571_429).abs() < 1e-6);
     }
 
     #[test]
