@@ -1,6 +1,6 @@
 //! The detector against an f64 reference, published run lengths, its states,
-#![allow(clippy::needless_range_loop)] // index loops mirror the formulas
 //! and "never panics / faults never touch the statistics" properties.
+#![allow(clippy::needless_range_loop)] // index loops mirror the formulas
 
 #[path = "../../shared-model/tests/support/mod.rs"]
 mod support;
