@@ -1,0 +1,28 @@
+#!/usr/bin/env bash
+# The whole test suite, as CI runs it. Installs what it needs first
+# (scripts/setup.sh), then: formatting, lints, host tests (with the scikit-learn
+# and published-table cross-checks), the no_std crates built alone for the
+# Cortex-M4F target, and the boards built and run under QEMU.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+scripts/setup.sh
+
+export PLUMB_PYTHON="$PWD/.venv/bin/python"
+step() { printf '\n== %s\n' "$*"; }
+
+step "format"
+cargo fmt --all -- --check
+
+step "lints"
+cargo clippy --workspace --all-targets --locked -- -D warnings
+
+step "no_std crates alone for thumbv7em-none-eabihf (default features off)"
+cargo build --locked -p plumb-model --target thumbv7em-none-eabihf --no-default-features
+cargo build --locked -p plumb-firmware --target thumbv7em-none-eabihf --no-default-features
+cargo build --locked -p plumb-firmware --target thumbv7em-none-eabihf --features defmt,fast-math
+
+step "boards: build, size, run under QEMU"
+if [ -x firmware/boards/check.sh ]; then firmware/boards/check.sh; fi
+
+step "host tests, cross-checks and end-to-end runs"
+cargo test --workspace --locked --release
