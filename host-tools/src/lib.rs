@@ -1,1 +1,8 @@
-//! plumb
+//! # plumb (host tool library)
+pub mod arl;
+pub mod error;
+pub mod gmm;
+pub mod logs;
+pub mod pca;
+pub mod progress;
+pub mod rng;

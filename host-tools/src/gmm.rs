@@ -1,0 +1,647 @@
+//! Gaussian mixture with diagonal covariances, fitted by EM, in f64.
+//!
+//! The EM loop follows scikit-learn's `GaussianMixture(covariance_type =
+//! "diag")` step for step, so [`em_from`] started from the same parameters
+//! gives the same path:
+//!
+//! * each iteration is one pass over the rows that evaluates the
+//!   responsibilities under the current parameters (E) and accumulates the
+//!   sufficient statistics `Σ r`, `Σ r t`, `Σ r t²` per component (for M); the
+//!   `n × k` responsibility matrix is never stored;
+//! * the M step sets `n_c = Σ r + 10 ε`, `ν = Σ r t / n_c`,
+//!   `v = Σ r t² / n_c − ν² + reg_covar`, `π = n_c / Σ n_c`; then each
+//!   variance is raised to its floor, if one is given (a floor of zero
+//!   leaves scikit-learn's update unchanged);
+//! * the reported log-likelihood of an iteration is the mean per-row
+//!   log-likelihood under the parameters *before* its M step (scikit-learn's
+//!   `lower_bound_`); EM stops when it changes by less than `tol`, or after
+//!   `max_iter` iterations.
+//!
+//! Rows are cut into fixed blocks of [`BLOCK`] rows; blocks are shared out
+//! over the threads (even blocks to one, odd to the other) and their sums are
+//! added in block order, so results do not depend on the thread count.
+//!
+//! Initialisation for [`fit`]: k-means++ seeding (Arthur & Vassilvitskii 2007,
+//! greedy with `2 + ⌊ln k⌋` candidates per centre as scikit-learn does), a few
+//! Lloyd iterations, then one M step from the hard assignments, all on a
+//! stratified random subsample of at most [`INIT_SAMPLE`] rows.
+
+use crate::rng::Rng;
+
+/// Rows per block of the parallel passes.
+pub const BLOCK: usize = 16_384;
+/// Most rows used to initialise.
+pub const INIT_SAMPLE: usize = 50_000;
+/// Lloyd iterations after k-means++ seeding.
+pub const LLOYD_ITER: usize = 20;
+
+const LN_2PI: f64 = 1.837_877_066_409_345_5;
+
+/// A diagonal Gaussian mixture over `m` dimensions.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Mixture {
+    /// Dimensions.
+    pub m: usize,
+    /// Weights, `k`, summing to one.
+    pub weights: Vec<f64>,
+    /// Means, `k × m` row-major.
+    pub means: Vec<f64>,
+    /// Variances, `k × m` row-major.
+    pub variances: Vec<f64>,
+}
+
+impl Mixture {
+    /// Components.
+    pub fn k(&self) -> usize {
+        self.weights.len()
+    }
+
+    /// Free parameters (for BIC): `k m` means, `k m` variances, `k − 1`
+    /// weights.
+    pub fn parameters(&self) -> usize {
+        2 * self.k() * self.m + self.k() - 1
+    }
+
+    /// Per component `ln π_c − ½ Σ_j ln(2π v_cj)`, and the precisions.
+    fn constants(&self) -> (Vec<f64>, Vec<f64>) {
+        let m = self.m;
+        let norm = self
+            .weights
+            .iter()
+            .zip(self.variances.chunks_exact(m))
+            .map(|(w, v)| w.ln() - 0.5 * v.iter().map(|x| LN_2PI + x.ln()).sum::<f64>())
+            .collect();
+        let prec = self.variances.iter().map(|v| 1.0 / v).collect();
+        (norm, prec)
+    }
+}
+
+/// EM settings.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EmOptions {
+    /// Stop when the mean log-likelihood changes by less than this.
+    pub tol: f64,
+    /// Most iterations.
+    pub max_iter: usize,
+    /// Added to every variance in the M step (scikit-learn's `reg_covar`).
+    pub reg_covar: f64,
+    /// Per-dimension lower bound on variances after the M step (empty: none).
+    pub floor: Vec<f64>,
+    /// Threads (1 or 2; results do not depend on it).
+    pub threads: usize,
+}
+
+impl Default for EmOptions {
+    fn default() -> Self {
+        EmOptions {
+            tol: 1e-3,
+            max_iter: 100,
+            reg_covar: 1e-6,
+            floor: Vec::new(),
+            threads: 2,
+        }
+    }
+}
+
+/// The outcome of one EM run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EmResult {
+    /// Final parameters.
+    pub mixture: Mixture,
+    /// Mean log-likelihood per row at the last iteration, under the
+    /// parameters before its M step (scikit-learn's `lower_bound_`).
+    pub lower_bound: f64,
+    /// Iterations run.
+    pub iterations: usize,
+    /// Whether the change fell below `tol`.
+    pub converged: bool,
+    /// Mean log-likelihood of every iteration.
+    pub history: Vec<f64>,
+}
+
+/// Sufficient statistics of a block.
+#[derive(Debug, Clone)]
+struct Stats {
+    ll: f64,
+    nk: Vec<f64>,
+    sx: Vec<f64>,
+    sxx: Vec<f64>,
+}
+
+impl Stats {
+    fn new(k: usize, m: usize) -> Self {
+        Stats {
+            ll: 0.0,
+            nk: vec![0.0; k],
+            sx: vec![0.0; k * m],
+            sxx: vec![0.0; k * m],
+        }
+    }
+
+    fn add(&mut self, o: &Stats) {
+        self.ll += o.ll;
+        for (a, b) in self.nk.iter_mut().zip(&o.nk) {
+            *a += b;
+        }
+        for (a, b) in self.sx.iter_mut().zip(&o.sx) {
+            *a += b;
+        }
+        for (a, b) in self.sxx.iter_mut().zip(&o.sxx) {
+            *a += b;
+        }
+    }
+}
+
+/// Runs `f` on every block (even blocks on one thread, odd on the other)
+/// and returns the results in block order.
+fn per_block<T: Send>(
+    data: &[f64],
+    m: usize,
+    threads: usize,
+    f: impl Fn(&[f64]) -> T + Sync,
+) -> Vec<T> {
+    let blocks: Vec<&[f64]> = data.chunks(BLOCK * m).collect();
+    if threads < 2 || blocks.len() < 2 {
+        return blocks.into_iter().map(f).collect();
+    }
+    let (even, odd) = std::thread::scope(|s| {
+        let h = s.spawn(|| blocks.iter().skip(1).step_by(2).map(|b| f(b)).collect::<Vec<_>>());
+        let even: Vec<T> = blocks.iter().step_by(2).map(|b| f(b)).collect();
+        let odd = h.join().expect("EM worker thread panicked");
+        (even, odd)
+    });
+    let mut out = Vec::with_capacity(blocks.len());
+    let mut odd = odd.into_iter();
+    for e in even {
+        out.push(e);
+        if let Some(o) = odd.next() {
+            out.push(o);
+        }
+    }
+    out
+}
+
+/// One fused E + M-statistics pass over a block.
+fn block_stats(block: &[f64], mix: &Mixture, norm: &[f64], prec: &[f64]) -> Stats {
+    let (k, m) = (mix.k(), mix.m);
+    let mut st = Stats::new(k, m);
+    let mut lp = vec![0.0; k];
+    for row in block.chunks_exact(m) {
+        let mut best = f64::NEG_INFINITY;
+        for c in 0..k {
+            let mu = &mix.means[c * m..(c + 1) * m];
+            let pr = &prec[c * m..(c + 1) * m];
+            let mut q = 0.0;
+            for ((x, u), p) in row.iter().zip(mu).zip(pr) {
+                let e = x - u;
+                q += e * e * p;
+            }
+            lp[c] = norm[c] - 0.5 * q;
+            best = best.max(lp[c]);
+        }
+        let mut sum = 0.0;
+        for v in &lp {
+            sum += (v - best).exp();
+        }
+        let lse = best + sum.ln();
+        st.ll += lse;
+        for c in 0..k {
+            let r = (lp[c] - lse).exp();
+            st.nk[c] += r;
+            let sx = &mut st.sx[c * m..(c + 1) * m];
+            let sxx = &mut st.sxx[c * m..(c + 1) * m];
+            for ((a, b), x) in sx.iter_mut().zip(sxx.iter_mut()).zip(row) {
+                *a += r * x;
+                *b += r * x * x;
+            }
+        }
+    }
+    st
+}
+
+fn pass(data: &[f64], mix: &Mixture, threads: usize) -> Stats {
+    let (norm, prec) = mix.constants();
+    let parts = per_block(data, mix.m, threads, |b| block_stats(b, mix, &norm, &prec));
+    let mut total = Stats::new(mix.k(), mix.m);
+    for p in &parts {
+        total.add(p);
+    }
+    total
+}
+
+/// The M step from accumulated statistics.
+fn m_step(st: &Stats, m: usize, reg_covar: f64, floor: &[f64]) -> Mixture {
+    let k = st.nk.len();
+    let nk: Vec<f64> = st.nk.iter().map(|v| v + 10.0 * f64::EPSILON).collect();
+    let mut means = vec![0.0; k * m];
+    let mut variances = vec![0.0; k * m];
+    for c in 0..k {
+        for j in 0..m {
+            let i = c * m + j;
+            let mu = st.sx[i] / nk[c];
+            means[i] = mu;
+            let mut v = st.sxx[i] / nk[c] - mu * mu + reg_covar;
+            if let Some(f) = floor.get(j) {
+                v = v.max(*f);
+            }
+            variances[i] = v;
+        }
+    }
+    let total: f64 = nk.iter().sum();
+    Mixture {
+        m,
+        weights: nk.iter().map(|v| v / total).collect(),
+        means,
+        variances,
+    }
+}
+
+/// Mean log-likelihood per row of `data` (row-major, `mix.m` columns).
+pub fn mean_log_likelihood(data: &[f64], mix: &Mixture, threads: usize) -> f64 {
+    let n = data.len() / mix.m.max(1);
+    if n == 0 {
+        return f64::NAN;
+    }
+    pass(data, mix, threads).ll / n as f64
+}
+
+/// Bayesian information criterion as scikit-learn computes it:
+/// `−2 n · mean_ll + parameters · ln n`.
+pub fn bic(n: usize, mean_ll: f64, parameters: usize) -> f64 {
+    let n = n as f64;
+    -2.0 * mean_ll * n + parameters as f64 * n.ln()
+}
+
+/// Runs EM from `init` on row-major `data` (`init.m` columns). The hook is
+/// called after every iteration with the iteration number and its mean
+/// log-likelihood.
+pub fn em_from(data: &[f64], init: Mixture, opts: &EmOptions) -> EmResult {
+    em_with_hook(data, init, opts, &mut |_, _| {})
+}
+
+/// [`em_from`] with a per-iteration hook (for progress display).
+pub fn em_with_hook(
+    data: &[f64],
+    init: Mixture,
+    opts: &EmOptions,
+    hook: &mut dyn FnMut(usize, f64),
+) -> EmResult {
+    let m = init.m;
+    let n = (data.len() / m.max(1)).max(1) as f64;
+    let mut mix = init;
+    let mut lower = f64::NEG_INFINITY;
+    let mut history = Vec::new();
+    let mut converged = false;
+    let mut iterations = 0;
+    for it in 1..=opts.max_iter.max(1) {
+        iterations = it;
+        let prev = lower;
+        let st = pass(data, &mix, opts.threads);
+        mix = m_step(&st, m, opts.reg_covar, &opts.floor);
+        lower = st.ll / n;
+        history.push(lower);
+        hook(it, lower);
+        if (lower - prev).abs() < opts.tol {
+            converged = true;
+            break;
+        }
+    }
+    EmResult {
+        mixture: mix,
+        lower_bound: lower,
+        iterations,
+        converged,
+        history,
+    }
+}
+
+/// Settings of a full fit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FitOptions {
+    /// Mixture components.
+    pub k: usize,
+    /// EM runs from different seeds; the best lower bound wins.
+    pub restarts: usize,
+    /// Seed of the first run (run `r` uses a stream derived from it).
+    pub seed: u64,
+    /// EM settings.
+    pub em: EmOptions,
+}
+
+/// One EM run of a fit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RunInfo {
+    /// Final lower bound.
+    pub lower_bound: f64,
+    /// Iterations.
+    pub iterations: usize,
+    /// Converged within `max_iter`.
+    pub converged: bool,
+}
+
+/// The outcome of [`fit`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct FitResult {
+    /// The winning run, components sorted by descending weight.
+    pub best: EmResult,
+    /// Every run, in order.
+    pub runs: Vec<RunInfo>,
+    /// Mean log-likelihood of the final parameters.
+    pub mean_ll: f64,
+    /// BIC of the final parameters.
+    pub bic: f64,
+}
+
+/// Per-dimension variances (ddof = 0) of row-major data.
+pub fn column_variances(data: &[f64], m: usize) -> Vec<f64> {
+    let n = (data.len() / m.max(1)).max(1) as f64;
+    let mut mean = vec![0.0; m];
+    for row in data.chunks_exact(m) {
+        for (a, x) in mean.iter_mut().zip(row) {
+            *a += x;
+        }
+    }
+    mean.iter_mut().for_each(|a| *a /= n);
+    let mut var = vec![0.0; m];
+    for row in data.chunks_exact(m) {
+        for ((v, x), mu) in var.iter_mut().zip(row).zip(&mean) {
+            *v += (x - mu) * (x - mu);
+        }
+    }
+    var.iter_mut().for_each(|v| *v /= n);
+    var
+}
+
+/// Fits a `k`-component mixture with `restarts` initialisations.
+pub fn fit(
+    data: &[f64],
+    m: usize,
+    opts: &FitOptions,
+    hook: &mut dyn FnMut(usize, usize, f64),
+) -> FitResult {
+    let n = data.len() / m;
+    let mut best: Option<EmResult> = None;
+    let mut runs = Vec::new();
+    for r in 0..opts.restarts.max(1) {
+        let mut rng = Rng::new(opts.seed, r as u64);
+        let init = initialise(data, m, opts.k, &mut rng, &opts.em);
+        let res = em_with_hook(data, init, &opts.em, &mut |it, ll| hook(r, it, ll));
+        runs.push(RunInfo {
+            lower_bound: res.lower_bound,
+            iterations: res.iterations,
+            converged: res.converged,
+        });
+        // Strictly greater: on a tie the earlier run wins.
+        if best.as_ref().is_none_or(|b| res.lower_bound > b.lower_bound) {
+            best = Some(res);
+        }
+    }
+    let mut best = best.expect("at least one run");
+    sort_by_weight(&mut best.mixture);
+    let mean_ll = mean_log_likelihood(data, &best.mixture, opts.em.threads);
+    let bic = bic(n, mean_ll, best.mixture.parameters());
+    FitResult {
+        best,
+        runs,
+        mean_ll,
+        bic,
+    }
+}
+
+fn sort_by_weight(mix: &mut Mixture) {
+    let m = mix.m;
+    let mut order: Vec<usize> = (0..mix.k()).collect();
+    order.sort_by(|&a, &b| mix.weights[b].total_cmp(&mix.weights[a]));
+    let pick = |v: &[f64], width: usize| -> Vec<f64> {
+        order
+            .iter()
+            .flat_map(|&c| v[c * width..(c + 1) * width].iter().copied())
+            .collect()
+    };
+    *mix = Mixture {
+        m,
+        weights: pick(&mix.weights, 1),
+        means: pick(&mix.means, m),
+        variances: pick(&mix.variances, m),
+    };
+}
+
+fn sq_dist(a: &[f64], b: &[f64]) -> f64 {
+    a.iter().zip(b).map(|(x, y)| (x - y) * (x - y)).sum()
+}
+
+/// k-means++ seeding, Lloyd iterations and a hard-assignment M step on a
+/// subsample.
+pub fn initialise(data: &[f64], m: usize, k: usize, rng: &mut Rng, em: &EmOptions) -> Mixture {
+    let n = data.len() / m;
+    // Stratified random subsample: one row from each of `s` equal strata.
+    let s = n.min(INIT_SAMPLE);
+    let mut sample = Vec::with_capacity(s * m);
+    for i in 0..s {
+        let lo = i * n / s;
+        let hi = ((i + 1) * n / s).max(lo + 1);
+        let idx = lo + (rng.below((hi - lo) as u64) as usize);
+        sample.extend_from_slice(&data[idx * m..(idx + 1) * m]);
+    }
+    let centres = kmeans_pp(&sample, m, k, rng);
+    let labels = lloyd(&sample, m, centres, LLOYD_ITER);
+    let mut st = Stats::new(k, m);
+    for (row, &c) in sample.chunks_exact(m).zip(&labels) {
+        st.nk[c] += 1.0;
+        for j in 0..m {
+            st.sx[c * m + j] += row[j];
+            st.sxx[c * m + j] += row[j] * row[j];
+        }
+    }
+    m_step(&st, m, em.reg_covar, &em.floor)
+}
+
+/// Greedy k-means++ seeding; returns `k × m` centres.
+pub fn kmeans_pp(data: &[f64], m: usize, k: usize, rng: &mut Rng) -> Vec<f64> {
+    let n = data.len() / m;
+    let mut centres = Vec::with_capacity(k * m);
+    let first = rng.below(n as u64) as usize;
+    centres.extend_from_slice(&data[first * m..(first + 1) * m]);
+    let mut closest: Vec<f64> = data
+        .chunks_exact(m)
+        .map(|r| sq_dist(r, &centres[..m]))
+        .collect();
+    let trials = 2 + (k as f64).ln().floor() as usize;
+    for _ in 1..k {
+        let pot: f64 = closest.iter().sum();
+        let mut best: Option<(f64, usize, Vec<f64>)> = None;
+        for _ in 0..trials {
+            let target = rng.uniform() * pot;
+            let mut acc = 0.0;
+            let mut cand = n - 1;
+            for (i, d) in closest.iter().enumerate() {
+                acc += d;
+                if acc > target {
+                    cand = i;
+                    break;
+                }
+            }
+            let c = &data[cand * m..(cand + 1) * m];
+            let dist: Vec<f64> = data
+                .chunks_exact(m)
+                .zip(&closest)
+                .map(|(r, old)| sq_dist(r, c).min(*old))
+                .collect();
+            let p: f64 = dist.iter().sum();
+            if best.as_ref().is_none_or(|b| p < b.0) {
+                best = Some((p, cand, dist));
+            }
+        }
+        let (_, cand, dist) = best.expect("at least one trial");
+        centres.extend_from_slice(&data[cand * m..(cand + 1) * m]);
+        closest = dist;
+    }
+    centres
+}
+
+/// Lloyd iterations from `centres`; returns the final labels. An empty
+/// cluster keeps its centre.
+pub fn lloyd(data: &[f64], m: usize, mut centres: Vec<f64>, iters: usize) -> Vec<usize> {
+    let k = centres.len() / m;
+    let n = data.len() / m;
+    let mut labels = vec![usize::MAX; n];
+    for _ in 0..iters {
+        let mut changed = false;
+        for (row, l) in data.chunks_exact(m).zip(labels.iter_mut()) {
+            let mut best = (f64::INFINITY, 0);
+            for c in 0..k {
+                let d = sq_dist(row, &centres[c * m..(c + 1) * m]);
+                if d < best.0 {
+                    best = (d, c);
+                }
+            }
+            if *l != best.1 {
+                *l = best.1;
+                changed = true;
+            }
+        }
+        if !changed {
+            break;
+        }
+        let mut sums = vec![0.0; k * m];
+        let mut counts = vec![0usize; k];
+        for (row, &l) in data.chunks_exact(m).zip(&labels) {
+            counts[l] += 1;
+            for j in 0..m {
+                sums[l * m + j] += row[j];
+            }
+        }
+        for c in 0..k {
+            if counts[c] > 0 {
+                for j in 0..m {
+                    centres[c * m + j] = sums[c * m + j] / counts[c] as f64;
+                }
+            }
+        }
+    }
+    labels
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn two_blobs(n: usize, seed: u64) -> Vec<f64> {
+        let mut rng = Rng::new(seed, 0);
+        let mut v = Vec::new();
+        for i in 0..n {
+            let (cx, cy) = if i % 3 == 0 { (4.0, -1.0) } else { (-2.0, 0.5) };
+            v.push(cx + rng.normal());
+            v.push(cy + 0.5 * rng.normal());
+        }
+        v
+    }
+
+    #[test]
+    fn em_is_monotone() {
+        let data = two_blobs(3000, 7);
+        let init = Mixture {
+            m: 2,
+            weights: vec![0.5, 0.5],
+            means: vec![0.0, 0.0, 1.0, 1.0],
+            variances: vec![1.0, 1.0, 1.0, 1.0],
+        };
+        let opts = EmOptions {
+            tol: 1e-12,
+            max_iter: 200,
+            reg_covar: 0.0,
+            floor: vec![1e-3, 1e-3],
+            threads: 2,
+        };
+        let res = em_from(&data, init, &opts);
+        for w in res.history.windows(2) {
+            assert!(w[1] >= w[0] - 1e-12, "{:?}", res.history);
+        }
+        let mut w = res.mixture.weights.clone();
+        w.sort_by(f64::total_cmp);
+        assert!((w[0] - 1.0 / 3.0).abs() < 0.03, "{w:?}");
+    }
+
+    #[test]
+    fn threads_do_not_change_results() {
+        let data = two_blobs(3 * BLOCK + 17, 3);
+        let opts = FitOptions {
+            k: 3,
+            restarts: 2,
+            seed: 1,
+            em: EmOptions::default(),
+        };
+        let a = fit(&data, 2, &opts, &mut |_, _, _| {});
+        let one = FitOptions {
+            em: EmOptions {
+                threads: 1,
+                ..EmOptions::default()
+            },
+            ..opts
+        };
+        let b = fit(&data, 2, &one, &mut |_, _, _| {});
+        assert_eq!(a, b);
+    }
+
+    #[test]
+    fn floor_prevents_collapse_on_duplicates() {
+        // 500 copies of one point plus a spread cloud: without a floor one
+        // component sits on the duplicates with variance reg_covar.
+        let mut rng = Rng::new(5, 0);
+        let mut data = Vec::new();
+        for _ in 0..500 {
+            data.extend_from_slice(&[1.0, 1.0]);
+        }
+        for _ in 0..500 {
+            data.push(rng.normal() * 2.0);
+            data.push(rng.normal() * 2.0);
+        }
+        let init = Mixture {
+            m: 2,
+            weights: vec![0.5, 0.5],
+            means: vec![1.0, 1.0, 0.0, 0.0],
+            variances: vec![1.0, 1.0, 4.0, 4.0],
+        };
+        let bare = EmOptions {
+            floor: Vec::new(),
+            ..EmOptions::default()
+        };
+        let collapsed = em_from(&data, init.clone(), &bare);
+        let min_bare = collapsed.mixture.variances.iter().cloned().fold(f64::MAX, f64::min);
+        assert!(min_bare < 1e-5, "{min_bare}");
+        let var = column_variances(&data, 2);
+        let floor: Vec<f64> = var.iter().map(|v| 1e-3 * v).collect();
+        let floored = em_from(
+            &data,
+            init,
+            &EmOptions {
+                floor: floor.clone(),
+                ..EmOptions::default()
+            },
+        );
+        for (i, v) in floored.mixture.variances.iter().enumerate() {
+            assert!(*v >= floor[i % 2], "{v} < {}", floor[i % 2]);
+        }
+        assert!(floored.lower_bound.is_finite());
+    }
+}

@@ -1,0 +1,946 @@
+//! Reading robot logs: CSV files with a header row of feature names.
+//!
+//! # The log convention
+//!
+//! * The first line is a header. A feature column is named `name[unit]`, or a
+//!   bare `name` when unitless. Names may be wrapped in double quotes.
+//! * One column is the time column (by default `t`, as in `t[s]`); it is not a
+//!   feature. [`ReadOptions::time_column`] renames it or says there is none.
+//! * Units can also come from a sidecar CSV of `name,unit` rows
+//!   ([`read_units`]); a unit given there wins over the header.
+//! * Cells are plain numbers (`1.5`, `-2e-3`, ...); `NaN`, `inf` and empty
+//!   cells are sensor dropouts, handled by [`BadCells`]. Lines may end in
+//!   `\n` or `\r\n`; blank lines are ignored (they still count for line
+//!   numbers). A UTF-8 byte-order mark before the header is ignored.
+//! * Columns are matched by name across files: the first file sets the order
+//!   ([`LogSet::open`]), or a model's labels do ([`LogSet::open_for_labels`]).
+//!
+//! # Streaming
+//!
+//! Files are read in blocks (4 MiB by default) cut at line ends; each block is
+//! split at a line end near its middle and the two halves are parsed (and
+//! passed through the caller's `map`) on two threads, then handed to the
+//! caller's `reduce` in file order. The halves depend only on the bytes, not
+//! on the thread count, so results are the same with one thread or two.
+//! Memory is a few blocks, whatever the number of rows.
+//!
+//! Every error names `path:line:column (name)`: 1-based line, 1-based field
+//! number, and the column's name.
+
+use crate::error::{Error, Location, Result};
+use crate::progress::Stage;
+use plumb_model::file::Label;
+use std::collections::BTreeMap;
+use std::fs::File;
+use std::io::Read;
+use std::ops::Range;
+use std::path::{Path, PathBuf};
+
+/// What to do with empty, NaN or infinite cells (sensor dropouts). Text that
+/// is not a number is always an error.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum BadCells {
+    /// Stop with an error naming the cell (the default for fitting).
+    #[default]
+    Reject,
+    /// Leave the row out and count it.
+    SkipRow,
+    /// Keep the row; the bad cell becomes NaN (replay: the detector counts
+    /// the fault).
+    PassAsNan,
+}
+
+/// How to read logs.
+#[derive(Debug, Clone)]
+pub struct ReadOptions {
+    /// Name of the time column (`None`: the logs have no time column).
+    pub time_column: Option<String>,
+    /// Units by column name; they win over the units in the header.
+    pub units: BTreeMap<String, String>,
+    /// Empty and non-finite cells.
+    pub bad_cells: BadCells,
+    /// Parser threads: 1 or 2 (results do not depend on it).
+    pub threads: usize,
+    /// Read block size in bytes.
+    pub block_bytes: usize,
+}
+
+impl Default for ReadOptions {
+    fn default() -> Self {
+        ReadOptions {
+            time_column: Some("t".to_string()),
+            units: BTreeMap::new(),
+            bad_cells: BadCells::Reject,
+            threads: 2,
+            block_bytes: 4 << 20,
+        }
+    }
+}
+
+/// Splits a header cell `name[unit]` into name and unit (empty when absent).
+pub fn split_name_unit(cell: &str) -> (&str, &str) {
+    let cell = cell.trim();
+    if let Some(stripped) = cell.strip_suffix(']') {
+        if let Some(open) = stripped.rfind('[') {
+            return (stripped[..open].trim(), stripped[open + 1..].trim());
+        }
+    }
+    (cell, "")
+}
+
+/// Expands inputs: a file stays as given, a directory gives all its `*.csv`
+/// files (not recursive), sorted by name.
+pub fn expand_paths(inputs: &[PathBuf]) -> Result<Vec<PathBuf>> {
+    let mut out = Vec::new();
+    for input in inputs {
+        let meta = std::fs::metadata(input).map_err(|e| Error::io(input, "read", &e))?;
+        if meta.is_dir() {
+            let mut found: Vec<PathBuf> = std::fs::read_dir(input)
+                .map_err(|e| Error::io(input, "list directory", &e))?
+                .filter_map(|entry| entry.ok().map(|e| e.path()))
+                .filter(|p| {
+                    p.is_file()
+                        && p.extension()
+                            .is_some_and(|x| x.eq_ignore_ascii_case("csv"))
+                })
+                .collect();
+            if found.is_empty() {
+                return Err(Error::at(
+                    Location::file(input),
+                    "directory holds no *.csv logs",
+                ));
+            }
+            found.sort();
+            out.extend(found);
+        } else {
+            out.push(input.clone());
+        }
+    }
+    if out.is_empty() {
+        return Err(Error::input("no logs given"));
+    }
+    Ok(out)
+}
+
+/// Reads a units sidecar: one `name,unit` row per column. A first row
+/// `name,unit` is taken as a header and skipped. Blank lines are ignored.
+pub fn read_units(path: &Path) -> Result<BTreeMap<String, String>> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, "read", &e))?;
+    let mut units = BTreeMap::new();
+    for (i, raw) in text.lines().enumerate() {
+        let line_no = i as u64 + 1;
+        let raw = raw.trim_start_matches('\u{feff}');
+        if raw.trim().is_empty() {
+            continue;
+        }
+        let cells = split_header_line(raw);
+        if cells.len() != 2 {
+            return Err(Error::at(
+                Location::line(path, line_no),
+                format!(
+                    "expected 2 fields (name,unit), found {}",
+                    cells.len()
+                ),
+            ));
+        }
+        let (name, unit) = (cells[0].trim(), cells[1].trim());
+        if i == 0 && name == "name" && unit == "unit" {
+            continue;
+        }
+        if name.is_empty() {
+            return Err(Error::at(
+                Location::cell(path, line_no, 1, ""),
+                "empty column name",
+            ));
+        }
+        if units.insert(name.to_string(), unit.to_string()).is_some() {
+            return Err(Error::at(
+                Location::cell(path, line_no, 1, name),
+                "column named twice in the units file",
+            ));
+        }
+    }
+    Ok(units)
+}
+
+/// Splits a header line at commas, honouring double quotes (`""` inside
+/// quotes is one quote).
+fn split_header_line(line: &str) -> Vec<String> {
+    let mut cells = Vec::new();
+    let mut cur = String::new();
+    let mut quoted = false;
+    let mut chars = line.chars().peekable();
+    while let Some(c) = chars.next() {
+        match c {
+            '"' if quoted && chars.peek() == Some(&'"') => {
+                cur.push('"');
+                chars.next();
+            }
+            '"' => quoted = !quoted,
+            ',' if !quoted => cells.push(std::mem::take(&mut cur)),
+            _ => cur.push(c),
+        }
+    }
+    cells.push(cur);
+    cells
+}
+
+/// What a field of a file feeds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Target {
+    Time,
+    Feature(usize),
+    Ignore,
+}
+
+/// One log file of a [`LogSet`]: its path, size and column layout.
+#[derive(Debug, Clone)]
+pub struct LogFile {
+    /// The file.
+    pub path: PathBuf,
+    /// Size in bytes.
+    pub bytes: u64,
+    /// Byte offset of the first data line.
+    data_offset: u64,
+    /// Header names (unit stripped), one per field.
+    names: Vec<String>,
+    /// What each field feeds.
+    targets: Vec<Target>,
+    /// Field index of each feature, in label order.
+    feature_fields: Vec<usize>,
+}
+
+impl LogFile {
+    /// Fields per line.
+    pub fn fields(&self) -> usize {
+        self.names.len()
+    }
+
+    /// 1-based field number of feature `j` in this file.
+    pub fn feature_column(&self, j: usize) -> usize {
+        self.feature_fields[j] + 1
+    }
+}
+
+/// Rows of a scan, per file: a range of 0-based data-line indices (data line
+/// `i` is line `i + 2` of the file).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Selection(pub Vec<Range<u64>>);
+
+impl Selection {
+    /// Every row of `files` files.
+    pub fn all(files: usize) -> Self {
+        Selection(vec![0..u64::MAX; files])
+    }
+
+    /// Splits each file into a head and its last `fraction` of data lines
+    /// (rounded to the nearest line). `lines` comes from
+    /// [`LogSet::count_lines`].
+    pub fn split_tail(lines: &[u64], fraction: f64) -> (Selection, Selection) {
+        let mut head = Vec::with_capacity(lines.len());
+        let mut tail = Vec::with_capacity(lines.len());
+        for &n in lines {
+            let hold = ((n as f64) * fraction).round().clamp(0.0, n as f64) as u64;
+            head.push(0..n - hold);
+            tail.push(n - hold..n);
+        }
+        (Selection(head), Selection(tail))
+    }
+}
+
+/// A run of consecutive rows of one file, features in label order.
+#[derive(Debug, Clone, Default)]
+pub struct Chunk {
+    /// Index of the file in the [`LogSet`].
+    pub file: usize,
+    /// Features per row.
+    pub d: usize,
+    /// Row-major values, `rows × d`.
+    pub values: Vec<f64>,
+    /// Time of each row (empty when there is no time column).
+    pub times: Vec<f64>,
+    /// 1-based line number of each row.
+    pub lines: Vec<u64>,
+    /// Rows left out because of empty or non-finite cells.
+    pub skipped: u64,
+}
+
+impl Chunk {
+    /// Rows in the chunk.
+    pub fn rows(&self) -> usize {
+        self.lines.len()
+    }
+
+    /// Row `i`.
+    pub fn row(&self, i: usize) -> &[f64] {
+        &self.values[i * self.d..(i + 1) * self.d]
+    }
+
+    /// Iterator over rows.
+    pub fn iter_rows(&self) -> std::slice::ChunksExact<'_, f64> {
+        self.values.chunks_exact(self.d.max(1))
+    }
+}
+
+/// Counts from a scan.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct ScanStats {
+    /// Rows delivered, per file.
+    pub rows: Vec<u64>,
+    /// Rows skipped for empty or non-finite cells, per file.
+    pub skipped: Vec<u64>,
+}
+
+impl ScanStats {
+    /// Rows delivered in all files.
+    pub fn total_rows(&self) -> u64 {
+        self.rows.iter().sum()
+    }
+
+    /// Rows skipped in all files.
+    pub fn total_skipped(&self) -> u64 {
+        self.skipped.iter().sum()
+    }
+}
+
+/// A set of logs with one column layout.
+#[derive(Debug, Clone)]
+pub struct LogSet {
+    files: Vec<LogFile>,
+    labels: Vec<Label>,
+    opts: ReadOptions,
+}
+
+/// Header of one file as read.
+struct RawHeader {
+    cells: Vec<String>,
+    data_offset: u64,
+    bytes: u64,
+}
+
+fn read_header(path: &Path) -> Result<RawHeader> {
+    let mut f = File::open(path).map_err(|e| Error::io(path, "read", &e))?;
+    let bytes = f
+        .metadata()
+        .map_err(|e| Error::io(path, "read", &e))?
+        .len();
+    let mut buf = Vec::new();
+    let mut block = vec![0u8; 64 << 10];
+    let end = loop {
+        let n = f.read(&mut block).map_err(|e| Error::io(path, "read", &e))?;
+        buf.extend_from_slice(&block[..n]);
+        if let Some(pos) = memchr::memchr(b'\n', &buf) {
+            break pos;
+        }
+        if n == 0 {
+            break buf.len();
+        }
+        if buf.len() > 16 << 20 {
+            return Err(Error::at(
+                Location::line(path, 1),
+                "header line longer than 16 MiB (is this a CSV log?)",
+            ));
+        }
+    };
+    let data_offset = (end + 1).min(buf.len()) as u64;
+    let mut line = &buf[..end];
+    if line.ends_with(b"\r") {
+        line = &line[..line.len() - 1];
+    }
+    if line.starts_with(&[0xEF, 0xBB, 0xBF]) {
+        line = &line[3..];
+    }
+    let text = std::str::from_utf8(line).map_err(|_| {
+        Error::at(
+            Location::line(path, 1),
+            "header is not UTF-8 text (is this a CSV log?)",
+        )
+    })?;
+    if text.trim().is_empty() {
+        return Err(Error::at(
+            Location::line(path, 1),
+            "expected a header row of column names, found an empty line",
+        ));
+    }
+    Ok(RawHeader {
+        cells: split_header_line(text),
+        data_offset,
+        bytes,
+    })
+}
+
+/// A parsed header: names and units per field, time field, checked for
+/// empty and duplicate names.
+struct Header {
+    raw: RawHeader,
+    names: Vec<String>,
+    units: Vec<String>,
+    time: Option<usize>,
+}
+
+fn parse_header(path: &Path, opts: &ReadOptions) -> Result<Header> {
+    let raw = read_header(path)?;
+    let mut names = Vec::with_capacity(raw.cells.len());
+    let mut units = Vec::with_capacity(raw.cells.len());
+    let mut seen: BTreeMap<String, usize> = BTreeMap::new();
+    for (f, cell) in raw.cells.iter().enumerate() {
+        let (name, unit) = split_name_unit(cell);
+        if name.is_empty() {
+            return Err(Error::at(
+                Location::cell(path, 1, f + 1, ""),
+                format!("expected a column name, found {:?}", cell.trim()),
+            ));
+        }
+        if let Some(first) = seen.insert(name.to_string(), f) {
+            return Err(Error::at(
+                Location::cell(path, 1, f + 1, name),
+                format!("duplicate column name (first at column {})", first + 1),
+            ));
+        }
+        let unit = opts.units.get(name).map(String::as_str).unwrap_or(unit);
+        names.push(name.to_string());
+        units.push(unit.to_string());
+    }
+    let time = match &opts.time_column {
+        None => None,
+        Some(t) => match seen.get(t.as_str()) {
+            Some(&f) => Some(f),
+            None => {
+                return Err(Error::at(
+                    Location::line(path, 1).named(t),
+                    format!(
+                        "no time column {t:?} in the header (name it with --time-column NAME, \
+                         or say --time-column none)"
+                    ),
+                ))
+            }
+        },
+    };
+    Ok(Header {
+        raw,
+        names,
+        units,
+        time,
+    })
+}
+
+impl LogSet {
+    /// Opens logs whose columns are matched by name; the first file sets the
+    /// feature order. A later file missing a column, or with a column the
+    /// first lacks, or with a different unit, is an error.
+    pub fn open(paths: &[PathBuf], opts: ReadOptions) -> Result<LogSet> {
+        let first = paths
+            .first()
+            .ok_or_else(|| Error::input("no logs given"))?;
+        let h = parse_header(first, &opts)?;
+        let labels: Vec<Label> = h
+            .names
+            .iter()
+            .zip(&h.units)
+            .enumerate()
+            .filter(|(f, _)| Some(*f) != h.time)
+            .map(|(_, (n, u))| Label {
+                name: n.clone(),
+                unit: u.clone(),
+            })
+            .collect();
+        if labels.is_empty() {
+            return Err(Error::at(
+                Location::line(first, 1),
+                "expected at least one feature column besides the time column",
+            ));
+        }
+        Self::check_units(&opts, paths, &h.names)?;
+        let mut set = LogSet {
+            files: Vec::with_capacity(paths.len()),
+            labels,
+            opts,
+        };
+        set.files.push(set.layout(first, h, false)?);
+        for p in &paths[1..] {
+            let h = parse_header(p, &set.opts)?;
+            let file = set.layout(p, h, false).map_err(|e| {
+                let msg = format!("{} (the first log, {}, sets the columns)", e.message, first.display());
+                Error { message: msg, ..e }
+            })?;
+            set.files.push(file);
+        }
+        Ok(set)
+    }
+
+    /// Opens logs mapped to a model's labels: features come out in label
+    /// order; extra columns are ignored; a missing column, or a unit in the
+    /// header that differs from the label's, is an error.
+    pub fn open_for_labels(
+        paths: &[PathBuf],
+        labels: &[Label],
+        opts: ReadOptions,
+    ) -> Result<LogSet> {
+        if paths.is_empty() {
+            return Err(Error::input("no logs given"));
+        }
+        if labels.is_empty() {
+            return Err(Error::input(
+                "the model has no labels: its feature names are unknown",
+            ));
+        }
+        let mut set = LogSet {
+            files: Vec::with_capacity(paths.len()),
+            labels: labels.to_vec(),
+            opts,
+        };
+        for p in paths {
+            let h = parse_header(p, &set.opts)?;
+            let file = set.layout(p, h, true)?;
+            set.files.push(file);
+        }
+        Ok(set)
+    }
+
+    fn check_units(opts: &ReadOptions, paths: &[PathBuf], names: &[String]) -> Result<()> {
+        for name in opts.units.keys() {
+            if !names.iter().any(|n| n == name) {
+                return Err(Error::input(format!(
+                    "the units file names a column {name:?} that {} does not have",
+                    paths[0].display()
+                )));
+            }
+        }
+        Ok(())
+    }
+
+    /// Maps one file's header onto the labels.
+    fn layout(&self, path: &Path, h: Header, ignore_extra: bool) -> Result<LogFile> {
+        let mut targets = vec![Target::Ignore; h.names.len()];
+        if let Some(t) = h.time {
+            targets[t] = Target::Time;
+        }
+        let mut feature_fields = Vec::with_capacity(self.labels.len());
+        for (j, label) in self.labels.iter().enumerate() {
+            let Some(f) = h.names.iter().position(|n| *n == label.name) else {
+                return Err(Error::at(
+                    Location::line(path, 1).named(&label.name),
+                    format!("expected a column named {:?}, found none", label.name),
+                ));
+            };
+            if Some(f) == h.time {
+                return Err(Error::at(
+                    Location::cell(path, 1, f + 1, &label.name),
+                    "this column is the time column here but a feature elsewhere",
+                ));
+            }
+            let unit = &h.units[f];
+            if *unit != label.unit && !(ignore_extra && unit.is_empty()) {
+                return Err(Error::at(
+                    Location::cell(path, 1, f + 1, &label.name),
+                    format!("expected unit {:?}, found {:?}", label.unit, unit),
+                ));
+            }
+            targets[f] = Target::Feature(j);
+            feature_fields.push(f);
+        }
+        if !ignore_extra {
+            if let Some(f) = targets
+                .iter()
+                .enumerate()
+                .position(|(f, t)| *t == Target::Ignore && Some(f) != h.time)
+            {
+                return Err(Error::at(
+                    Location::cell(path, 1, f + 1, &h.names[f]),
+                    "unexpected column: not in the first log",
+                ));
+            }
+        }
+        Ok(LogFile {
+            path: path.to_path_buf(),
+            bytes: h.raw.bytes,
+            data_offset: h.raw.data_offset,
+            names: h.names,
+            targets,
+            feature_fields,
+        })
+    }
+
+    /// Feature labels, in output order.
+    pub fn labels(&self) -> &[Label] {
+        &self.labels
+    }
+
+    /// Features per row.
+    pub fn features(&self) -> usize {
+        self.labels.len()
+    }
+
+    /// The files, in reading order.
+    pub fn files(&self) -> &[LogFile] {
+        &self.files
+    }
+
+    /// The reading options.
+    pub fn options(&self) -> &ReadOptions {
+        &self.opts
+    }
+
+    /// Whether rows carry a time.
+    pub fn has_time(&self) -> bool {
+        self.opts.time_column.is_some()
+    }
+
+    /// Total size of the files in bytes.
+    pub fn total_bytes(&self) -> u64 {
+        self.files.iter().map(|f| f.bytes).sum()
+    }
+
+    /// Counts data lines per file (blank lines included), reading every byte.
+    pub fn count_lines(&self, stage: &Stage) -> Result<Vec<u64>> {
+        let mut out = Vec::with_capacity(self.files.len());
+        let mut block = vec![0u8; self.opts.block_bytes.max(1 << 12)];
+        for file in &self.files {
+            let mut f = open_at(file)?;
+            let mut lines = 0u64;
+            let mut last = b'\n';
+            loop {
+                let n = f
+                    .read(&mut block)
+                    .map_err(|e| Error::io(&file.path, "read", &e))?;
+                if n == 0 {
+                    break;
+                }
+                lines += block[..n].iter().filter(|&&b| b == b'\n').count() as u64;
+                last = block[n - 1];
+                stage.advance(n as u64);
+            }
+            if last != b'\n' {
+                lines += 1;
+            }
+            out.push(lines);
+        }
+        Ok(out)
+    }
+
+    /// Reads the selected rows and calls `reduce` on every chunk in file
+    /// order.
+    pub fn for_each(
+        &self,
+        select: &Selection,
+        stage: &Stage,
+        mut f: impl FnMut(&Chunk) -> Result<()>,
+    ) -> Result<ScanStats> {
+        self.scan(select, stage, |_| Ok(()), |(), c| f(c))
+    }
+
+    /// Reads the selected rows. `map` runs on the parser threads, once per
+    /// chunk; `reduce` runs on the calling thread with each chunk and its
+    /// `map` result, in file order. Chunk boundaries depend only on the bytes
+    /// and [`ReadOptions::block_bytes`].
+    pub fn scan<T: Send>(
+        &self,
+        select: &Selection,
+        stage: &Stage,
+        map: impl Fn(&Chunk) -> Result<T> + Sync,
+        mut reduce: impl FnMut(T, &Chunk) -> Result<()>,
+    ) -> Result<ScanStats> {
+        let mut stats = ScanStats {
+            rows: vec![0; self.files.len()],
+            skipped: vec![0; self.files.len()],
+        };
+        let block = self.opts.block_bytes.max(1 << 12);
+        for (fi, file) in self.files.iter().enumerate() {
+            let range = select.0.get(fi).cloned().unwrap_or(0..0);
+            if range.is_empty() {
+                stage.advance(file.bytes);
+                continue;
+            }
+            let mut reader = open_at(file)?;
+            let mut buf: Vec<u8> = Vec::with_capacity(block * 2);
+            let mut next_line = 2u64;
+            let mut done = file.data_offset;
+            let mut eof = false;
+            while !eof {
+                let start = buf.len();
+                buf.resize(start + block, 0);
+                let n = read_full(&mut reader, &mut buf[start..])
+                    .map_err(|e| Error::io(&file.path, "read", &e))?;
+                buf.truncate(start + n);
+                eof = n == 0;
+                let cut = if eof {
+                    buf.len()
+                } else {
+                    match memchr::memrchr(b'\n', &buf) {
+                        Some(p) => p + 1,
+                        None => continue,
+                    }
+                };
+                let span = &buf[..cut];
+                let lines_in_span = span.iter().filter(|&&b| b == b'\n').count() as u64
+                    + u64::from(eof && !span.is_empty() && !span.ends_with(b"\n"));
+                let span_first = next_line;
+                // Past the selection: stop reading this file.
+                let past = span_first.saturating_sub(2) >= range.end;
+                if !past {
+                    self.process_span(fi, file, span, span_first, &range, &map, &mut reduce, &mut stats)?;
+                }
+                next_line += lines_in_span;
+                stage.advance(cut as u64);
+                done += cut as u64;
+                buf.drain(..cut);
+                if past {
+                    break;
+                }
+            }
+            stage.advance(file.bytes.saturating_sub(done));
+        }
+        Ok(stats)
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn process_span<T: Send>(
+        &self,
+        fi: usize,
+        file: &LogFile,
+        span: &[u8],
+        first_line: u64,
+        range: &Range<u64>,
+        map: &(impl Fn(&Chunk) -> Result<T> + Sync),
+        reduce: &mut impl FnMut(T, &Chunk) -> Result<()>,
+        stats: &mut ScanStats,
+    ) -> Result<()> {
+        if span.is_empty() {
+            return Ok(());
+        }
+        // Cut near the middle at a line end (depends only on the bytes).
+        let mid = span.len() / 2;
+        let cut = match memchr::memchr(b'\n', &span[mid..]) {
+            Some(p) if span.len() >= 1 << 16 => mid + p + 1,
+            _ => span.len(),
+        };
+        let (a, b) = span.split_at(cut);
+        let b_first = first_line + a.iter().filter(|&&x| x == b'\n').count() as u64;
+        let job = |bytes: &[u8], line: u64| -> Result<Option<(Chunk, T)>> {
+            if bytes.is_empty() {
+                return Ok(None);
+            }
+            let chunk = self.parse(fi, file, bytes, line, range)?;
+            let t = map(&chunk)?;
+            Ok(Some((chunk, t)))
+        };
+        let (ra, rb) = if self.opts.threads >= 2 && !b.is_empty() {
+            std::thread::scope(|s| {
+                let hb = s.spawn(|| job(b, b_first));
+                let ra = job(a, first_line);
+                let rb = hb.join().unwrap_or_else(|_| {
+                    Err(Error::input("internal error: a parser thread panicked"))
+                });
+                (ra, rb)
+            })
+        } else {
+            let ra = job(a, first_line);
+            let rb = if ra.is_ok() { job(b, b_first) } else { Ok(None) };
+            (ra, rb)
+        };
+        for part in [ra?, rb?].into_iter().flatten() {
+            let (chunk, t) = part;
+            stats.rows[fi] += chunk.rows() as u64;
+            stats.skipped[fi] += chunk.skipped;
+            reduce(t, &chunk)?;
+        }
+        Ok(())
+    }
+
+    /// Parses complete lines; `first_line` is the 1-based number of the
+    /// first.
+    fn parse(
+        &self,
+        fi: usize,
+        file: &LogFile,
+        bytes: &[u8],
+        first_line: u64,
+        range: &Range<u64>,
+    ) -> Result<Chunk> {
+        let d = self.labels.len();
+        let nf = file.fields();
+        let has_time = self.opts.time_column.is_some();
+        let mut chunk = Chunk {
+            file: fi,
+            d,
+            ..Chunk::default()
+        };
+        let estimate = bytes.len() / (nf * 4).max(8) + 1;
+        chunk.values.reserve(estimate * d);
+        chunk.lines.reserve(estimate);
+        if has_time {
+            chunk.times.reserve(estimate);
+        }
+        let mut row = vec![0.0f64; d];
+        let mut line_no = first_line;
+        let mut rest = bytes;
+        while !rest.is_empty() {
+            let (mut line, next) = match memchr::memchr(b'\n', rest) {
+                Some(p) => (&rest[..p], &rest[p + 1..]),
+                None => (rest, &rest[rest.len()..]),
+            };
+            rest = next;
+            let this = line_no;
+            line_no += 1;
+            let index = this - 2;
+            if index < range.start {
+                continue;
+            }
+            if index >= range.end {
+                break;
+            }
+            if let Some(stripped) = line.strip_suffix(b"\r") {
+                line = stripped;
+            }
+            if line.iter().all(|b| b.is_ascii_whitespace()) {
+                continue;
+            }
+            let found = memchr::memchr_iter(b',', line).count() + 1;
+            if found != nf {
+                let (col, name) = if found < nf {
+                    (found + 1, file.names[found].as_str())
+                } else {
+                    (nf + 1, "beyond the header")
+                };
+                return Err(Error::at(
+                    Location::cell(&file.path, this, col, name),
+                    format!("expected {nf} fields as in the header, found {found}"),
+                ));
+            }
+            let mut bad = false;
+            let mut time = f64::NAN;
+            for (f, cell) in line.split(|&b| b == b',').enumerate() {
+                let target = file.targets[f];
+                if target == Target::Ignore {
+                    continue;
+                }
+                let v = match parse_cell(cell) {
+                    Cell::Number(v) => v,
+                    Cell::Empty | Cell::NonFinite if self.opts.bad_cells != BadCells::Reject => {
+                        bad = true;
+                        f64::NAN
+                    }
+                    other => {
+                        return Err(Error::at(
+                            Location::cell(&file.path, this, f + 1, &file.names[f]),
+                            other.describe(cell),
+                        ))
+                    }
+                };
+                match target {
+                    Target::Time => time = v,
+                    Target::Feature(j) => row[j] = v,
+                    Target::Ignore => {}
+                }
+            }
+            if bad && self.opts.bad_cells == BadCells::SkipRow {
+                chunk.skipped += 1;
+                continue;
+            }
+            chunk.values.extend_from_slice(&row);
+            chunk.lines.push(this);
+            if has_time {
+                chunk.times.push(time);
+            }
+        }
+        Ok(chunk)
+    }
+}
+
+fn open_at(file: &LogFile) -> Result<File> {
+    use std::io::{Seek, SeekFrom};
+    let mut f = File::open(&file.path).map_err(|e| Error::io(&file.path, "read", &e))?;
+    f.seek(SeekFrom::Start(file.data_offset))
+        .map_err(|e| Error::io(&file.path, "read", &e))?;
+    Ok(f)
+}
+
+/// Reads until `buf` is full or the end of the file.
+fn read_full(r: &mut impl Read, buf: &mut [u8]) -> std::io::Result<usize> {
+    let mut n = 0;
+    while n < buf.len() {
+        match r.read(&mut buf[n..]) {
+            Ok(0) => break,
+            Ok(k) => n += k,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(n)
+}
+
+/// One parsed cell.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Cell {
+    Number(f64),
+    Empty,
+    NonFinite,
+    Garbage,
+}
+
+impl Cell {
+    fn describe(self, raw: &[u8]) -> String {
+        let shown = String::from_utf8_lossy(raw.trim_ascii());
+        match self {
+            Cell::Number(_) => String::new(),
+            Cell::Empty => "expected a number, found an empty cell \
+                 (rows with empty or non-finite cells can be skipped with --skip-bad-rows)"
+                .to_string(),
+            Cell::NonFinite => format!(
+                "expected a finite number, found {shown:?} \
+                 (rows with empty or non-finite cells can be skipped with --skip-bad-rows)"
+            ),
+            Cell::Garbage => format!("expected a number, found {shown:?}"),
+        }
+    }
+}
+
+fn parse_cell(raw: &[u8]) -> Cell {
+    let cell = raw.trim_ascii();
+    if cell.is_empty() {
+        return Cell::Empty;
+    }
+    match fast_float2::parse::<f64, _>(cell) {
+        Ok(v) if v.is_finite() => Cell::Number(v),
+        Ok(_) => Cell::NonFinite,
+        Err(_) => Cell::Garbage,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn cells() {
+        assert_eq!(parse_cell(b" 1.5 "), Cell::Number(1.5));
+        assert_eq!(parse_cell(b"-2e-3"), Cell::Number(-2e-3));
+        assert_eq!(parse_cell(b""), Cell::Empty);
+        assert_eq!(parse_cell(b"NaN"), Cell::NonFinite);
+        assert_eq!(parse_cell(b"nan"), Cell::NonFinite);
+        assert_eq!(parse_cell(b"-inf"), Cell::NonFinite);
+        assert_eq!(parse_cell(b"Infinity"), Cell::NonFinite);
+        assert_eq!(parse_cell(b"12..3"), Cell::Garbage);
+        assert_eq!(parse_cell(b"1.0x"), Cell::Garbage);
+        assert_eq!(parse_cell(b"\"1\""), Cell::Garbage);
+    }
+
+    #[test]
+    fn names_and_units() {
+        assert_eq!(split_name_unit("t[s]"), ("t", "s"));
+        assert_eq!(
+            split_name_unit(" motor_current_left[A] "),
+            ("motor_current_left", "A")
+        );
+        assert_eq!(split_name_unit("ratio"), ("ratio", ""));
+        assert_eq!(split_name_unit("a[b][m/s]"), ("a[b]", "m/s"));
+        assert_eq!(split_header_line("a,\"b,c[V]\",\"d\"\"\""), vec!["a", "b,c[V]", "d\""]);
+    }
+
+    #[test]
+    fn split_tail_rounds() {
+        let (h, t) = Selection::split_tail(&[10, 3, 0], 0.2);
+        assert_eq!(h.0, vec![0..8, 0..2, 0..0]);
+        assert_eq!(t.0, vec![8..10, 2..3, 0..0]);
+    }
+}
