@@ -1,1 +1,845 @@
 //! The serial endpoint: runs the detector, speaks the wire protocol, keeps model slots.
+//!
+//! [`Endpoint`] owns the [`Detector`], the two model slots ([`ModelSlots`]),
+//! and the drift output line (an `embedded-hal` [`OutputPin`], high while
+//! [`DriftState::Drifting`]). The link is any `embedded-io` byte stream, lent
+//! to each call, so a board keeps its UART driver:
+//!
+//! ```ignore
+//! let mut ep = Endpoint::<_, _>::boot(flash_slots, drift_pin, Some(BUILTIN_MODEL))?;
+//! ep.greet(&mut uart)?;
+//! loop {
+//!     if let Err(e) = ep.poll(&mut uart) { /* count it; the link resynchronises */ }
+//! }
+//! ```
+//!
+//! What [`Endpoint::poll`] does with each host message, the sequence numbers,
+//! the resend ring and the upload state machine are specified in
+//! `shared-model/PROTOCOL.md`. Briefly:
+//!
+//! * a sample goes through [`Detector::update`]; a drift raised or cleared
+//!   message follows a state change, a sensor fault message the start of a
+//!   fault (repeats are only counted), a score report every sample while
+//!   reports are on, and a status message every
+//!   [`Config::status_every`] samples;
+//! * drift raised, drift cleared and sensor fault messages are kept in a ring
+//!   of `R` entries (default [`DEFAULT_RETAINED`]) and sent again, with
+//!   their original sequence numbers, on a resend request; when the ring is
+//!   full the oldest entry is dropped and counted, and the resend summary
+//!   tells the host the oldest sequence number it can still get;
+//! * an upload is written into the slot that is not running and switched to
+//!   only after its length, whole-file CRC-32, model file checks and the
+//!   detector's own checks pass and the slot's record is written; anything
+//!   else leaves the running model and its statistics untouched and is
+//!   answered with a refusal code.
+//!
+//! Nothing allocates and every failure is a value. The big buffers live
+//! inside the type: on `thumbv7em-none-eabihf` an `Endpoint` with the default
+//! ring takes about 12 KiB (the detector 7 KiB, the ring 32 × 144 bytes, the
+//! receive buffer 300 bytes) plus the slot storage. A model switch (and
+//! [`Endpoint::boot`]) builds the new detector on the stack before moving it
+//! in: allow about 14 KiB of stack for it.
+
+mod slots;
+
+pub use slots::{newest_valid, slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, RECORD_LEN};
+
+use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
+use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
+use embedded_io::{ErrorType, Read, ReadReady, Write};
+use heapless::Deque;
+use plumb_model::wire::{
+    self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, FaultKind, FaultTally, Greeting,
+    HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal, Request, ResendDone,
+    ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State, Statistic, Status,
+    MAX_DEVICE_FRAME,
+};
+use plumb_model::{Capacity, ModelError, ScoreLimits};
+
+/// Retained events kept for resend unless the type says otherwise.
+pub const DEFAULT_RETAINED: usize = 32;
+/// Samples between two unasked status messages, unless configured.
+pub const DEFAULT_STATUS_EVERY: u32 = 500;
+/// Bytes read per `read` call.
+const READ_CHUNK: usize = 64;
+/// Bytes one [`Endpoint::poll`] handles at most before returning, so a busy
+/// link cannot keep a board's main loop from its other work.
+pub const POLL_BUDGET: usize = 1024;
+
+/// Settings a board may change.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Config {
+    /// Firmware version for the greeting (cut to 16 bytes).
+    pub firmware: &'static str,
+    /// A status message every this many samples; 0 turns them off.
+    pub status_every: u32,
+}
+
+impl Default for Config {
+    fn default() -> Self {
+        Config {
+            firmware: env!("CARGO_PKG_VERSION"),
+            status_every: DEFAULT_STATUS_EVERY,
+        }
+    }
+}
+
+/// Why a call could not finish its output. Input problems are never errors:
+/// they are counted ([`Endpoint::link_counters`]) or refused on the wire.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Error<E> {
+    /// The link's read or write failed.
+    Link(E),
+    /// The link accepted no bytes (`write` returned 0).
+    LinkStalled,
+    /// The drift line could not be driven.
+    Pin(PinErrorKind),
+    /// A message did not fit the frame buffer (a bug: buffers are sized for
+    /// the largest message).
+    Encode,
+}
+
+#[cfg(feature = "defmt")]
+impl<E> defmt::Format for Error<E> {
+    fn format(&self, f: defmt::Formatter<'_>) {
+        match self {
+            Error::Link(_) => defmt::write!(f, "link error"),
+            Error::LinkStalled => defmt::write!(f, "link stalled"),
+            Error::Pin(_) => defmt::write!(f, "drift line error"),
+            Error::Encode => defmt::write!(f, "frame encoding error"),
+        }
+    }
+}
+
+/// Why [`Endpoint::boot`] found nothing to run.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub enum BootError {
+    /// No valid slot and no built-in model.
+    NoModel,
+    /// No valid slot, and the built-in model was refused.
+    Builtin(ModelError),
+}
+
+/// What one call handled.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct Polled {
+    /// Bytes read from the link.
+    pub bytes: usize,
+    /// Host messages handled.
+    pub messages: u32,
+    /// Of which samples.
+    pub samples: u32,
+    /// Frames sent.
+    pub sent: u32,
+}
+
+#[derive(Debug, Clone)]
+struct Retained {
+    seq: u32,
+    msg: DeviceMsg,
+}
+
+#[derive(Debug, Clone, Copy)]
+struct Upload {
+    slot: Slot,
+    total: u32,
+    crc: u32,
+    next: u32,
+}
+
+/// Collects the first output error while the rest of the input is handled.
+struct Out<'a, W: ErrorType> {
+    io: &'a mut W,
+    first: Option<Error<W::Error>>,
+    sent: u32,
+}
+
+impl<W: Write> Out<'_, W> {
+    fn send(&mut self, seq: u32, msg: &DeviceMsg) {
+        match send_frame(self.io, seq, msg) {
+            Ok(()) => self.sent = self.sent.wrapping_add(1),
+            Err(e) => {
+                self.first.get_or_insert(e);
+            }
+        }
+    }
+
+    fn fail(&mut self, e: Error<W::Error>) {
+        self.first.get_or_insert(e);
+    }
+}
+
+fn send_frame<W: Write>(io: &mut W, seq: u32, msg: &DeviceMsg) -> Result<(), Error<W::Error>> {
+    let mut buf = [0u8; MAX_DEVICE_FRAME];
+    // (seq, msg) encodes exactly like `DeviceFrame { seq, msg }`.
+    let n = wire::encode_frame(&(seq, msg), &mut buf).map_err(|_| Error::Encode)?;
+    let mut rest = buf.get(..n).ok_or(Error::Encode)?;
+    while !rest.is_empty() {
+        match io.write(rest) {
+            Ok(0) => return Err(Error::LinkStalled),
+            Ok(k) => rest = rest.get(k..).unwrap_or(&[]),
+            Err(e) => return Err(Error::Link(e)),
+        }
+    }
+    Ok(())
+}
+
+/// The device side of the link. `S` stores the model slots, `P` drives the
+/// drift line, `R` is the capacity of the resend ring.
+pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED> {
+    detector: Detector,
+    slots: S,
+    pin: P,
+    /// Level last driven on the pin; `None` until driven or after an error.
+    pin_high: Option<bool>,
+    rx: HostFrameDecoder,
+    seq: u32,
+    retained: Deque<Retained, R>,
+    dropped: u32,
+    reports: bool,
+    config: Config,
+    since_status: u32,
+    last_fault: Option<Fault>,
+    upload: Option<Upload>,
+    active: Option<Slot>,
+    generation: u32,
+}
+
+impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
+    /// Starts on a detector the board built itself (for instance from a model
+    /// compiled into the image); the greeting reports no active slot and
+    /// generation 0. The first upload goes to slot A.
+    pub fn new(detector: Detector, slots: S, pin: P) -> Self {
+        Self::assemble(detector, None, 0, slots, pin)
+    }
+
+    /// Starts on the newest valid slot (highest generation whose record,
+    /// CRC-32 and model file all pass), else on `builtin` (a model file in
+    /// the image), else fails.
+    pub fn boot(slots: S, pin: P, builtin: Option<&[u8]>) -> Result<Self, BootError> {
+        let mut order = [Slot::A, Slot::B].map(|s| (s, slots.record(s)));
+        if let [(_, Some(a)), (_, Some(b))] = order {
+            if b.generation > a.generation {
+                order.swap(0, 1);
+            }
+        }
+        for (slot, rec) in order {
+            let Some(rec) = rec else { continue };
+            let Some(bytes) = slot_file(&slots, slot) else {
+                continue;
+            };
+            if let Ok(det) = Detector::from_file(bytes) {
+                return Ok(Self::assemble(det, Some(slot), rec.generation, slots, pin));
+            }
+        }
+        match builtin {
+            Some(file) => Detector::from_file(file)
+                .map(|det| Self::assemble(det, None, 0, slots, pin))
+                .map_err(BootError::Builtin),
+            None => Err(BootError::NoModel),
+        }
+    }
+
+    fn assemble(
+        detector: Detector,
+        active: Option<Slot>,
+        generation: u32,
+        slots: S,
+        pin: P,
+    ) -> Self {
+        let mut ep = Endpoint {
+            detector,
+            slots,
+            pin,
+            pin_high: None,
+            rx: HostFrameDecoder::new(),
+            seq: 0,
+            retained: Deque::new(),
+            dropped: 0,
+            reports: false,
+            config: Config::default(),
+            since_status: 0,
+            last_fault: None,
+            upload: None,
+            active,
+            generation,
+        };
+        // A failure here is retried after the next sample.
+        let _ = ep.drive_pin();
+        ep
+    }
+
+    /// Replaces the settings.
+    pub fn set_config(&mut self, config: Config) {
+        self.config = config;
+    }
+
+    /// The settings.
+    pub fn config(&self) -> Config {
+        self.config
+    }
+
+    /// The running detector.
+    pub fn detector(&self) -> &Detector {
+        &self.detector
+    }
+
+    /// Slot of the running model (`None`: built-in).
+    pub fn active_slot(&self) -> Option<Slot> {
+        self.active
+    }
+
+    /// Generation of the running model's slot (0: built-in).
+    pub fn generation(&self) -> u32 {
+        self.generation
+    }
+
+    /// Receive counters since boot.
+    pub fn link_counters(&self) -> LinkCounters {
+        self.rx.counters()
+    }
+
+    /// Sequence number the next message will carry.
+    pub fn next_seq(&self) -> u32 {
+        self.seq
+    }
+
+    /// Events in the resend ring, and events dropped from it since boot.
+    pub fn retained(&self) -> (usize, u32) {
+        (self.retained.len(), self.dropped)
+    }
+
+    /// Whether per-sample score reports are on.
+    pub fn reports(&self) -> bool {
+        self.reports
+    }
+
+    /// The slot storage.
+    pub fn slots(&self) -> &S {
+        &self.slots
+    }
+
+    /// The drift line.
+    pub fn pin(&self) -> &P {
+        &self.pin
+    }
+
+    /// Takes the parts back.
+    pub fn release(self) -> (Detector, S, P) {
+        (self.detector, self.slots, self.pin)
+    }
+
+    /// Sends a greeting (do this once the link is up, after boot).
+    pub fn greet<W: Write>(&mut self, io: &mut W) -> Result<(), Error<W::Error>> {
+        let mut out = Out {
+            io,
+            first: None,
+            sent: 0,
+        };
+        self.send_greeting(&mut out);
+        let _ = out.io.flush().map_err(|e| out.fail(Error::Link(e)));
+        out.first.map_or(Ok(()), Err)
+    }
+
+    /// Reads whatever the link has ready (up to [`POLL_BUDGET`] bytes) and
+    /// handles every complete host message. Returns the first output error
+    /// after handling all input read so far; a read error ends the call.
+    pub fn poll<IO>(&mut self, io: &mut IO) -> Result<Polled, Error<IO::Error>>
+    where
+        IO: Read + Write + ReadReady,
+    {
+        let mut buf = [0u8; READ_CHUNK];
+        let mut total = Polled::default();
+        let mut first: Option<Error<IO::Error>> = None;
+        while total.bytes < POLL_BUDGET {
+            match io.read_ready() {
+                Ok(true) => {}
+                Ok(false) => break,
+                Err(e) => {
+                    first.get_or_insert(Error::Link(e));
+                    break;
+                }
+            }
+            let n = match io.read(&mut buf) {
+                Ok(0) => break,
+                Ok(n) => n,
+                Err(e) => {
+                    first.get_or_insert(Error::Link(e));
+                    break;
+                }
+            };
+            let bytes = buf.get(..n).unwrap_or(&[]);
+            match self.feed(bytes, io) {
+                Ok(p) => {
+                    total.messages += p.messages;
+                    total.samples += p.samples;
+                    total.sent += p.sent;
+                }
+                Err(e) => {
+                    first.get_or_insert(e);
+                }
+            }
+            total.bytes += n;
+        }
+        first.map_or(Ok(total), Err)
+    }
+
+    /// Handles bytes that were already received (from an interrupt or DMA
+    /// buffer, say) and writes the answers to `io`.
+    pub fn feed<W: Write>(&mut self, bytes: &[u8], io: &mut W) -> Result<Polled, Error<W::Error>> {
+        let mut out = Out {
+            io,
+            first: None,
+            sent: 0,
+        };
+        let mut polled = Polled {
+            bytes: bytes.len(),
+            ..Polled::default()
+        };
+        let mut rest = bytes;
+        loop {
+            rest = self.rx.feed(rest);
+            match self.rx.take_message::<HostMsg>() {
+                Some(Ok(msg)) => {
+                    polled.messages += 1;
+                    if matches!(msg, HostMsg::Sample { .. }) {
+                        polled.samples += 1;
+                    }
+                    self.handle(&msg, &mut out);
+                }
+                // Counted by the decoder; the host sees the counters.
+                Some(Err(_)) => {}
+                None if rest.is_empty() => break,
+                None => {}
+            }
+        }
+        if out.sent > 0 {
+            let _ = out.io.flush().map_err(|e| out.fail(Error::Link(e)));
+        }
+        polled.sent = out.sent;
+        out.first.map_or(Ok(polled), Err)
+    }
+
+    fn next_seq_take(&mut self) -> u32 {
+        let s = self.seq;
+        self.seq = self.seq.wrapping_add(1);
+        s
+    }
+
+    fn send<W: Write>(&mut self, out: &mut Out<'_, W>, msg: DeviceMsg) {
+        let seq = self.next_seq_take();
+        out.send(seq, &msg);
+    }
+
+    /// Sends an event and keeps it for resend.
+    fn send_retained<W: Write>(&mut self, out: &mut Out<'_, W>, msg: DeviceMsg) {
+        let seq = self.next_seq_take();
+        if self.retained.is_full() && self.retained.pop_front().is_some() {
+            self.dropped = self.dropped.wrapping_add(1);
+        }
+        match self.retained.push_back(Retained { seq, msg }) {
+            Ok(()) => {
+                if let Some(r) = self.retained.back() {
+                    out.send(r.seq, &r.msg);
+                }
+            }
+            // Only with a ring of capacity 0: send without keeping.
+            Err(r) => {
+                self.dropped = self.dropped.wrapping_add(1);
+                out.send(r.seq, &r.msg);
+            }
+        }
+    }
+
+    fn refuse<W: Write>(&mut self, out: &mut Out<'_, W>, request: Request, reason: Reason) {
+        self.send(out, DeviceMsg::Refused(Refusal { request, reason }));
+    }
+
+    fn handle<W: Write>(&mut self, msg: &HostMsg, out: &mut Out<'_, W>) {
+        match msg {
+            HostMsg::Sample { features } => self.on_sample(features, out),
+            HostMsg::StatusQuery => {
+                let s = self.status();
+                self.send(out, DeviceMsg::Status(s));
+            }
+            HostMsg::ResendFrom { seq } => self.on_resend(*seq, out),
+            HostMsg::SetReports { on } => {
+                self.reports = *on;
+                self.send(out, DeviceMsg::Ack(Ack::Reports { on: *on }));
+            }
+            HostMsg::UploadBegin { total, crc } => self.on_begin(*total, *crc, out),
+            HostMsg::UploadChunk { offset, data } => self.on_chunk(*offset, data, out),
+            HostMsg::UploadCommit => self.on_commit(out),
+            HostMsg::ResetStats => {
+                self.detector.reset();
+                self.last_fault = None;
+                self.since_status = 0;
+                self.pin_or_fail(out);
+                self.send(out, DeviceMsg::Ack(Ack::StatsReset));
+            }
+            HostMsg::GreetingQuery => self.send_greeting(out),
+        }
+    }
+
+    fn send_greeting<W: Write>(&mut self, out: &mut Out<'_, W>) {
+        let model = self.detector.model();
+        let mut firmware = heapless::String::new();
+        for c in self.config.firmware.chars() {
+            if firmware.push(c).is_err() {
+                break;
+            }
+        }
+        let g = Greeting {
+            protocol: wire::PROTOCOL_VERSION,
+            firmware,
+            model_id: model.meta.id,
+            schema: model.meta.schema,
+            dims: model.dims,
+            capacity: Capacity::DEVICE,
+            active: self.active,
+            generation: self.generation,
+            status_every: self.config.status_every,
+        };
+        self.send(out, DeviceMsg::Greeting(g));
+    }
+
+    fn drive_pin(&mut self) -> Result<(), PinErrorKind> {
+        let want = self.detector.state() == DriftState::Drifting;
+        if self.pin_high == Some(want) {
+            return Ok(());
+        }
+        let r = if want {
+            self.pin.set_high()
+        } else {
+            self.pin.set_low()
+        };
+        match r {
+            Ok(()) => {
+                self.pin_high = Some(want);
+                Ok(())
+            }
+            Err(e) => {
+                self.pin_high = None;
+                Err(e.kind())
+            }
+        }
+    }
+
+    fn pin_or_fail<W: Write>(&mut self, out: &mut Out<'_, W>) {
+        if let Err(k) = self.drive_pin() {
+            out.fail(Error::Pin(k));
+        }
+    }
+
+    fn on_sample<W: Write>(&mut self, x: &[f32], out: &mut Out<'_, W>) {
+        let o = self.detector.update(x);
+        if self.reports {
+            let report = ScoreReport {
+                sample: o.index,
+                scores: o.scores.map(|s| ScoreTriple {
+                    spe: s.spe,
+                    t2: s.t2,
+                    nll: s.nll,
+                }),
+                state: wire_state(o.state),
+            };
+            self.send(out, DeviceMsg::ScoreReport(report));
+        }
+        match o.fault {
+            Some(f) => {
+                if self.last_fault != Some(f) {
+                    let msg = SensorFault {
+                        sample: o.index,
+                        fault: wire_fault(f),
+                    };
+                    self.send_retained(out, DeviceMsg::SensorFault(msg));
+                }
+                self.last_fault = Some(f);
+            }
+            None => self.last_fault = None,
+        }
+        match o.event {
+            Some(Event::Raised { drivers }) => {
+                let msg = self.raised(&o, drivers);
+                self.send_retained(out, DeviceMsg::DriftRaised(msg));
+            }
+            Some(Event::Cleared) => {
+                let msg = DriftCleared { sample: o.index };
+                self.send_retained(out, DeviceMsg::DriftCleared(msg));
+            }
+            Some(Event::Primed) | None => {}
+        }
+        self.pin_or_fail(out);
+        if self.config.status_every > 0 {
+            self.since_status = self.since_status.saturating_add(1);
+            if self.since_status >= self.config.status_every {
+                self.since_status = 0;
+                let s = self.status();
+                self.send(out, DeviceMsg::Status(s));
+            }
+        }
+    }
+
+    fn limits(&self, s: Score) -> ScoreLimits {
+        let mp = &self.detector.model().monitor;
+        match s {
+            Score::Spe => mp.spe,
+            Score::T2 => mp.t2,
+            Score::Nll => mp.nll,
+        }
+    }
+
+    fn raised(&self, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
+        let mut crossed = heapless::Vec::new();
+        for s in drivers.iter() {
+            let t = self.detector.track(s);
+            let lim = self.limits(s);
+            let pairs = [
+                (Statistic::Ewma, t.ewma.value(), lim.ewma_limit),
+                (Statistic::Cusum, t.cusum.value(), lim.cusum_limit),
+            ];
+            for (statistic, value, limit) in pairs {
+                if value > limit {
+                    let c = Crossing {
+                        score: wire_score(s),
+                        statistic,
+                        value,
+                        limit,
+                    };
+                    // At most 3 scores × 2 statistics: always fits.
+                    let _ = crossed.push(c);
+                }
+            }
+        }
+        let scores = o.scores.unwrap_or_default();
+        DriftRaised {
+            sample: o.index,
+            drivers: drivers.0,
+            scores: ScoreTriple {
+                spe: scores.spe,
+                t2: scores.t2,
+                nll: scores.nll,
+            },
+            crossed,
+            top: o.top.map(|c| Share {
+                feature: c.feature,
+                value: c.value,
+            }),
+        }
+    }
+
+    /// The status message as it would be sent now.
+    pub fn status(&self) -> Status {
+        let mut levels = [Level::default(); 3];
+        let mut hot = ScoreSet::EMPTY;
+        for (level, s) in levels.iter_mut().zip(Score::ALL) {
+            let t = self.detector.track(s);
+            let lim = self.limits(s);
+            *level = Level {
+                ewma: t.ewma.value(),
+                cusum: t.cusum.value(),
+            };
+            if t.cusum.value() > lim.cusum_limit || t.ewma.value() > lim.ewma_limit {
+                hot.insert(s);
+            }
+        }
+        let f = self.detector.faults();
+        Status {
+            samples: self.detector.samples(),
+            state: wire_state(self.detector.state()),
+            hot: hot.0,
+            faults: FaultTally {
+                wrong_length: f.wrong_length,
+                non_finite: f.non_finite,
+                out_of_range: f.out_of_range,
+                overflow: f.overflow,
+            },
+            levels,
+            link: self.rx.counters(),
+            last_event: self.retained.back().map(|r| r.seq),
+            model_id: self.detector.model().meta.id,
+        }
+    }
+
+    fn on_resend<W: Write>(&mut self, from: u32, out: &mut Out<'_, W>) {
+        let mut count: u16 = 0;
+        for r in self.retained.iter() {
+            if wire::seq_at_or_after(r.seq, from) {
+                out.send(r.seq, &r.msg);
+                count = count.saturating_add(1);
+            }
+        }
+        let done = ResendDone {
+            from,
+            count,
+            oldest: self.retained.front().map(|r| r.seq),
+            dropped: self.dropped,
+        };
+        self.send(out, DeviceMsg::ResendDone(done));
+    }
+
+    /// The slot an upload writes: never the running one.
+    fn target_slot(&self) -> Slot {
+        self.active.map_or(Slot::A, Slot::other)
+    }
+
+    fn on_begin<W: Write>(&mut self, total: u32, crc: u32, out: &mut Out<'_, W>) {
+        if let Some(old) = self.upload.take() {
+            let reason = Reason::Abandoned {
+                received: old.next,
+                total: old.total,
+            };
+            self.refuse(out, Request::UploadBegin, reason);
+        }
+        let max = self.slots.capacity();
+        if total == 0 {
+            return self.refuse(out, Request::UploadBegin, Reason::Empty);
+        }
+        if total > max {
+            return self.refuse(out, Request::UploadBegin, Reason::TooLarge { total, max });
+        }
+        let slot = self.target_slot();
+        if self.slots.erase(slot).is_err() {
+            return self.refuse(out, Request::UploadBegin, Reason::Storage);
+        }
+        self.upload = Some(Upload {
+            slot,
+            total,
+            crc,
+            next: 0,
+        });
+        self.send(out, DeviceMsg::Ack(Ack::UploadOpen { slot, total }));
+    }
+
+    fn on_chunk<W: Write>(&mut self, offset: u32, data: &[u8], out: &mut Out<'_, W>) {
+        let Some(mut up) = self.upload else {
+            return self.refuse(out, Request::UploadChunk, Reason::NoUpload);
+        };
+        if offset != up.next {
+            let reason = Reason::UnexpectedOffset {
+                expected: up.next,
+                got: offset,
+            };
+            return self.refuse(out, Request::UploadChunk, reason);
+        }
+        let end = u32::try_from(data.len())
+            .ok()
+            .and_then(|n| offset.checked_add(n));
+        let end = match end {
+            Some(end) if end <= up.total => end,
+            _ => {
+                self.upload = None;
+                let reason = Reason::Overrun {
+                    end: end.unwrap_or(u32::MAX),
+                    total: up.total,
+                };
+                return self.refuse(out, Request::UploadChunk, reason);
+            }
+        };
+        if self.slots.write(up.slot, offset, data).is_err() {
+            self.upload = None;
+            return self.refuse(out, Request::UploadChunk, Reason::Storage);
+        }
+        up.next = end;
+        self.upload = Some(up);
+        self.send(out, DeviceMsg::Ack(Ack::ChunkTaken { next: end }));
+    }
+
+    fn on_commit<W: Write>(&mut self, out: &mut Out<'_, W>) {
+        let Some(up) = self.upload else {
+            return self.refuse(out, Request::UploadCommit, Reason::NoUpload);
+        };
+        if up.next != up.total {
+            let reason = Reason::Incomplete {
+                received: up.next,
+                total: up.total,
+            };
+            return self.refuse(out, Request::UploadCommit, reason);
+        }
+        // From here on the upload is over, switched or refused.
+        self.upload = None;
+        match self.check_upload(up) {
+            Ok((detector, generation)) => {
+                self.detector = detector;
+                self.active = Some(up.slot);
+                self.generation = generation;
+                self.last_fault = None;
+                self.since_status = 0;
+                self.pin_or_fail(out);
+                let ack = Ack::ModelSwitched {
+                    slot: up.slot,
+                    model_id: self.detector.model().meta.id,
+                    generation,
+                };
+                self.send(out, DeviceMsg::Ack(ack));
+            }
+            Err(reason) => self.refuse(out, Request::UploadCommit, reason),
+        }
+    }
+
+    /// Every check of a finished upload, then the slot's record. The running
+    /// detector is not touched: the caller swaps it in only on success.
+    fn check_upload(&mut self, up: Upload) -> Result<(Detector, u32), Reason> {
+        self.slots.flush(up.slot).map_err(|_| Reason::Storage)?;
+        let len = usize::try_from(up.total).map_err(|_| Reason::Storage)?;
+        let file = self.slots.read(up.slot).get(..len).ok_or(Reason::Storage)?;
+        let computed = wire::crc32(file);
+        if computed != up.crc {
+            return Err(Reason::TransferCrc {
+                expected: up.crc,
+                computed,
+            });
+        }
+        // `Detector::from_file` = `file::decode` (framing, CRC, validation,
+        // capacity) + `Detector::new` (the detector's own checks); the same
+        // checks `Detector::install` runs, without replacing the running
+        // detector before the slot record is written.
+        let detector = Detector::from_file(file).map_err(Reason::from)?;
+        let generation = [Slot::A, Slot::B]
+            .iter()
+            .filter_map(|s| self.slots.record(*s))
+            .map(|r| r.generation)
+            .fold(self.generation, u32::max)
+            .saturating_add(1);
+        let record = SlotRecord {
+            generation,
+            len: up.total,
+            crc: computed,
+        };
+        self.slots
+            .commit(up.slot, record)
+            .map_err(|_| Reason::Storage)?;
+        Ok((detector, generation))
+    }
+}
+
+/// The wire form of a drift state.
+pub fn wire_state(s: DriftState) -> State {
+    match s {
+        DriftState::Priming => State::Priming,
+        DriftState::Watching => State::Watching,
+        DriftState::Drifting => State::Drifting,
+    }
+}
+
+/// The wire form of a score.
+pub fn wire_score(s: Score) -> ScoreKind {
+    match s {
+        Score::Spe => ScoreKind::Spe,
+        Score::T2 => ScoreKind::T2,
+        Score::Nll => ScoreKind::Nll,
+    }
+}
+
+/// The wire form of a sensor fault.
+pub fn wire_fault(f: Fault) -> FaultKind {
+    match f {
+        Fault::WrongLength { got } => FaultKind::WrongLength { got },
+        Fault::NonFinite { feature } => FaultKind::NonFinite { feature },
+        Fault::OutOfRange { feature } => FaultKind::OutOfRange { feature },
+        Fault::Overflow => FaultKind::Overflow,
+    }
+}

@@ -1,0 +1,1175 @@
+//! The serial endpoint on the host: an in-memory link implementing the
+//! `embedded-io` traits, a fake drift line, and hand-built models.
+
+use plumb_firmware::endpoint::{
+    BootError, Config, Endpoint, ModelSlots, RamSlots, SlotError, SlotRecord,
+};
+use plumb_firmware::{Detector, DriftState};
+use plumb_model::file::{self, ModelFile};
+use plumb_model::wire::{
+    self, Ack, DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, HostMsg, Reason, Refusal,
+    Request, ResendDone, ScoreReport, Slot, State, MAX_CHUNK,
+};
+use plumb_model::{Capacity, Dims, ModelMeta, ModelOwned, MonitorParams, ScoreLimits};
+use proptest::prelude::*;
+use std::cell::Cell;
+use std::collections::VecDeque;
+use std::convert::Infallible;
+use std::rc::Rc;
+
+// ---------------------------------------------------------------- fixtures
+
+/// Bytes per RAM slot in these tests.
+const SLOT: usize = 8192;
+
+/// An in-memory serial link: bytes the host wrote wait in `to_device`; what
+/// the device writes lands in `from_device`. Reads return at most `max_read`
+/// bytes, to exercise partial reads.
+struct Pipe {
+    to_device: VecDeque<u8>,
+    from_device: Vec<u8>,
+    max_read: usize,
+}
+
+impl Pipe {
+    fn new(max_read: usize) -> Self {
+        Pipe {
+            to_device: VecDeque::new(),
+            from_device: Vec::new(),
+            max_read: max_read.max(1),
+        }
+    }
+}
+
+impl embedded_io::ErrorType for Pipe {
+    type Error = Infallible;
+}
+
+impl embedded_io::Read for Pipe {
+    fn read(&mut self, buf: &mut [u8]) -> Result<usize, Infallible> {
+        let n = buf.len().min(self.max_read).min(self.to_device.len());
+        for (dst, src) in buf.iter_mut().zip(self.to_device.drain(..n)) {
+            *dst = src;
+        }
+        Ok(n)
+    }
+}
+
+impl embedded_io::ReadReady for Pipe {
+    fn read_ready(&mut self) -> Result<bool, Infallible> {
+        Ok(!self.to_device.is_empty())
+    }
+}
+
+impl embedded_io::Write for Pipe {
+    fn write(&mut self, buf: &[u8]) -> Result<usize, Infallible> {
+        self.from_device.extend_from_slice(buf);
+        Ok(buf.len())
+    }
+
+    fn flush(&mut self) -> Result<(), Infallible> {
+        Ok(())
+    }
+}
+
+/// A drift line whose level the test can see.
+#[derive(Clone, Default)]
+struct Line(Rc<Cell<bool>>);
+
+impl embedded_hal::digital::ErrorType for Line {
+    type Error = Infallible;
+}
+
+impl embedded_hal::digital::OutputPin for Line {
+    fn set_low(&mut self) -> Result<(), Infallible> {
+        self.0.set(false);
+        Ok(())
+    }
+
+    fn set_high(&mut self) -> Result<(), Infallible> {
+        self.0.set(true);
+        Ok(())
+    }
+}
+
+fn limits(center: f32, spread: f32) -> ScoreLimits {
+    ScoreLimits {
+        sample_limit: 50.0,
+        center,
+        spread,
+        cusum_slack: 0.5,
+        cusum_limit: 4.0,
+        ewma_limit: 1.5,
+    }
+}
+
+/// d = 4, m = 2, k = 2. Loadings are two orthonormal columns
+/// (½·[1, 1, 1, 1] and ½·[1, −1, 1, −1]); the residual space holds
+/// ½·[1, 1, −1, −1] and ½·[1, −1, −1, 1].
+fn model(id: u32, mean_shift: f32) -> ModelOwned {
+    ModelOwned {
+        meta: ModelMeta {
+            id,
+            schema: 0x5EED_0000_0000_0001,
+            created_unix_s: 1_700_000_000,
+            train_rows: 1000,
+            calib_rows: 500,
+            sample_period_us: 10_000,
+        },
+        dims: Dims {
+            features: 4,
+            components: 2,
+            mixture: 2,
+        },
+        mean: vec![mean_shift; 4],
+        scale: vec![1.0; 4],
+        loadings: vec![0.5, 0.5, 0.5, -0.5, 0.5, 0.5, 0.5, -0.5],
+        eigenvalues: vec![2.0, 1.0],
+        theta: [0.02, 0.0002, 0.000002],
+        weights: vec![0.5, 0.5],
+        mix_means: vec![-1.0, 0.0, 1.0, 0.0],
+        mix_variances: vec![1.0, 1.0, 1.0, 1.0],
+        monitor: MonitorParams {
+            fault_z: 20.0,
+            warmup: 20,
+            ewma_lambda: 0.2,
+            raise_dwell: 3,
+            clear_dwell: 5,
+            min_hold: 10,
+            clear_fraction: 0.5,
+            spe: limits(0.2, 0.1),
+            t2: limits(1.0, 0.5),
+            nll: limits(3.0, 1.5),
+        },
+    }
+}
+
+fn file_of(m: &ModelOwned) -> Vec<u8> {
+    ModelFile {
+        model: m.clone(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .expect("valid test model")
+}
+
+/// Frames a model that `ModelFile::to_bytes` would refuse (it validates).
+fn file_unchecked(m: &ModelOwned) -> Vec<u8> {
+    let payload = postcard::to_allocvec(m).unwrap();
+    let mut out = vec![0u8; payload.len() + 64];
+    let n = file::frame_into(&payload, &[], &mut out).unwrap();
+    out.truncate(n);
+    out
+}
+
+/// A small deterministic generator (64-bit LCG, Knuth's MMIX constants).
+struct Lcg(u64);
+
+impl Lcg {
+    fn next(&mut self) -> f32 {
+        self.0 = self
+            .0
+            .wrapping_mul(6_364_136_223_846_793_005)
+            .wrapping_add(1_442_695_040_888_963_407);
+        ((self.0 >> 40) as f32 / (1u64 << 24) as f32) * 2.0 - 1.0
+    }
+
+    /// A sample in the model's latent plane plus a little residual noise.
+    fn nominal(&mut self) -> Vec<f32> {
+        let a = 1.4 * self.next();
+        let b = 1.0 * self.next();
+        (0..4)
+            .map(|i| {
+                let sign = if i % 2 == 0 { 1.0 } else { -1.0 };
+                0.5 * a + 0.5 * sign * b + 0.05 * self.next()
+            })
+            .collect()
+    }
+
+    /// A sample pushed along a residual direction.
+    fn drifted(&mut self) -> Vec<f32> {
+        let mut x = self.nominal();
+        for (xi, r) in x.iter_mut().zip([1.0, 1.0, -1.0, -1.0]) {
+            *xi += 1.5 * r;
+        }
+        x
+    }
+}
+
+fn sample(x: &[f32]) -> HostMsg {
+    HostMsg::Sample {
+        features: heapless::Vec::from_slice(x).expect("≤ MAX_FEATURES"),
+    }
+}
+
+struct Rig<const R: usize = 32> {
+    ep: Endpoint<RamSlots<SLOT>, Line, R>,
+    pipe: Pipe,
+    line: Line,
+    rx: DeviceFrameDecoder,
+}
+
+impl<const R: usize> Rig<R> {
+    fn boot_with(slots: RamSlots<SLOT>, max_read: usize) -> Self {
+        let line = Line::default();
+        let ep = Endpoint::boot(slots, line.clone(), None).expect("a valid slot");
+        Rig {
+            ep,
+            pipe: Pipe::new(max_read),
+            line,
+            rx: DeviceFrameDecoder::new(),
+        }
+    }
+
+    /// Boots on model 1 in slot A, generation 1.
+    fn new() -> Self {
+        let mut slots = RamSlots::new();
+        slots.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
+        Self::boot_with(slots, 64)
+    }
+
+    fn send_raw(&mut self, bytes: &[u8]) -> Vec<DeviceFrame> {
+        self.pipe.to_device.extend(bytes);
+        self.run()
+    }
+
+    fn send(&mut self, msg: &HostMsg) -> Vec<DeviceFrame> {
+        self.send_raw(&wire::encode_frame_vec(msg))
+    }
+
+    fn run(&mut self) -> Vec<DeviceFrame> {
+        while !self.pipe.to_device.is_empty() {
+            self.ep.poll(&mut self.pipe).expect("in-memory link");
+        }
+        let bytes = std::mem::take(&mut self.pipe.from_device);
+        let mut out = Vec::new();
+        let mut rest = &bytes[..];
+        loop {
+            rest = self.rx.feed(rest);
+            match self.rx.take_message::<DeviceFrame>() {
+                Some(Ok(f)) => out.push(f),
+                Some(Err(e)) => panic!("device sent a bad frame: {e}"),
+                None if rest.is_empty() => return out,
+                None => {}
+            }
+        }
+    }
+
+    /// Sends one message and expects exactly one answer.
+    fn ask(&mut self, msg: &HostMsg) -> DeviceMsg {
+        let mut got = self.send(msg);
+        assert_eq!(got.len(), 1, "answers to {msg:?}: {got:?}");
+        got.remove(0).msg
+    }
+
+    /// Uploads a file in chunks; returns every answer.
+    fn upload(&mut self, file: &[u8], crc: u32) -> Vec<DeviceMsg> {
+        let mut answers = Vec::new();
+        let total = file.len() as u32;
+        answers.extend(self.send(&HostMsg::UploadBegin { total, crc }));
+        for (i, chunk) in file.chunks(MAX_CHUNK).enumerate() {
+            answers.extend(self.send(&HostMsg::UploadChunk {
+                offset: (i * MAX_CHUNK) as u32,
+                data: heapless::Vec::from_slice(chunk).unwrap(),
+            }));
+        }
+        answers.extend(self.send(&HostMsg::UploadCommit));
+        answers.into_iter().map(|f| f.msg).collect()
+    }
+}
+
+fn refusal(msgs: &[DeviceMsg]) -> Option<Refusal> {
+    msgs.iter().find_map(|m| match m {
+        DeviceMsg::Refused(r) => Some(*r),
+        _ => None,
+    })
+}
+
+fn switched(msgs: &[DeviceMsg]) -> Option<(Slot, u32, u32)> {
+    msgs.iter().find_map(|m| match m {
+        DeviceMsg::Ack(Ack::ModelSwitched {
+            slot,
+            model_id,
+            generation,
+        }) => Some((*slot, *model_id, *generation)),
+        _ => None,
+    })
+}
+
+fn reports(frames: &[DeviceFrame]) -> Vec<ScoreReport> {
+    frames
+        .iter()
+        .filter_map(|f| match &f.msg {
+            DeviceMsg::ScoreReport(r) => Some(*r),
+            _ => None,
+        })
+        .collect()
+}
+
+/// Feeds `xs` to the endpoint with reports on and to `reference` directly,
+/// and checks every report bit for bit.
+fn assert_scores_match(rig: &mut Rig, reference: &mut Detector, xs: &[Vec<f32>]) {
+    assert_eq!(
+        rig.ask(&HostMsg::SetReports { on: true }),
+        DeviceMsg::Ack(Ack::Reports { on: true })
+    );
+    for x in xs {
+        let got = reports(&rig.send(&sample(x)));
+        assert_eq!(got.len(), 1);
+        let r = got[0];
+        let want = reference.update(x);
+        assert_eq!(r.sample, want.index);
+        assert_eq!(r.state, plumb_firmware::endpoint::wire_state(want.state));
+        match (r.scores, want.scores) {
+            (Some(a), Some(b)) => {
+                assert_eq!(a.spe.to_bits(), b.spe.to_bits(), "spe at {}", r.sample);
+                assert_eq!(a.t2.to_bits(), b.t2.to_bits(), "t2 at {}", r.sample);
+                assert_eq!(a.nll.to_bits(), b.nll.to_bits(), "nll at {}", r.sample);
+            }
+            (None, None) => {}
+            other => panic!("scored differently at {}: {other:?}", r.sample),
+        }
+    }
+}
+
+fn mixed_samples(seed: u64, n: usize) -> Vec<Vec<f32>> {
+    let mut g = Lcg(seed);
+    (0..n)
+        .map(|i| match i % 37 {
+            5 => vec![f32::NAN, 0.0, 0.0, 0.0],
+            11 => vec![0.0; 3],
+            17 => vec![100.0, 0.0, 0.0, 0.0],
+            20..=30 => g.drifted(),
+            _ => g.nominal(),
+        })
+        .collect()
+}
+
+// ------------------------------------------------------------------ tests
+
+mod greeting_and_boot {
+    use super::*;
+
+    #[test]
+    fn greeting_names_the_running_model() {
+        let mut rig: Rig = Rig::new();
+        rig.ep.greet(&mut rig.pipe).unwrap();
+        let frames = rig.run();
+        assert_eq!(frames.len(), 1);
+        assert_eq!(frames[0].seq, 0);
+        let DeviceMsg::Greeting(g) = &frames[0].msg else {
+            panic!("{frames:?}")
+        };
+        assert_eq!(g.protocol, wire::PROTOCOL_VERSION);
+        assert_eq!(g.firmware.as_str(), env!("CARGO_PKG_VERSION"));
+        assert_eq!(g.model_id, 1);
+        assert_eq!(g.schema, 0x5EED_0000_0000_0001);
+        assert_eq!(g.dims.features, 4);
+        assert_eq!(g.capacity, Capacity::DEVICE);
+        assert_eq!(g.active, Some(Slot::A));
+        assert_eq!(g.generation, 1);
+        assert_eq!(
+            g.status_every,
+            plumb_firmware::endpoint::DEFAULT_STATUS_EVERY
+        );
+        // Asked again: same content, next sequence number.
+        let again = rig.send(&HostMsg::GreetingQuery);
+        assert_eq!(again[0].seq, 1);
+        assert_eq!(again[0].msg, frames[0].msg);
+    }
+
+    #[test]
+    fn long_firmware_names_are_cut_to_sixteen_bytes() {
+        let mut rig: Rig = Rig::new();
+        rig.ep.set_config(Config {
+            firmware: "board-x 1.2.3-rc.4+g0123456",
+            status_every: 0,
+        });
+        let DeviceMsg::Greeting(g) = rig.ask(&HostMsg::GreetingQuery) else {
+            panic!()
+        };
+        assert_eq!(g.firmware.as_str(), "board-x 1.2.3-rc");
+        assert_eq!(g.status_every, 0);
+    }
+
+    #[test]
+    fn boot_picks_the_newest_valid_slot() {
+        let one = file_of(&model(1, 0.0));
+        let two = file_of(&model(2, 0.1));
+        let mut slots = RamSlots::<SLOT>::new();
+        slots.store(Slot::A, &one, 1).unwrap();
+        slots.store(Slot::B, &two, 2).unwrap();
+        let ep = Endpoint::<_, _>::boot(slots.clone(), Line::default(), None).unwrap();
+        assert_eq!(ep.active_slot(), Some(Slot::B));
+        assert_eq!(ep.generation(), 2);
+        assert_eq!(ep.detector().model().meta.id, 2);
+        assert_eq!(
+            plumb_firmware::endpoint::newest_valid(&slots).map(|(s, r)| (s, r.generation)),
+            Some((Slot::B, 2))
+        );
+
+        // Damage B: its CRC fails, A runs.
+        slots.bytes_mut(Slot::B)[40] ^= 0x10;
+        let ep = Endpoint::<_, _>::boot(slots.clone(), Line::default(), None).unwrap();
+        assert_eq!(ep.active_slot(), Some(Slot::A));
+        assert_eq!(ep.detector().model().meta.id, 1);
+
+        // No valid slot: the built-in model, else an error.
+        let empty = RamSlots::<SLOT>::new();
+        let ep = Endpoint::<_, _>::boot(empty.clone(), Line::default(), Some(&two)).unwrap();
+        assert_eq!(ep.active_slot(), None);
+        assert_eq!(ep.generation(), 0);
+        assert!(matches!(
+            Endpoint::<_, _>::boot(empty.clone(), Line::default(), None),
+            Err(BootError::NoModel)
+        ));
+        assert!(matches!(
+            Endpoint::<_, _>::boot(empty, Line::default(), Some(&two[..10])),
+            Err(BootError::Builtin(_))
+        ));
+    }
+
+    #[test]
+    fn slot_record_bytes_check_themselves() {
+        let rec = SlotRecord {
+            generation: 7,
+            len: 1234,
+            crc: 0xDEAD_BEEF,
+        };
+        let bytes = rec.to_bytes();
+        assert_eq!(SlotRecord::from_bytes(&bytes), Some(rec));
+        assert_eq!(SlotRecord::from_bytes(&[0xFF; 16]), None);
+        for bit in 0..128 {
+            let mut bad = bytes;
+            bad[bit / 8] ^= 1 << (bit % 8);
+            assert_eq!(SlotRecord::from_bytes(&bad), None, "bit {bit}");
+        }
+        assert_eq!(SlotRecord::from_bytes(&bytes[..15]), None);
+    }
+}
+
+mod scoring {
+    use super::*;
+
+    #[test]
+    fn drift_raises_the_flag_and_the_line_then_clears_both() {
+        let mut rig: Rig = Rig::new();
+        let mut g = Lcg(7);
+        let mut events = Vec::new();
+        for _ in 0..100 {
+            events.extend(rig.send(&sample(&g.nominal())));
+        }
+        assert_eq!(rig.ep.detector().state(), DriftState::Watching);
+        assert!(!rig.line.0.get());
+        assert!(events.iter().all(|f| !f.msg.is_retained()), "{events:?}");
+
+        let mut raised = None;
+        for _ in 0..20 {
+            for f in rig.send(&sample(&g.drifted())) {
+                if let DeviceMsg::DriftRaised(r) = f.msg {
+                    raised = Some(r);
+                }
+            }
+        }
+        let r = raised.expect("drift raised");
+        assert!(rig.line.0.get(), "line high while drifting");
+        assert_eq!(rig.ep.detector().state(), DriftState::Drifting);
+        assert!(r.drivers & 0b001 != 0, "SPE drives: {r:?}");
+        assert!(!r.crossed.is_empty());
+        for c in &r.crossed {
+            assert!(c.value > c.limit, "{c:?}");
+        }
+        // The residual direction loads all four features equally.
+        assert!(
+            r.top.iter().all(|s| s.feature < 4 && s.value > 0.5),
+            "{r:?}"
+        );
+        assert!(r.scores.spe > 1.0);
+
+        let mut cleared = None;
+        for _ in 0..200 {
+            for f in rig.send(&sample(&g.nominal())) {
+                if let DeviceMsg::DriftCleared(c) = f.msg {
+                    cleared = Some(c);
+                }
+            }
+        }
+        let c = cleared.expect("drift cleared");
+        assert!(c.sample > r.sample);
+        assert!(!rig.line.0.get(), "line low again");
+        assert_eq!(rig.ep.detector().state(), DriftState::Watching);
+    }
+
+    #[test]
+    fn score_reports_equal_the_detector_bit_for_bit() {
+        let mut rig: Rig = Rig::new();
+        let mut reference = Detector::from_file(&file_of(&model(1, 0.0))).unwrap();
+        assert_scores_match(&mut rig, &mut reference, &mixed_samples(11, 400));
+        // Off again: no more reports.
+        assert_eq!(
+            rig.ask(&HostMsg::SetReports { on: false }),
+            DeviceMsg::Ack(Ack::Reports { on: false })
+        );
+        let frames = rig.send(&sample(&[0.0; 4]));
+        assert!(reports(&frames).is_empty());
+    }
+
+    #[test]
+    fn faults_are_reported_when_they_start_and_counted_always() {
+        let mut rig: Rig = Rig::new();
+        let nan = [f32::NAN, 0.0, 0.0, 0.0];
+        let first = rig.send(&sample(&nan));
+        assert!(matches!(
+            first[0].msg,
+            DeviceMsg::SensorFault(s) if s.fault == FaultKind::NonFinite { feature: 0 } && s.sample == 0
+        ));
+        // The same fault again: counted, not reported.
+        assert!(rig.send(&sample(&nan)).is_empty());
+        // A different fault is a new start.
+        let other = rig.send(&sample(&[0.0; 2]));
+        assert!(matches!(
+            other[0].msg,
+            DeviceMsg::SensorFault(s) if s.fault == FaultKind::WrongLength { got: 2 }
+        ));
+        let DeviceMsg::Status(s) = rig.ask(&HostMsg::StatusQuery) else {
+            panic!()
+        };
+        assert_eq!(s.faults.non_finite, 2);
+        assert_eq!(s.faults.wrong_length, 1);
+        assert_eq!(s.samples, 3);
+        assert_eq!(s.last_event, Some(other[0].seq));
+        assert_eq!(s.link.frames_ok, 4);
+    }
+
+    #[test]
+    fn status_every_n_samples_and_reset() {
+        let mut rig: Rig = Rig::new();
+        rig.ep.set_config(Config {
+            status_every: 10,
+            ..Config::default()
+        });
+        let mut g = Lcg(3);
+        let mut statuses = Vec::new();
+        for _ in 0..35 {
+            for f in rig.send(&sample(&g.nominal())) {
+                if let DeviceMsg::Status(s) = f.msg {
+                    statuses.push(s.samples);
+                }
+            }
+        }
+        assert_eq!(statuses, vec![10, 20, 30]);
+        assert_eq!(
+            rig.ask(&HostMsg::ResetStats),
+            DeviceMsg::Ack(Ack::StatsReset)
+        );
+        assert_eq!(rig.ep.detector().samples(), 0);
+        assert_eq!(rig.ep.detector().state(), DriftState::Priming);
+        let DeviceMsg::Status(s) = rig.ask(&HostMsg::StatusQuery) else {
+            panic!()
+        };
+        assert_eq!(s.state, State::Priming);
+        assert_eq!(s.samples, 0);
+    }
+}
+
+mod upload {
+    use super::*;
+
+    #[test]
+    fn a_second_valid_model_switches() {
+        let mut rig: Rig = Rig::new();
+        let two = model(2, 0.25);
+        let bytes = file_of(&two);
+        let answers = rig.upload(&bytes, wire::crc32(&bytes));
+        assert_eq!(refusal(&answers), None, "{answers:?}");
+        assert_eq!(
+            answers[0],
+            DeviceMsg::Ack(Ack::UploadOpen {
+                slot: Slot::B,
+                total: bytes.len() as u32
+            })
+        );
+        let chunks = bytes.len().div_ceil(MAX_CHUNK);
+        assert_eq!(answers.len(), chunks + 2);
+        assert_eq!(
+            answers[chunks],
+            DeviceMsg::Ack(Ack::ChunkTaken {
+                next: bytes.len() as u32
+            })
+        );
+        assert_eq!(switched(&answers), Some((Slot::B, 2, 2)));
+        assert_eq!(rig.ep.active_slot(), Some(Slot::B));
+        assert_eq!(rig.ep.detector().model().meta.id, 2);
+        assert_eq!(rig.ep.slots().record(Slot::B).unwrap().generation, 2);
+
+        // The new model scores exactly like a fresh detector on it.
+        let mut reference = Detector::from_file(&bytes).unwrap();
+        assert_scores_match(&mut rig, &mut reference, &mixed_samples(5, 120));
+
+        // A third goes to A, the slot not running, with generation 3; and a
+        // reboot picks it.
+        let three = file_of(&model(3, -0.25));
+        let answers = rig.upload(&three, wire::crc32(&three));
+        assert_eq!(switched(&answers), Some((Slot::A, 3, 3)));
+        let (_, slots, _) = rig.ep.release();
+        let ep = Endpoint::<_, _>::boot(slots, Line::default(), None).unwrap();
+        assert_eq!(ep.detector().model().meta.id, 3);
+        assert_eq!(ep.active_slot(), Some(Slot::A));
+    }
+
+    /// Runs `attack`, expects `want` as the first refusal, and checks that
+    /// the running model and its statistics are exactly as before.
+    fn refused_and_untouched(attack: impl FnOnce(&mut Rig) -> Vec<DeviceMsg>, want: Reason) {
+        let mut rig: Rig = Rig::new();
+        let warm = mixed_samples(21, 60);
+        let mut reference = Detector::from_file(&file_of(&model(1, 0.0))).unwrap();
+        assert_scores_match(&mut rig, &mut reference, &warm);
+        let before = rig.ep.status();
+
+        let answers = attack(&mut rig);
+        let r = refusal(&answers).unwrap_or_else(|| panic!("no refusal in {answers:?}"));
+        assert_eq!(r.reason, want, "{answers:?}");
+        assert_eq!(switched(&answers), None);
+        assert_eq!(rig.ep.active_slot(), Some(Slot::A));
+        assert_eq!(rig.ep.generation(), 1);
+        assert_eq!(rig.ep.detector().model().meta.id, 1);
+        let after = rig.ep.status();
+        assert_eq!(after.samples, before.samples);
+        assert_eq!(after.levels, before.levels);
+        // And it keeps scoring as if nothing had happened.
+        assert_scores_match(&mut rig, &mut reference, &mixed_samples(22, 80));
+    }
+
+    #[test]
+    fn wrong_transfer_crc() {
+        let bytes = file_of(&model(2, 0.25));
+        let crc = wire::crc32(&bytes);
+        refused_and_untouched(
+            |rig| rig.upload(&bytes, crc ^ 1),
+            Reason::TransferCrc {
+                expected: crc ^ 1,
+                computed: crc,
+            },
+        );
+    }
+
+    #[test]
+    fn damaged_file_with_a_matching_transfer_crc() {
+        let mut bytes = file_of(&model(2, 0.25));
+        bytes[30] ^= 0x01;
+        let Err(plumb_model::ModelError::BadCrc { stored, computed }) =
+            file::decode(&bytes, &Capacity::DEVICE)
+        else {
+            panic!("expected a CRC error")
+        };
+        refused_and_untouched(
+            |rig| rig.upload(&bytes, wire::crc32(&bytes)),
+            Reason::BadCrc { stored, computed },
+        );
+    }
+
+    #[test]
+    fn model_over_capacity() {
+        let d = 65usize;
+        let mut m = model(9, 0.0);
+        m.dims = Dims {
+            features: d as u16,
+            components: 1,
+            mixture: 1,
+        };
+        m.mean = vec![0.0; d];
+        m.scale = vec![1.0; d];
+        m.loadings = (0..d).map(|i| if i == 0 { 1.0 } else { 0.0 }).collect();
+        m.eigenvalues = vec![1.0];
+        m.weights = vec![1.0];
+        m.mix_means = vec![0.0];
+        m.mix_variances = vec![1.0];
+        let bytes = file_of(&m);
+        refused_and_untouched(
+            |rig| rig.upload(&bytes, wire::crc32(&bytes)),
+            Reason::OverCapacity {
+                dim: wire::dim_code(plumb_model::Dim::Features),
+                found: 65,
+                max: 64,
+            },
+        );
+    }
+
+    #[test]
+    fn model_with_a_nan_mean() {
+        let mut m = model(9, 0.0);
+        m.mean[2] = f32::NAN;
+        let bytes = file_unchecked(&m);
+        refused_and_untouched(
+            |rig| rig.upload(&bytes, wire::crc32(&bytes)),
+            Reason::NonFinite {
+                field: wire::field_code(plumb_model::Field::Mean),
+                index: 2,
+            },
+        );
+    }
+
+    #[test]
+    fn file_larger_than_a_slot() {
+        refused_and_untouched(
+            |rig| {
+                rig.send(&HostMsg::UploadBegin {
+                    total: SLOT as u32 + 1,
+                    crc: 0,
+                })
+                .into_iter()
+                .map(|f| f.msg)
+                .collect()
+            },
+            Reason::TooLarge {
+                total: SLOT as u32 + 1,
+                max: SLOT as u32,
+            },
+        );
+        refused_and_untouched(
+            |rig| vec![rig.ask(&HostMsg::UploadBegin { total: 0, crc: 0 })],
+            Reason::Empty,
+        );
+    }
+
+    #[test]
+    fn commit_before_the_last_chunk() {
+        let bytes = file_of(&model(2, 0.25));
+        let half = &bytes[..bytes.len() / 2];
+        let crc = wire::crc32(&bytes);
+        refused_and_untouched(
+            |rig| {
+                let mut a = vec![rig.ask(&HostMsg::UploadBegin {
+                    total: bytes.len() as u32,
+                    crc,
+                })];
+                for (i, c) in half.chunks(MAX_CHUNK).enumerate() {
+                    a.push(rig.ask(&HostMsg::UploadChunk {
+                        offset: (i * MAX_CHUNK) as u32,
+                        data: heapless::Vec::from_slice(c).unwrap(),
+                    }));
+                }
+                a.push(rig.ask(&HostMsg::UploadCommit));
+                a
+            },
+            Reason::Incomplete {
+                received: half.len() as u32,
+                total: bytes.len() as u32,
+            },
+        );
+    }
+
+    #[test]
+    fn truncated_file_announced_as_complete() {
+        let bytes = file_of(&model(2, 0.25));
+        let cut = &bytes[..bytes.len() - 9];
+        refused_and_untouched(
+            |rig| rig.upload(cut, wire::crc32(cut)),
+            Reason::Truncated {
+                needed: bytes.len() as u32,
+                got: cut.len() as u32,
+            },
+        );
+    }
+
+    #[test]
+    fn interrupted_by_a_new_begin() {
+        let bytes = file_of(&model(2, 0.25));
+        refused_and_untouched(
+            |rig| {
+                let total = bytes.len() as u32;
+                let crc = wire::crc32(&bytes);
+                let mut a = vec![rig.ask(&HostMsg::UploadBegin { total, crc })];
+                a.push(rig.ask(&HostMsg::UploadChunk {
+                    offset: 0,
+                    data: heapless::Vec::from_slice(&bytes[..MAX_CHUNK]).unwrap(),
+                }));
+                // A new begin drops the open upload (refused), then opens.
+                let again: Vec<DeviceMsg> = rig
+                    .send(&HostMsg::UploadBegin { total, crc })
+                    .into_iter()
+                    .map(|f| f.msg)
+                    .collect();
+                assert_eq!(
+                    again[1],
+                    DeviceMsg::Ack(Ack::UploadOpen {
+                        slot: Slot::B,
+                        total
+                    })
+                );
+                a.extend(again);
+                a
+            },
+            Reason::Abandoned {
+                received: MAX_CHUNK as u32,
+                total: bytes.len() as u32,
+            },
+        );
+    }
+
+    #[test]
+    fn protocol_mistakes_each_have_a_code() {
+        let bytes = file_of(&model(2, 0.25));
+        let total = bytes.len() as u32;
+        let crc = wire::crc32(&bytes);
+        let chunk = |offset: usize, len: usize| HostMsg::UploadChunk {
+            offset: offset as u32,
+            data: heapless::Vec::from_slice(&bytes[offset..offset + len]).unwrap(),
+        };
+        refused_and_untouched(|rig| vec![rig.ask(&chunk(0, 10))], Reason::NoUpload);
+        refused_and_untouched(
+            |rig| vec![rig.ask(&HostMsg::UploadCommit)],
+            Reason::NoUpload,
+        );
+        refused_and_untouched(
+            |rig| {
+                rig.ask(&HostMsg::UploadBegin { total, crc });
+                vec![rig.ask(&chunk(0, 10)), rig.ask(&chunk(20, 10))]
+            },
+            Reason::UnexpectedOffset {
+                expected: 10,
+                got: 20,
+            },
+        );
+        refused_and_untouched(
+            |rig| {
+                rig.ask(&HostMsg::UploadBegin { total: 100, crc });
+                vec![rig.ask(&chunk(0, 64)), rig.ask(&chunk(64, 64))]
+            },
+            Reason::Overrun {
+                end: 128,
+                total: 100,
+            },
+        );
+    }
+
+    #[test]
+    fn a_wrong_offset_keeps_the_upload_open() {
+        let mut rig: Rig = Rig::new();
+        let bytes = file_of(&model(2, 0.25));
+        let total = bytes.len() as u32;
+        rig.ask(&HostMsg::UploadBegin {
+            total,
+            crc: wire::crc32(&bytes),
+        });
+        let mut offset = 0usize;
+        let mut resent = false;
+        while offset < bytes.len() {
+            let len = MAX_CHUNK.min(bytes.len() - offset);
+            let msg = HostMsg::UploadChunk {
+                offset: offset as u32,
+                data: heapless::Vec::from_slice(&bytes[offset..offset + len]).unwrap(),
+            };
+            // Send the second chunk twice, as after a lost acknowledgement.
+            if offset == MAX_CHUNK && !resent {
+                rig.ask(&msg);
+                resent = true;
+                let DeviceMsg::Refused(r) = rig.ask(&msg) else {
+                    panic!()
+                };
+                assert_eq!(
+                    r.reason,
+                    Reason::UnexpectedOffset {
+                        expected: 2 * MAX_CHUNK as u32,
+                        got: MAX_CHUNK as u32
+                    }
+                );
+            } else {
+                rig.ask(&msg);
+            }
+            offset += len;
+        }
+        let done = rig.ask(&HostMsg::UploadCommit);
+        assert_eq!(switched(&[done]), Some((Slot::B, 2, 2)));
+    }
+
+    struct FailingSlots {
+        inner: RamSlots<SLOT>,
+        fail_commit: bool,
+    }
+
+    impl ModelSlots for FailingSlots {
+        fn capacity(&self) -> u32 {
+            self.inner.capacity()
+        }
+        fn erase(&mut self, slot: Slot) -> Result<(), SlotError> {
+            self.inner.erase(slot)
+        }
+        fn write(&mut self, slot: Slot, offset: u32, data: &[u8]) -> Result<(), SlotError> {
+            self.inner.write(slot, offset, data)
+        }
+        fn read(&self, slot: Slot) -> &[u8] {
+            self.inner.read(slot)
+        }
+        fn record(&self, slot: Slot) -> Option<SlotRecord> {
+            self.inner.record(slot)
+        }
+        fn commit(&mut self, slot: Slot, record: SlotRecord) -> Result<(), SlotError> {
+            if self.fail_commit {
+                return Err(SlotError::Device);
+            }
+            self.inner.commit(slot, record)
+        }
+    }
+
+    #[test]
+    fn a_storage_failure_at_the_record_keeps_the_old_model() {
+        let mut inner = RamSlots::new();
+        inner.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
+        let slots = FailingSlots {
+            inner,
+            fail_commit: true,
+        };
+        let mut ep = Endpoint::<_, _>::boot(slots, Line::default(), None).unwrap();
+        let mut pipe = Pipe::new(64);
+        let bytes = file_of(&model(2, 0.25));
+        let mut msgs = vec![HostMsg::UploadBegin {
+            total: bytes.len() as u32,
+            crc: wire::crc32(&bytes),
+        }];
+        for (i, c) in bytes.chunks(MAX_CHUNK).enumerate() {
+            msgs.push(HostMsg::UploadChunk {
+                offset: (i * MAX_CHUNK) as u32,
+                data: heapless::Vec::from_slice(c).unwrap(),
+            });
+        }
+        msgs.push(HostMsg::UploadCommit);
+        for m in &msgs {
+            pipe.to_device.extend(wire::encode_frame_vec(m));
+        }
+        while !pipe.to_device.is_empty() {
+            ep.poll(&mut pipe).unwrap();
+        }
+        let mut dec = DeviceFrameDecoder::new();
+        let mut rest = &pipe.from_device[..];
+        let mut last = None;
+        loop {
+            rest = dec.feed(rest);
+            match dec.take_message::<DeviceFrame>() {
+                Some(f) => last = Some(f.unwrap().msg),
+                None if rest.is_empty() => break,
+                None => {}
+            }
+        }
+        assert_eq!(
+            last,
+            Some(DeviceMsg::Refused(Refusal {
+                request: Request::UploadCommit,
+                reason: Reason::Storage
+            }))
+        );
+        assert_eq!(ep.detector().model().meta.id, 1);
+        assert_eq!(ep.active_slot(), Some(Slot::A));
+    }
+}
+
+mod resend {
+    use super::*;
+
+    /// Produces events: a fault start, a drift raise and a clear.
+    fn events<const R: usize>(rig: &mut Rig<R>) -> Vec<DeviceFrame> {
+        let mut g = Lcg(99);
+        let mut out = Vec::new();
+        let mut xs = vec![vec![f32::INFINITY, 0.0, 0.0, 0.0]];
+        xs.extend((0..60).map(|_| g.nominal()));
+        xs.extend((0..20).map(|_| g.drifted()));
+        xs.extend((0..200).map(|_| g.nominal()));
+        for x in xs {
+            out.extend(
+                rig.send(&sample(&x))
+                    .into_iter()
+                    .filter(|f| f.msg.is_retained()),
+            );
+        }
+        out
+    }
+
+    #[test]
+    fn resend_returns_the_retained_events_with_their_numbers() {
+        let mut rig: Rig = Rig::new();
+        let seen = events(&mut rig);
+        assert_eq!(seen.len(), 3, "{seen:?}");
+        let again = rig.send(&HostMsg::ResendFrom { seq: seen[0].seq });
+        assert_eq!(&again[..3], &seen[..]);
+        assert_eq!(
+            again[3].msg,
+            DeviceMsg::ResendDone(ResendDone {
+                from: seen[0].seq,
+                count: 3,
+                oldest: Some(seen[0].seq),
+                dropped: 0,
+            })
+        );
+        // From the middle: only the later ones.
+        let tail = rig.send(&HostMsg::ResendFrom { seq: seen[1].seq });
+        assert_eq!(&tail[..2], &seen[1..]);
+        // From the future: nothing but the summary.
+        let none = rig.send(&HostMsg::ResendFrom {
+            seq: rig.ep.next_seq(),
+        });
+        assert_eq!(none.len(), 1);
+    }
+
+    #[test]
+    fn a_full_ring_drops_the_oldest_and_says_so() {
+        let mut slots = RamSlots::new();
+        slots.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
+        let mut rig: Rig<4> = Rig::boot_with(slots, 5);
+        let mut seqs = Vec::new();
+        for i in 0..7 {
+            // Alternating faulted and clean samples: every fault is a start.
+            let faulted = rig.send(&sample(&[f32::NAN, 0.0, i as f32 * 0.01, 0.0]));
+            seqs.push(faulted[0].seq);
+            rig.send(&sample(&[0.0; 4]));
+        }
+        assert_eq!(rig.ep.retained(), (4, 3));
+        let again = rig.send(&HostMsg::ResendFrom { seq: 0 });
+        let resent: Vec<u32> = again[..4].iter().map(|f| f.seq).collect();
+        assert_eq!(resent, seqs[3..]);
+        assert_eq!(
+            again[4].msg,
+            DeviceMsg::ResendDone(ResendDone {
+                from: 0,
+                count: 4,
+                oldest: Some(seqs[3]),
+                dropped: 3,
+            })
+        );
+    }
+}
+
+mod hostile_input {
+    use super::*;
+
+    fn valid_requests() -> Vec<HostMsg> {
+        let bytes = file_of(&model(2, 0.25));
+        vec![
+            sample(&[0.1, 0.2, 0.3, 0.4]),
+            HostMsg::ResetStats,
+            HostMsg::SetReports { on: true },
+            HostMsg::UploadBegin {
+                total: bytes.len() as u32,
+                crc: wire::crc32(&bytes),
+            },
+            HostMsg::UploadChunk {
+                offset: 0,
+                data: heapless::Vec::from_slice(&bytes[..MAX_CHUNK]).unwrap(),
+            },
+            HostMsg::UploadCommit,
+            HostMsg::ResendFrom { seq: 0 },
+        ]
+    }
+
+    #[test]
+    fn no_single_bit_flip_is_accepted() {
+        let mut rig: Rig = Rig::new();
+        let mut g = Lcg(1);
+        for _ in 0..30 {
+            rig.send(&sample(&g.nominal()));
+        }
+        let before = rig.ep.status();
+        let ok_before = rig.ep.link_counters().frames_ok;
+        let mut flips = 0u32;
+        for msg in valid_requests() {
+            let frame = wire::encode_frame_vec(&msg);
+            for bit in 0..frame.len() * 8 {
+                let mut bad = frame.clone();
+                bad[bit / 8] ^= 1 << (bit % 8);
+                bad.push(0); // make sure the next frame starts clean
+                let answers = rig.send_raw(&bad);
+                assert!(answers.is_empty(), "{msg:?} bit {bit}: {answers:?}");
+                flips += 1;
+            }
+        }
+        let c = rig.ep.link_counters();
+        assert_eq!(c.frames_ok, ok_before);
+        assert!(c.crc_errors + c.framing_errors + c.undecodable + c.overflows >= flips);
+        let after = rig.ep.status();
+        assert_eq!(after.samples, before.samples);
+        assert_eq!(after.levels, before.levels);
+        assert_eq!(rig.ep.detector().model().meta.id, 1);
+        // Still answers a clean request.
+        assert!(matches!(
+            rig.ask(&HostMsg::StatusQuery),
+            DeviceMsg::Status(_)
+        ));
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(256))]
+
+        #[test]
+        fn garbage_is_never_accepted(
+            bytes in proptest::collection::vec(prop_oneof![Just(0u8), any::<u8>()], 0..2000),
+            max_read in 1usize..80,
+        ) {
+            let mut slots = RamSlots::new();
+            slots.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
+            let mut rig: Rig = Rig::boot_with(slots, max_read);
+            let answers = rig.send_raw(&bytes);
+            prop_assert!(answers.is_empty(), "{:?}", answers);
+            prop_assert_eq!(rig.ep.link_counters().frames_ok, 0);
+            prop_assert_eq!(rig.ep.detector().samples(), 0);
+        }
+
+        #[test]
+        fn requests_inside_garbage_are_handled(
+            noise in proptest::collection::vec(proptest::collection::vec(any::<u8>(), 0..60), 7),
+            max_read in 1usize..80,
+        ) {
+            let mut slots = RamSlots::new();
+            slots.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
+            let mut rig: Rig = Rig::boot_with(slots, max_read);
+            let mut stream = Vec::new();
+            let reqs = [
+                HostMsg::SetReports { on: true },
+                sample(&[0.1, 0.2, 0.3, 0.4]),
+                HostMsg::StatusQuery,
+            ];
+            for (req, junk) in reqs.iter().zip(&noise) {
+                stream.extend_from_slice(junk);
+                stream.push(0);
+                stream.extend(wire::encode_frame_vec(req));
+            }
+            let answers = rig.send_raw(&stream);
+            prop_assert_eq!(rig.ep.link_counters().frames_ok, 3);
+            prop_assert_eq!(answers.len(), 3);
+            prop_assert!(matches!(answers[1].msg, DeviceMsg::ScoreReport(_)));
+        }
+    }
+}
+
+#[test]
+fn footprint() {
+    use std::mem::size_of;
+    struct NoSlots;
+    impl ModelSlots for NoSlots {
+        fn capacity(&self) -> u32 {
+            0
+        }
+        fn erase(&mut self, _: Slot) -> Result<(), SlotError> {
+            Ok(())
+        }
+        fn write(&mut self, _: Slot, _: u32, _: &[u8]) -> Result<(), SlotError> {
+            Ok(())
+        }
+        fn read(&self, _: Slot) -> &[u8] {
+            &[]
+        }
+        fn record(&self, _: Slot) -> Option<SlotRecord> {
+            None
+        }
+        fn commit(&mut self, _: Slot, _: SlotRecord) -> Result<(), SlotError> {
+            Ok(())
+        }
+    }
+    let endpoint = size_of::<Endpoint<NoSlots, Line>>();
+    let detector = size_of::<Detector>();
+    println!(
+        "Endpoint<_, _, 32>: {endpoint} bytes (Detector {detector}, ring entry {}, \
+         host frame decoder {})",
+        size_of::<Endpoint<NoSlots, Line, 1>>() - size_of::<Endpoint<NoSlots, Line, 0>>(),
+        size_of::<wire::HostFrameDecoder>(),
+    );
+    assert!(endpoint < detector + 8 * 1024, "{endpoint}");
+}
