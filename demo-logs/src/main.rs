@@ -1,0 +1,185 @@
+//! `plumb-scenario`: writes the plumbline demo logs.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::time::Instant;
+
+use plumb_scenario::{write_bulk_holdout, write_demo, Config};
+
+const USAGE: &str = "\
+plumb-scenario: write the plumbline demo logs (invented warehouse tugger drive module)
+
+USAGE:
+    plumb-scenario --out <DIR> [OPTIONS]
+    plumb-scenario --holdout-rows <N> --holdout-out <DIR> [OPTIONS]
+
+Writes train/, holdout/ and drift/ (with drift/truth.csv) under --out, and/or
+a large nominal held-out set of --holdout-rows rows under --holdout-out.
+The same seed and sizes always give byte-identical files.
+
+OPTIONS:
+    --out <DIR>              Folder for the demo set (train/, holdout/, drift/)
+    --seed <N>               Master seed [default: the committed demo's seed]
+    --train-rows <N>         Rows per training log [default: 6000]
+    --holdout-log-rows <N>   Rows per committed held-out log [default: 6000]
+    --drift-rows <N>         Rows per drift log [default: 8000]
+    --drift-onset <N>        0-based row where drifts and faults start [default: 3000]
+    --holdout-rows <N>       Also write N rows of extra nominal held-out data
+    --holdout-out <DIR>      Folder for that data [default: <out>/generated]
+    --holdout-files <N>      Number of files to split it into
+                             [default: one per 125000 rows, at least 1]
+    -q, --quiet              Print nothing but errors
+    -h, --help               Print this help
+";
+
+struct Args {
+    out: Option<PathBuf>,
+    cfg: Config,
+    holdout_rows: Option<usize>,
+    holdout_out: Option<PathBuf>,
+    holdout_files: Option<usize>,
+    quiet: bool,
+}
+
+fn parse_count(flag: &str, value: &str) -> Result<usize, String> {
+    let cleaned: String = value.chars().filter(|&c| c != '_').collect();
+    cleaned
+        .parse::<usize>()
+        .map_err(|_| format!("{flag} expects a non-negative whole number, got `{value}`"))
+}
+
+fn parse_args(mut it: impl Iterator<Item = String>) -> Result<Option<Args>, String> {
+    let mut a = Args {
+        out: None,
+        cfg: Config::default(),
+        holdout_rows: None,
+        holdout_out: None,
+        holdout_files: None,
+        quiet: false,
+    };
+    while let Some(arg) = it.next() {
+        let (flag, inline) = match arg.split_once('=') {
+            Some((f, v)) if f.starts_with("--") => (f.to_string(), Some(v.to_string())),
+            _ => (arg.clone(), None),
+        };
+        let mut value = |flag: &str| -> Result<String, String> {
+            match inline.clone() {
+                Some(v) => Ok(v),
+                None => it.next().ok_or_else(|| format!("{flag} needs a value")),
+            }
+        };
+        match flag.as_str() {
+            "-h" | "--help" => return Ok(None),
+            "-q" | "--quiet" => a.quiet = true,
+            "--out" => a.out = Some(PathBuf::from(value(&flag)?)),
+            "--seed" => {
+                let v = value(&flag)?;
+                a.cfg.seed = v.parse::<u64>().map_err(|_| {
+                    format!(
+                        "--seed expects a whole number from 0 to {}, got `{v}`",
+                        u64::MAX
+                    )
+                })?;
+            }
+            "--train-rows" => a.cfg.train_rows_per_log = parse_count(&flag, &value(&flag)?)?,
+            "--holdout-log-rows" => {
+                a.cfg.holdout_rows_per_log = parse_count(&flag, &value(&flag)?)?
+            }
+            "--drift-rows" => a.cfg.drift_rows = parse_count(&flag, &value(&flag)?)?,
+            "--drift-onset" => a.cfg.drift_onset = parse_count(&flag, &value(&flag)?)?,
+            "--holdout-rows" => a.holdout_rows = Some(parse_count(&flag, &value(&flag)?)?),
+            "--holdout-out" => a.holdout_out = Some(PathBuf::from(value(&flag)?)),
+            "--holdout-files" => a.holdout_files = Some(parse_count(&flag, &value(&flag)?)?),
+            other => return Err(format!("unknown argument `{other}` (see --help)")),
+        }
+    }
+    if a.out.is_none() && a.holdout_rows.is_none() {
+        return Err(
+            "nothing to do: give --out <DIR> and/or --holdout-rows <N> (see --help)".into(),
+        );
+    }
+    if a.holdout_rows.is_none() && (a.holdout_out.is_some() || a.holdout_files.is_some()) {
+        return Err("--holdout-out and --holdout-files need --holdout-rows <N>".into());
+    }
+    if a.holdout_rows.is_some() && a.holdout_out.is_none() && a.out.is_none() {
+        return Err(
+            "--holdout-rows needs --holdout-out <DIR> (or --out <DIR>, to use <DIR>/generated)"
+                .into(),
+        );
+    }
+    Ok(Some(a))
+}
+
+fn file_summary(path: &std::path::Path) -> String {
+    let size = std::fs::metadata(path).map(|m| m.len()).unwrap_or(0);
+    format!("{} ({:.2} MB)", path.display(), size as f64 / 1e6)
+}
+
+fn run(a: Args) -> Result<(), String> {
+    if let Some(out) = &a.out {
+        let start = Instant::now();
+        let m = write_demo(out, &a.cfg)
+            .map_err(|e| format!("writing the demo set under {}: {e}", out.display()))?;
+        if !a.quiet {
+            println!("demo set (seed {}):", a.cfg.seed);
+            for p in m.train.iter().chain(&m.holdout) {
+                println!("  {}", file_summary(p));
+            }
+            for t in &m.drift {
+                println!(
+                    "  {}  [{} from row {}]",
+                    file_summary(&t.file),
+                    t.kind.as_str(),
+                    t.onset_row
+                );
+            }
+            println!("  {}", out.join("drift").join("truth.csv").display());
+            println!("done in {:.2} s", start.elapsed().as_secs_f64());
+        }
+    }
+    if let Some(rows) = a.holdout_rows {
+        let dir = match (&a.holdout_out, &a.out) {
+            (Some(d), _) => d.clone(),
+            (None, Some(o)) => o.join("generated"),
+            (None, None) => unreachable!("checked while parsing"),
+        };
+        let files = a
+            .holdout_files
+            .unwrap_or_else(|| rows.div_ceil(125_000).max(1));
+        let start = Instant::now();
+        let paths = write_bulk_holdout(&dir, a.cfg.seed, rows, files)
+            .map_err(|e| format!("writing {rows} held-out rows under {}: {e}", dir.display()))?;
+        if !a.quiet {
+            let plural = if paths.len() == 1 { "" } else { "s" };
+            println!(
+                "bulk held-out set: {rows} rows in {} file{plural}",
+                paths.len()
+            );
+            for p in &paths {
+                println!("  {}", file_summary(p));
+            }
+            println!("done in {:.2} s", start.elapsed().as_secs_f64());
+        }
+    }
+    Ok(())
+}
+
+fn main() -> ExitCode {
+    match parse_args(std::env::args().skip(1)) {
+        Ok(None) => {
+            print!("{USAGE}");
+            ExitCode::SUCCESS
+        }
+        Ok(Some(a)) => match run(a) {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(e) => {
+                eprintln!("plumb-scenario: error: {e}");
+                ExitCode::FAILURE
+            }
+        },
+        Err(e) => {
+            eprintln!("plumb-scenario: error: {e}");
+            ExitCode::from(2)
+        }
+    }
+}

@@ -1,0 +1,420 @@
+//! File-level checks of the demo set: determinism, CSV convention, ground
+//! truth, injected effects.
+
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use plumb_scenario::{
+    feature_table, header_line, read_truth, write_bulk_holdout, write_demo, Config, Manifest,
+    TruthKind, SAMPLE_PERIOD_S,
+};
+
+fn scratch(name: &str) -> PathBuf {
+    let dir =
+        std::env::temp_dir().join(format!("plumb-scenario-test-{}-{name}", std::process::id()));
+    let _ = fs::remove_dir_all(&dir);
+    fs::create_dir_all(&dir).unwrap();
+    dir
+}
+
+/// All checks on the default demo set share one generated copy, removed at
+/// the end.
+#[test]
+fn default_demo_set() {
+    let dir = scratch("default");
+    let m = write_demo(&dir, &Config::default()).unwrap();
+    let d = (dir.clone(), m);
+    header_follows_the_convention(&d);
+    time_column_counts_tenths(&d);
+    nominal_logs_contain_no_nan(&d);
+    truth_table_points_at_real_rows(&d);
+    dropout_is_nan_only_from_onset_and_only_in_its_features(&d);
+    gain_change_shifts_the_left_right_current_ratio_by_four_percent(&d);
+    drift_logs_ramp_or_step_where_declared(&d);
+    committed_demo_matches_the_generator(&d);
+    fs::remove_dir_all(&dir).unwrap();
+}
+
+type Demo = (PathBuf, Manifest);
+
+struct Log {
+    header: Vec<String>,
+    rows: Vec<Vec<f32>>,
+}
+
+fn read_log(path: &Path) -> Log {
+    let text = fs::read_to_string(path).unwrap();
+    assert!(!text.contains('\r'), "{}: CR in file", path.display());
+    assert!(text.ends_with('\n'), "{}: no final newline", path.display());
+    let mut lines = text.lines();
+    let header: Vec<String> = lines
+        .next()
+        .unwrap()
+        .split(',')
+        .map(str::to_string)
+        .collect();
+    let rows = lines
+        .enumerate()
+        .map(|(i, l)| {
+            let cells: Vec<f32> = l
+                .split(',')
+                .map(|c| {
+                    c.parse::<f32>()
+                        .unwrap_or_else(|_| panic!("{}: row {i}: bad cell `{c}`", path.display()))
+                })
+                .collect();
+            assert_eq!(
+                cells.len(),
+                header.len(),
+                "{}: row {i} has {} cells",
+                path.display(),
+                cells.len()
+            );
+            cells
+        })
+        .collect();
+    Log { header, rows }
+}
+
+fn col(log: &Log, name: &str) -> usize {
+    log.header
+        .iter()
+        .position(|h| h == name || h.starts_with(&format!("{name}[")))
+        .unwrap_or_else(|| panic!("no column {name}"))
+}
+
+fn all_files(dir: &Path) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    for sub in ["train", "holdout", "drift"] {
+        let mut v: Vec<PathBuf> = fs::read_dir(dir.join(sub))
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .collect();
+        v.sort();
+        out.extend(v);
+    }
+    out
+}
+
+#[test]
+fn same_seed_gives_identical_bytes_and_other_seed_differs() {
+    let small = Config {
+        seed: 99,
+        train_rows_per_log: 700,
+        holdout_rows_per_log: 500,
+        drift_rows: 900,
+        drift_onset: 400,
+    };
+    let a = scratch("det-a");
+    let b = scratch("det-b");
+    let c = scratch("det-c");
+    write_demo(&a, &small).unwrap();
+    write_demo(&b, &small).unwrap();
+    write_demo(
+        &c,
+        &Config {
+            seed: 100,
+            ..small.clone()
+        },
+    )
+    .unwrap();
+    let fa = all_files(&a);
+    assert_eq!(fa.len(), 6 + 2 + 5 + 1);
+    for p in &fa {
+        let rel = p.strip_prefix(&a).unwrap();
+        let x = fs::read(p).unwrap();
+        assert_eq!(
+            x,
+            fs::read(b.join(rel)).unwrap(),
+            "{} differs between runs",
+            rel.display()
+        );
+        if rel.extension().is_some_and(|e| e == "csv") && !rel.ends_with("truth.csv") {
+            assert_ne!(
+                x,
+                fs::read(c.join(rel)).unwrap(),
+                "{} does not depend on the seed",
+                rel.display()
+            );
+        }
+    }
+    for d in [a, b, c] {
+        fs::remove_dir_all(d).unwrap();
+    }
+}
+
+fn header_follows_the_convention(demo: &Demo) {
+    let (_, m) = demo;
+    let expected = header_line();
+    assert!(expected.starts_with("t[s],"));
+    let cols: Vec<&str> = expected.split(',').collect();
+    assert_eq!(cols.len(), 1 + feature_table().len());
+    for (c, (name, unit, _)) in cols[1..].iter().zip(feature_table()) {
+        let want = if unit.is_empty() {
+            name.to_string()
+        } else {
+            format!("{name}[{unit}]")
+        };
+        assert_eq!(*c, want);
+        assert!(name
+            .bytes()
+            .all(|b| b.is_ascii_lowercase() || b.is_ascii_digit() || b == b'_'));
+    }
+    assert!(
+        feature_table().iter().any(|f| f.1.is_empty()),
+        "no unitless feature"
+    );
+    let files = m
+        .train
+        .iter()
+        .chain(&m.holdout)
+        .cloned()
+        .chain(m.drift.iter().map(|t| t.file.clone()));
+    for f in files {
+        let text = fs::read_to_string(&f).unwrap();
+        assert_eq!(text.lines().next().unwrap(), expected, "{}", f.display());
+    }
+}
+
+fn time_column_counts_tenths(demo: &Demo) {
+    let (_, m) = demo;
+    let log = read_log(&m.train[0]);
+    assert_eq!(log.rows.len(), Config::default().train_rows_per_log);
+    for (i, r) in log.rows.iter().enumerate() {
+        assert_eq!(r[0], (i as f64 * SAMPLE_PERIOD_S) as f32);
+    }
+}
+
+fn nominal_logs_contain_no_nan(demo: &Demo) {
+    let (_, m) = demo;
+    for f in m.train.iter().chain(&m.holdout) {
+        let log = read_log(f);
+        assert!(
+            log.rows.iter().flatten().all(|v| v.is_finite()),
+            "{}",
+            f.display()
+        );
+    }
+    for t in m.drift.iter().filter(|t| t.kind == TruthKind::Drift) {
+        let log = read_log(&t.file);
+        assert!(
+            log.rows.iter().flatten().all(|v| v.is_finite()),
+            "{}",
+            t.file.display()
+        );
+    }
+}
+
+fn truth_table_points_at_real_rows(demo: &Demo) {
+    let (dir, m) = demo;
+    let truth = read_truth(&dir.join("drift").join("truth.csv")).unwrap();
+    assert_eq!(truth, m.drift);
+    let names: Vec<&str> = truth.iter().map(|t| t.scenario.as_str()).collect();
+    assert_eq!(
+        names,
+        [
+            "bearing_wear",
+            "gain_change",
+            "loose_mount",
+            "new_floor",
+            "sensor_dropout"
+        ]
+    );
+    for t in &truth {
+        assert!(t.file.is_file(), "{}", t.file.display());
+        let log = read_log(&t.file);
+        assert!(t.onset_row > 0 && t.onset_row < log.rows.len());
+        assert_eq!(log.rows[t.onset_row][0], t.onset_t_s as f32);
+        assert!((t.onset_t_s - t.onset_row as f64 * SAMPLE_PERIOD_S).abs() < 1e-9);
+        assert!(!t.features.is_empty());
+        for f in &t.features {
+            col(&log, f);
+        }
+        let expect_kind = if t.scenario == "sensor_dropout" {
+            TruthKind::Fault
+        } else {
+            TruthKind::Drift
+        };
+        assert_eq!(t.kind, expect_kind);
+    }
+    let text = fs::read_to_string(dir.join("drift").join("truth.csv")).unwrap();
+    assert!(text.starts_with("scenario,file,onset_row,onset_t_s,kind,features\n"));
+    assert!(text.contains("\ngain_change,gain_change.csv,3000,300.0,drift,motor_current_left\n"));
+}
+
+fn dropout_is_nan_only_from_onset_and_only_in_its_features(demo: &Demo) {
+    let (_, m) = demo;
+    let t = m
+        .drift
+        .iter()
+        .find(|t| t.scenario == "sensor_dropout")
+        .unwrap();
+    let log = read_log(&t.file);
+    let affected: Vec<usize> = t.features.iter().map(|f| col(&log, f)).collect();
+    let mut nan_rows = 0;
+    for (i, r) in log.rows.iter().enumerate() {
+        let nan: Vec<usize> = (0..r.len()).filter(|&k| r[k].is_nan()).collect();
+        if i < t.onset_row {
+            assert!(nan.is_empty(), "NaN before onset at row {i}");
+        } else if !nan.is_empty() {
+            assert_eq!(nan, affected, "row {i}: NaN in other columns");
+            nan_rows += 1;
+        }
+    }
+    assert!(
+        log.rows[t.onset_row][affected[0]].is_nan(),
+        "the first burst starts at the onset"
+    );
+    let post = log.rows.len() - t.onset_row;
+    assert!(
+        nan_rows > 20 && nan_rows < post / 4,
+        "{nan_rows} NaN rows of {post}"
+    );
+}
+
+fn gain_change_shifts_the_left_right_current_ratio_by_four_percent(demo: &Demo) {
+    let (_, m) = demo;
+    let t = m
+        .drift
+        .iter()
+        .find(|t| t.scenario == "gain_change")
+        .unwrap();
+    let log = read_log(&t.file);
+    let (l, r) = (
+        col(&log, "motor_current_left"),
+        col(&log, "motor_current_right"),
+    );
+    let ratio = |rows: &[Vec<f32>]| {
+        let sl: f64 = rows.iter().map(|x| f64::from(x[l])).sum();
+        let sr: f64 = rows.iter().map(|x| f64::from(x[r])).sum();
+        sl / sr
+    };
+    let before = ratio(&log.rows[..t.onset_row]);
+    let after = ratio(&log.rows[t.onset_row..]);
+    let change = after / before - 1.0;
+    assert!(
+        (change - 0.04).abs() < 0.01,
+        "ratio changed by {:.2}%",
+        100.0 * change
+    );
+}
+
+fn drift_logs_ramp_or_step_where_declared(demo: &Demo) {
+    let (_, m) = demo;
+    let mean = |log: &Log, c: usize, a: usize, b: usize| {
+        log.rows[a..b].iter().map(|x| f64::from(x[c])).sum::<f64>() / (b - a) as f64
+    };
+    for t in &m.drift {
+        let log = read_log(&t.file);
+        let n = log.rows.len();
+        let o = t.onset_row;
+        match t.scenario.as_str() {
+            "bearing_wear" => {
+                // Slow growth: the last stretch is clearly higher than the
+                // first one after onset, which is itself above nominal.
+                let c = col(&log, "vib_band5");
+                let pre = mean(&log, c, 0, o);
+                let early = mean(&log, c, o, o + 1000);
+                let late = mean(&log, c, n - 1000, n);
+                assert!(late > 2.0 * pre, "vib_band5 {pre} -> {late}");
+                assert!(
+                    late > 1.5 * early,
+                    "vib_band5 does not grow: {early} -> {late}"
+                );
+            }
+            "loose_mount" => {
+                let c = col(&log, "accel_rms_z");
+                assert!(mean(&log, c, o, n) > 1.3 * mean(&log, c, 0, o));
+            }
+            "new_floor" => {
+                let c = col(&log, "vib_band2");
+                assert!(mean(&log, c, o, n) > 2.0 * mean(&log, c, 0, o));
+            }
+            _ => {}
+        }
+    }
+}
+
+#[test]
+fn bulk_holdout_splits_rows_and_rejects_bad_sizes() {
+    let dir = scratch("bulk");
+    let paths = write_bulk_holdout(&dir, 5, 1001, 3).unwrap();
+    assert_eq!(paths.len(), 3);
+    let counts: Vec<usize> = paths.iter().map(|p| read_log(p).rows.len()).collect();
+    assert_eq!(counts, [334, 334, 333]);
+    for p in &paths {
+        assert!(p.starts_with(&dir));
+        assert!(read_log(p).rows.iter().flatten().all(|v| v.is_finite()));
+    }
+    let err = write_bulk_holdout(&dir, 5, 10, 0).unwrap_err();
+    assert_eq!(err.kind(), std::io::ErrorKind::InvalidInput);
+    assert!(write_bulk_holdout(&dir, 5, 2, 3).is_err());
+    fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn bad_config_and_bad_truth_are_reported() {
+    let dir = scratch("bad");
+    let cfg = Config {
+        drift_onset: 8000,
+        ..Config::default()
+    };
+    let e = write_demo(&dir, &cfg).unwrap_err();
+    assert_eq!(e.kind(), std::io::ErrorKind::InvalidInput);
+    assert!(e.to_string().contains("drift_onset"));
+    let p = dir.join("truth.csv");
+    fs::write(
+        &p,
+        "scenario,file,onset_row,onset_t_s,kind,features\nx,x.csv,12,1.2,broken,a\n",
+    )
+    .unwrap();
+    let e = read_truth(&p).unwrap_err();
+    assert_eq!(e.kind(), std::io::ErrorKind::InvalidData);
+    assert!(e.to_string().contains(":2:"), "{e}");
+    fs::write(
+        &p,
+        "scenario,file,onset_row,onset_t_s,kind,features\nx,x.csv,12,1.2,fault,a;b\n",
+    )
+    .unwrap();
+    let t = read_truth(&p).unwrap();
+    assert_eq!(t[0].file, dir.join("x.csv"));
+    assert_eq!(t[0].features, ["a", "b"]);
+    fs::remove_dir_all(&dir).unwrap();
+}
+
+fn committed_demo_matches_the_generator(demo: &Demo) {
+    // The files committed beside this crate must be exactly what the default
+    // configuration writes (regenerate with the command in README.md).
+    let committed = Path::new(env!("CARGO_MANIFEST_DIR"));
+    if !committed.join("drift").join("truth.csv").exists() {
+        eprintln!("no committed demo set found; skipping");
+        return;
+    }
+    let (dir, _) = demo;
+    for p in all_files(dir) {
+        let rel = p.strip_prefix(dir).unwrap();
+        let want = fs::read(&p).unwrap();
+        let have = fs::read(committed.join(rel)).unwrap_or_default();
+        assert!(
+            have == want,
+            "{} is out of date: regenerate with `cargo run -p plumb-scenario --release -- --out demo-logs`",
+            rel.display()
+        );
+    }
+}
+
+#[test]
+fn readme_lists_every_feature() {
+    let readme =
+        fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md")).unwrap();
+    for (name, unit, meaning) in feature_table() {
+        let unit = if unit.is_empty() { "(none)" } else { unit };
+        let row = format!("| `{name}` | {unit} |");
+        let line = readme.lines().find(|l| l.starts_with(&row));
+        let line = line.unwrap_or_else(|| panic!("README.md has no row for {name}"));
+        assert!(
+            line.ends_with(&format!("| {meaning} |")),
+            "README.md row for {name} is out of date"
+        );
+    }
+}
