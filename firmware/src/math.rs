@@ -4,6 +4,13 @@
 //! `std` or compiler intrinsics, so that a host build and a Cortex-M build give
 //! the same bits. With the `fast-math` feature, `exp` and `ln` come from
 //! `micromath` instead; both sides of a replay must then use the feature.
+//!
+//! Measured error of the `fast-math` pair against libm (`firmware/tests/fast_math.rs`,
+//! 200 001 points each): `exp` within 2.4e-3 relative on [−30, 0] (the
+//! log-sum-exp arguments), `ln` within 6.2e-5 absolute on [1, 8] (the sum it
+//! is applied to). The mixture NLL therefore moves by at most ≈ 2.5e-3
+//! (absolute) per sample — small beside its in-control spread, but not zero:
+//! limits calibrated without the feature are slightly off with it.
 
 /// e^x.
 #[inline]
