@@ -12,7 +12,7 @@
 //!   kind of damage it drops.
 //!
 //! Everything here is `no_std`, allocation-free (the `alloc` feature adds
-//! [`encode_frame_vec`]) and returns errors instead of panicking.
+//! `encode_frame_vec`) and returns errors instead of panicking.
 
 pub mod cobs;
 mod frame;

@@ -673,6 +673,18 @@ mod messages {
     }
 
     #[test]
+    fn documented_sizes() {
+        // PROTOCOL.md, "Framing".
+        assert_eq!(wire::PROTOCOL_VERSION, 1);
+        assert_eq!(MAX_HOST_MESSAGE, 258);
+        assert_eq!(MAX_HOST_FRAME, 265);
+        assert_eq!(MAX_DEVICE_MESSAGE, 128);
+        assert_eq!(MAX_DEVICE_FRAME, 134);
+        assert_eq!(MAX_CHUNK, 128);
+        assert_eq!(wire::FIRMWARE_LEN, 16);
+    }
+
+    #[test]
     fn sequence_order_wraps() {
         assert!(wire::seq_at_or_after(5, 5));
         assert!(wire::seq_at_or_after(6, 5));
