@@ -146,7 +146,10 @@ mod tests {
             "logs/a.csv:1207:5 (motor_current_left): expected a number, found \"12..3\""
         );
         assert_eq!(Location::file(p).to_string(), "logs/a.csv");
-        assert_eq!(Location::line(p, 1).named("x").to_string(), "logs/a.csv:1 (x)");
+        assert_eq!(
+            Location::line(p, 1).named("x").to_string(),
+            "logs/a.csv:1 (x)"
+        );
         assert_eq!(e.code, EXIT_BAD_INPUT);
     }
 }

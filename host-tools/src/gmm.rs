@@ -165,7 +165,14 @@ fn per_block<T: Send>(
         return blocks.into_iter().map(f).collect();
     }
     let (even, odd) = std::thread::scope(|s| {
-        let h = s.spawn(|| blocks.iter().skip(1).step_by(2).map(|b| f(b)).collect::<Vec<_>>());
+        let h = s.spawn(|| {
+            blocks
+                .iter()
+                .skip(1)
+                .step_by(2)
+                .map(|b| f(b))
+                .collect::<Vec<_>>()
+        });
         let even: Vec<T> = blocks.iter().step_by(2).map(|b| f(b)).collect();
         let odd = h.join().expect("EM worker thread panicked");
         (even, odd)
@@ -200,13 +207,14 @@ fn block_stats(block: &[f64], mix: &Mixture, norm: &[f64], prec: &[f64]) -> Stat
             best = best.max(lp[c]);
         }
         let mut sum = 0.0;
-        for v in &lp {
-            sum += (v - best).exp();
+        for v in lp.iter_mut() {
+            *v = (*v - best).exp();
+            sum += *v;
         }
-        let lse = best + sum.ln();
-        st.ll += lse;
+        st.ll += best + sum.ln();
+        let inv = 1.0 / sum;
         for c in 0..k {
-            let r = (lp[c] - lse).exp();
+            let r = lp[c] * inv;
             st.nk[c] += r;
             let sx = &mut st.sx[c * m..(c + 1) * m];
             let sxx = &mut st.sxx[c * m..(c + 1) * m];
@@ -329,7 +337,7 @@ pub struct FitOptions {
 }
 
 /// One EM run of a fit.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct RunInfo {
     /// Final lower bound.
     pub lower_bound: f64,
@@ -392,7 +400,10 @@ pub fn fit(
             converged: res.converged,
         });
         // Strictly greater: on a tie the earlier run wins.
-        if best.as_ref().is_none_or(|b| res.lower_bound > b.lower_bound) {
+        if best
+            .as_ref()
+            .is_none_or(|b| res.lower_bound > b.lower_bound)
+        {
             best = Some(res);
         }
     }
@@ -627,7 +638,12 @@ mod tests {
             ..EmOptions::default()
         };
         let collapsed = em_from(&data, init.clone(), &bare);
-        let min_bare = collapsed.mixture.variances.iter().cloned().fold(f64::MAX, f64::min);
+        let min_bare = collapsed
+            .mixture
+            .variances
+            .iter()
+            .cloned()
+            .fold(f64::MAX, f64::min);
         assert!(min_bare < 1e-5, "{min_bare}");
         let var = column_variances(&data, 2);
         let floor: Vec<f64> = var.iter().map(|v| 1e-3 * v).collect();

@@ -99,9 +99,7 @@ pub fn expand_paths(inputs: &[PathBuf]) -> Result<Vec<PathBuf>> {
                 .map_err(|e| Error::io(input, "list directory", &e))?
                 .filter_map(|entry| entry.ok().map(|e| e.path()))
                 .filter(|p| {
-                    p.is_file()
-                        && p.extension()
-                            .is_some_and(|x| x.eq_ignore_ascii_case("csv"))
+                    p.is_file() && p.extension().is_some_and(|x| x.eq_ignore_ascii_case("csv"))
                 })
                 .collect();
             if found.is_empty() {
@@ -137,10 +135,7 @@ pub fn read_units(path: &Path) -> Result<BTreeMap<String, String>> {
         if cells.len() != 2 {
             return Err(Error::at(
                 Location::line(path, line_no),
-                format!(
-                    "expected 2 fields (name,unit), found {}",
-                    cells.len()
-                ),
+                format!("expected 2 fields (name,unit), found {}", cells.len()),
             ));
         }
         let (name, unit) = (cells[0].trim(), cells[1].trim());
@@ -308,6 +303,7 @@ impl ScanStats {
 pub struct LogSet {
     files: Vec<LogFile>,
     labels: Vec<Label>,
+    time_unit: String,
     opts: ReadOptions,
 }
 
@@ -320,14 +316,13 @@ struct RawHeader {
 
 fn read_header(path: &Path) -> Result<RawHeader> {
     let mut f = File::open(path).map_err(|e| Error::io(path, "read", &e))?;
-    let bytes = f
-        .metadata()
-        .map_err(|e| Error::io(path, "read", &e))?
-        .len();
+    let bytes = f.metadata().map_err(|e| Error::io(path, "read", &e))?.len();
     let mut buf = Vec::new();
     let mut block = vec![0u8; 64 << 10];
     let end = loop {
-        let n = f.read(&mut block).map_err(|e| Error::io(path, "read", &e))?;
+        let n = f
+            .read(&mut block)
+            .map_err(|e| Error::io(path, "read", &e))?;
         buf.extend_from_slice(&block[..n]);
         if let Some(pos) = memchr::memchr(b'\n', &buf) {
             break pos;
@@ -429,9 +424,7 @@ impl LogSet {
     /// feature order. A later file missing a column, or with a column the
     /// first lacks, or with a different unit, is an error.
     pub fn open(paths: &[PathBuf], opts: ReadOptions) -> Result<LogSet> {
-        let first = paths
-            .first()
-            .ok_or_else(|| Error::input("no logs given"))?;
+        let first = paths.first().ok_or_else(|| Error::input("no logs given"))?;
         let h = parse_header(first, &opts)?;
         let labels: Vec<Label> = h
             .names
@@ -451,16 +444,22 @@ impl LogSet {
             ));
         }
         Self::check_units(&opts, paths, &h.names)?;
+        let time_unit = h.time.map(|t| h.units[t].clone()).unwrap_or_default();
         let mut set = LogSet {
             files: Vec::with_capacity(paths.len()),
             labels,
+            time_unit,
             opts,
         };
         set.files.push(set.layout(first, h, false)?);
         for p in &paths[1..] {
             let h = parse_header(p, &set.opts)?;
             let file = set.layout(p, h, false).map_err(|e| {
-                let msg = format!("{} (the first log, {}, sets the columns)", e.message, first.display());
+                let msg = format!(
+                    "{} (the first log, {}, sets the columns)",
+                    e.message,
+                    first.display()
+                );
                 Error { message: msg, ..e }
             })?;
             set.files.push(file);
@@ -487,10 +486,14 @@ impl LogSet {
         let mut set = LogSet {
             files: Vec::with_capacity(paths.len()),
             labels: labels.to_vec(),
+            time_unit: String::new(),
             opts,
         };
         for p in paths {
             let h = parse_header(p, &set.opts)?;
+            if set.files.is_empty() {
+                set.time_unit = h.time.map(|t| h.units[t].clone()).unwrap_or_default();
+            }
             let file = set.layout(p, h, true)?;
             set.files.push(file);
         }
@@ -579,6 +582,26 @@ impl LogSet {
     /// The reading options.
     pub fn options(&self) -> &ReadOptions {
         &self.opts
+    }
+
+    /// Unit of the time column in the first file (empty when not given).
+    pub fn time_unit(&self) -> &str {
+        &self.time_unit
+    }
+
+    /// Microseconds per unit of the time column: `s` (or no unit) 1e6,
+    /// `ms` 1e3, `us`/`µs` 1, `ns` 1e-3, `min` 6e7, `h` 3.6e9; `None` for any
+    /// other unit.
+    pub fn time_unit_us(&self) -> Option<f64> {
+        match self.time_unit.as_str() {
+            "" | "s" | "sec" => Some(1e6),
+            "ms" => Some(1e3),
+            "us" | "µs" | "μs" => Some(1.0),
+            "ns" => Some(1e-3),
+            "min" => Some(6e7),
+            "h" => Some(3.6e9),
+            _ => None,
+        }
     }
 
     /// Whether rows carry a time.
@@ -678,7 +701,16 @@ impl LogSet {
                 // Past the selection: stop reading this file.
                 let past = span_first.saturating_sub(2) >= range.end;
                 if !past {
-                    self.process_span(fi, file, span, span_first, &range, &map, &mut reduce, &mut stats)?;
+                    self.process_span(
+                        fi,
+                        file,
+                        span,
+                        span_first,
+                        &range,
+                        &map,
+                        &mut reduce,
+                        &mut stats,
+                    )?;
                 }
                 next_line += lines_in_span;
                 stage.advance(cut as u64);
@@ -735,7 +767,11 @@ impl LogSet {
             })
         } else {
             let ra = job(a, first_line);
-            let rb = if ra.is_ok() { job(b, b_first) } else { Ok(None) };
+            let rb = if ra.is_ok() {
+                job(b, b_first)
+            } else {
+                Ok(None)
+            };
             (ra, rb)
         };
         for part in [ra?, rb?].into_iter().flatten() {
@@ -934,7 +970,10 @@ mod tests {
         );
         assert_eq!(split_name_unit("ratio"), ("ratio", ""));
         assert_eq!(split_name_unit("a[b][m/s]"), ("a[b]", "m/s"));
-        assert_eq!(split_header_line("a,\"b,c[V]\",\"d\"\"\""), vec!["a", "b,c[V]", "d\""]);
+        assert_eq!(
+            split_header_line("a,\"b,c[V]\",\"d\"\"\""),
+            vec!["a", "b,c[V]", "d\""]
+        );
     }
 
     #[test]

@@ -400,7 +400,9 @@ mod tests {
         let mut s = 12345u64;
         for _ in 0..1000 {
             for j in 0..d {
-                s = s.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+                s = s
+                    .wrapping_mul(6364136223846793005)
+                    .wrapping_add(1442695040888963407);
                 let u = (s >> 11) as f64 / (1u64 << 53) as f64;
                 rows.push(1e8 + (j as f64) * u + u * u);
             }

@@ -1,0 +1,292 @@
+//! `plumb fit`: fit a model from nominal logs and write it.
+
+use crate::calibrate::CalibConfig;
+use crate::cli::{LogArgs, OutputArgs};
+use crate::error::{Error, Result, EXIT_CLEAN};
+use crate::fit::{self, FitConfig, Holdout, MixtureChoice};
+use crate::logs::{self, BadCells, LogSet};
+use crate::pca::Keep;
+use crate::progress::Progress;
+use crate::summary::Summary;
+use clap::Args;
+use std::path::PathBuf;
+
+/// Long help of `plumb fit`.
+pub const LONG_ABOUT: &str = "\
+Fit a model from logs of nominal operation and calibrate its alarm limits.
+
+Stages: standardise each feature (mean, ddof = 0 deviation); PCA on the correlation
+matrix, keeping enough components for --variance (or exactly --components); a diagonal
+Gaussian mixture on the latent scores by EM (--mixture N, or auto: the lowest BIC over
+1..=8); then calibration on held-out rows (by default the last 20 % of every log, or
+--holdout LOG...): each row is scored by the same detector the board runs, the limits
+are set for --false-alarm-rate, and the full drift state machine is run over the
+held-out logs to check it, widening limits where the logs need it.
+
+Memory: the logs stream from disk in 4 MiB blocks; the latent scores of the training
+rows are held in memory, about 8·m bytes per training row (m = components kept), e.g.
+4 million rows × 6 components ≈ 190 MB.
+
+The output is written atomically: nothing is left half-written on any error. The same
+logs and options always give the same bytes (--seed fixes the EM initialisation).";
+
+/// Parses `auto` or a positive count.
+fn parse_mixture(s: &str) -> std::result::Result<MixtureChoice, String> {
+    if s.eq_ignore_ascii_case("auto") {
+        return Ok(MixtureChoice::Auto { max: 8 });
+    }
+    match s.parse::<usize>() {
+        Ok(k) if k >= 1 => Ok(MixtureChoice::Fixed(k)),
+        _ => Err(format!("expected `auto` or a count ≥ 1, found {s:?}")),
+    }
+}
+
+/// Arguments of `plumb fit`.
+#[derive(Debug, Clone, Args)]
+pub struct FitArgs {
+    /// Logs of nominal operation: CSV files, or folders (every *.csv inside, sorted by name)
+    #[arg(value_name = "LOG", required = true)]
+    pub logs: Vec<PathBuf>,
+
+    /// Where to write the model file (.plumb)
+    #[arg(short, long, value_name = "FILE")]
+    pub out: PathBuf,
+
+    #[command(flatten)]
+    pub read: LogArgs,
+
+    /// Keep exactly N principal components
+    #[arg(long, value_name = "N", help_heading = "PCA")]
+    pub components: Option<usize>,
+
+    /// Keep the fewest components explaining this fraction of the variance
+    #[arg(
+        long,
+        value_name = "FRACTION",
+        default_value_t = 0.95,
+        conflicts_with = "components",
+        help_heading = "PCA"
+    )]
+    pub variance: f64,
+
+    /// Mixture components: a count, or `auto` for the lowest BIC over 1..=8
+    #[arg(long, value_name = "N|auto", default_value = "auto", value_parser = parse_mixture, help_heading = "Mixture")]
+    pub mixture: MixtureChoice,
+
+    /// EM runs from different k-means++ starts; the best log-likelihood wins
+    #[arg(long, value_name = "N", default_value_t = 4, help_heading = "Mixture")]
+    pub restarts: usize,
+
+    /// EM stops when the mean log-likelihood per row changes by less than this
+    #[arg(
+        long,
+        value_name = "TOL",
+        default_value_t = 1e-3,
+        help_heading = "Mixture"
+    )]
+    pub tol: f64,
+
+    /// Most EM iterations per run
+    #[arg(
+        long,
+        value_name = "N",
+        default_value_t = 100,
+        help_heading = "Mixture"
+    )]
+    pub max_iter: usize,
+
+    /// Seed of the EM starts (same seed, same logs: same bytes)
+    #[arg(long, value_name = "N", default_value_t = FitConfig::default().seed, help_heading = "Mixture")]
+    pub seed: u64,
+
+    /// Added to every mixture variance in each EM step
+    #[arg(
+        long,
+        value_name = "V",
+        default_value_t = 1e-6,
+        help_heading = "Mixture"
+    )]
+    pub reg_covar: f64,
+
+    /// Variance floor, as a fraction of each latent score's variance (stops collapse onto repeated points)
+    #[arg(
+        long,
+        value_name = "FRACTION",
+        default_value_t = 1e-3,
+        help_heading = "Mixture"
+    )]
+    pub var_floor: f64,
+
+    /// Calibrate on these logs instead of the tail of each training log
+    #[arg(long, value_name = "LOG", num_args = 1.., help_heading = "Calibration")]
+    pub holdout: Vec<PathBuf>,
+
+    /// Fraction at the end of each log held out for calibration
+    #[arg(
+        long,
+        value_name = "FRACTION",
+        default_value_t = 0.2,
+        conflicts_with = "holdout",
+        help_heading = "Calibration"
+    )]
+    pub holdout_fraction: f64,
+
+    /// Target false alarms per sample, all six charts together
+    #[arg(
+        long,
+        value_name = "RATE",
+        default_value_t = 1e-5,
+        help_heading = "Calibration"
+    )]
+    pub false_alarm_rate: f64,
+
+    /// CUSUM reference value k, in standard deviations of the monitored score
+    #[arg(
+        long,
+        value_name = "K",
+        default_value_t = 0.5,
+        help_heading = "Calibration"
+    )]
+    pub cusum_slack: f64,
+
+    /// EWMA smoothing constant λ in (0, 1]
+    #[arg(
+        long,
+        value_name = "LAMBDA",
+        default_value_t = 0.1,
+        help_heading = "Calibration"
+    )]
+    pub ewma_lambda: f64,
+
+    /// Samples after a reset before a flag may rise
+    #[arg(
+        long,
+        value_name = "N",
+        default_value_t = 50,
+        help_heading = "Drift states"
+    )]
+    pub warmup: u32,
+
+    /// Consecutive samples over a limit before a flag rises
+    #[arg(
+        long,
+        value_name = "N",
+        default_value_t = 3,
+        help_heading = "Drift states"
+    )]
+    pub raise_dwell: u16,
+
+    /// Consecutive calm samples before a flag clears
+    #[arg(
+        long,
+        value_name = "N",
+        default_value_t = 50,
+        help_heading = "Drift states"
+    )]
+    pub clear_dwell: u16,
+
+    /// Fewest samples a raised flag stays raised
+    #[arg(
+        long,
+        value_name = "N",
+        default_value_t = 100,
+        help_heading = "Drift states"
+    )]
+    pub min_hold: u32,
+
+    /// Calm means every chart below this fraction of its limit
+    #[arg(
+        long,
+        value_name = "FRACTION",
+        default_value_t = 0.5,
+        help_heading = "Drift states"
+    )]
+    pub clear_fraction: f64,
+
+    /// A feature further than this many scales from its mean is a sensor fault
+    #[arg(
+        long,
+        value_name = "Z",
+        default_value_t = 50.0,
+        help_heading = "Drift states"
+    )]
+    pub fault_z: f64,
+
+    /// Write a model over the device capacities (64 features, 16 components, 8 mixture components) for host use
+    #[arg(long)]
+    pub no_device_check: bool,
+
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+impl FitArgs {
+    /// The fit configuration these arguments ask for.
+    pub fn config(&self) -> FitConfig {
+        FitConfig {
+            keep: match self.components {
+                Some(n) => Keep::Count(n),
+                None => Keep::Variance(self.variance),
+            },
+            mixture: self.mixture,
+            restarts: self.restarts,
+            tol: self.tol,
+            max_iter: self.max_iter,
+            seed: self.seed,
+            reg_covar: self.reg_covar,
+            var_floor: self.var_floor,
+            calib: CalibConfig {
+                false_alarm_rate: self.false_alarm_rate,
+                cusum_slack: self.cusum_slack,
+                ewma_lambda: self.ewma_lambda,
+                warmup: self.warmup,
+                raise_dwell: self.raise_dwell,
+                clear_dwell: self.clear_dwell,
+                min_hold: self.min_hold,
+                clear_fraction: self.clear_fraction,
+                fault_z: self.fault_z,
+            },
+            device_check: !self.no_device_check,
+            threads: usize::from(self.read.threads),
+        }
+    }
+}
+
+/// Runs `plumb fit`.
+pub fn run(args: FitArgs) -> Result<u8> {
+    let cfg = args.config();
+    if args.out.is_dir() {
+        return Err(Error::input(format!(
+            "--out {} is a folder; expected a file name",
+            args.out.display()
+        )));
+    }
+    let opts = args.read.options(BadCells::Reject)?;
+    let paths = logs::expand_paths(&args.logs)?;
+    let train = LogSet::open(&paths, opts.clone())?;
+    let hold_set = if args.holdout.is_empty() {
+        None
+    } else {
+        let hpaths = logs::expand_paths(&args.holdout)?;
+        Some(LogSet::open_for_labels(&hpaths, train.labels(), opts)?)
+    };
+    let holdout = match &hold_set {
+        Some(set) => Holdout::Logs(set),
+        None => Holdout::Tail(args.holdout_fraction),
+    };
+    let progress = Progress::stderr(args.output.quiet);
+    let outcome = fit::fit(&train, holdout, &cfg, &progress)?;
+    let bytes = outcome
+        .file
+        .to_bytes()
+        .map_err(|e| Error::input(format!("the fitted model does not encode: {e}")))?;
+    fit::write_atomic(&args.out, &bytes)?;
+    let summary = Summary::from_file(&outcome.file)?.with_fit(outcome.report);
+    if args.output.json {
+        println!("{}", summary.to_json());
+    } else if !args.output.quiet {
+        print!("{}", summary.to_text());
+        println!("\nwrote {} ({} bytes)", args.out.display(), bytes.len());
+    }
+    Ok(EXIT_CLEAN)
+}

@@ -1,0 +1,584 @@
+//! The summary of a model, for `plumb fit` and `plumb inspect`: a plain
+//! struct that serialises to JSON, and a human rendering.
+//!
+//! [`Summary::from_file`] shows what a model file stores; a fit adds its
+//! [`FitReport`] (BIC table, calibration results, timings).
+//!
+//! Device memory estimate: RAM is `size_of::<plumb_firmware::Detector>()`
+//! (the detector holds the fixed-capacity `plumb_model::Model`, so it does
+//! not depend on the model's dimensions) in this host build; a 32-bit target
+//! differs by a few bytes of length fields and padding. Flash for one model
+//! slot is the encoded file without its label section.
+
+use crate::calibrate::JM_ALPHA;
+use crate::error::{Error, Result};
+use crate::fit::FitReport;
+use plumb_model::file::ModelFile;
+use plumb_model::ScoreLimits;
+use serde::Serialize;
+use std::fmt::Write as _;
+
+/// Identity and provenance.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ModelInfo {
+    /// Model id, hex.
+    pub id: String,
+    /// Schema fingerprint, hex.
+    pub schema: String,
+    /// Model file format version.
+    pub format_version: u16,
+    /// Creation time, seconds since the Unix epoch.
+    pub created_unix_s: u64,
+    /// Creation time, UTC, `YYYY-MM-DD hh:mm:ss`.
+    pub created_utc: String,
+    /// Training rows.
+    pub train_rows: u64,
+    /// Calibration rows.
+    pub calib_rows: u64,
+    /// Sample period in microseconds (0: unknown).
+    pub sample_period_us: u32,
+    /// Features.
+    pub d: usize,
+    /// Components kept.
+    pub m: usize,
+    /// Mixture components.
+    pub k: usize,
+}
+
+/// One feature.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FeatureRow {
+    /// Name (empty when the file has no labels).
+    pub name: String,
+    /// Unit.
+    pub unit: String,
+    /// Mean.
+    pub mean: f32,
+    /// Scale (ddof = 0 standard deviation).
+    pub scale: f32,
+}
+
+/// One kept component.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ComponentRow {
+    /// 1-based.
+    pub component: usize,
+    /// Eigenvalue.
+    pub eigenvalue: f32,
+    /// Share of the total variance.
+    pub ratio: f64,
+    /// Cumulative share.
+    pub cumulative: f64,
+}
+
+/// One mixture component.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct MixRow {
+    /// 1-based.
+    pub component: usize,
+    /// Weight.
+    pub weight: f32,
+    /// Mean per latent dimension.
+    pub means: Vec<f32>,
+    /// Variance per latent dimension.
+    pub variances: Vec<f32>,
+}
+
+/// Limits of one score.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LimitRow {
+    /// `spe`, `t2`, `nll`.
+    pub score: &'static str,
+    /// Stored limits.
+    #[serde(flatten)]
+    pub limits: LimitsJson,
+}
+
+/// [`ScoreLimits`] as JSON.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LimitsJson {
+    /// Per-sample limit on the raw score.
+    pub sample_limit: f32,
+    /// Centre of the transformed score.
+    pub center: f32,
+    /// Spread of the transformed score.
+    pub spread: f32,
+    /// CUSUM `k`.
+    pub cusum_slack: f32,
+    /// CUSUM `h`.
+    pub cusum_limit: f32,
+    /// EWMA limit on `u`.
+    pub ewma_limit: f32,
+}
+
+impl From<&ScoreLimits> for LimitsJson {
+    fn from(l: &ScoreLimits) -> Self {
+        LimitsJson {
+            sample_limit: l.sample_limit,
+            center: l.center,
+            spread: l.spread,
+            cusum_slack: l.cusum_slack,
+            cusum_limit: l.cusum_limit,
+            ewma_limit: l.ewma_limit,
+        }
+    }
+}
+
+/// The state-machine parameters.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct MonitorInfo {
+    /// Warm-up samples.
+    pub warmup: u32,
+    /// Hot samples to raise.
+    pub raise_dwell: u16,
+    /// Calm samples to clear.
+    pub clear_dwell: u16,
+    /// Fewest samples raised.
+    pub min_hold: u32,
+    /// Calm threshold fraction.
+    pub clear_fraction: f32,
+    /// EWMA λ.
+    pub ewma_lambda: f32,
+    /// Fault threshold in scales.
+    pub fault_z: f32,
+}
+
+/// Sizes.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct SizeInfo {
+    /// The model file with labels.
+    pub file_bytes: usize,
+    /// The model as a device stores it (no labels): flash per model slot.
+    pub device_image_bytes: usize,
+    /// `size_of::<plumb_model::Model>()`.
+    pub model_struct_bytes: usize,
+    /// `size_of::<plumb_firmware::Detector>()` (includes the model): RAM.
+    pub detector_ram_bytes: usize,
+}
+
+/// Everything `fit` and `inspect` print.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Summary {
+    /// Identity.
+    pub model: ModelInfo,
+    /// Features.
+    pub features: Vec<FeatureRow>,
+    /// Kept components.
+    pub components: Vec<ComponentRow>,
+    /// θ1, θ2, θ3 of the discarded components.
+    pub theta: [f32; 3],
+    /// Share of the variance left in the residual.
+    pub residual_ratio: f64,
+    /// Mixture.
+    pub mixture: Vec<MixRow>,
+    /// State machine.
+    pub monitor: MonitorInfo,
+    /// Limits per score.
+    pub limits: Vec<LimitRow>,
+    /// Jackson–Mudholkar SPE limit at α = 0.001 from θ (None if θ1 = 0).
+    pub spe_limit_jm: Option<f64>,
+    /// Sizes.
+    pub size: SizeInfo,
+    /// What the fit found (absent for `inspect`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub fit: Option<FitReport>,
+}
+
+/// `YYYY-MM-DD hh:mm:ss` (UTC) for seconds since the epoch, by the civil
+/// calendar algorithm of Hinnant ("days_from_civil", public domain).
+pub fn utc_string(secs: u64) -> String {
+    let days = (secs / 86_400) as i64;
+    let rem = secs % 86_400;
+    let z = days + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z - era * 146_097;
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let day = doy - (153 * mp + 2) / 5 + 1;
+    let month = if mp < 10 { mp + 3 } else { mp - 9 };
+    let year = yoe + era * 400 + i64::from(month <= 2);
+    format!(
+        "{year:04}-{month:02}-{day:02} {:02}:{:02}:{:02}",
+        rem / 3600,
+        rem % 3600 / 60,
+        rem % 60
+    )
+}
+
+impl Summary {
+    /// What a model file stores.
+    pub fn from_file(file: &ModelFile) -> Result<Summary> {
+        let model = &file.model;
+        let d = usize::from(model.dims.features);
+        let m = usize::from(model.dims.components);
+        let k = usize::from(model.dims.mixture);
+        let file_bytes = file
+            .to_bytes()
+            .map_err(|e| Error::input(format!("model does not encode: {e}")))?
+            .len();
+        let bare = ModelFile {
+            model: model.clone(),
+            labels: Vec::new(),
+        };
+        let device_image_bytes = bare
+            .to_bytes()
+            .map_err(|e| Error::input(format!("model does not encode: {e}")))?
+            .len();
+        let total: f64 = model.eigenvalues.iter().map(|l| f64::from(*l)).sum::<f64>()
+            + f64::from(model.theta[0]);
+        let mut cum = 0.0;
+        let components = model
+            .eigenvalues
+            .iter()
+            .enumerate()
+            .map(|(j, l)| {
+                let ratio = f64::from(*l) / total;
+                cum += ratio;
+                ComponentRow {
+                    component: j + 1,
+                    eigenvalue: *l,
+                    ratio,
+                    cumulative: cum,
+                }
+            })
+            .collect();
+        let features = (0..d)
+            .map(|i| FeatureRow {
+                name: file
+                    .labels
+                    .get(i)
+                    .map(|l| l.name.clone())
+                    .unwrap_or_default(),
+                unit: file
+                    .labels
+                    .get(i)
+                    .map(|l| l.unit.clone())
+                    .unwrap_or_default(),
+                mean: model.mean[i],
+                scale: model.scale[i],
+            })
+            .collect();
+        let mixture = (0..k)
+            .map(|c| MixRow {
+                component: c + 1,
+                weight: model.weights[c],
+                means: model.mix_means[c * m..(c + 1) * m].to_vec(),
+                variances: model.mix_variances[c * m..(c + 1) * m].to_vec(),
+            })
+            .collect();
+        let mp = &model.monitor;
+        Ok(Summary {
+            model: ModelInfo {
+                id: format!("{:08x}", model.meta.id),
+                schema: format!("{:016x}", model.meta.schema),
+                format_version: plumb_model::file::FORMAT_VERSION,
+                created_unix_s: model.meta.created_unix_s,
+                created_utc: utc_string(model.meta.created_unix_s),
+                train_rows: model.meta.train_rows,
+                calib_rows: model.meta.calib_rows,
+                sample_period_us: model.meta.sample_period_us,
+                d,
+                m,
+                k,
+            },
+            features,
+            components,
+            theta: model.theta,
+            residual_ratio: f64::from(model.theta[0]) / total,
+            mixture,
+            monitor: MonitorInfo {
+                warmup: mp.warmup,
+                raise_dwell: mp.raise_dwell,
+                clear_dwell: mp.clear_dwell,
+                min_hold: mp.min_hold,
+                clear_fraction: mp.clear_fraction,
+                ewma_lambda: mp.ewma_lambda,
+                fault_z: mp.fault_z,
+            },
+            limits: vec![
+                LimitRow {
+                    score: "spe",
+                    limits: (&mp.spe).into(),
+                },
+                LimitRow {
+                    score: "t2",
+                    limits: (&mp.t2).into(),
+                },
+                LimitRow {
+                    score: "nll",
+                    limits: (&mp.nll).into(),
+                },
+            ],
+            spe_limit_jm: crate::calibrate::jackson_mudholkar(model.theta.map(f64::from), JM_ALPHA),
+            size: SizeInfo {
+                file_bytes,
+                device_image_bytes,
+                model_struct_bytes: std::mem::size_of::<plumb_model::Model>(),
+                detector_ram_bytes: std::mem::size_of::<plumb_firmware::Detector>(),
+            },
+            fit: None,
+        })
+    }
+
+    /// Adds what a fit found.
+    pub fn with_fit(mut self, report: FitReport) -> Summary {
+        self.fit = Some(report);
+        self
+    }
+
+    /// Pretty JSON.
+    pub fn to_json(&self) -> String {
+        serde_json::to_string_pretty(self).unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"))
+    }
+
+    /// The human rendering.
+    pub fn to_text(&self) -> String {
+        let mut o = String::new();
+        let mi = &self.model;
+        let _ = writeln!(
+            o,
+            "plumbline model {}  (schema {}, format {})",
+            mi.id, mi.schema, mi.format_version
+        );
+        let _ = writeln!(
+            o,
+            "  {} features -> {} components -> {} mixture components",
+            mi.d, mi.m, mi.k
+        );
+        let _ = writeln!(
+            o,
+            "  fitted on {} rows, calibrated on {} held-out rows; logs dated {} UTC",
+            mi.train_rows, mi.calib_rows, mi.created_utc
+        );
+        if mi.sample_period_us > 0 {
+            let _ = writeln!(
+                o,
+                "  sample period {} us ({:.4} Hz)",
+                mi.sample_period_us,
+                1e6 / f64::from(mi.sample_period_us)
+            );
+        } else {
+            let _ = writeln!(o, "  sample period unknown");
+        }
+
+        let _ = writeln!(o, "\nPrincipal components (standardised features)");
+        let _ = writeln!(
+            o,
+            "  {:>4}  {:>12}  {:>9}  {:>10}",
+            "#", "eigenvalue", "explained", "cumulative"
+        );
+        for c in &self.components {
+            let _ = writeln!(
+                o,
+                "  {:>4}  {:>12.5}  {:>8.2}%  {:>9.2}%",
+                c.component,
+                c.eigenvalue,
+                100.0 * c.ratio,
+                100.0 * c.cumulative
+            );
+        }
+        let _ = writeln!(
+            o,
+            "  residual ({} discarded): {:.2}% of the variance; theta = {:.5}, {:.5}, {:.5}",
+            mi.d - mi.m,
+            100.0 * self.residual_ratio,
+            self.theta[0],
+            self.theta[1],
+            self.theta[2]
+        );
+
+        let _ = writeln!(
+            o,
+            "\nMixture (diagonal Gaussian over the {} latent scores)",
+            mi.m
+        );
+        let _ = writeln!(o, "  {:>4}  {:>8}", "#", "weight");
+        for c in &self.mixture {
+            let _ = writeln!(o, "  {:>4}  {:>8.4}", c.component, c.weight);
+        }
+        if let Some(fit) = &self.fit {
+            let mx = &fit.mixture;
+            if mx.auto {
+                let _ = writeln!(
+                    o,
+                    "  chosen by BIC (lower is better) on {} rows:",
+                    mx.bic_rows
+                );
+                let _ = writeln!(
+                    o,
+                    "  {:>4}  {:>16}  {:>14}  {:>5}",
+                    "k", "BIC", "mean loglik", "iters"
+                );
+                for r in &mx.bic {
+                    let mark = if r.k == mx.k { "  <" } else { "" };
+                    let _ = writeln!(
+                        o,
+                        "  {:>4}  {:>16.2}  {:>14.5}  {:>5}{mark}",
+                        r.k, r.bic, r.mean_ll, r.iterations
+                    );
+                }
+            } else if let Some(r) = mx.bic.first() {
+                let _ = writeln!(
+                    o,
+                    "  BIC {:.2}, mean log-likelihood {:.5}",
+                    r.bic, r.mean_ll
+                );
+            }
+            let per_iter = if mx.em_iterations > 0 {
+                mx.em_seconds / mx.em_iterations as f64
+            } else {
+                0.0
+            };
+            let _ = writeln!(
+                o,
+                "  EM: {} iterations in {:.2} s ({:.1} ms per iteration); runs of k = {}: {}",
+                mx.em_iterations,
+                mx.em_seconds,
+                1e3 * per_iter,
+                mx.k,
+                mx.runs
+                    .iter()
+                    .map(|r| format!("{:.5}{}", r.lower_bound, if r.converged { "" } else { "*" }))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            );
+        }
+
+        let _ = writeln!(
+            o,
+            "\nLimits (u = (g(score) - center) / spread; g = cube root)"
+        );
+        let _ = writeln!(
+            o,
+            "  {:<5} {:>13} {:>11} {:>10} {:>8} {:>9} {:>10}",
+            "score", "sample limit", "center", "spread", "CUSUM k", "CUSUM h", "EWMA limit"
+        );
+        for l in &self.limits {
+            let x = &l.limits;
+            let _ = writeln!(
+                o,
+                "  {:<5} {:>13.5} {:>11.5} {:>10.5} {:>8.3} {:>9.4} {:>10.5}",
+                l.score,
+                x.sample_limit,
+                x.center,
+                x.spread,
+                x.cusum_slack,
+                x.cusum_limit,
+                x.ewma_limit
+            );
+        }
+        match self.spe_limit_jm {
+            Some(q) => {
+                let _ = writeln!(
+                    o,
+                    "  SPE limit at alpha = {JM_ALPHA}: Jackson-Mudholkar {q:.5}, empirical 0.999 quantile {:.5}",
+                    self.limits[0].limits.sample_limit
+                );
+            }
+            None => {
+                let _ = writeln!(
+                    o,
+                    "  SPE limit (Jackson-Mudholkar): not defined, no residual variance"
+                );
+            }
+        }
+        let mo = &self.monitor;
+        let _ = writeln!(
+            o,
+            "  monitor: warm-up {} samples; raise after {} hot; clear after {} calm (below {} of each limit) \
+             and at least {} raised; EWMA lambda {}; fault beyond {} scales",
+            mo.warmup, mo.raise_dwell, mo.clear_dwell, mo.clear_fraction, mo.min_hold, mo.ewma_lambda, mo.fault_z
+        );
+
+        if let Some(fit) = &self.fit {
+            let c = &fit.calibration;
+            let _ = writeln!(o, "\nCalibration on held-out logs");
+            let _ = writeln!(
+                o,
+                "  {} rows scored ({} faulted, {} skipped); each of 6 charts designed for ARL0 = {:.0} \
+                 (CUSUM h = {:.4}, EWMA L = {:.4})",
+                c.scored, c.faults, c.skipped, c.chart_arl, c.cusum_h, c.ewma_l
+            );
+            if c.end_to_end {
+                let _ = writeln!(
+                    o,
+                    "  end-to-end detector run: {} flags in {} watched samples (target allows {}), {} round{}",
+                    c.flags,
+                    c.watched,
+                    c.allowed,
+                    c.rounds,
+                    if c.rounds == 1 { "" } else { "s" }
+                );
+                for s in &c.scores {
+                    if s.cusum_widened > 1.0 || s.ewma_widened > 1.0 {
+                        let _ = writeln!(
+                            o,
+                            "    {} widened: CUSUM x{:.3}, EWMA x{:.3}",
+                            s.score, s.cusum_widened, s.ewma_widened
+                        );
+                    }
+                }
+                let _ = writeln!(
+                    o,
+                    "  false-alarm rate {:.3e} per sample, 95% interval [{:.3e}, {:.3e}] ({}); target {:.1e}: {}",
+                    c.rate,
+                    c.rate_ci95[0],
+                    c.rate_ci95[1],
+                    c.ci_method,
+                    c.target_rate,
+                    if c.met_target { "met" } else { "NOT met" }
+                );
+            }
+            let _ = writeln!(
+                o,
+                "  rows: {} training ({} skipped), {} held out ({} skipped)",
+                fit.rows.train, fit.rows.train_skipped, fit.rows.holdout, fit.rows.holdout_skipped
+            );
+            let _ = writeln!(
+                o,
+                "  time: {}",
+                fit.timings
+                    .iter()
+                    .map(|t| format!("{} {:.2} s", t.stage, t.seconds))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            );
+        }
+
+        let s = &self.size;
+        let _ = writeln!(o, "\nSize");
+        let _ = writeln!(
+            o,
+            "  model file {} bytes; device image {} bytes (flash per model slot, no labels)",
+            s.file_bytes, s.device_image_bytes
+        );
+        let _ = writeln!(
+            o,
+            "  device RAM ~{} bytes: the detector with its fixed-capacity model ({} bytes of it), host layout",
+            s.detector_ram_bytes, s.model_struct_bytes
+        );
+        if let Some(fit) = &self.fit {
+            if !fit.warnings.is_empty() {
+                let _ = writeln!(o, "\nWarnings");
+                for w in &fit.warnings {
+                    let _ = writeln!(o, "  - {w}");
+                }
+            }
+        }
+        o
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn utc_dates() {
+        assert_eq!(utc_string(0), "1970-01-01 00:00:00");
+        // 2000-03-01 is day 11017; 951868800 s.
+        assert_eq!(utc_string(951_868_800 + 3661), "2000-03-01 01:01:01");
+        assert_eq!(utc_string(1_709_164_800), "2024-02-29 00:00:00");
+    }
+}

@@ -1,0 +1,429 @@
+//! The `plumb` binary end to end: bad input (exit code 2, the message names
+//! `path:line:column (column)`, no output file), help, determinism, inspect.
+
+mod common;
+
+use common::{join, lines, log_text, Scratch};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn plumb(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(args)
+        .output()
+        .expect("run plumb")
+}
+
+fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+fn s(p: &Path) -> &str {
+    p.to_str().unwrap()
+}
+
+/// Fast fit options for small logs.
+const FAST: [&str; 6] = [
+    "--mixture",
+    "2",
+    "--restarts",
+    "1",
+    "--quiet",
+    "--threads=2",
+];
+
+/// Runs `plumb fit LOGS --out OUT FAST`, expects exit 2, a message
+/// containing every `needle`, and no output file.
+fn fit_fails(dir: &Scratch, logs: &[&Path], extra: &[&str], needles: &[&str]) -> String {
+    let out = dir.path("model.plumb");
+    let mut args: Vec<&str> = vec!["fit"];
+    args.extend(logs.iter().map(|p| s(p)));
+    args.extend(["--out", s(&out)]);
+    args.extend(FAST);
+    args.extend(extra);
+    let o = plumb(&args);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(2), "stderr: {err}");
+    for n in needles {
+        assert!(err.contains(n), "expected {n:?} in: {err}");
+    }
+    assert!(!out.exists(), "output written despite the error");
+    let leftovers: Vec<PathBuf> = std::fs::read_dir(&dir.0)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.to_string_lossy().contains(".plumb.tmp"))
+        .collect();
+    assert!(leftovers.is_empty(), "temporary files left: {leftovers:?}");
+    err
+}
+
+fn edited(dir: &Scratch, name: &str, line: usize, f: impl Fn(&str) -> String) -> PathBuf {
+    let mut ls = lines(&log_text(4, 1000, 1));
+    ls[line - 1] = f(&ls[line - 1]);
+    dir.write(name, &join(&ls))
+}
+
+/// Replaces field `col` (1-based) of a CSV line.
+fn set_field(line: &str, col: usize, value: &str) -> String {
+    let mut f: Vec<&str> = line.split(',').collect();
+    f[col - 1] = value;
+    f.join(",")
+}
+
+#[test]
+fn ragged_row() {
+    let d = Scratch::new("ragged");
+    let p = edited(&d, "a.csv", 5, |l| {
+        l.rsplit_once(',').unwrap().0.to_string()
+    });
+    let want = format!(
+        "{}:5:5 (x3): expected 5 fields as in the header, found 4",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+    let p = edited(&d, "b.csv", 6, |l| format!("{l},1.0"));
+    let want = format!("{}:6:6 (beyond the header): expected 5 fields", p.display());
+    fit_fails(&d, &[&p], &[], &[&want]);
+}
+
+#[test]
+fn non_numeric_cell() {
+    let d = Scratch::new("text");
+    let p = edited(&d, "a.csv", 1207 % 1000, |l| set_field(l, 5, "12..3"));
+    let want = format!(
+        "{}:207:5 (x3): expected a number, found \"12..3\"",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+}
+
+#[test]
+fn empty_cell() {
+    let d = Scratch::new("empty");
+    let p = edited(&d, "a.csv", 9, |l| set_field(l, 2, ""));
+    let want = format!(
+        "{}:9:2 (x0): expected a number, found an empty cell",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want, "--skip-bad-rows"]);
+}
+
+#[test]
+fn nan_and_inf_cells() {
+    let d = Scratch::new("nan");
+    let p = edited(&d, "a.csv", 12, |l| set_field(l, 3, "NaN"));
+    let want = format!(
+        "{}:12:3 (x1): expected a finite number, found \"NaN\"",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+    let p = edited(&d, "b.csv", 13, |l| set_field(l, 4, "-inf"));
+    let want = format!(
+        "{}:13:4 (x2): expected a finite number, found \"-inf\"",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+}
+
+#[test]
+fn skip_bad_rows_counts_them() {
+    let d = Scratch::new("skip");
+    let mut ls = lines(&log_text(4, 1000, 1));
+    ls[11] = set_field(&ls[11], 3, "NaN");
+    ls[900] = set_field(&ls[900], 2, "");
+    let p = d.write("a.csv", &join(&ls));
+    let out = d.path("m.plumb");
+    let o = plumb(&[
+        "fit",
+        s(&p),
+        "--out",
+        s(&out),
+        "--mixture",
+        "2",
+        "--restarts",
+        "1",
+        "--skip-bad-rows",
+        "--json",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["fit"]["rows"]["train_skipped"], 1);
+    assert_eq!(v["fit"]["rows"]["holdout_skipped"], 1);
+    assert_eq!(v["fit"]["rows"]["train"], 799);
+}
+
+#[test]
+fn header_errors() {
+    let d = Scratch::new("header");
+    let p = edited(&d, "dup.csv", 1, |_| "t[s],x0[A],x1[V],x0[A],x3[V]".into());
+    let want = format!(
+        "{}:1:4 (x0): duplicate column name (first at column 2)",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+    let p = edited(&d, "blank.csv", 1, |_| "t[s],x0[A],,x2[A],x3[V]".into());
+    let want = format!(
+        "{}:1:3 (unnamed column): expected a column name",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+    let p = edited(&d, "unit_only.csv", 1, |_| {
+        "t[s],x0[A],[V],x2[A],x3[V]".into()
+    });
+    let want = format!(
+        "{}:1:3 (unnamed column): expected a column name, found \"[V]\"",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+    let p = d.write("empty.csv", "");
+    let want = format!("{}:1: expected a header row", p.display());
+    fit_fails(&d, &[&p], &[], &[&want]);
+    let p = edited(&d, "no_time.csv", 1, |_| {
+        "time[s],x0[A],x1[V],x2[A],x3[V]".into()
+    });
+    let want = format!("{}:1 (t): no time column \"t\"", p.display());
+    fit_fails(&d, &[&p], &[], &[&want, "--time-column"]);
+}
+
+#[test]
+fn columns_across_files() {
+    let d = Scratch::new("across");
+    let a = d.write("a.csv", &log_text(4, 1000, 1));
+    let b = edited(&d, "b.csv", 1, |_| "t[s],x0[A],x1[V],x3[V]".into());
+    // b now also has ragged rows, but the header is checked first.
+    let want = format!(
+        "{}:1 (x2): expected a column named \"x2\", found none",
+        b.display()
+    );
+    fit_fails(&d, &[&a, &b], &[], &[&want, &a.display().to_string()]);
+    let c = edited(&d, "c.csv", 1, |_| {
+        "t[s],x0[A],x1[V],x2[A],x3[V],x9[V]".into()
+    });
+    let want = format!(
+        "{}:1:6 (x9): unexpected column: not in the first log",
+        c.display()
+    );
+    fit_fails(&d, &[&a, &c], &[], &[&want]);
+    let u = edited(&d, "u.csv", 1, |_| "t[s],x0[mA],x1[V],x2[A],x3[V]".into());
+    let want = format!(
+        "{}:1:2 (x0): expected unit \"A\", found \"mA\"",
+        u.display()
+    );
+    fit_fails(&d, &[&a, &u], &[], &[&want]);
+}
+
+#[test]
+fn constant_column() {
+    let d = Scratch::new("const");
+    let mut ls = lines(&log_text(4, 1000, 1));
+    for l in ls.iter_mut().skip(1) {
+        *l = set_field(l, 3, "7.25");
+    }
+    let p = d.write("a.csv", &join(&ls));
+    let want = format!(
+        "{}:1:3 (x1): column is constant over the training rows (always 7.25)",
+        p.display()
+    );
+    fit_fails(&d, &[&p], &[], &[&want]);
+}
+
+#[test]
+fn too_few_rows() {
+    let d = Scratch::new("few");
+    let p = d.write("a.csv", &log_text(4, 90, 1));
+    let want = format!("{}: expected at least 100 training rows", p.display());
+    fit_fails(&d, &[&p], &[], &[&want, "give 72"]);
+    // Enough to train, too few to calibrate.
+    let p = d.write("b.csv", &log_text(4, 400, 1));
+    fit_fails(
+        &d,
+        &[&p],
+        &[],
+        &[
+            &p.display().to_string(),
+            "calibration needs at least 150 valid held-out rows",
+            "found 80",
+        ],
+    );
+}
+
+#[test]
+fn unreadable_inputs() {
+    let d = Scratch::new("unreadable");
+    let missing = d.path("nope.csv");
+    let want = format!("{}: cannot read:", missing.display());
+    fit_fails(&d, &[&missing], &[], &[&want]);
+    let sub = d.path("empty_dir");
+    std::fs::create_dir_all(&sub).unwrap();
+    let want = format!("{}: directory holds no *.csv logs", sub.display());
+    fit_fails(&d, &[&sub], &[], &[&want]);
+    let units = d.path("units.csv");
+    let a = d.write("a.csv", &log_text(4, 1000, 1));
+    let want = format!("{}: cannot read:", units.display());
+    fit_fails(&d, &[&a], &["--units", s(&units)], &[&want]);
+}
+
+#[test]
+fn over_device_capacity() {
+    let d = Scratch::new("capacity");
+    let p = d.write("a.csv", &log_text(65, 1000, 1));
+    fit_fails(
+        &d,
+        &[&p],
+        &[],
+        &["this build holds at most 64", "--no-device-check"],
+    );
+}
+
+#[test]
+fn failed_fit_keeps_an_existing_output() {
+    let d = Scratch::new("keep");
+    let out = d.write("model.plumb", "old");
+    let p = edited(&d, "a.csv", 9, |l| set_field(l, 2, "x"));
+    let o = plumb(&["fit", s(&p), "--out", s(&out), "--quiet"]);
+    assert_eq!(o.status.code(), Some(2));
+    assert_eq!(std::fs::read_to_string(&out).unwrap(), "old");
+}
+
+#[test]
+fn usage_errors_exit_2() {
+    assert_eq!(plumb(&[]).status.code(), Some(2));
+    assert_eq!(plumb(&["fit"]).status.code(), Some(2));
+    assert_eq!(
+        plumb(&["fit", "a.csv", "--out", "m.plumb", "--mixture", "0"])
+            .status
+            .code(),
+        Some(2)
+    );
+    assert_eq!(plumb(&["frobnicate"]).status.code(), Some(2));
+}
+
+#[test]
+fn help_teaches_and_states_safety() {
+    for args in [&["--help"][..], &["-h"], &["fit", "--help"]] {
+        let o = plumb(args);
+        assert_eq!(o.status.code(), Some(0));
+        let text = String::from_utf8_lossy(&o.stdout);
+        assert!(
+            text.contains("advisory monitor, not a safety function"),
+            "{text}"
+        );
+        assert!(
+            text.contains("safety system, local codes and licensed practice"),
+            "{text}"
+        );
+    }
+    let o = plumb(&["--help"]);
+    let text = String::from_utf8_lossy(&o.stdout);
+    for needle in ["fit", "inspect", "Exit codes", "2 bad input"] {
+        assert!(text.contains(needle), "{needle}: {text}");
+    }
+    let o = plumb(&["fit", "--help"]);
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(text.contains("8·m bytes per training row"), "{text}");
+}
+
+#[test]
+fn fit_is_byte_identical_and_inspectable() {
+    let d = Scratch::new("identical");
+    let a = d.write("a.csv", &log_text(5, 1500, 1));
+    let b = d.write("b.csv", &log_text(5, 1500, 2));
+    let m1 = d.path("m1.plumb");
+    let m2 = d.path("m2.plumb");
+    for (out, threads) in [(&m1, "2"), (&m2, "1")] {
+        let o = plumb(&[
+            "fit",
+            s(&a),
+            s(&b),
+            "--out",
+            s(out),
+            "--mixture",
+            "auto",
+            "--restarts",
+            "2",
+            "--quiet",
+            "--threads",
+            threads,
+        ]);
+        assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    }
+    let (x, y) = (std::fs::read(&m1).unwrap(), std::fs::read(&m2).unwrap());
+    assert_eq!(x, y, "same logs and seed must give the same bytes");
+
+    let o = plumb(&["inspect", s(&m1), "--json"]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["model"]["d"], 5);
+    assert_eq!(v["model"]["sample_period_us"], 10_000);
+    assert_eq!(v["features"][0]["name"], "x0");
+    assert_eq!(v["features"][0]["unit"], "A");
+    assert_eq!(v["model"]["train_rows"], 2400);
+    assert!(v.get("fit").is_none());
+    let o = plumb(&["inspect", s(&m1)]);
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        text.contains("Principal components") && text.contains("Jackson-Mudholkar"),
+        "{text}"
+    );
+}
+
+#[test]
+fn holdout_logs_and_units_sidecar() {
+    let d = Scratch::new("holdout");
+    let a = d.write("a.csv", &log_text(4, 800, 1));
+    // Hold-out log with its columns in another order and an extra column.
+    let mut ls = lines(&log_text(4, 400, 3));
+    for l in ls.iter_mut() {
+        let f: Vec<&str> = l.split(',').collect();
+        let extra = if f[0] == "t[s]" { "note" } else { "1" };
+        *l = [f[0], f[4], f[2], f[3], f[1], extra].join(",");
+    }
+    let h = d.write("h.csv", &join(&ls));
+    let units = d.write("units.csv", "name,unit\nx1,mV\n");
+    let out = d.path("m.plumb");
+    let o = plumb(&[
+        "fit",
+        s(&a),
+        "--holdout",
+        s(&h),
+        "--out",
+        s(&out),
+        "--mixture",
+        "1",
+        "--json",
+        "--units",
+        s(&units),
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["model"]["train_rows"], 800);
+    assert_eq!(v["model"]["calib_rows"], 400);
+    assert_eq!(v["features"][1]["unit"], "mV");
+}
+
+#[test]
+fn inspect_refuses_bad_files() {
+    let d = Scratch::new("inspect");
+    let p = d.write("bad.plumb", "definitely not a model");
+    let o = plumb(&["inspect", s(&p)]);
+    assert_eq!(o.status.code(), Some(2));
+    let want = format!(
+        "{}: not a usable model file: not a plumbline model file (bad magic)",
+        p.display()
+    );
+    assert!(stderr(&o).contains(&want), "{}", stderr(&o));
+    // A real model with one byte flipped: CRC mismatch.
+    let a = d.write("a.csv", &log_text(4, 1000, 1));
+    let m = d.path("m.plumb");
+    let o = plumb(&["fit", s(&a), "--out", s(&m), "--mixture", "1", "--quiet"]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let mut bytes = std::fs::read(&m).unwrap();
+    bytes[20] ^= 0x40;
+    std::fs::write(&m, &bytes).unwrap();
+    let o = plumb(&["inspect", s(&m)]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("CRC-32 mismatch"), "{}", stderr(&o));
+    let o = plumb(&["inspect", s(&d.path("missing.plumb"))]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("missing.plumb: cannot read"));
+}
