@@ -7,13 +7,13 @@
 //!   loadings, the diagonal Gaussian mixture, every limit of the streaming
 //!   logic), stored in fixed-capacity [`heapless`] vectors;
 //! * the model file (`.plumb`): magic, format version, lengths, a postcard
-//!   payload, a host-only label section and a CRC-32 ([`file`]);
+//!   payload, a host-only label section and a CRC-32 ([`mod@file`]);
 //! * the schema fingerprint that ties a model to the logs it was fitted on
 //!   ([`schema`]);
 //! * the capacities a device build accepts ([`Capacity`]).
 //!
 //! `#![no_std]` and allocation-free by default. The `alloc` feature adds
-//! [`ModelOwned`], the `Vec`-backed twin of [`Model`] that the host fills in and
+//! `ModelOwned`, the `Vec`-backed twin of [`Model`] that the host fills in and
 //! encodes; both encode to the same bytes. The byte layout is specified in
 //! `FORMAT.md` beside this crate.
 #![no_std]

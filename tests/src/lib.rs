@@ -74,7 +74,10 @@ pub fn read_csv(path: &Path) -> (Vec<String>, Vec<f64>, usize) {
         .collect();
     let mut values = Vec::new();
     for line in lines.filter(|l| !l.trim().is_empty()) {
-        values.extend(line.split(',').map(|c| c.trim().parse::<f64>().expect("number")));
+        values.extend(
+            line.split(',')
+                .map(|c| c.trim().parse::<f64>().expect("number")),
+        );
     }
     let d = header.len();
     (header, values, d)
