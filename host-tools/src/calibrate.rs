@@ -42,9 +42,9 @@ use plumb_model::{ModelOwned, MonitorParams, ScoreLimits};
 use serde::Serialize;
 
 /// Widening factor per round of the end-to-end check.
-pub const GROWTH: f64 = 1.15;
+pub const GROWTH: f64 = 1.25;
 /// Most rounds of the end-to-end check.
-pub const MAX_ROUNDS: usize = 20;
+pub const MAX_ROUNDS: usize = 25;
 /// Quantile of the raw held-out score used as the per-sample limit.
 pub const SAMPLE_QUANTILE: f64 = 0.999;
 /// Significance of the Jackson–Mudholkar SPE limit shown beside it.
@@ -259,14 +259,22 @@ pub fn wilson(x: u64, n: u64, z: f64) -> [f64; 2] {
     [(centre - half).max(0.0), (centre + half).min(1.0)]
 }
 
-/// Jackson & Mudholkar (1979) SPE limit at significance `alpha` from θ1..θ3.
+/// Jackson & Mudholkar (1979) SPE limit at significance `alpha` from θ1..θ3
+/// (None when undefined: no residual variance, or `h0` ≈ 0).
 pub fn jackson_mudholkar(theta: [f64; 3], alpha: f64) -> Option<f64> {
     let [t1, t2, t3] = theta;
     if !(t1 > 0.0 && t2 > 0.0) {
         return None;
     }
     let h0 = 1.0 - 2.0 * t1 * t3 / (3.0 * t2 * t2);
-    let c = arl::phi_inv(1.0 - alpha);
+    if h0.abs() < 1e-3 {
+        return None;
+    }
+    // (Q/θ1)^h0 is taken as normal. When one discarded eigenvalue dominates,
+    // h0 < 0 and that power decreases in Q: the upper tail of Q is then the
+    // lower tail of the power, so the normal quantile enters with its sign
+    // flipped.
+    let c = arl::phi_inv(1.0 - alpha) * h0.signum();
     let inner = c * (2.0 * t2 * h0 * h0).sqrt() / t1 + 1.0 + t2 * h0 * (h0 - 1.0) / (t1 * t1);
     let q = t1 * inner.powf(1.0 / h0);
     q.is_finite().then_some(q)
@@ -602,6 +610,15 @@ mod tests {
         let b = th(&[0.8, 0.5, 0.3, 0.2, 0.1, 0.07, 0.03]);
         assert!((jackson_mudholkar(b, 0.05).unwrap() - 4.908964).abs() < 1e-6);
         assert!((jackson_mudholkar(b, 0.01).unwrap() - 7.393989).abs() < 1e-6);
+        // One dominant eigenvalue among many small ones: h0 < 0. The limit
+        // must still lie above the mean θ1 and grow as α shrinks.
+        let mut ls = vec![0.2];
+        ls.extend(std::iter::repeat_n(0.03, 27));
+        let c = th(&ls);
+        assert!(1.0 - 2.0 * c[0] * c[2] / (3.0 * c[1] * c[1]) < 0.0);
+        let q05 = jackson_mudholkar(c, 0.05).unwrap();
+        let q001 = jackson_mudholkar(c, 0.001).unwrap();
+        assert!(q05 > c[0] && q001 > q05, "{q05} {q001}");
     }
 
     #[test]

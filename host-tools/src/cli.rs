@@ -64,6 +64,9 @@ pub enum Command {
     /// Show what a model file holds.
     #[command(long_about = cmd::inspect::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Inspect(cmd::inspect::InspectArgs),
+    /// Run logs through the firmware detector on the host and report drift flags.
+    #[command(long_about = cmd::replay::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Replay(cmd::replay::ReplayArgs),
 }
 
 /// Runs a parsed command line; returns the process exit code.
@@ -71,6 +74,7 @@ pub fn run(cli: Cli) -> Result<u8> {
     match cli.command {
         Command::Fit(args) => cmd::fit::run(args),
         Command::Inspect(args) => cmd::inspect::run(args),
+        Command::Replay(args) => cmd::replay::run(args),
     }
 }
 

@@ -12,6 +12,7 @@
 //! | [`arl`] | run lengths of CUSUM and EWMA charts (Markov chain), limit search |
 //! | [`calibrate`] | limits from held-out rows through the device detector |
 //! | [`fit`] | the fit pipeline, model id, atomic output |
+//! | [`replay`] | logs through the firmware detector on the host |
 //! | [`summary`] | human and JSON summary of a model (fit, inspect) |
 //! | [`cli`], [`cmd`] | the command line |
 //! | [`error`] | the error type: message, location, exit code |
@@ -34,5 +35,6 @@ pub mod gmm;
 pub mod logs;
 pub mod pca;
 pub mod progress;
+pub mod replay;
 pub mod rng;
 pub mod summary;

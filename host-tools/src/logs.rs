@@ -305,7 +305,15 @@ pub struct LogSet {
     labels: Vec<Label>,
     time_unit: String,
     opts: ReadOptions,
+    hints: Hints,
 }
+
+/// Where a scan of a file may resume: byte offset of a span start, bytes
+/// carried over into it, and the line number there. Keyed by file, first
+/// selected data line and block size, so a repeated scan of a file's tail
+/// (calibration rounds) seeks instead of reading the head again, and still
+/// sees the very same spans.
+type Hints = std::sync::Arc<std::sync::Mutex<BTreeMap<(usize, u64, usize), (u64, usize, u64)>>>;
 
 /// Header of one file as read.
 struct RawHeader {
@@ -450,6 +458,7 @@ impl LogSet {
             labels,
             time_unit,
             opts,
+            hints: Hints::default(),
         };
         set.files.push(set.layout(first, h, false)?);
         for p in &paths[1..] {
@@ -488,6 +497,7 @@ impl LogSet {
             labels: labels.to_vec(),
             time_unit: String::new(),
             opts,
+            hints: Hints::default(),
         };
         for p in paths {
             let h = parse_header(p, &set.opts)?;
@@ -678,8 +688,27 @@ impl LogSet {
             let mut buf: Vec<u8> = Vec::with_capacity(block * 2);
             let mut next_line = 2u64;
             let mut done = file.data_offset;
+            let key = (fi, range.start, block);
+            let hint = self.hints.lock().ok().and_then(|h| h.get(&key).copied());
+            if let Some((offset, carry, line)) = hint {
+                use std::io::{Seek, SeekFrom};
+                reader
+                    .seek(SeekFrom::Start(offset))
+                    .map_err(|e| Error::io(&file.path, "read", &e))?;
+                buf.resize(carry, 0);
+                let n = read_full(&mut reader, &mut buf)
+                    .map_err(|e| Error::io(&file.path, "read", &e))?;
+                buf.truncate(n);
+                stage.advance(offset - done);
+                done = offset;
+                next_line = line;
+            }
+            let mut candidate = None;
             let mut eof = false;
             while !eof {
+                if range.start > 0 && next_line - 2 <= range.start {
+                    candidate = Some((done, buf.len(), next_line));
+                }
                 let start = buf.len();
                 buf.resize(start + block, 0);
                 let n = read_full(&mut reader, &mut buf[start..])
@@ -721,6 +750,11 @@ impl LogSet {
                 }
             }
             stage.advance(file.bytes.saturating_sub(done));
+            if let (None, Some(c)) = (hint, candidate) {
+                if let Ok(mut h) = self.hints.lock() {
+                    h.insert(key, c);
+                }
+            }
         }
         Ok(stats)
     }

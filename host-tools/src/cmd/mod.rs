@@ -2,3 +2,4 @@
 
 pub mod fit;
 pub mod inspect;
+pub mod replay;
