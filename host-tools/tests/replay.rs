@@ -1,0 +1,211 @@
+//! `plumb replay` end to end on the demo logs: flags, JSON shape, trace,
+//! faults, exit codes, and that it is the firmware detector that runs.
+
+mod common;
+
+use common::Scratch;
+use plumb_firmware::Detector;
+use plumb_model::file::ModelFile;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+use std::sync::OnceLock;
+
+fn plumb(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(args)
+        .output()
+        .expect("run plumb")
+}
+
+fn demo(rel: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../demo-logs")
+        .join(rel)
+}
+
+/// One model fitted on the demo training logs, shared by the tests.
+fn model() -> &'static Path {
+    static DIR: OnceLock<(Scratch, PathBuf)> = OnceLock::new();
+    &DIR.get_or_init(|| {
+        let dir = Scratch::new("replay");
+        let out = dir.path("tugger.plumb");
+        let o = plumb(&[
+            "fit",
+            demo("train").to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+            "--mixture",
+            "4",
+            "--restarts",
+            "1",
+            "--quiet",
+        ]);
+        assert_eq!(
+            o.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        (dir, out)
+    })
+    .1
+}
+
+fn json(o: &Output) -> serde_json::Value {
+    serde_json::from_slice(&o.stdout).expect("JSON on stdout")
+}
+
+#[test]
+fn step_drift_is_flagged_after_onset_with_the_documented_json() {
+    let log = demo("drift/loose_mount.csv");
+    let o = plumb(&[
+        "replay",
+        model().to_str().unwrap(),
+        log.to_str().unwrap(),
+        "--json",
+    ]);
+    assert_eq!(o.status.code(), Some(1), "exit 1 when a flag rose");
+    let v = json(&o);
+    let l = &v["logs"][0];
+    assert_eq!(l["path"], log.to_str().unwrap());
+    assert_eq!(l["samples"], 8000);
+    assert_eq!(l["faults"], 0);
+    let flags = l["flags"].as_array().unwrap();
+    assert!(!flags.is_empty());
+    // Ground truth (demo-logs/drift/truth.csv): onset at row 3000. A flag
+    // before the onset would be a false alarm.
+    let first = flags[0]["raised_at"].as_u64().unwrap();
+    assert!((3000..3300).contains(&first), "first flag at {first}");
+    for f in flags {
+        assert!(
+            f["cleared_at"].is_null()
+                || f["cleared_at"].as_u64().unwrap() > f["raised_at"].as_u64().unwrap()
+        );
+        assert!(!f["scores"].as_array().unwrap().is_empty());
+        assert_eq!(f["top_features"].as_array().unwrap().len(), 3);
+    }
+}
+
+#[test]
+fn dropout_is_counted_as_faults_not_drift_and_trace_has_every_sample() {
+    let dir = Scratch::new("trace");
+    let trace = dir.path("trace.csv");
+    let log = demo("drift/sensor_dropout.csv");
+    let o = plumb(&[
+        "replay",
+        model().to_str().unwrap(),
+        log.to_str().unwrap(),
+        "--json",
+        "--trace",
+        trace.to_str().unwrap(),
+    ]);
+    let v = json(&o);
+    let l = &v["logs"][0];
+    let faults = l["faults"].as_u64().unwrap();
+    // Count the rows with a NaN cell in the log itself.
+    let text = std::fs::read_to_string(&log).unwrap();
+    let nan_rows = text.lines().skip(1).filter(|r| r.contains("NaN")).count() as u64;
+    assert!(nan_rows > 0);
+    assert_eq!(faults, nan_rows);
+    assert_eq!(l["fault_kinds"]["non_finite"], nan_rows);
+    let rows = std::fs::read_to_string(&trace).unwrap();
+    let mut lines = rows.lines();
+    assert!(lines.next().unwrap().starts_with("log,sample,t,spe,t2,nll"));
+    let body: Vec<&str> = lines.collect();
+    assert_eq!(body.len(), 8000);
+    assert_eq!(
+        body.iter().filter(|r| r.ends_with(",non-finite")).count() as u64,
+        nan_rows
+    );
+    // Faults before the onset: none (ground truth: dropout starts at row 3000).
+    assert!(body[..3000].iter().all(|r| !r.ends_with("non-finite")));
+}
+
+#[test]
+fn replay_is_the_firmware_detector() {
+    // The trace's scores equal Detector::update run directly on the parsed
+    // log, to the printed precision (shortest round-trip of f32).
+    let dir = Scratch::new("same");
+    let trace = dir.path("trace.csv");
+    let log = demo("drift/gain_change.csv");
+    plumb(&[
+        "replay",
+        model().to_str().unwrap(),
+        log.to_str().unwrap(),
+        "--quiet",
+        "--trace",
+        trace.to_str().unwrap(),
+    ]);
+    let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
+    let mut det = Detector::new(file.model.to_device().unwrap()).unwrap();
+    let text = std::fs::read_to_string(&log).unwrap();
+    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
+    let cols: Vec<usize> = file
+        .labels
+        .iter()
+        .map(|l| {
+            header
+                .iter()
+                .position(|h| h.split('[').next() == Some(l.name.as_str()))
+                .unwrap()
+        })
+        .collect();
+    let traced = std::fs::read_to_string(&trace).unwrap();
+    for (row, tr) in text.lines().skip(1).zip(traced.lines().skip(1)).take(4000) {
+        let cells: Vec<&str> = row.split(',').collect();
+        let x: Vec<f32> = cols
+            .iter()
+            .map(|&c| cells[c].parse::<f64>().unwrap() as f32)
+            .collect();
+        let o = det.update(&x);
+        let s = o.scores.unwrap();
+        let t: Vec<&str> = tr.split(',').collect();
+        assert_eq!(t[3].parse::<f32>().unwrap().to_bits(), s.spe.to_bits());
+        assert_eq!(t[4].parse::<f32>().unwrap().to_bits(), s.t2.to_bits());
+        assert_eq!(t[5].parse::<f32>().unwrap().to_bits(), s.nll.to_bits());
+    }
+}
+
+#[test]
+fn missing_column_is_bad_input_naming_file_and_column() {
+    let dir = Scratch::new("missing");
+    let text = std::fs::read_to_string(demo("holdout/robot4_day1.csv")).unwrap();
+    let cut: String = text
+        .lines()
+        .take(50)
+        .map(|l| {
+            let mut c: Vec<&str> = l.split(',').collect();
+            c.remove(3);
+            c.join(",") + "\n"
+        })
+        .collect();
+    let removed = text
+        .lines()
+        .next()
+        .unwrap()
+        .split(',')
+        .nth(3)
+        .unwrap()
+        .split('[')
+        .next()
+        .unwrap()
+        .to_string();
+    let log = dir.write("cut.csv", &cut);
+    let o = plumb(&["replay", model().to_str().unwrap(), log.to_str().unwrap()]);
+    assert_eq!(o.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(err.contains("cut.csv:1"), "{err}");
+    assert!(err.contains(&removed), "{err}");
+}
+
+#[test]
+fn nominal_log_from_a_new_robot_gives_exit_zero() {
+    let o = plumb(&[
+        "replay",
+        model().to_str().unwrap(),
+        demo("holdout/robot4_day1.csv").to_str().unwrap(),
+    ]);
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert_eq!(o.status.code(), Some(0), "{out}");
+    assert!(out.contains("0 of 1 logs raised a drift flag"), "{out}");
+}
