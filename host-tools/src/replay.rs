@@ -121,6 +121,8 @@ pub struct Step<'a> {
     pub log: usize,
     /// Log time of the sample, when the log has a time column.
     pub t: Option<f64>,
+    /// The sample as fed, in model feature order.
+    pub x: &'a [f32],
     /// What the detector said.
     pub outcome: &'a Outcome,
     /// The detector after the sample (statistics, state).
@@ -212,6 +214,7 @@ pub fn replay(
                 sink(Step {
                     log: fi,
                     t,
+                    x: &x,
                     outcome: &o,
                     detector: &det,
                 })?;
