@@ -443,11 +443,15 @@ fn model_id_is_the_crc_of_the_payload_with_id_zero() {
     let payload = plumb_model::file::split(&zeroed).unwrap().payload;
     assert_eq!(plumb_model::file::CRC.checksum(payload), id);
     // The schema fingerprint ties the model to the log columns.
-    let want = plumb_model::schema::fingerprint([("x0", "A"), ("x1", "V"), ("x2", "A"), ("x3", "V")]);
+    let want =
+        plumb_model::schema::fingerprint([("x0", "A"), ("x1", "V"), ("x2", "A"), ("x3", "V")]);
     assert_eq!(file.model.meta.schema, want);
     // Created time is the log's modification time, not the clock.
     let mtime = std::fs::metadata(&a).unwrap().modified().unwrap();
-    let secs = mtime.duration_since(std::time::UNIX_EPOCH).unwrap().as_secs();
+    let secs = mtime
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .as_secs();
     assert_eq!(file.model.meta.created_unix_s, secs);
 }
 
@@ -456,13 +460,25 @@ fn no_device_check_writes_a_host_only_model() {
     let d = Scratch::new("hostonly");
     let p = d.write("a.csv", &log_text(66, 1000, 1));
     let m = d.path("m.plumb");
-    let o = plumb(&["fit", s(&p), "--out", s(&m), "--mixture", "1", "--no-device-check", "--json"]);
+    let o = plumb(&[
+        "fit",
+        s(&p),
+        "--out",
+        s(&m),
+        "--mixture",
+        "1",
+        "--no-device-check",
+        "--json",
+    ]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(v["model"]["d"], 66);
     assert_eq!(v["fit"]["calibration"]["end_to_end"], false);
     let warnings = v["fit"]["warnings"].to_string();
-    assert!(warnings.contains("end-to-end detector check did not run"), "{warnings}");
+    assert!(
+        warnings.contains("end-to-end detector check did not run"),
+        "{warnings}"
+    );
     let o = plumb(&["inspect", s(&m)]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
 }
