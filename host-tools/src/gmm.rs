@@ -11,7 +11,9 @@
 //! * the M step sets `n_c = Σ r + 10 ε`, `ν = Σ r t / n_c`,
 //!   `v = Σ r t² / n_c − ν² + reg_covar`, `π = n_c / Σ n_c`; then each
 //!   variance is raised to its floor, if one is given (a floor of zero
-//!   leaves scikit-learn's update unchanged);
+//!   leaves scikit-learn's update unchanged). The fit uses a small fraction
+//!   of each latent dimension's total variance (common practice, no source):
+//!   it stops a component collapsing onto repeated points;
 //! * the reported log-likelihood of an iteration is the mean per-row
 //!   log-likelihood under the parameters *before* its M step (scikit-learn's
 //!   `lower_bound_`); EM stops when it changes by less than `tol`, or after

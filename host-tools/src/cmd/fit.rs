@@ -23,6 +23,17 @@ Gaussian mixture on the latent scores by EM (--mixture N, or auto: the lowest BI
 are set for --false-alarm-rate, and the full drift state machine is run over the
 held-out logs to check it, widening limits where the logs need it.
 
+Limits: per score, centre and spread are the mean and standard deviation of the
+transformed held-out score; the per-sample limit is its empirical 0.999 quantile (inverted
+distribution function: the ⌈0.999 n⌉-th smallest value). The false-alarm rate is split
+evenly over the six charts (3 scores × CUSUM and EWMA); each chart's limit gives an
+in-control average run length of 6 / rate for independent N(0, 1) input (Markov-chain
+method of Brook & Evans 1972). The summary reports the rate achieved on the held-out logs
+with a 95 % Wilson score interval, and the Jackson–Mudholkar SPE limit at α = 0.001 beside
+the empirical quantile. The drift-state defaults (warm-up 50, raise dwell 3, clear dwell
+50, minimum hold 100, clear fraction 0.5, fault beyond 50 scales) and the EM variance
+floor (a fraction of each latent score's variance) are common practice, no source.
+
 Memory: the logs stream from disk in 4 MiB blocks; the latent scores of the training
 rows are held in memory, about 8·m bytes per training row (m = components kept), e.g.
 4 million rows × 6 components ≈ 190 MB.
