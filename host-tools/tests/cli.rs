@@ -264,6 +264,16 @@ fn unreadable_inputs() {
 }
 
 #[test]
+fn output_folder_must_exist() {
+    let d = Scratch::new("outdir");
+    let a = d.write("a.csv", &log_text(4, 1000, 1));
+    let out = d.path("missing/m.plumb");
+    let o = plumb(&["fit", s(&a), "--out", s(&out), "--quiet"]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("does not exist"), "{}", stderr(&o));
+}
+
+#[test]
 fn over_device_capacity() {
     let d = Scratch::new("capacity");
     let p = d.write("a.csv", &log_text(65, 1000, 1));

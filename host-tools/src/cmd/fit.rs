@@ -272,6 +272,16 @@ pub fn run(args: FitArgs) -> Result<u8> {
             args.out.display()
         )));
     }
+    // Fail before the work, not after it, when the output cannot be placed.
+    if let Some(parent) = args.out.parent().filter(|p| !p.as_os_str().is_empty()) {
+        if !parent.is_dir() {
+            return Err(Error::input(format!(
+                "--out {}: folder {} does not exist",
+                args.out.display(),
+                parent.display()
+            )));
+        }
+    }
     let opts = args.read.options(BadCells::Reject)?;
     let paths = logs::expand_paths(&args.logs)?;
     let train = LogSet::open(&paths, opts.clone())?;
