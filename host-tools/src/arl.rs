@@ -426,6 +426,50 @@ mod tests {
     }
 
     #[test]
+    fn one_sided_charts_against_simulation() {
+        // Independent check of the one-sided chains the calibration uses:
+        // 10 000 simulated runs of each chart, as the detector runs it (start
+        // at 0, signal when the statistic exceeds the limit). The standard
+        // error of a mean run length near 500 is about 1 %, so 4 % is over
+        // 3.5 standard errors.
+        let mut rng = crate::rng::Rng::new(2024, 0);
+        let runs = 10_000;
+        let l = ewma_limit_for(0.1, 500.0).unwrap();
+        let limit = l * (0.1f64 / 1.9).sqrt();
+        let mut total = 0u64;
+        for _ in 0..runs {
+            let mut z = 0.0;
+            let mut n = 0u64;
+            loop {
+                n += 1;
+                z += 0.1 * (rng.normal() - z);
+                if z > limit {
+                    break;
+                }
+            }
+            total += n;
+        }
+        let mc = total as f64 / runs as f64;
+        assert!((mc / 500.0 - 1.0).abs() < 0.04, "EWMA L = {l}: simulated ARL {mc}");
+        let h = cusum_limit_for(0.5, 500.0).unwrap();
+        let mut total = 0u64;
+        for _ in 0..runs {
+            let mut c: f64 = 0.0;
+            let mut n = 0u64;
+            loop {
+                n += 1;
+                c = (c + rng.normal() - 0.5).max(0.0);
+                if c > h {
+                    break;
+                }
+            }
+            total += n;
+        }
+        let mc = total as f64 / runs as f64;
+        assert!((mc / 500.0 - 1.0).abs() < 0.04, "CUSUM h = {h}: simulated ARL {mc}");
+    }
+
+    #[test]
     fn root_finder() {
         let r = find_root(|x| x * x * x - 2.0, 0.0, 2.0, 1e-12).unwrap();
         assert!((r - 2f64.cbrt()).abs() < 1e-11);
