@@ -450,7 +450,10 @@ mod tests {
             total += n;
         }
         let mc = total as f64 / runs as f64;
-        assert!((mc / 500.0 - 1.0).abs() < 0.04, "EWMA L = {l}: simulated ARL {mc}");
+        assert!(
+            (mc / 500.0 - 1.0).abs() < 0.04,
+            "EWMA L = {l}: simulated ARL {mc}"
+        );
         let h = cusum_limit_for(0.5, 500.0).unwrap();
         let mut total = 0u64;
         for _ in 0..runs {
@@ -466,7 +469,10 @@ mod tests {
             total += n;
         }
         let mc = total as f64 / runs as f64;
-        assert!((mc / 500.0 - 1.0).abs() < 0.04, "CUSUM h = {h}: simulated ARL {mc}");
+        assert!(
+            (mc / 500.0 - 1.0).abs() < 0.04,
+            "CUSUM h = {h}: simulated ARL {mc}"
+        );
     }
 
     #[test]
