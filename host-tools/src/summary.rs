@@ -362,6 +362,35 @@ impl Summary {
             let _ = writeln!(o, "  sample period unknown");
         }
 
+        let _ = writeln!(o, "\nFeatures (standardised with these means and scales)");
+        let width = self
+            .features
+            .iter()
+            .map(|f| f.name.chars().count() + f.unit.chars().count() + 2)
+            .max()
+            .unwrap_or(4)
+            .max(7);
+        let _ = writeln!(
+            o,
+            "  {:>4}  {:<width$}  {:>12}  {:>12}",
+            "#", "feature", "mean", "scale"
+        );
+        for (i, f) in self.features.iter().enumerate() {
+            let label = if f.unit.is_empty() {
+                f.name.clone()
+            } else {
+                format!("{}[{}]", f.name, f.unit)
+            };
+            let _ = writeln!(
+                o,
+                "  {:>4}  {:<width$}  {:>12.5}  {:>12.5}",
+                i + 1,
+                label,
+                f.mean,
+                f.scale
+            );
+        }
+
         let _ = writeln!(o, "\nPrincipal components (standardised features)");
         let _ = writeln!(
             o,
