@@ -1,7 +1,10 @@
 #!/usr/bin/env bash
 # Build every board crate in release, print the image sizes, and prove the
-# emulator path: boot the mps2-an386 image in QEMU, push binary data through
-# its UART and check the echo byte for byte and the exit status.
+# emulator path: boot the mps2-an386 echo program in QEMU, push binary data
+# through its UART and check the echo byte for byte and the exit status; then
+# boot the detector endpoint, send it two requests and the end-of-run marker,
+# and check its report line. (The full end-to-end runs of the endpoint are
+# cargo tests: tests/tests/qemu.rs.)
 #
 #   firmware/boards/check.sh [--install-deps]
 #
@@ -59,12 +62,14 @@ build() {
 }
 
 build mps2-an386 plumb-board-mps2
-mps2_elf=$elf
+mps2_endpoint_elf=$elf
+mps2_elf="$here/mps2-an386/target/$target/release/plumb-board-mps2-echo"
+[[ -f "$mps2_elf" ]] || fail "no ELF at $mps2_elf"
 build blackpill-f411 plumb-board-f411
 f411_elf=$elf
 
 log "image sizes (text = flash code + rodata, data = flash + RAM, bss = RAM)"
-arm-none-eabi-size "$mps2_elf" "$f411_elf"
+arm-none-eabi-size "$mps2_endpoint_elf" "$mps2_elf" "$f411_elf"
 
 # ---------------------------------------------------------------- emulator
 work=$(mktemp -d)
@@ -139,5 +144,28 @@ run_echo() {
 
 run_echo wallclock 0
 run_echo icount 1
+
+# The endpoint: GreetingQuery and StatusQuery frames (bytes as in
+# shared-model/PROTOCOL.md, "Examples"), then 16 zero bytes, the emulator
+# board's end-of-run marker.
+run_endpoint() {
+    local out="$work/endpoint.bin" err="$work/endpoint-err.txt" rc=0
+    log "QEMU endpoint run: greeting query, status query, end marker"
+    printf '\006\010\277\147\331\334\000\006\001\033\337\005\245\000' >"$work/req.bin"
+    head -c 16 /dev/zero >>"$work/req.bin"
+    timeout "$qemu_timeout" "$here/mps2-an386/run-qemu.sh" "$mps2_endpoint_elf" \
+        <"$work/req.bin" >"$out" 2>"$err" || rc=$?
+    ((rc != 124)) || fail "QEMU timed out after ${qemu_timeout} s (endpoint)"
+    ((rc == 0)) || { cat "$err" >&2; fail "QEMU exit status $rc, expected 0 (endpoint)"; }
+    local report
+    report=$(tr -c '[:print:]\n' '.' <"$out" | grep -o 'plumb-board-mps2 done.*' || true)
+    printf '   %s\n' "$report"
+    [[ -n "$report" ]] || fail "endpoint report line missing"
+    [[ "$report" == *" frames_ok=2 "* ]] || fail "endpoint did not take both requests"
+    [[ "$report" == *" crc_errors=0 "* ]] || fail "endpoint saw CRC errors"
+    log "endpoint OK: greeting, two requests answered, clean exit"
+}
+
+run_endpoint
 
 log "all board checks passed"

@@ -1,5 +1,12 @@
-//! Link setup: put `memory.x` where the cortex-m-rt `link.x` script can find
-//! it and pass the linker script to the binaries of this crate.
+//! Link setup and the built-in model.
+//!
+//! * `memory.x` goes where the cortex-m-rt `link.x` script finds it, and the
+//!   binaries get `-Tlink.x`.
+//! * The model file compiled into `plumb-board-mps2` is `$PLUMB_MODEL` when
+//!   set (a path; relative paths are taken from this directory), else the
+//!   committed `default.plumb`. It is copied to `$OUT_DIR/builtin.plumb`,
+//!   which `src/main.rs` includes with `include_bytes!`. The file is checked
+//!   only for its magic here; the firmware validates it fully at boot.
 
 use std::env;
 use std::fs;
@@ -14,4 +21,23 @@ fn main() {
 
     println!("cargo:rustc-link-arg-bins=--nmagic");
     println!("cargo:rustc-link-arg-bins=-Tlink.x");
+
+    println!("cargo:rerun-if-env-changed=PLUMB_MODEL");
+    let model = match env::var_os("PLUMB_MODEL") {
+        Some(p) if !p.is_empty() => PathBuf::from(p),
+        _ => PathBuf::from("default.plumb"),
+    };
+    println!("cargo:rerun-if-changed={}", model.display());
+    let bytes = fs::read(&model).unwrap_or_else(|e| {
+        panic!(
+            "cannot read the model file {} (PLUMB_MODEL, or default.plumb): {e}",
+            model.display()
+        )
+    });
+    assert!(
+        bytes.starts_with(b"PLMD"),
+        "{} is not a plumbline model file (no PLMD magic)",
+        model.display()
+    );
+    fs::write(out.join("builtin.plumb"), &bytes).expect("write the model into OUT_DIR");
 }

@@ -23,6 +23,7 @@ impl CmsdkUartRegs {
     const DATA: usize = 0x00;
     const STATE: usize = 0x04;
     const CTRL: usize = 0x08;
+    const INTCLEAR: usize = 0x0C;
     const BAUDDIV: usize = 0x10;
 
     /// The register block of UART0. Only fixed, board-defined bases can be
@@ -77,6 +78,12 @@ impl CmsdkUartRegs {
     /// Write `CTRL`: bit0 TX enable, bit1 RX enable (interrupt enables above).
     pub fn set_ctrl(&self, value: u32) {
         self.write(Self::CTRL, value);
+    }
+
+    /// Write `INTCLEAR`: writing 1 clears an interrupt flag (bit0 TX, bit1
+    /// RX, bit2 TX overrun, bit3 RX overrun).
+    pub fn clear_interrupts(&self, mask: u32) {
+        self.write(Self::INTCLEAR, mask);
     }
 
     /// Write `BAUDDIV` (baud rate = UART clock / BAUDDIV, must be >= 16).
@@ -139,4 +146,76 @@ pub(crate) fn first_word_not(from: usize, to: usize, pattern: u32) -> usize {
         addr += 4;
     }
     to
+}
+
+/// Base address of the FPGA I/O block of the MPS2 images (LEDs, buttons,
+/// counters). Register `LED0` at +0x00: bit 0 and bit 1 drive the two user
+/// LEDs; a read returns the last value written.
+pub const FPGAIO_BASE: usize = 0x4002_8000;
+
+/// Reads the FPGAIO `LED0` register.
+pub(crate) fn fpgaio_led0() -> u32 {
+    let addr = FPGAIO_BASE as *const u32;
+    // SAFETY: `FPGAIO_BASE + 0x00` is the aligned, always-mapped LED0
+    // register of the MPS2 FPGA I/O block; a volatile read has no side effect
+    // on Rust-visible memory.
+    unsafe { ptr::read_volatile(addr) }
+}
+
+/// Writes the FPGAIO `LED0` register.
+pub(crate) fn set_fpgaio_led0(value: u32) {
+    let addr = FPGAIO_BASE as *mut u32;
+    // SAFETY: as in `fpgaio_led0`: an aligned device register that does not
+    // alias any Rust object. Only `drift_line::DriftLine` (one instance,
+    // claimed through an atomic flag) writes it.
+    unsafe { ptr::write_volatile(addr, value) }
+}
+
+/// A region of code memory reserved in `memory.x` (never written by the
+/// program), as a byte slice. `base` and `len` are constants of
+/// `slots::REGIONS`.
+pub(crate) fn code_region(base: usize, len: usize) -> &'static [u8] {
+    // SAFETY: the callers pass only the two slot regions of `memory.x`
+    // (`SLOT_A`, `SLOT_B`): always-mapped code memory, 4-byte aligned,
+    // non-null, that the linker places nothing in and the program never
+    // writes (only QEMU's loader fills it before reset), so an immutable
+    // `'static` slice over it is sound.
+    unsafe { core::slice::from_raw_parts(base as *const u8, len) }
+}
+
+/// Interrupt number of UART0's receive interrupt on the mps2-an386 image.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct Uart0RxIrq;
+
+// SAFETY: 0 is the NVIC line of UART0 RX on the AN385/AN386 images (TX is 1),
+// a valid interrupt number of this device.
+unsafe impl cortex_m::interrupt::InterruptNumber for Uart0RxIrq {
+    fn number(self) -> u16 {
+        0
+    }
+}
+
+/// Enables UART0's receive interrupt line in the NVIC. It is only ever
+/// *pending* with interrupts masked (see `link::Link::wait`), which wakes a
+/// `wfi`; should it be taken anyway, `DefaultHandler` clears it.
+pub(crate) fn unmask_uart0_rx() {
+    // SAFETY: unmasking can break a critical section that relies on this
+    // line being masked; nothing in this crate does, and the line's handler
+    // (`DefaultHandler` in `link`) only clears the UART interrupt flags.
+    unsafe { cortex_m::peripheral::NVIC::unmask(Uart0RxIrq) }
+}
+
+/// Clears a pending UART0 receive interrupt in the NVIC.
+pub(crate) fn unpend_uart0_rx() {
+    cortex_m::peripheral::NVIC::unpend(Uart0RxIrq);
+}
+
+/// Any device interrupt. Only UART0's receive line is unmasked, and it is
+/// normally only pending while interrupts are masked (see
+/// `uart::Uart0::sleep_until_rx`); if it is ever taken, clearing the UART's
+/// flags is all there is to do. (cortex-m-rt requires the `unsafe fn`
+/// signature; the body does nothing unsafe.)
+#[cortex_m_rt::exception]
+unsafe fn DefaultHandler(_irqn: i16) {
+    crate::uart::Uart0::clear_all_interrupts();
 }

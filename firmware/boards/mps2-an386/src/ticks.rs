@@ -56,6 +56,13 @@ impl Ticks {
         WRAPS.store(0, Ordering::Relaxed);
         syst.enable_interrupt();
         syst.enable_counter();
+        // The cleared counter reads 0 until its first reload, which `now`
+        // would take for a full period: wait (a few ticks at most) until the
+        // reload value is in, so readings only ever increase.
+        let mut spins = 0u32;
+        while SYST::get_current() == 0 && spins < 100_000 {
+            spins += 1;
+        }
         Self { _syst: syst }
     }
 

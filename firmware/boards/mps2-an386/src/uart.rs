@@ -16,6 +16,8 @@ const STATE_RX_FULL: u32 = 1 << 1;
 const STATE_RX_OVERRUN: u32 = 1 << 3;
 const CTRL_TX_EN: u32 = 1 << 0;
 const CTRL_RX_EN: u32 = 1 << 1;
+const CTRL_RX_IRQ_EN: u32 = 1 << 3;
+const INT_RX: u32 = 1 << 1;
 
 /// UART input clock of the MPS2 FPGA images (also the CPU clock).
 pub const UART_CLOCK_HZ: u32 = 25_000_000;
@@ -63,6 +65,7 @@ impl Uart0 {
             regs: CmsdkUartRegs::uart0(),
         };
         uart.configure(baud);
+        crate::mmio::unmask_uart0_rx();
         Some(uart)
     }
 
@@ -103,6 +106,34 @@ impl Uart0 {
         } else {
             false
         }
+    }
+
+    /// Sleeps (`wfi`) until a byte has arrived, without a lost wake-up: with
+    /// interrupts masked, the receive interrupt is enabled, the receive flag
+    /// checked, and only then the core sleeps; a pending interrupt wakes
+    /// `wfi` even while masked, and is cleared before interrupts are
+    /// unmasked again. Other interrupts (SysTick) also end the sleep, so
+    /// callers loop. Under QEMU this stops the emulated core from spinning
+    /// a host CPU while the link is idle.
+    pub fn sleep_until_rx(&mut self) {
+        cortex_m::interrupt::free(|_| {
+            if self.rx_full() {
+                return;
+            }
+            let ctrl = self.regs.ctrl();
+            self.regs.set_ctrl(ctrl | CTRL_RX_IRQ_EN);
+            if !self.rx_full() {
+                cortex_m::asm::wfi();
+            }
+            self.regs.set_ctrl(ctrl & !CTRL_RX_IRQ_EN);
+            self.regs.clear_interrupts(INT_RX);
+            crate::mmio::unpend_uart0_rx();
+        });
+    }
+
+    /// Clears UART0's interrupt flags (for the interrupt handler).
+    pub(crate) fn clear_all_interrupts() {
+        CmsdkUartRegs::uart0().clear_interrupts(0xF);
     }
 
     /// Blocking: wait for one byte.

@@ -1,4 +1,5 @@
-//! Placeholder application: a UART echo used to prove the emulator path.
+//! `plumb-board-mps2-echo`: a UART echo that proves the emulator path
+//! (`../check.sh` runs it byte for byte, with and without `-icount`).
 //!
 //! Protocol on UART0 (all lines end with `\n`):
 //! 1. The board prints [`GREETING`].
@@ -12,16 +13,17 @@
 //! `CALIB_INSTRUCTIONS / 40`; under QEMU `-icount shift=0` the two agree
 //! (within `tick_overhead`, normally 0), which checks the measurement method
 //! on every run. Without `-icount` both timing fields follow host time.
-//!
-//! Replace this module to run a different application on the same board
-//! support (`Board` gives it the UART, the tick counter and the stack paint).
 
+#![no_std]
+#![no_main]
+
+use cortex_m_rt::entry;
 use embedded_io::{Read, Write};
 
-use crate::text::write_field;
-use crate::ticks::INSTRUCTIONS_PER_TICK;
-use crate::uart::UartError;
-use crate::Board;
+use plumb_board_mps2::text::write_field;
+use plumb_board_mps2::ticks::INSTRUCTIONS_PER_TICK;
+use plumb_board_mps2::uart::UartError;
+use plumb_board_mps2::{semihost, Board};
 
 /// First line printed after reset.
 pub const GREETING: &[u8] = b"plumb-board-mps2 echo: send bytes, 0x04 ends\n";
@@ -32,11 +34,13 @@ const CALIB_LOOPS: u32 = 1_999_999;
 /// Instructions executed by the calibration loop.
 pub const CALIB_INSTRUCTIONS: u64 = 2 * (CALIB_LOOPS as u64 + 1);
 
-/// Run the application; `true` means success.
-pub fn run(board: &mut Board) -> bool {
+#[entry]
+fn main() -> ! {
+    let mut board = Board::take();
     // A UART error other than an overrun cannot happen on this board; treat
     // any as failure.
-    echo(board).unwrap_or(false)
+    let ok = echo(&mut board).unwrap_or(false);
+    semihost::exit(ok)
 }
 
 fn echo(board: &mut Board) -> Result<bool, UartError> {
