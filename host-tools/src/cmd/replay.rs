@@ -57,9 +57,8 @@ fn trace_header(w: &mut impl Write) -> std::io::Result<()> {
 fn trace_row(w: &mut impl Write, s: &Step<'_>) -> std::io::Result<()> {
     let o = s.outcome;
     write!(w, "{},{},", s.log, o.index)?;
-    match s.t {
-        Some(t) => write!(w, "{t}")?,
-        None => {}
+    if let Some(t) = s.t {
+        write!(w, "{t}")?;
     }
     match o.scores {
         Some(v) => write!(w, ",{},{},{}", v.spe, v.t2, v.nll)?,
