@@ -5,7 +5,7 @@
 //! faults, in the plumbline CSV convention.
 //!
 //! * [`write_demo`] writes the committed demo set (`train/`, `holdout/`,
-//!   `drift/` with `drift/truth.csv`);
+//!   `drift/`, and `truth.csv` giving each drift onset);
 //! * [`write_bulk_holdout`] writes any amount of extra nominal data;
 //! * [`read_truth`] parses the ground-truth table;
 //! * [`feature_table`] lists the columns.
@@ -97,7 +97,7 @@ pub struct Manifest {
     pub train: Vec<PathBuf>,
     /// Held-out nominal logs.
     pub holdout: Vec<PathBuf>,
-    /// Drift logs and their ground truth (as written to `drift/truth.csv`).
+    /// Drift logs and their ground truth (as written to `truth.csv`).
     pub drift: Vec<Truth>,
 }
 
@@ -121,7 +121,7 @@ impl TruthKind {
     }
 }
 
-/// One row of `drift/truth.csv`.
+/// One row of `truth.csv`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Truth {
     /// Scenario name, e.g. `bearing_wear`.
@@ -242,7 +242,7 @@ fn nominal_log(path: &Path, seed: u64, robot: u32, day: u32, rows: usize) -> io:
 
 /// Writes the demo set under `dir`: `train/robot{r}_day{d}.csv`,
 /// `holdout/robot{r}_day{d}.csv`, `drift/<scenario>.csv` and
-/// `drift/truth.csv`. Existing files of the same names are replaced; nothing
+/// `truth.csv`. Existing files of the same names are replaced; nothing
 /// else is touched. The returned paths start with `dir`.
 pub fn write_demo(dir: &Path, cfg: &Config) -> io::Result<Manifest> {
     cfg.validate()?;
@@ -278,7 +278,7 @@ pub fn write_demo(dir: &Path, cfg: &Config) -> io::Result<Manifest> {
         );
         csv::write_log(&path, &mut sim, cfg.drift_rows)?;
         table.push_str(d.scenario);
-        table.push(',');
+        table.push_str(",drift/");
         table.push_str(&name);
         table.push(',');
         write!(table, "{},", cfg.drift_onset).expect("String write");
@@ -297,8 +297,9 @@ pub fn write_demo(dir: &Path, cfg: &Config) -> io::Result<Manifest> {
             features: d.features.iter().map(|s| s.to_string()).collect(),
         });
     }
-    let truth_path = drift_dir.join("truth.csv");
-    let tmp = drift_dir.join("truth.csv.plumb.tmp");
+    // Beside the folders, not inside drift/: a folder of logs holds only logs.
+    let truth_path = dir.join("truth.csv");
+    let tmp = dir.join("truth.csv.plumb.tmp");
     fs::File::create(&tmp)
         .and_then(|mut f| f.write_all(table.as_bytes()))
         .and_then(|()| fs::rename(&tmp, &truth_path))

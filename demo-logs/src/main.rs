@@ -13,7 +13,7 @@ USAGE:
     plumb-scenario --out <DIR> [OPTIONS]
     plumb-scenario --holdout-rows <N> --holdout-out <DIR> [OPTIONS]
 
-Writes train/, holdout/ and drift/ (with drift/truth.csv) under --out, and/or
+Writes train/, holdout/ and drift/ (and truth.csv) under --out, and/or
 a large nominal held-out set of --holdout-rows rows under --holdout-out.
 The same seed and sizes always give byte-identical files.
 
@@ -133,7 +133,7 @@ fn run(a: Args) -> Result<(), String> {
                     t.onset_row
                 );
             }
-            println!("  {}", out.join("drift").join("truth.csv").display());
+            println!("  {}", out.join("truth.csv").display());
             println!("done in {:.2} s", start.elapsed().as_secs_f64());
         }
     }
