@@ -58,23 +58,47 @@ pub struct Cli {
 #[derive(Debug, Subcommand)]
 #[allow(clippy::large_enum_variant)] // parsed once per process
 pub enum Command {
+    /// Run the whole loop on the bundled demo scenario: fit, replay every scenario, report.
+    #[command(long_about = cmd::demo::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Demo(cmd::demo::DemoArgs),
     /// Fit a model from nominal logs and calibrate its alarm limits.
     #[command(long_about = cmd::fit::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Fit(cmd::fit::FitArgs),
+    /// Stream a log to a board as samples and print what it says.
+    #[command(long_about = cmd::feed::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Feed(cmd::feed::FeedArgs),
+    /// Write a flashable image of a board's model slot (Intel HEX or binary).
+    #[command(long_about = cmd::image::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Image(cmd::image::ImageArgs),
     /// Show what a model file holds.
     #[command(long_about = cmd::inspect::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Inspect(cmd::inspect::InspectArgs),
+    /// Listen to a board: greeting, drift raised and cleared, faults, status, link health.
+    #[command(long_about = cmd::listen::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Listen(cmd::listen::ListenArgs),
+    /// Upload a model file to a board over the link (it switches only if every check passes).
+    #[command(long_about = cmd::upload::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Upload(cmd::upload::UploadArgs),
     /// Run logs through the firmware detector on the host and report drift flags.
     #[command(long_about = cmd::replay::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Replay(cmd::replay::ReplayArgs),
+    /// Replay logs and write one self-contained HTML report with plots.
+    #[command(long_about = cmd::report::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Report(cmd::report::ReportArgs),
 }
 
 /// Runs a parsed command line; returns the process exit code.
 pub fn run(cli: Cli) -> Result<u8> {
     match cli.command {
+        Command::Demo(args) => cmd::demo::run(args),
         Command::Fit(args) => cmd::fit::run(args),
+        Command::Feed(args) => cmd::feed::run(args),
+        Command::Image(args) => cmd::image::run(args),
         Command::Inspect(args) => cmd::inspect::run(args),
+        Command::Listen(args) => cmd::listen::run(args),
+        Command::Upload(args) => cmd::upload::run(args),
         Command::Replay(args) => cmd::replay::run(args),
+        Command::Report(args) => cmd::report::run(args),
     }
 }
 
