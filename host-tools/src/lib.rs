@@ -14,6 +14,10 @@
 //! | [`fit`] | the fit pipeline, model id, atomic output |
 //! | [`replay`] | logs through the firmware detector on the host |
 //! | [`summary`] | human and JSON summary of a model (fit, inspect) |
+//! | [`link`] | the serial link on the host: transports (serial port, spawned program, loopback TCP), framing, sequence gaps and resends |
+//! | [`device`] | conversations with a board: requests with retries, feeding samples, uploads |
+//! | [`events`] | text, JSON and CSV views of what a board says; the seam for a live view |
+//! | [`boards`] | boards' model-slot memory maps and flashable slot images (Intel HEX, binary) |
 //! | [`cli`], [`cmd`] | the command line |
 //! | [`error`] | the error type: message, location, exit code |
 //!
@@ -26,12 +30,16 @@
 #![allow(clippy::neg_cmp_op_on_partial_ord)]
 
 pub mod arl;
+pub mod boards;
 pub mod calibrate;
 pub mod cli;
 pub mod cmd;
+pub mod device;
 pub mod error;
+pub mod events;
 pub mod fit;
 pub mod gmm;
+pub mod link;
 pub mod logs;
 pub mod pca;
 pub mod progress;

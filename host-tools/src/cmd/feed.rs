@@ -1,0 +1,393 @@
+//! `plumb feed`: stream a log to a board as samples and print what it says.
+
+use crate::cli::LogArgs;
+use crate::cmd::connect::{self, LinkArgs};
+use crate::cmd::inspect::read_model;
+use crate::device::{self, FeedConfig, FeedSummary};
+use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
+use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
+use crate::link::Received;
+use crate::logs::{BadCells, LogSet, Selection};
+use crate::progress::Stage;
+use clap::Args;
+use plumb_model::file::{Label, ModelFile};
+use plumb_model::wire::{DeviceMsg, State};
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::sync::mpsc;
+
+/// Long help of `plumb feed`.
+pub const LONG_ABOUT: &str = "\
+Stream a CSV log to a board as samples, in the model's feature order (columns are matched
+by name, extra columns ignored; empty and NaN cells travel as NaN, so the board counts them
+as sensor faults), and print what the board says: drift raised and cleared, faults, status.
+
+The board's statistics are reset first (--keep-stats to continue where it was), so a run
+is comparable with `plumb replay` of the same log. Flow control: the board is asked to send
+a score report for every sample, and feed waits for it before sending the next (--window N
+keeps N samples in flight: faster on a clean link, but a sample lost on the way can then
+only be counted, not sent again in its place). A sample the board did not take is sent again;
+events lost on the way are asked for again (see `plumb listen --help`).
+
+--reports prints the score reports and --trace writes them as CSV with the exact f32 bit
+patterns; --record-samples writes the samples sent as a log `plumb fit` reads.
+
+Exit code 1 if the board raised a drift flag, 0 otherwise, 2 on bad input or a link error.";
+
+/// Arguments of `plumb feed`.
+#[derive(Debug, Clone, Args)]
+pub struct FeedArgs {
+    /// The model file (.plumb) the board runs: its labels order the columns
+    #[arg(value_name = "MODEL")]
+    pub model: PathBuf,
+
+    /// The log (CSV) to stream
+    #[arg(value_name = "LOG")]
+    pub log: PathBuf,
+
+    #[command(flatten)]
+    pub link: LinkArgs,
+
+    #[command(flatten)]
+    pub read: LogArgs,
+
+    /// Only data rows A..B of the log (0-based, B excluded; `A..` to the end)
+    #[arg(long, value_name = "A..B", value_parser = parse_rows)]
+    pub rows: Option<std::ops::Range<u64>>,
+
+    /// Samples in flight before waiting for the board's reports
+    #[arg(long, value_name = "N", default_value_t = 1)]
+    pub window: usize,
+
+    /// Do not reset the board's statistics first
+    #[arg(long)]
+    pub keep_stats: bool,
+
+    /// Feed even if the board runs a model of another schema (feature names and order)
+    #[arg(long)]
+    pub any_model: bool,
+
+    /// Print the per-sample score reports
+    #[arg(long)]
+    pub reports: bool,
+
+    /// Write the score reports to FILE as CSV: sample, spe, t2, nll as f32 bits in hex and as
+    /// decimals that read back to the same bits, state
+    #[arg(long, value_name = "FILE")]
+    pub trace: Option<PathBuf>,
+
+    /// Write every event received to FILE as CSV (as `plumb listen --record`)
+    #[arg(long, value_name = "FILE")]
+    pub record: Option<PathBuf>,
+
+    /// Write the samples sent to FILE as a log (`t[s],name[unit],...`) that `plumb fit` reads
+    #[arg(long, value_name = "FILE")]
+    pub record_samples: Option<PathBuf>,
+
+    /// One JSON object per line
+    #[arg(long)]
+    pub json: bool,
+
+    /// Print only the summary and the counters
+    #[arg(short, long)]
+    pub quiet: bool,
+}
+
+/// Parses `A..B` or `A..`.
+pub fn parse_rows(s: &str) -> std::result::Result<std::ops::Range<u64>, String> {
+    let (a, b) = s
+        .split_once("..")
+        .ok_or_else(|| format!("expected A..B, found {s:?}"))?;
+    let a: u64 = a
+        .trim()
+        .parse()
+        .map_err(|_| format!("bad start row in {s:?}"))?;
+    let b: u64 = if b.trim().is_empty() {
+        u64::MAX
+    } else {
+        b.trim()
+            .parse()
+            .map_err(|_| format!("bad end row in {s:?}"))?
+    };
+    if b <= a {
+        return Err(format!("empty row range {s:?}"));
+    }
+    Ok(a..b)
+}
+
+/// Header of `--trace` files.
+pub const TRACE_HEADER: &str = "sample,spe_bits,t2_bits,nll_bits,spe,t2,nll,state";
+
+/// One `--trace` row of a score report (`sample` is the host's index).
+pub fn trace_row(
+    sample: u64,
+    scores: Option<plumb_model::wire::ScoreTriple>,
+    state: State,
+) -> String {
+    let state = match state {
+        State::Priming => "priming",
+        State::Watching => "watching",
+        State::Drifting => "drifting",
+    };
+    match scores {
+        Some(s) => format!(
+            "{sample},{:#010x},{:#010x},{:#010x},{},{},{},{state}",
+            s.spe.to_bits(),
+            s.t2.to_bits(),
+            s.nll.to_bits(),
+            s.spe,
+            s.t2,
+            s.nll
+        ),
+        None => format!("{sample},,,,,,,{state}"),
+    }
+}
+
+/// One row as the reader thread hands it over.
+struct Row {
+    time: Option<f64>,
+    x: Vec<f32>,
+}
+
+/// Streams the selected rows of `set` through a bounded channel from a
+/// reader thread; memory stays flat however long the log.
+fn stream_rows(set: LogSet, select: Selection) -> mpsc::Receiver<Result<Row>> {
+    let (tx, rx) = mpsc::sync_channel::<Result<Row>>(1024);
+    std::thread::spawn(move || {
+        let res = set.for_each(&select, &Stage::hidden(), |chunk| {
+            for i in 0..chunk.rows() {
+                let x = chunk.row(i).iter().map(|&v| v as f32).collect();
+                let time = chunk.times.get(i).copied();
+                tx.send(Ok(Row { time, x }))
+                    .map_err(|_| Error::input("feeding stopped"))?;
+            }
+            Ok(())
+        });
+        if let Err(e) = res {
+            let _ = tx.send(Err(e));
+        }
+    });
+    rx
+}
+
+fn samples_header(labels: &[Label], time: Option<(&str, &str)>) -> String {
+    let mut cols: Vec<String> = Vec::new();
+    if let Some((name, unit)) = time {
+        cols.push(if unit.is_empty() {
+            name.to_string()
+        } else {
+            format!("{name}[{unit}]")
+        });
+    }
+    for l in labels {
+        cols.push(if l.unit.is_empty() {
+            l.name.clone()
+        } else {
+            format!("{}[{}]", l.name, l.unit)
+        });
+    }
+    cols.join(",")
+}
+
+fn create(path: &Path) -> Result<std::io::BufWriter<std::fs::File>> {
+    let f = std::fs::File::create(path).map_err(|e| Error::io(path, "create", &e))?;
+    Ok(std::io::BufWriter::new(f))
+}
+
+/// Counts of what the board said during a feed.
+#[derive(Debug, Default, Clone, Copy)]
+struct Tally {
+    raised: u64,
+    cleared: u64,
+    faults: u64,
+}
+
+/// Runs `plumb feed`.
+pub fn run(args: FeedArgs) -> Result<u8> {
+    let file: ModelFile = read_model(&args.model)?;
+    let set = LogSet::open_for_labels(
+        std::slice::from_ref(&args.log),
+        &file.labels,
+        args.read.options(BadCells::PassAsNan)?,
+    )?;
+    let names = Names::from_labels(&file.labels);
+    let format = if args.json {
+        LineFormat::Json
+    } else {
+        LineFormat::Text
+    };
+    let mut printer = LinePrinter::new(std::io::stdout(), format, names.clone());
+    printer.scores = args.reports;
+    let mut recorder = match &args.record {
+        Some(p) => Some(Recorder::new(create(p)?, names).map_err(|e| Error::io(p, "write", &e))?),
+        None => None,
+    };
+    let mut trace = match &args.trace {
+        Some(p) => {
+            let mut w = create(p)?;
+            writeln!(w, "{TRACE_HEADER}").map_err(|e| Error::io(p, "write", &e))?;
+            Some(w)
+        }
+        None => None,
+    };
+    let mut samples_out = match &args.record_samples {
+        Some(p) => {
+            let mut w = create(p)?;
+            let time = set
+                .options()
+                .time_column
+                .as_deref()
+                .map(|t| (t, set.time_unit()));
+            writeln!(w, "{}", samples_header(&file.labels, time))
+                .map_err(|e| Error::io(p, "write", &e))?;
+            Some(w)
+        }
+        None => None,
+    };
+    let select = match &args.rows {
+        Some(r) => Selection(vec![r.clone()]),
+        None => Selection::all(1),
+    };
+
+    let mut link = args.link.open()?;
+    let patience = args.link.patience();
+    let quiet = args.quiet;
+    let mut tally = Tally::default();
+    let base = std::cell::Cell::new(0u64);
+    let mut trace_err: Option<std::io::Error> = None;
+    let outcome: Result<FeedSummary> = {
+        let mut sinks: Vec<&mut dyn EventSink> = Vec::new();
+        if !quiet {
+            sinks.push(&mut printer);
+        }
+        if let Some(r) = recorder.as_mut() {
+            sinks.push(r);
+        }
+        let mut fan = Fan(sinks);
+        let res = (|| {
+            let mut sink = |r: &Received| {
+                match &r.frame.msg {
+                    DeviceMsg::DriftRaised(_) => tally.raised += 1,
+                    DeviceMsg::DriftCleared(_) => tally.cleared += 1,
+                    DeviceMsg::SensorFault(_) => tally.faults += 1,
+                    DeviceMsg::ScoreReport(rep) => {
+                        if let Some(w) = trace.as_mut() {
+                            let idx = rep.sample.wrapping_sub(base.get());
+                            if let Err(e) = writeln!(w, "{}", trace_row(idx, rep.scores, rep.state))
+                            {
+                                trace_err.get_or_insert(e);
+                            }
+                        }
+                    }
+                    _ => {}
+                }
+                fan.frame(r);
+            };
+            let g = device::greeting(&mut link, patience, &mut sink)?;
+            device::check_protocol(&g)?;
+            if g.schema != file.model.meta.schema && !args.any_model {
+                return Err(Error::input(format!(
+                    "the board runs model {:#010x} with schema {:#018x}, but {} has schema {:#018x} \
+                     (other features or order): upload it first, or pass --any-model",
+                    g.model_id,
+                    g.schema,
+                    args.model.display(),
+                    file.model.meta.schema
+                )));
+            }
+            if g.model_id != file.model.meta.id && !quiet {
+                eprintln!(
+                    "plumb: note: the board runs model {:#010x}, {} is {:#010x}: same features, other limits",
+                    g.model_id,
+                    args.model.display(),
+                    file.model.meta.id
+                );
+            }
+            if args.keep_stats {
+                base.set(device::status(&mut link, patience, &mut sink)?.samples);
+            }
+            let rows = stream_rows(set.clone(), select.clone());
+            let mut sample_err: Option<std::io::Error> = None;
+            let samples = rows.iter().map(|row| {
+                let row = row?;
+                if let Some(w) = samples_out.as_mut() {
+                    let mut line = String::new();
+                    if let Some(t) = row.time {
+                        line.push_str(&t.to_string());
+                    }
+                    for (j, v) in row.x.iter().enumerate() {
+                        if j > 0 || row.time.is_some() {
+                            line.push(',');
+                        }
+                        line.push_str(&v.to_string());
+                    }
+                    if let Err(e) = writeln!(w, "{line}") {
+                        sample_err.get_or_insert(e);
+                    }
+                }
+                Ok(row.x)
+            });
+            let cfg = FeedConfig {
+                window: args.window,
+                reset: !args.keep_stats,
+                reports_off_after: true,
+                patience,
+            };
+            let sum = device::feed(&mut link, samples, cfg, &mut sink)?;
+            if let Some(e) = sample_err {
+                let p = args
+                    .record_samples
+                    .as_deref()
+                    .unwrap_or(Path::new("samples"));
+                return Err(Error::io(p, "write", &e));
+            }
+            Ok(sum)
+        })();
+        let fin = connect::finish(&mut link, &mut fan, format, quiet);
+        res.and_then(|s| fin.map(|()| s))
+    };
+    let sum = outcome?;
+    for (w, p) in [
+        (trace.as_mut(), &args.trace),
+        (samples_out.as_mut(), &args.record_samples),
+    ] {
+        if let (Some(w), Some(p)) = (w, p) {
+            w.flush().map_err(|e| Error::io(p, "write", &e))?;
+        }
+    }
+    if let (Some(e), Some(p)) = (trace_err, &args.trace) {
+        return Err(Error::io(p, "write", &e));
+    }
+    if let (Some(r), Some(p)) = (recorder.as_mut(), &args.record) {
+        if let Some(e) = r.take_error() {
+            return Err(Error::io(p, "write", &e));
+        }
+    }
+    let summary = format!(
+        "fed samples={} taken={} frames_sent={} resent={} reports_missing={} status_queries={} raised={} cleared={} faults={}",
+        sum.samples, sum.taken, sum.frames_sent, sum.resent, sum.reports_missing, sum.status_queries,
+        tally.raised, tally.cleared, tally.faults
+    );
+    if args.json {
+        println!(
+            "{}",
+            serde_json::json!({"event": "fed", "samples": sum.samples, "taken": sum.taken,
+                "frames_sent": sum.frames_sent, "resent": sum.resent, "reports_missing": sum.reports_missing,
+                "status_queries": sum.status_queries, "raised": tally.raised, "cleared": tally.cleared,
+                "faults": tally.faults})
+        );
+    } else {
+        println!("{summary}");
+    }
+    if sum.taken != sum.samples {
+        eprintln!(
+            "plumb: warning: the board took {} of {} samples (samples lost on the link)",
+            sum.taken, sum.samples
+        );
+    }
+    Ok(if tally.raised > 0 {
+        EXIT_DRIFT
+    } else {
+        EXIT_CLEAN
+    })
+}

@@ -1,0 +1,149 @@
+//! `plumb listen`: print what a device says, one line per event.
+
+use crate::cmd::connect::{self, LinkArgs};
+use crate::cmd::inspect::read_model;
+use crate::device;
+use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
+use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
+use crate::link::Received;
+use clap::Args;
+use plumb_model::wire::DeviceMsg;
+use std::path::PathBuf;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+/// Long help of `plumb listen`.
+pub const LONG_ABOUT: &str = "\
+Listen to a board: print its greeting, drift raised and cleared, sensor faults, status and
+(with --scores) per-sample score reports, one line per event. Text lines start with a fixed
+word (greeting, raised, cleared, fault, status, score, ack, refused, resend) followed by
+key=value fields; --json prints one JSON object per line instead.
+
+The link is checked as it goes: every frame carries a CRC-32 and the device numbers its
+messages, so a gap in the numbers means a frame was lost; listen then asks the device to
+send its retained events again (drift raised/cleared and faults) and marks what came back
+`recovered=1`. The last line (`link ...`) counts good frames, CRC and framing errors,
+resend requests, events recovered and events lost.
+
+Runs until the device closes the link, --for elapses, or Ctrl-C. Exit code 1 if a drift
+flag was raised while listening, 0 otherwise, 2 on a link or usage error.";
+
+/// Arguments of `plumb listen`.
+#[derive(Debug, Clone, Args)]
+pub struct ListenArgs {
+    #[command(flatten)]
+    pub link: LinkArgs,
+
+    /// Model file (.plumb) whose feature names label the messages
+    #[arg(long, value_name = "MODEL")]
+    pub model: Option<PathBuf>,
+
+    /// Stop after this many seconds
+    #[arg(long = "for", value_name = "SECONDS")]
+    pub duration: Option<f64>,
+
+    /// Also print per-sample score reports (turn them on with `plumb feed --reports`)
+    #[arg(long)]
+    pub scores: bool,
+
+    /// Do not ask for a greeting at the start
+    #[arg(long)]
+    pub no_greeting: bool,
+
+    /// Write every event received to FILE as CSV (seq,event,sample,state,spe,t2,nll,detail,recovered)
+    #[arg(long, value_name = "FILE")]
+    pub record: Option<PathBuf>,
+
+    /// One JSON object per line
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// Runs `plumb listen`.
+pub fn run(args: ListenArgs) -> Result<u8> {
+    let names = match &args.model {
+        Some(p) => Names::from_labels(&read_model(p)?.labels),
+        None => Names::default(),
+    };
+    let format = if args.json {
+        LineFormat::Json
+    } else {
+        LineFormat::Text
+    };
+    let mut printer = LinePrinter::new(std::io::stdout(), format, names.clone());
+    printer.scores = args.scores;
+    let mut recorder = match &args.record {
+        Some(p) => {
+            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
+            Some(
+                Recorder::new(std::io::BufWriter::new(f), names)
+                    .map_err(|e| Error::io(p, "write", &e))?,
+            )
+        }
+        None => None,
+    };
+    let stop = Arc::new(AtomicBool::new(false));
+    {
+        let stop = Arc::clone(&stop);
+        // A second handler cannot be installed in one process; listening
+        // then just runs without it.
+        let _ = ctrlc::set_handler(move || stop.store(true, Ordering::SeqCst));
+    }
+
+    let mut link = args.link.open()?;
+    let mut drift = false;
+    let result = {
+        let mut sinks: Vec<&mut dyn EventSink> = vec![&mut printer];
+        if let Some(r) = recorder.as_mut() {
+            sinks.push(r);
+        }
+        let mut fan = Fan(sinks);
+        let mut sink = |r: &Received| {
+            if matches!(r.frame.msg, DeviceMsg::DriftRaised(_)) {
+                drift = true;
+            }
+            fan.frame(r);
+        };
+        let res = listen(&args, &mut link, &stop, &mut sink);
+        let fin = connect::finish(&mut link, &mut fan, format, false);
+        res.and(fin)
+    };
+    if let Some(r) = recorder.as_mut() {
+        if let Some(e) = r.take_error() {
+            let p = args
+                .record
+                .as_deref()
+                .unwrap_or_else(|| std::path::Path::new("record"));
+            return Err(Error::io(p, "write", &e));
+        }
+    }
+    result?;
+    Ok(if drift { EXIT_DRIFT } else { EXIT_CLEAN })
+}
+
+fn listen(
+    args: &ListenArgs,
+    link: &mut crate::link::Link,
+    stop: &AtomicBool,
+    sink: &mut dyn FnMut(&Received),
+) -> Result<()> {
+    if !args.no_greeting {
+        let g = device::greeting(link, args.link.patience(), sink)?;
+        device::check_protocol(&g)?;
+    }
+    let end = args
+        .duration
+        .map(|s| Instant::now() + Duration::from_secs_f64(s.max(0.0)));
+    while !stop.load(Ordering::SeqCst) {
+        if end.is_some_and(|e| Instant::now() >= e) {
+            break;
+        }
+        match link.recv(Duration::from_millis(200))? {
+            Some(r) => sink(&r),
+            None if link.is_closed() => break,
+            None => {}
+        }
+    }
+    Ok(())
+}

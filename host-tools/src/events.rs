@@ -1,0 +1,525 @@
+//! What the device says, for people and scripts: one line per frame in a
+//! plain `word key=value ...` form (stable and grep-able) or one JSON object
+//! per line, a CSV recorder, and the [`EventSink`] seam a live view plugs
+//! into.
+//!
+//! # Line format
+//!
+//! Every line starts with a fixed word naming the event, then `key=value`
+//! fields (values never contain spaces, except the quoted `reason` and
+//! `firmware`):
+//!
+//! | word | when | fields |
+//! |---|---|---|
+//! | `greeting` | device identity | `seq protocol firmware model schema features components mixture capacity slot generation status_every` |
+//! | `raised` | a drift flag rose | `seq sample drivers spe t2 nll top crossed` |
+//! | `cleared` | the flag cleared | `seq sample` |
+//! | `fault` | a sensor fault began | `seq sample kind feature` |
+//! | `status` | health | `seq samples state hot faults levels link last_event model` |
+//! | `score` | per-sample report | `seq sample state spe t2 nll` (or `faulted`) |
+//! | `ack` | a request done | `seq what ...` |
+//! | `refused` | a request refused | `seq request code reason` |
+//! | `resend` | end of a resend | `seq from count oldest dropped` |
+//! | `link` | counters, at the end | see [`link_line`] |
+//!
+//! A frame that arrived through a resend carries ` recovered=1`. Scores are
+//! printed as the shortest decimal that reads back to the same `f32`.
+
+use crate::link::{LinkStats, Received};
+use plumb_model::file::Label;
+use plumb_model::wire::{
+    Ack, Crossing, DeviceMsg, FaultKind, Greeting, Request, ScoreKind, ScoreTriple, Slot, State,
+    Statistic, Status,
+};
+use serde_json::{json, Value};
+use std::io::Write;
+
+/// Where interpreted frames go: the line printer, the CSV recorder, and a
+/// future full-screen live view all implement this.
+pub trait EventSink {
+    /// One frame from the device.
+    fn frame(&mut self, r: &Received);
+    /// The session ended; final counters.
+    fn finish(&mut self, _stats: &LinkStats) {}
+}
+
+/// Text or JSON lines.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LineFormat {
+    /// `word key=value ...`.
+    Text,
+    /// One JSON object per line.
+    Json,
+}
+
+/// Feature names for indices in messages (empty: print indices).
+#[derive(Debug, Clone, Default)]
+pub struct Names(pub Vec<String>);
+
+impl Names {
+    /// From a model file's labels.
+    pub fn from_labels(labels: &[Label]) -> Self {
+        Names(labels.iter().map(|l| l.name.clone()).collect())
+    }
+
+    /// Name of feature `i`.
+    pub fn feature(&self, i: u8) -> String {
+        match self.0.get(usize::from(i)) {
+            Some(n) => n.clone(),
+            None => format!("#{i}"),
+        }
+    }
+}
+
+/// Prints every frame as a line on a writer (standard output by default).
+pub struct LinePrinter<W: Write> {
+    out: W,
+    format: LineFormat,
+    names: Names,
+    /// Print per-sample score reports (they can be many).
+    pub scores: bool,
+}
+
+impl<W: Write> LinePrinter<W> {
+    /// A printer.
+    pub fn new(out: W, format: LineFormat, names: Names) -> Self {
+        LinePrinter {
+            out,
+            format,
+            names,
+            scores: true,
+        }
+    }
+}
+
+impl<W: Write> EventSink for LinePrinter<W> {
+    fn frame(&mut self, r: &Received) {
+        if !self.scores && matches!(r.frame.msg, DeviceMsg::ScoreReport(_)) {
+            return;
+        }
+        let line = match self.format {
+            LineFormat::Text => text_line(r, &self.names),
+            LineFormat::Json => json_line(r, &self.names).to_string(),
+        };
+        let _ = writeln!(self.out, "{line}");
+        let _ = self.out.flush();
+    }
+
+    fn finish(&mut self, stats: &LinkStats) {
+        let line = match self.format {
+            LineFormat::Text => link_line(stats),
+            LineFormat::Json => link_json(stats).to_string(),
+        };
+        let _ = writeln!(self.out, "{line}");
+        let _ = self.out.flush();
+    }
+}
+
+/// Hands every frame to several sinks.
+pub struct Fan<'a>(pub Vec<&'a mut dyn EventSink>);
+
+impl EventSink for Fan<'_> {
+    fn frame(&mut self, r: &Received) {
+        for s in self.0.iter_mut() {
+            s.frame(r);
+        }
+    }
+
+    fn finish(&mut self, stats: &LinkStats) {
+        for s in self.0.iter_mut() {
+            s.finish(stats);
+        }
+    }
+}
+
+fn state_name(s: State) -> &'static str {
+    match s {
+        State::Priming => "priming",
+        State::Watching => "watching",
+        State::Drifting => "drifting",
+    }
+}
+
+fn score_name(s: ScoreKind) -> &'static str {
+    match s {
+        ScoreKind::Spe => "spe",
+        ScoreKind::T2 => "t2",
+        ScoreKind::Nll => "nll",
+    }
+}
+
+fn statistic_name(s: Statistic) -> &'static str {
+    match s {
+        Statistic::Ewma => "ewma",
+        Statistic::Cusum => "cusum",
+    }
+}
+
+/// Score bits (bit 0 SPE, 1 T², 2 NLL) as `spe+nll`, or `none`.
+pub fn score_set(bits: u8) -> String {
+    let names: Vec<&str> = [ScoreKind::Spe, ScoreKind::T2, ScoreKind::Nll]
+        .into_iter()
+        .enumerate()
+        .filter(|(i, _)| bits & (1 << i) != 0)
+        .map(|(_, s)| score_name(s))
+        .collect();
+    if names.is_empty() {
+        "none".into()
+    } else {
+        names.join("+")
+    }
+}
+
+fn slot_name(s: Option<Slot>) -> &'static str {
+    match s {
+        Some(Slot::A) => "a",
+        Some(Slot::B) => "b",
+        None => "builtin",
+    }
+}
+
+fn request_name(r: Request) -> &'static str {
+    match r {
+        Request::UploadBegin => "upload-begin",
+        Request::UploadChunk => "upload-chunk",
+        Request::UploadCommit => "upload-commit",
+    }
+}
+
+/// A fault's kind name and feature index.
+pub fn fault_parts(f: FaultKind) -> (&'static str, Option<u8>, Option<u16>) {
+    match f {
+        FaultKind::WrongLength { got } => ("wrong-length", None, Some(got)),
+        FaultKind::NonFinite { feature } => ("non-finite", Some(feature), None),
+        FaultKind::OutOfRange { feature } => ("out-of-range", Some(feature), None),
+        FaultKind::Overflow => ("overflow", None, None),
+    }
+}
+
+fn crossing_text(c: &Crossing) -> String {
+    format!(
+        "{}/{}:{}>{}",
+        score_name(c.score),
+        statistic_name(c.statistic),
+        c.value,
+        c.limit
+    )
+}
+
+fn greeting_text(g: &Greeting) -> String {
+    format!(
+        "protocol={} firmware={:?} model={:#010x} schema={:#018x} features={} components={} mixture={} capacity={}x{}x{} slot={} generation={} status_every={}",
+        g.protocol,
+        g.firmware.as_str(),
+        g.model_id,
+        g.schema,
+        g.dims.features,
+        g.dims.components,
+        g.dims.mixture,
+        g.capacity.features,
+        g.capacity.components,
+        g.capacity.mixture,
+        slot_name(g.active),
+        g.generation,
+        g.status_every
+    )
+}
+
+fn status_text(s: &Status) -> String {
+    let f = s.faults;
+    let l = s.link;
+    format!(
+        "samples={} state={} hot={} faults={}/{}/{}/{} levels={}/{},{}/{},{}/{} link={}/{}/{}/{}/{} last_event={} model={:#010x}",
+        s.samples,
+        state_name(s.state),
+        score_set(s.hot),
+        f.wrong_length,
+        f.non_finite,
+        f.out_of_range,
+        f.overflow,
+        s.levels[0].ewma,
+        s.levels[0].cusum,
+        s.levels[1].ewma,
+        s.levels[1].cusum,
+        s.levels[2].ewma,
+        s.levels[2].cusum,
+        l.frames_ok,
+        l.crc_errors,
+        l.framing_errors,
+        l.overflows,
+        l.undecodable,
+        s.last_event.map_or("none".to_string(), |e| e.to_string()),
+        s.model_id
+    )
+}
+
+fn scores_text(s: &ScoreTriple) -> String {
+    format!("spe={} t2={} nll={}", s.spe, s.t2, s.nll)
+}
+
+/// The text line of a frame.
+pub fn text_line(r: &Received, names: &Names) -> String {
+    let seq = r.frame.seq;
+    let mut line = match &r.frame.msg {
+        DeviceMsg::Greeting(g) => format!("greeting seq={seq} {}", greeting_text(g)),
+        DeviceMsg::Status(s) => format!("status seq={seq} {}", status_text(s)),
+        DeviceMsg::DriftRaised(d) => {
+            let top: Vec<String> = d
+                .top
+                .iter()
+                .filter(|s| s.feature != u8::MAX)
+                .map(|s| format!("{}:{}", names.feature(s.feature), s.value))
+                .collect();
+            let crossed: Vec<String> = d.crossed.iter().map(crossing_text).collect();
+            format!(
+                "raised seq={seq} sample={} drivers={} {} top={} crossed={}",
+                d.sample,
+                score_set(d.drivers),
+                scores_text(&d.scores),
+                if top.is_empty() {
+                    "none".into()
+                } else {
+                    top.join(",")
+                },
+                if crossed.is_empty() {
+                    "none".into()
+                } else {
+                    crossed.join(",")
+                }
+            )
+        }
+        DeviceMsg::DriftCleared(c) => format!("cleared seq={seq} sample={}", c.sample),
+        DeviceMsg::SensorFault(f) => {
+            let (kind, feature, got) = fault_parts(f.fault);
+            let mut s = format!("fault seq={seq} sample={} kind={kind}", f.sample);
+            if let Some(i) = feature {
+                s.push_str(&format!(" feature={}", names.feature(i)));
+            }
+            if let Some(g) = got {
+                s.push_str(&format!(" got={g}"));
+            }
+            s
+        }
+        DeviceMsg::ScoreReport(rep) => match &rep.scores {
+            Some(sc) => format!(
+                "score seq={seq} sample={} state={} {}",
+                rep.sample,
+                state_name(rep.state),
+                scores_text(sc)
+            ),
+            None => format!(
+                "score seq={seq} sample={} state={} faulted",
+                rep.sample,
+                state_name(rep.state)
+            ),
+        },
+        DeviceMsg::Ack(a) => format!("ack seq={seq} {}", ack_text(a)),
+        DeviceMsg::Refused(r) => format!(
+            "refused seq={seq} request={} code={} reason={:?}",
+            request_name(r.request),
+            r.reason.code(),
+            r.reason.to_string()
+        ),
+        DeviceMsg::ResendDone(d) => format!(
+            "resend seq={seq} from={} count={} oldest={} dropped={}",
+            d.from,
+            d.count,
+            d.oldest.map_or("none".to_string(), |o| o.to_string()),
+            d.dropped
+        ),
+    };
+    if r.recovered {
+        line.push_str(" recovered=1");
+    }
+    line
+}
+
+fn ack_text(a: &Ack) -> String {
+    match a {
+        Ack::Reports { on } => format!("what=reports on={}", u8::from(*on)),
+        Ack::StatsReset => "what=stats-reset".into(),
+        Ack::UploadOpen { slot, total } => {
+            format!(
+                "what=upload-open slot={} total={total}",
+                slot_name(Some(*slot))
+            )
+        }
+        Ack::ChunkTaken { next } => format!("what=chunk-taken next={next}"),
+        Ack::ModelSwitched {
+            slot,
+            model_id,
+            generation,
+        } => format!(
+            "what=model-switched slot={} model={model_id:#010x} generation={generation}",
+            slot_name(Some(*slot))
+        ),
+    }
+}
+
+fn scores_json(s: &ScoreTriple) -> Value {
+    json!({"spe": s.spe, "t2": s.t2, "nll": s.nll})
+}
+
+/// The JSON object of a frame.
+pub fn json_line(r: &Received, names: &Names) -> Value {
+    let seq = r.frame.seq;
+    let mut v = match &r.frame.msg {
+        DeviceMsg::Greeting(g) => json!({
+            "event": "greeting", "seq": seq, "protocol": g.protocol, "firmware": g.firmware.as_str(),
+            "model": g.model_id, "schema": format!("{:#018x}", g.schema),
+            "features": g.dims.features, "components": g.dims.components, "mixture": g.dims.mixture,
+            "capacity": [g.capacity.features, g.capacity.components, g.capacity.mixture],
+            "slot": slot_name(g.active), "generation": g.generation, "status_every": g.status_every,
+        }),
+        DeviceMsg::Status(s) => json!({
+            "event": "status", "seq": seq, "samples": s.samples, "state": state_name(s.state),
+            "hot": score_set(s.hot),
+            "faults": {"wrong_length": s.faults.wrong_length, "non_finite": s.faults.non_finite,
+                       "out_of_range": s.faults.out_of_range, "overflow": s.faults.overflow},
+            "levels": s.levels.iter().map(|l| json!({"ewma": l.ewma, "cusum": l.cusum})).collect::<Vec<_>>(),
+            "link": {"frames_ok": s.link.frames_ok, "crc_errors": s.link.crc_errors,
+                     "framing_errors": s.link.framing_errors, "overflows": s.link.overflows,
+                     "undecodable": s.link.undecodable},
+            "last_event": s.last_event, "model": s.model_id,
+        }),
+        DeviceMsg::DriftRaised(d) => json!({
+            "event": "raised", "seq": seq, "sample": d.sample, "drivers": score_set(d.drivers),
+            "scores": scores_json(&d.scores),
+            "top": d.top.iter().filter(|s| s.feature != u8::MAX)
+                .map(|s| json!({"feature": names.feature(s.feature), "index": s.feature, "value": s.value}))
+                .collect::<Vec<_>>(),
+            "crossed": d.crossed.iter().map(|c| json!({
+                "score": score_name(c.score), "statistic": statistic_name(c.statistic),
+                "value": c.value, "limit": c.limit})).collect::<Vec<_>>(),
+        }),
+        DeviceMsg::DriftCleared(c) => json!({"event": "cleared", "seq": seq, "sample": c.sample}),
+        DeviceMsg::SensorFault(f) => {
+            let (kind, feature, got) = fault_parts(f.fault);
+            json!({"event": "fault", "seq": seq, "sample": f.sample, "kind": kind,
+                   "feature": feature.map(|i| names.feature(i)), "index": feature, "got": got})
+        }
+        DeviceMsg::ScoreReport(rep) => json!({
+            "event": "score", "seq": seq, "sample": rep.sample, "state": state_name(rep.state),
+            "scores": rep.scores.as_ref().map(scores_json),
+        }),
+        DeviceMsg::Ack(a) => json!({"event": "ack", "seq": seq, "detail": ack_text(a)}),
+        DeviceMsg::Refused(r) => json!({
+            "event": "refused", "seq": seq, "request": request_name(r.request),
+            "code": r.reason.code(), "reason": r.reason.to_string(),
+        }),
+        DeviceMsg::ResendDone(d) => json!({
+            "event": "resend", "seq": seq, "from": d.from, "count": d.count,
+            "oldest": d.oldest, "dropped": d.dropped,
+        }),
+    };
+    if r.recovered {
+        v["recovered"] = json!(true);
+    }
+    v
+}
+
+/// The closing counters line.
+pub fn link_line(s: &LinkStats) -> String {
+    let f = s.frames;
+    format!(
+        "link frames_ok={} crc_errors={} framing_errors={} overflows={} undecodable={} bytes={} gaps={} missing={} resend_requests={} recovered={} lost={} duplicates={} restarts={}",
+        f.frames_ok,
+        f.crc_errors,
+        f.framing_errors,
+        f.overflows,
+        f.undecodable,
+        s.bytes,
+        s.gaps,
+        s.missing,
+        s.resend_requests,
+        s.recovered,
+        s.lost,
+        s.duplicates,
+        s.restarts
+    )
+}
+
+/// The closing counters as JSON.
+pub fn link_json(s: &LinkStats) -> Value {
+    let f = s.frames;
+    json!({
+        "event": "link", "frames_ok": f.frames_ok, "crc_errors": f.crc_errors,
+        "framing_errors": f.framing_errors, "overflows": f.overflows, "undecodable": f.undecodable,
+        "bytes": s.bytes, "gaps": s.gaps, "missing": s.missing, "resend_requests": s.resend_requests,
+        "recovered": s.recovered, "lost": s.lost, "duplicates": s.duplicates, "restarts": s.restarts,
+    })
+}
+
+/// Writes what arrived as CSV: `seq,event,sample,state,spe,t2,nll,detail,recovered`
+/// (scores as the shortest decimal that reads back to the same `f32`;
+/// `detail` is the rest of the text line, quoted).
+pub struct Recorder<W: Write> {
+    out: W,
+    names: Names,
+    error: Option<std::io::Error>,
+}
+
+/// Header of [`Recorder`] files.
+pub const RECORD_HEADER: &str = "seq,event,sample,state,spe,t2,nll,detail,recovered";
+
+impl<W: Write> Recorder<W> {
+    /// Starts a recording (writes the header).
+    pub fn new(mut out: W, names: Names) -> std::io::Result<Self> {
+        writeln!(out, "{RECORD_HEADER}")?;
+        Ok(Recorder {
+            out,
+            names,
+            error: None,
+        })
+    }
+
+    /// The first write error, if any.
+    pub fn take_error(&mut self) -> Option<std::io::Error> {
+        self.error.take()
+    }
+
+    fn row(&mut self, r: &Received) -> std::io::Result<()> {
+        let text = text_line(r, &self.names);
+        let (word, rest) = text.split_once(' ').unwrap_or((text.as_str(), ""));
+        let (sample, state, scores): (Option<u64>, Option<State>, Option<ScoreTriple>) =
+            match &r.frame.msg {
+                DeviceMsg::ScoreReport(rep) => (Some(rep.sample), Some(rep.state), rep.scores),
+                DeviceMsg::DriftRaised(d) => (Some(d.sample), None, Some(d.scores)),
+                DeviceMsg::DriftCleared(c) => (Some(c.sample), None, None),
+                DeviceMsg::SensorFault(f) => (Some(f.sample), None, None),
+                DeviceMsg::Status(s) => (Some(s.samples), Some(s.state), None),
+                _ => (None, None, None),
+            };
+        let opt = |v: Option<f32>| v.map_or(String::new(), |x| x.to_string());
+        writeln!(
+            self.out,
+            "{},{},{},{},{},{},{},\"{}\",{}",
+            r.frame.seq,
+            word,
+            sample.map_or(String::new(), |s| s.to_string()),
+            state.map_or("", state_name),
+            opt(scores.map(|s| s.spe)),
+            opt(scores.map(|s| s.t2)),
+            opt(scores.map(|s| s.nll)),
+            rest.replace('"', "\"\""),
+            u8::from(r.recovered)
+        )
+    }
+}
+
+impl<W: Write> EventSink for Recorder<W> {
+    fn frame(&mut self, r: &Received) {
+        if self.error.is_some() {
+            return;
+        }
+        if let Err(e) = self.row(r) {
+            self.error = Some(e);
+        }
+    }
+
+    fn finish(&mut self, _stats: &LinkStats) {
+        if let Err(e) = self.out.flush() {
+            self.error.get_or_insert(e);
+        }
+    }
+}
