@@ -13,6 +13,7 @@
 //! | [`calibrate`] | limits from held-out rows through the device detector |
 //! | [`fit`] | the fit pipeline, model id, atomic output |
 //! | [`replay`] | logs through the firmware detector on the host |
+//! | [`report`] | the HTML drift report (timelines, contributions, latent plane) |
 //! | [`summary`] | human and JSON summary of a model (fit, inspect) |
 //! | [`link`] | the serial link on the host: transports (serial port, spawned program, loopback TCP), framing, sequence gaps and resends |
 //! | [`device`] | conversations with a board: requests with retries, feeding samples, uploads |
@@ -44,5 +45,6 @@ pub mod logs;
 pub mod pca;
 pub mod progress;
 pub mod replay;
+pub mod report;
 pub mod rng;
 pub mod summary;

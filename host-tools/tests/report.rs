@@ -1,0 +1,526 @@
+//! `plumb report` end to end: a model fitted on the demo training logs, a
+//! report over two drift logs with ground truth, checked for structure
+//! (balanced tags, one timeline per score per log, flag spans, onset
+//! markers, latent ellipses, explained variance, labelled contributions),
+//! size, exit codes, and rendered by a headless browser.
+//!
+//! The browser check needs Debian's `chromium` (`scripts/setup.sh` installs
+//! it) and fails loudly without it; `PLUMB_NO_BROWSER=1` skips it on
+//! purpose, and says so.
+
+mod common;
+
+use common::{log_text, Scratch};
+use plumb_firmware::Detector;
+use plumb_model::file::ModelFile;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output, Stdio};
+use std::sync::OnceLock;
+use std::time::{Duration, Instant};
+
+fn plumb(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(args)
+        .output()
+        .expect("run plumb")
+}
+
+fn demo(rel: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../demo-logs")
+        .join(rel)
+}
+
+fn s(p: &Path) -> &str {
+    p.to_str().unwrap()
+}
+
+/// One model fitted on the demo training logs, shared by the tests.
+fn model() -> &'static Path {
+    static DIR: OnceLock<(Scratch, PathBuf)> = OnceLock::new();
+    &DIR.get_or_init(|| {
+        let dir = Scratch::new("report-model");
+        let out = dir.path("tugger.plumb");
+        let o = plumb(&[
+            "fit",
+            s(&demo("train")),
+            "--out",
+            s(&out),
+            "--mixture",
+            "3",
+            "--restarts",
+            "1",
+            "--quiet",
+        ]);
+        assert_eq!(
+            o.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        (dir, out)
+    })
+    .1
+}
+
+/// The report over two drift logs with truth and training rows: (folder,
+/// HTML text, path, replay JSON).
+fn drift_report() -> &'static (Scratch, String, PathBuf, serde_json::Value) {
+    static R: OnceLock<(Scratch, String, PathBuf, serde_json::Value)> = OnceLock::new();
+    R.get_or_init(|| {
+        let dir = Scratch::new("report");
+        let out = dir.path("report.html");
+        let o = plumb(&[
+            "report",
+            s(model()),
+            s(&demo("drift/bearing_wear.csv")),
+            s(&demo("drift/sensor_dropout.csv")),
+            "--out",
+            s(&out),
+            "--train",
+            s(&demo("train")),
+            "--truth",
+            s(&demo("truth.csv")),
+            "--json",
+        ]);
+        assert_eq!(
+            o.status.code(),
+            Some(1),
+            "a flag rose in bearing_wear: exit 1; stderr: {}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON on stdout");
+        let html = std::fs::read_to_string(&out).expect("report written");
+        (dir, html, out, v)
+    })
+}
+
+/// Checks that elements nest properly: every start tag is closed in order
+/// (void elements are written self-closed), ignoring the style sheet.
+fn assert_balanced(html: &str) {
+    let body = match (html.find("<style>"), html.find("</style>")) {
+        (Some(a), Some(b)) => format!("{}{}", &html[..a], &html[b + 8..]),
+        _ => html.to_string(),
+    };
+    let mut stack: Vec<String> = Vec::new();
+    let mut rest = body.as_str();
+    while let Some(i) = rest.find('<') {
+        rest = &rest[i + 1..];
+        let end = rest.find('>').expect("unterminated tag");
+        let tag = &rest[..end];
+        rest = &rest[end + 1..];
+        if tag.starts_with('!') {
+            continue;
+        }
+        if let Some(name) = tag.strip_prefix('/') {
+            let open = stack.pop().unwrap_or_default();
+            assert_eq!(open, name.trim(), "</{name}> closes <{open}>");
+        } else if !tag.ends_with('/') {
+            let name = tag.split_whitespace().next().unwrap_or("").to_string();
+            assert!(!name.is_empty(), "empty tag");
+            stack.push(name);
+        }
+    }
+    assert!(stack.is_empty(), "unclosed: {stack:?}");
+}
+
+fn count(h: &str, pat: &str) -> usize {
+    h.matches(pat).count()
+}
+
+/// The SVG elements whose start tag begins with `start`, concatenated.
+fn svgs(html: &str, start: &str) -> String {
+    let mut out = String::new();
+    let mut rest = html;
+    while let Some(i) = rest.find(start) {
+        let end = i + rest[i..].find("</svg>").expect("closed svg") + 6;
+        out.push_str(&rest[i..end]);
+        rest = &rest[end..];
+    }
+    out
+}
+
+#[test]
+fn report_has_every_part_and_is_self_contained() {
+    let (_dir, html, _out, v) = drift_report();
+    assert_balanced(html);
+    assert_eq!(count(html, "<svg"), count(html, "</svg>"));
+
+    // Self-contained and advisory.
+    assert!(!html.contains("<script"), "no scripts");
+    assert!(!html.contains("http://") && !html.contains("https://"));
+    assert!(!html.contains("<img") && !html.contains("<link"));
+    assert!(html.contains("not a safety function"));
+
+    // Header: model identity.
+    let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
+    let meta = &file.model.meta;
+    assert!(html.contains(&format!("model {:08x}", meta.id)));
+    assert!(html.contains(&format!("schema {:016x}", meta.schema)));
+
+    // One timeline per score per log.
+    assert_eq!(count(html, "<svg class=\"timeline\""), 6);
+    for log in 0..2 {
+        for score in ["spe", "t2", "nll"] {
+            let tag = format!("<svg class=\"timeline\" data-log=\"{log}\" data-score=\"{score}\"");
+            assert_eq!(count(html, &tag), 1, "{tag}");
+        }
+    }
+
+    // Flag spans: one shaded span per flag in each of its log's three panels.
+    let logs = v["logs"].as_array().unwrap();
+    let flags: usize = logs
+        .iter()
+        .map(|l| l["flags"].as_array().unwrap().len())
+        .sum();
+    assert!(flags >= 1);
+    let timelines = svgs(html, "<svg class=\"timeline\"");
+    assert_eq!(count(&timelines, "<rect class=\"flag\""), 3 * flags);
+    assert_eq!(logs[1]["flags"].as_array().unwrap().len(), 0, "dropout");
+    assert!(logs[1]["faults"].as_u64().unwrap() > 0);
+
+    // Ground truth: an onset line in every panel of both logs; faults marked.
+    assert_eq!(count(&timelines, "<path class=\"onset\""), 6);
+    assert_eq!(count(&timelines, "onset (drift)"), 3);
+    assert_eq!(count(&timelines, "onset (fault)"), 3);
+    assert_eq!(
+        count(&timelines, "<path class=\"fault\""),
+        3,
+        "dropout panels"
+    );
+    assert!(html.contains("id=\"faults\""));
+
+    // Contributions: one chart per flag, bars labelled `name [unit]`.
+    assert_eq!(count(html, "<svg class=\"contrib\""), flags);
+    let labels: Vec<String> = file
+        .labels
+        .iter()
+        .map(|l| {
+            if l.unit.is_empty() {
+                l.name.clone()
+            } else {
+                format!("{} [{}]", l.name, l.unit)
+            }
+        })
+        .collect();
+    let first = html.find("<svg class=\"contrib\"").unwrap();
+    let chart = &html[first..first + html[first..].find("</svg>").unwrap()];
+    assert!(
+        chart.contains("data-log=\"0\" data-flag=\"1\""),
+        "bearing wear's first flag"
+    );
+    let named = labels
+        .iter()
+        .filter(|l| chart.contains(&format!(">{l}</text>")))
+        .count();
+    assert_eq!(named, 10, "ten labelled bars");
+    // Bearing wear acts on vib_band5/6; they lead the first flag's chart
+    // and are drawn as named by the ground truth.
+    assert!(chart.contains("class=\"bar named\""));
+
+    // Latent plane: 1σ and 2σ ellipses for each mixture component.
+    let k = file.model.weights.len();
+    assert!(html.contains("<svg class=\"latent\""));
+    assert_eq!(count(html, "<ellipse class=\"e1\""), k);
+    assert_eq!(count(html, "<ellipse class=\"e2\""), k);
+    assert!(html.contains("<path class=\"pt-train\""));
+    assert!(html.contains("<path class=\"pt-drift\""));
+
+    // Explained variance: a bar per kept component and the residual.
+    let m = file.model.eigenvalues.len();
+    assert!(html.contains("<svg class=\"variance\""));
+    assert_eq!(count(html, "<rect class=\"ev\""), m);
+    assert_eq!(count(html, "<rect class=\"ev res\""), 1);
+    assert!(html.contains(&format!(">PC{m}</text>")));
+
+    // Tables.
+    assert!(html.contains("id=\"flags\""));
+    assert!(html.contains(">bearing_wear.csv</a>"));
+
+    assert!(
+        html.len() < 1_000_000,
+        "two 8000-sample logs: {} bytes",
+        html.len()
+    );
+}
+
+#[test]
+fn same_inputs_same_bytes() {
+    let (_dir, html, _, _) = drift_report();
+    let dir = Scratch::new("again");
+    let out = dir.path("again.html");
+    plumb(&[
+        "report",
+        s(model()),
+        s(&demo("drift/bearing_wear.csv")),
+        s(&demo("drift/sensor_dropout.csv")),
+        "--out",
+        s(&out),
+        "--train",
+        s(&demo("train")),
+        "--truth",
+        s(&demo("truth.csv")),
+        "--quiet",
+    ]);
+    assert!(std::fs::read_to_string(&out).unwrap() == *html);
+}
+
+#[test]
+fn clean_log_exits_0_and_bad_input_exits_2_without_output() {
+    let dir = Scratch::new("codes");
+    let out = dir.path("clean.html");
+    let o = plumb(&[
+        "report",
+        s(model()),
+        s(&demo("holdout/robot4_day1.csv")),
+        "--out",
+        s(&out),
+        "--quiet",
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let html = std::fs::read_to_string(&out).unwrap();
+    assert_balanced(&html);
+    assert!(html.contains("No drift flag was raised."));
+    assert!(html.contains("no --train logs given"));
+
+    let truth = dir.write(
+        "truth.csv",
+        "scenario,file,onset_row,onset_t_s,kind,features\nx,a.csv,soon,1.0,drift,\n",
+    );
+    let bad = dir.path("bad.html");
+    let o = plumb(&[
+        "report",
+        s(model()),
+        s(&demo("holdout/robot4_day1.csv")),
+        "--out",
+        s(&bad),
+        "--truth",
+        s(&truth),
+    ]);
+    assert_eq!(o.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("truth.csv:2:") && err.contains("onset_row"),
+        "{err}"
+    );
+    assert!(!bad.exists());
+
+    let o = plumb(&[
+        "report",
+        s(&dir.path("none.plumb")),
+        s(&demo("holdout/robot4_day1.csv")),
+        "--out",
+        s(&bad),
+    ]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(!bad.exists());
+    // No temporary file left behind.
+    let left: Vec<_> = std::fs::read_dir(&dir.0)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .filter(|e| e.file_name().to_string_lossy().contains(".tmp"))
+        .collect();
+    assert!(left.is_empty());
+}
+
+#[test]
+fn contributions_sum_to_the_detector_spe() {
+    let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
+    let det = Detector::new(file.model.to_device().unwrap()).unwrap();
+    let d = file.model.mean.len();
+    let text = std::fs::read_to_string(demo("drift/loose_mount.csv")).unwrap();
+    let (mut z, mut r2) = (vec![0f64; d], vec![0f64; d]);
+    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
+    let cols: Vec<usize> = file
+        .labels
+        .iter()
+        .map(|l| {
+            header
+                .iter()
+                .position(|h| h.split('[').next() == Some(l.name.as_str()))
+                .unwrap()
+        })
+        .collect();
+    for row in text.lines().skip(1).step_by(97).take(60) {
+        let cells: Vec<&str> = row.split(',').collect();
+        let x: Vec<f32> = cols
+            .iter()
+            .map(|&c| cells[c].parse::<f64>().unwrap() as f32)
+            .collect();
+        let spe = det.score(&x).unwrap().scores.spe;
+        plumb::report::residual_sq(&file.model, &x, &mut z, &mut r2);
+        let sum: f64 = r2.iter().sum();
+        // f32 detector arithmetic against f64: relative error of a few ulp
+        // times d, with an absolute floor for tiny SPE.
+        assert!(
+            (sum - f64::from(spe)).abs() <= 1e-4 * sum.max(1.0),
+            "{sum} vs {spe}"
+        );
+    }
+}
+
+#[test]
+fn a_million_samples_stay_under_two_megabytes() {
+    let dir = Scratch::new("big");
+    let train = dir.write("train.csv", &log_text(4, 3000, 11));
+    let model = dir.path("small.plumb");
+    let o = plumb(&[
+        "fit",
+        s(&train),
+        "--out",
+        s(&model),
+        "--mixture",
+        "2",
+        "--restarts",
+        "1",
+        "--quiet",
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let big = dir.write("big.csv", &log_text(4, 1_000_000, 12));
+    let out = dir.path("big.html");
+    let o = plumb(&[
+        "report",
+        s(&model),
+        s(&big),
+        "--train",
+        s(&train),
+        "--out",
+        s(&out),
+        "--quiet",
+    ]);
+    assert!(
+        matches!(o.status.code(), Some(0) | Some(1)),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let html = std::fs::read_to_string(&out).unwrap();
+    assert_balanced(&html);
+    assert!(html.contains("1\u{202f}000\u{202f}000 samples"));
+    assert!(html.len() < 2_000_000, "10^6 samples: {} bytes", html.len());
+}
+
+/// Runs a command with a deadline; kills it when the deadline passes.
+fn run_with_deadline(cmd: &mut Command, limit: Duration) -> Output {
+    let child = cmd
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start chromium");
+    let id = child.id();
+    let start = Instant::now();
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        let _ = tx.send(child.wait_with_output());
+    });
+    loop {
+        if let Ok(out) = rx.try_recv() {
+            return out.expect("chromium output");
+        }
+        if start.elapsed() > limit {
+            let _ = Command::new("kill").arg(id.to_string()).status();
+            panic!("chromium did not finish in {limit:?}");
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+}
+
+fn chromium() -> Option<PathBuf> {
+    let path = std::env::var_os("PATH")?;
+    std::env::split_paths(&path)
+        .map(|d| d.join("chromium"))
+        .find(|p| p.is_file())
+}
+
+fn chromium_args(profile: &Path) -> Vec<String> {
+    [
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+    ]
+    .iter()
+    .map(|s| s.to_string())
+    .chain([format!("--user-data-dir={}", profile.display())])
+    .collect()
+}
+
+#[test]
+fn a_browser_renders_the_report() {
+    if std::env::var_os("PLUMB_NO_BROWSER").is_some_and(|v| v == "1") {
+        println!("browser check skipped: PLUMB_NO_BROWSER=1");
+        return;
+    }
+    let Some(chrome) = chromium() else {
+        panic!(
+            "chromium not found on PATH: the browser check needs it (scripts/setup.sh installs it; \
+             or apt-get install -y chromium). Set PLUMB_NO_BROWSER=1 to skip this check on purpose."
+        );
+    };
+    let (_d, html, out, _) = drift_report();
+    let dir = Scratch::new("browser");
+    let url = format!("file://{}", out.canonicalize().unwrap().display());
+
+    // The parsed DOM keeps every SVG element (none dropped as invalid).
+    let dom = run_with_deadline(
+        Command::new(&chrome)
+            .args(chromium_args(&dir.path("profile-dom")))
+            .arg("--dump-dom")
+            .arg(&url),
+        Duration::from_secs(120),
+    );
+    assert!(
+        dom.status.success(),
+        "{}",
+        String::from_utf8_lossy(&dom.stderr)
+    );
+    let dom = String::from_utf8_lossy(&dom.stdout);
+    for tag in [
+        "<svg",
+        "<ellipse",
+        "<rect class=\"flag\"",
+        "<path class=\"onset\"",
+        "class=\"timeline\"",
+    ] {
+        assert_eq!(
+            count(&dom, tag),
+            count(html, tag),
+            "{tag} in the parsed DOM"
+        );
+    }
+
+    // A screenshot: a blank page compresses to a few kilobytes.
+    let png = dir.path("report.png");
+    let shot = run_with_deadline(
+        Command::new(&chrome)
+            .args(chromium_args(&dir.path("profile-shot")))
+            .arg(format!("--screenshot={}", png.display()))
+            .arg("--window-size=1400,3000")
+            .arg(&url),
+        Duration::from_secs(120),
+    );
+    assert!(
+        shot.status.success(),
+        "{}",
+        String::from_utf8_lossy(&shot.stderr)
+    );
+    let bytes = std::fs::read(&png).expect("screenshot written");
+    assert_eq!(&bytes[..8], b"\x89PNG\r\n\x1a\n");
+    assert!(
+        bytes.len() > 60_000,
+        "screenshot looks blank: {} bytes",
+        bytes.len()
+    );
+}
