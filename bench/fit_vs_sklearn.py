@@ -15,6 +15,8 @@ generator, seeded), writes them as CSV and as a .npy array, then times:
 Each run is a separate process; peak memory is that process's max RSS
 (os.wait4). Prints a Markdown table with ratios.
 
+Needs GNU time (/usr/bin/time, Debian package `time`).
+
 usage: bench/fit_vs_sklearn.py [--rows 1000000] [--restarts 4] [--plumb target/release/plumb]
 """
 import argparse
@@ -31,15 +33,20 @@ ROOT = os.path.dirname(HERE)
 
 
 def run_measured(cmd, env=None):
-    """Runs cmd; returns (seconds, max RSS in MiB, stdout)."""
-    t0 = time.perf_counter()
-    p = subprocess.Popen(cmd, stdout=subprocess.PIPE, env=env)
-    out = p.stdout.read()
-    _, status, ru = os.wait4(p.pid, 0)
-    dt = time.perf_counter() - t0
-    if status != 0:
-        sys.exit(f"failed ({status}): {' '.join(cmd)}")
-    return dt, ru.ru_maxrss / 1024.0, out.decode()
+    """Runs cmd under GNU time; returns (seconds, max RSS in MiB, stdout).
+
+    GNU time reports the RSS of the program itself (after exec); the rusage
+    of a forked child would also count the pages of this Python process.
+    """
+    with tempfile.NamedTemporaryFile("r") as rss:
+        t0 = time.perf_counter()
+        p = subprocess.run(["/usr/bin/time", "-f", "%M", "-o", rss.name, *cmd],
+                           stdout=subprocess.PIPE, env=env)
+        dt = time.perf_counter() - t0
+        if p.returncode != 0:
+            sys.exit(f"failed ({p.returncode}): {' '.join(cmd)}")
+        kib = int(rss.read().split()[-1])
+    return dt, kib / 1024.0, p.stdout.decode()
 
 
 def generate(rows, path_csv, path_npy, seed=7):
@@ -114,13 +121,19 @@ def main():
     ap.add_argument("--components", type=int, default=8)
     ap.add_argument("--plumb", default=os.path.join(ROOT, "target/release/plumb"))
     ap.add_argument("--keep", help="folder to keep the generated data in")
+    ap.add_argument("--generate-only", action="store_true", help=argparse.SUPPRESS)
     a = ap.parse_args()
+    if a.generate_only:
+        generate(a.rows, os.path.join(a.keep, "rows.csv"), os.path.join(a.keep, "rows.npy"))
+        return
     work = a.keep or tempfile.mkdtemp(prefix="plumb-bench-")
     os.makedirs(work, exist_ok=True)
     csv, npy = os.path.join(work, "rows.csv"), os.path.join(work, "rows.npy")
     if not os.path.exists(csv):
         print(f"generating {a.rows} x 32 rows in {work} ...", file=sys.stderr)
-        generate(a.rows, csv, npy)
+        # In a child process, so this process stays small.
+        subprocess.run([sys.executable, __file__, "--generate-only", "--rows", str(a.rows),
+                        "--keep", work], check=True)
     size = os.path.getsize(csv) / 2**20
 
     py = sys.executable
