@@ -1,0 +1,1072 @@
+//! The board firmware end to end: `plumb-board-mps2` built for the Cortex-M4F
+//! and run under QEMU (`mps2-an386`), talked to over its UART through the
+//! host tool's link (`plumb::link`, `plumb::device`), and held to the host:
+//!
+//! * every score the board reports has the bits the host's
+//!   `plumb_firmware::Detector` computes for the same samples, parsed the
+//!   same way; drift raised/cleared and sensor-fault messages come at the
+//!   same samples; sequence numbers are contiguous; the flags equal
+//!   `plumb replay`'s for the same rows;
+//! * a second model uploaded over the link takes over; corrupt uploads (bad
+//!   CRC, over capacity, truncated, interrupted) are refused and the old
+//!   model keeps scoring exactly as before;
+//! * with bytes dropped, flipped and inserted in both directions, no damaged
+//!   message is accepted and resends recover every drift event;
+//! * a slot image from `plumb image`, loaded by QEMU, is what the board boots.
+//!
+//! The board is built once (`cargo build --release` in
+//! `firmware/boards/mps2-an386`, reused by every test); each QEMU run has a
+//! deadline and is killed when its link is dropped.
+
+use plumb::device::{self, FeedConfig, Patience, UploadConfig, UploadOutcome};
+use plumb::link::{Chunk, ExecTransport, Link, LinkStats, Received, Transport};
+use plumb::logs::{BadCells, LogSet, ReadOptions, Selection};
+use plumb::progress::Stage;
+use plumb::rng::Rng;
+use plumb_firmware::{Detector, DriftState, Event, Fault};
+use plumb_model::file::ModelFile;
+use plumb_model::wire::{
+    DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, Reason, Request, Slot, State,
+};
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::OnceLock;
+use std::time::{Duration, Instant};
+
+// ------------------------------------------------------------------ set-up
+
+fn root() -> PathBuf {
+    plumb_checks::root()
+}
+
+fn board_dir() -> PathBuf {
+    root().join("firmware/boards/mps2-an386")
+}
+
+/// The board's ELF, built once per test process.
+fn board_elf() -> &'static Path {
+    static ELF: OnceLock<PathBuf> = OnceLock::new();
+    ELF.get_or_init(|| {
+        let dir = board_dir();
+        let start = Instant::now();
+        let out = Command::new(std::env::var_os("CARGO").unwrap_or_else(|| "cargo".into()))
+            .current_dir(&dir)
+            .args([
+                "build",
+                "--release",
+                "--bin",
+                "plumb-board-mps2",
+                "--target-dir",
+            ])
+            .arg(dir.join("target"))
+            // The board's own .cargo/config.toml sets the target; nothing of
+            // the outer build may leak in.
+            .env_remove("CARGO_TARGET_DIR")
+            .env_remove("CARGO_BUILD_TARGET")
+            .env_remove("RUSTFLAGS")
+            .env_remove("CARGO_ENCODED_RUSTFLAGS")
+            .env_remove("PLUMB_MODEL")
+            .output()
+            .expect("run cargo to build the board");
+        assert!(
+            out.status.success(),
+            "building the board failed:\n{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        eprintln!("board built in {:.1} s", start.elapsed().as_secs_f64());
+        dir.join("target/thumbv7em-none-eabihf/release/plumb-board-mps2")
+    })
+}
+
+/// The QEMU command line (as `run-qemu.sh` has it) with `extra` before
+/// `-kernel`.
+fn qemu(extra: &[String]) -> Command {
+    let mut c = Command::new(std::env::var_os("QEMU").unwrap_or_else(|| "qemu-system-arm".into()));
+    c.args([
+        "-machine",
+        "mps2-an386",
+        "-display",
+        "none",
+        "-monitor",
+        "none",
+        "-serial",
+        "stdio",
+        "-semihosting-config",
+        "enable=on,target=native",
+    ]);
+    c.args(extra);
+    c.arg("-kernel").arg(board_elf());
+    c
+}
+
+/// Longest a QEMU run may take before the test fails.
+const RUN_LIMIT: Duration = Duration::from_secs(240);
+
+/// A running board.
+struct Board {
+    link: Link,
+    started: Instant,
+}
+
+impl Board {
+    fn start(extra: &[String]) -> Board {
+        Self::start_with(extra, |t| Box::new(t))
+    }
+
+    fn start_with(
+        extra: &[String],
+        wrap: impl FnOnce(ExecTransport) -> Box<dyn Transport>,
+    ) -> Board {
+        let t = ExecTransport::spawn_command(qemu(extra), "qemu-system-arm").expect("start QEMU");
+        let mut link = Link::new(wrap(t));
+        link.set_resend_timeout(Duration::from_millis(300));
+        Board {
+            link,
+            started: Instant::now(),
+        }
+    }
+
+    fn check_time(&self) {
+        assert!(
+            self.started.elapsed() < RUN_LIMIT,
+            "the QEMU run took longer than {RUN_LIMIT:?}"
+        );
+    }
+
+    /// Ends the run: sign-off, every remaining frame into `frames`, the
+    /// board's closing line parsed.
+    fn finish(mut self, frames: &mut Vec<Received>) -> Closing {
+        self.check_time();
+        self.link
+            .close(Duration::from_secs(20), |r| frames.push(r.clone()))
+            .expect("close the link");
+        let status = self.link.exit_status();
+        let text = self.link.tail_text();
+        assert_eq!(
+            status.and_then(|s| s.code()),
+            Some(0),
+            "QEMU exit status {status:?}; closing text {text:?}; stderr: {}",
+            self.link.diagnostics()
+        );
+        Closing::parse(&text, self.link.stats())
+    }
+}
+
+/// The board's closing line (`plumb-board-mps2 done key=value ...`).
+#[derive(Debug)]
+struct Closing {
+    fields: std::collections::BTreeMap<String, u64>,
+    host: LinkStats,
+}
+
+impl Closing {
+    fn parse(text: &str, host: LinkStats) -> Closing {
+        let line = text
+            .lines()
+            .find(|l| l.starts_with("plumb-board-mps2 done"))
+            .unwrap_or_else(|| panic!("no closing line in {text:?}"));
+        let fields = line
+            .split_whitespace()
+            .filter_map(|kv| kv.split_once('='))
+            .map(|(k, v)| (k.to_string(), v.parse().expect("number")))
+            .collect();
+        Closing { fields, host }
+    }
+
+    fn get(&self, k: &str) -> u64 {
+        *self
+            .fields
+            .get(k)
+            .unwrap_or_else(|| panic!("no {k} in {:?}", self.fields))
+    }
+}
+
+fn patience(ms: u64) -> Patience {
+    Patience {
+        reply: Duration::from_millis(ms),
+        tries: 20,
+    }
+}
+
+fn default_model() -> Vec<u8> {
+    std::fs::read(board_dir().join("default.plumb")).expect("read default.plumb")
+}
+
+/// A second model: the default with every CUSUM and EWMA limit halved and
+/// its own id, so it flags earlier and the greeting tells them apart.
+fn second_model() -> Vec<u8> {
+    let mut f = ModelFile::from_bytes(&default_model()).expect("default model");
+    f.model.meta.id ^= 0x5a5a_5a5a;
+    let m = &mut f.model.monitor;
+    for lim in [&mut m.spe, &mut m.t2, &mut m.nll] {
+        lim.cusum_limit *= 0.5;
+        lim.ewma_limit *= 0.5;
+    }
+    f.to_bytes().expect("encode the second model")
+}
+
+/// Rows `rows` of a log, features in the model's order, parsed as the tool
+/// parses them (f64, then f32; empty and NaN cells as NaN).
+fn read_rows(model: &ModelFile, log: &Path, rows: std::ops::Range<u64>) -> Vec<Vec<f32>> {
+    let opts = ReadOptions {
+        bad_cells: BadCells::PassAsNan,
+        ..ReadOptions::default()
+    };
+    let set = LogSet::open_for_labels(&[log.to_path_buf()], &model.labels, opts).expect("open log");
+    let mut out = Vec::new();
+    set.for_each(&Selection(vec![rows]), &Stage::hidden(), |c| {
+        for row in c.iter_rows() {
+            out.push(row.iter().map(|&v| v as f32).collect());
+        }
+        Ok(())
+    })
+    .expect("read log");
+    out
+}
+
+fn drift_log(name: &str) -> PathBuf {
+    root().join("demo-logs/drift").join(name)
+}
+
+/// What the board must say for `samples`, computed by the host detector.
+#[derive(Debug, Default, PartialEq)]
+struct Expected {
+    /// Per sample: score bits (None when faulted) and state.
+    reports: Vec<(Option<[u32; 3]>, State)>,
+    /// Retained events in order: ("raised"/"cleared"/"fault", sample, detail).
+    events: Vec<(&'static str, u64, String)>,
+}
+
+fn wire_state(s: DriftState) -> State {
+    match s {
+        DriftState::Priming => State::Priming,
+        DriftState::Watching => State::Watching,
+        DriftState::Drifting => State::Drifting,
+    }
+}
+
+fn fault_detail(f: FaultKind) -> String {
+    format!("{f:?}")
+}
+
+fn host_fault(f: Fault) -> FaultKind {
+    plumb_firmware::endpoint::wire_fault(f)
+}
+
+fn expected(model: &[u8], samples: &[Vec<f32>]) -> Expected {
+    let mut det = Detector::from_file(model).expect("host detector");
+    let mut e = Expected::default();
+    let mut last_fault = None;
+    for x in samples {
+        let o = det.update(x);
+        e.reports.push((
+            o.scores
+                .map(|s| [s.spe.to_bits(), s.t2.to_bits(), s.nll.to_bits()]),
+            wire_state(o.state),
+        ));
+        if let Some(f) = o.fault {
+            if last_fault != Some(f) {
+                e.events
+                    .push(("fault", o.index, fault_detail(host_fault(f))));
+            }
+        }
+        last_fault = o.fault;
+        match o.event {
+            Some(Event::Raised { drivers }) => {
+                let s = o.scores.unwrap_or_default();
+                let top: Vec<u8> = o.top.iter().map(|c| c.feature).collect();
+                e.events.push((
+                    "raised",
+                    o.index,
+                    format!(
+                        "drivers={} bits={:08x}/{:08x}/{:08x} top={top:?}",
+                        drivers.0,
+                        s.spe.to_bits(),
+                        s.t2.to_bits(),
+                        s.nll.to_bits()
+                    ),
+                ));
+            }
+            Some(Event::Cleared) => e.events.push(("cleared", o.index, String::new())),
+            _ => {}
+        }
+    }
+    e
+}
+
+/// What the board said, in the same shape (`base`: its first sample index).
+fn observed(frames: &[Received], base: u64, n: usize) -> Expected {
+    let mut e = Expected {
+        reports: vec![(None, State::Priming); n],
+        events: Vec::new(),
+    };
+    let mut seen = vec![false; n];
+    for r in frames {
+        match &r.frame.msg {
+            DeviceMsg::ScoreReport(rep) => {
+                let i = (rep.sample - base) as usize;
+                assert!(!seen[i], "two reports for sample {i}");
+                seen[i] = true;
+                e.reports[i] = (
+                    rep.scores
+                        .map(|s| [s.spe.to_bits(), s.t2.to_bits(), s.nll.to_bits()]),
+                    rep.state,
+                );
+            }
+            DeviceMsg::DriftRaised(d) => {
+                let top: Vec<u8> = d.top.iter().map(|s| s.feature).collect();
+                e.events.push((
+                    "raised",
+                    d.sample - base,
+                    format!(
+                        "drivers={} bits={:08x}/{:08x}/{:08x} top={top:?}",
+                        d.drivers,
+                        d.scores.spe.to_bits(),
+                        d.scores.t2.to_bits(),
+                        d.scores.nll.to_bits()
+                    ),
+                ));
+            }
+            DeviceMsg::DriftCleared(c) => {
+                e.events.push(("cleared", c.sample - base, String::new()))
+            }
+            DeviceMsg::SensorFault(f) => {
+                e.events
+                    .push(("fault", f.sample - base, fault_detail(f.fault)))
+            }
+            _ => {}
+        }
+    }
+    e
+}
+
+/// Feeds `samples` (reset first, reports on, one in flight) and returns
+/// every frame received meanwhile.
+fn feed(
+    board: &mut Board,
+    samples: &[Vec<f32>],
+    reply_ms: u64,
+) -> (Vec<Received>, device::FeedSummary) {
+    let mut frames = Vec::new();
+    let cfg = FeedConfig {
+        window: 1,
+        reset: true,
+        reports_off_after: true,
+        patience: patience(reply_ms),
+    };
+    let sum = device::feed(
+        &mut board.link,
+        samples.iter().map(|x| Ok(x.clone())),
+        cfg,
+        &mut |r| frames.push(r.clone()),
+    )
+    .unwrap_or_else(|e| {
+        panic!(
+            "feeding failed: {e}\nQEMU stderr: {}",
+            board.link.diagnostics()
+        )
+    });
+    board.check_time();
+    (frames, sum)
+}
+
+/// Greeting of the running model.
+fn greet(board: &mut Board) -> plumb_model::wire::Greeting {
+    device::greeting(&mut board.link, patience(2000), &mut |_| {}).expect("greeting")
+}
+
+fn report_mismatches(want: &Expected, got: &Expected) -> String {
+    let mut s = String::new();
+    for (i, (w, g)) in want.reports.iter().zip(&got.reports).enumerate() {
+        if w != g {
+            s.push_str(&format!("sample {i}: host {w:?}, board {g:?}\n"));
+            if s.len() > 2000 {
+                break;
+            }
+        }
+    }
+    if want.events != got.events {
+        s.push_str(&format!(
+            "events: host {:?}\nboard {:?}\n",
+            want.events, got.events
+        ));
+    }
+    s
+}
+
+fn seqs_contiguous(frames: &[Received]) {
+    let seqs: Vec<u32> = frames.iter().map(|r| r.frame.seq).collect();
+    for w in seqs.windows(2) {
+        assert_eq!(w[1], w[0] + 1, "sequence numbers not contiguous: {seqs:?}");
+    }
+}
+
+// ------------------------------------------------------------------ tests
+
+/// Scores, flags, faults and sequence numbers equal the host's, and the
+/// flags equal `plumb replay`'s, for a drift log and a sensor-dropout log.
+#[test]
+fn board_agrees_with_the_host_bit_for_bit() {
+    let model = default_model();
+    let file = ModelFile::from_bytes(&model).unwrap();
+    let mut board = Board::start(&[]);
+    let mut all = Vec::new();
+    let g = greet(&mut board);
+    assert_eq!(
+        g.model_id, file.model.meta.id,
+        "the board runs default.plumb"
+    );
+    assert_eq!(g.active, None, "built-in model");
+
+    let scratch = Scratch::new("qemu-agree");
+    for (log, rows) in [
+        ("bearing_wear.csv", 2500..4000),
+        ("sensor_dropout.csv", 2500..3500),
+    ] {
+        let samples = read_rows(&file, &drift_log(log), rows.clone());
+        let (frames, sum) = feed(&mut board, &samples, 2000);
+        assert_eq!(
+            (sum.samples, sum.taken, sum.resent),
+            (samples.len() as u64, samples.len() as u64, 0)
+        );
+        let want = expected(&model, &samples);
+        let got = observed(&frames, sum.base, samples.len());
+        let diff = report_mismatches(&want, &got);
+        assert!(
+            diff.is_empty(),
+            "{log}: the board differs from the host:\n{diff}"
+        );
+        assert!(
+            !want.events.is_empty(),
+            "{log}: the slice should hold events (raised or faults)"
+        );
+
+        // The same rows through `plumb replay` (the library behind
+        // `plumb replay --json`): same flags.
+        let slice = scratch.path(log);
+        write_slice(&drift_log(log), rows.clone(), &slice);
+        let rep = plumb::replay::replay(
+            &file,
+            &[slice],
+            ReadOptions::default(),
+            &Stage::hidden(),
+            |_| Ok(()),
+        )
+        .expect("replay");
+        let json = serde_json::to_value(&rep[0]).unwrap();
+        let flags = json["flags"].as_array().unwrap();
+        let raised: Vec<(u64, Option<u64>)> = flags
+            .iter()
+            .map(|f| (f["raised_at"].as_u64().unwrap(), f["cleared_at"].as_u64()))
+            .collect();
+        let mut board_flags: Vec<(u64, Option<u64>)> = Vec::new();
+        for (kind, s, _) in &got.events {
+            match *kind {
+                "raised" => board_flags.push((*s, None)),
+                "cleared" => board_flags.last_mut().expect("cleared after raised").1 = Some(*s),
+                _ => {}
+            }
+        }
+        assert_eq!(board_flags, raised, "{log}: flags differ from plumb replay");
+        assert_eq!(json["samples"].as_u64(), Some(samples.len() as u64));
+        let board_faults = got.reports.iter().filter(|r| r.0.is_none()).count() as u64;
+        assert_eq!(
+            json["faults"].as_u64(),
+            Some(board_faults),
+            "{log}: fault count"
+        );
+        for (f, (_, _, detail)) in flags
+            .iter()
+            .zip(got.events.iter().filter(|e| e.0 == "raised"))
+        {
+            let v = &f["values"];
+            let bits = format!(
+                "{:08x}/{:08x}/{:08x}",
+                (v["spe"].as_f64().unwrap() as f32).to_bits(),
+                (v["t2"].as_f64().unwrap() as f32).to_bits(),
+                (v["nll"].as_f64().unwrap() as f32).to_bits()
+            );
+            assert!(
+                detail.contains(&bits),
+                "{log}: raised scores {detail} vs replay {bits}"
+            );
+        }
+        eprintln!(
+            "{log} rows {rows:?}: {} samples, {} events, {} faulted samples; identical bits",
+            samples.len(),
+            got.events.len(),
+            board_faults
+        );
+        all.extend(frames);
+    }
+    let closing = board.finish(&mut all);
+    seqs_contiguous(&all);
+    assert_eq!(closing.host.missing, 0, "no gaps on a clean link");
+    assert_eq!(closing.get("crc_errors") + closing.get("framing_errors"), 0);
+    let raised = all
+        .iter()
+        .filter(|r| matches!(r.frame.msg, DeviceMsg::DriftRaised(_)))
+        .count() as u64;
+    assert_eq!(
+        closing.get("drift_rises"),
+        raised,
+        "one rise of the drift line per flag"
+    );
+    assert!(closing.get("stack_hwm") < closing.get("stack_size"));
+    eprintln!("closing: {:?}", closing.fields);
+}
+
+fn write_slice(log: &Path, rows: std::ops::Range<u64>, out: &Path) {
+    let text = std::fs::read_to_string(log).unwrap();
+    let mut lines = text.lines();
+    let mut s = String::from(lines.next().unwrap());
+    s.push('\n');
+    for l in lines
+        .skip(rows.start as usize)
+        .take((rows.end - rows.start) as usize)
+    {
+        s.push_str(l);
+        s.push('\n');
+    }
+    std::fs::write(out, s).unwrap();
+}
+
+fn refused(outcome: UploadOutcome) -> (Request, Reason) {
+    match outcome {
+        UploadOutcome::Refused { request, reason } => (request, reason),
+        other => panic!("expected a refusal, got {other:?}"),
+    }
+}
+
+/// A second model over the link takes over; damaged uploads are refused
+/// and the running model keeps scoring exactly as before.
+#[test]
+fn uploads_switch_only_after_every_check() {
+    let model = default_model();
+    let file = ModelFile::from_bytes(&model).unwrap();
+    let second = second_model();
+    let samples = read_rows(&file, &drift_log("new_floor.csv"), 3000..3400);
+    let before = expected(&model, &samples);
+    let mut board = Board::start(&[]);
+    let p = patience(2000);
+    let cfg = UploadConfig {
+        patience: p,
+        ..UploadConfig::default()
+    };
+    let up = |board: &mut Board, bytes: &[u8], cfg: UploadConfig| {
+        device::upload(&mut board.link, bytes, cfg, &mut |_| {}, &mut |_| {}).expect("upload")
+    };
+    let old_id = file.model.meta.id;
+    let still_old = |board: &mut Board, what: &str| {
+        let g = greet(board);
+        assert_eq!((g.model_id, g.active), (old_id, None), "after {what}");
+        let (frames, sum) = feed(board, &samples, 2000);
+        let got = observed(&frames, sum.base, samples.len());
+        let diff = report_mismatches(&before, &got);
+        assert!(
+            diff.is_empty(),
+            "after {what}, the old model scores differently:\n{diff}"
+        );
+    };
+
+    // The file's own CRC is wrong (the transfer CRC matches what is sent).
+    let mut bad_crc = second.clone();
+    let k = bad_crc.len() / 2;
+    bad_crc[k] ^= 0x10;
+    let (req, reason) = refused(up(&mut board, &bad_crc, cfg));
+    assert_eq!(req, Request::UploadCommit);
+    assert!(matches!(reason, Reason::BadCrc { .. }), "{reason:?}");
+    still_old(&mut board, "a bad CRC");
+
+    // Over capacity: larger than a slot, and a mixture the board cannot hold.
+    let (req, reason) = refused(up(&mut board, &vec![0x55; 9000], cfg));
+    assert_eq!(
+        (req, reason),
+        (
+            Request::UploadBegin,
+            Reason::TooLarge {
+                total: 9000,
+                max: 7936
+            }
+        )
+    );
+    let (req, reason) = refused(up(&mut board, &too_many_components(&model), cfg));
+    assert_eq!(req, Request::UploadCommit);
+    assert!(
+        matches!(
+            reason,
+            Reason::OverCapacity {
+                dim: 2,
+                found: 9,
+                max: 8
+            }
+        ),
+        "{reason:?}"
+    );
+    // Truncated: announced and sent as cut, so only the file check sees it.
+    let (_, reason) = refused(up(&mut board, &second[..second.len() - 40], cfg));
+    assert!(matches!(reason, Reason::Truncated { .. }), "{reason:?}");
+    still_old(&mut board, "over-capacity and truncated files");
+
+    // Interrupted: half the chunks, then nothing.
+    let half = UploadConfig {
+        stop_after: Some(second.len() / 2),
+        ..cfg
+    };
+    assert!(matches!(
+        up(&mut board, &second, half),
+        UploadOutcome::Interrupted { .. }
+    ));
+    still_old(&mut board, "an interrupted upload");
+
+    // The real one (it first reports the interrupted upload as abandoned).
+    let mut frames = Vec::new();
+    let outcome = device::upload(
+        &mut board.link,
+        &second,
+        cfg,
+        &mut |r| frames.push(r.clone()),
+        &mut |_| {},
+    )
+    .unwrap();
+    let second_file = ModelFile::from_bytes(&second).unwrap();
+    assert_eq!(
+        outcome,
+        UploadOutcome::Switched {
+            slot: Slot::A,
+            model_id: second_file.model.meta.id,
+            generation: 1
+        }
+    );
+    assert!(frames.iter().any(|r| matches!(
+        r.frame.msg,
+        DeviceMsg::Refused(plumb_model::wire::Refusal {
+            reason: Reason::Abandoned { .. },
+            ..
+        })
+    )));
+    let g = greet(&mut board);
+    assert_eq!(
+        (g.model_id, g.active, g.generation),
+        (second_file.model.meta.id, Some(Slot::A), 1)
+    );
+    let after = expected(&second, &samples);
+    assert_ne!(
+        after.events, before.events,
+        "the second model should flag differently"
+    );
+    let (frames, sum) = feed(&mut board, &samples, 2000);
+    let got = observed(&frames, sum.base, samples.len());
+    let diff = report_mismatches(&after, &got);
+    assert!(diff.is_empty(), "under the second model:\n{diff}");
+    eprintln!(
+        "second model: events {:?} (default model: {:?})",
+        after.events.iter().map(|e| (e.0, e.1)).collect::<Vec<_>>(),
+        before.events.iter().map(|e| (e.0, e.1)).collect::<Vec<_>>()
+    );
+    let mut rest = Vec::new();
+    let closing = board.finish(&mut rest);
+    assert_eq!(
+        closing.get("model_id"),
+        u64::from(second_file.model.meta.id)
+    );
+}
+
+/// The default model with a ninth mixture component: a valid file that no
+/// board of this build can hold.
+fn too_many_components(model: &[u8]) -> Vec<u8> {
+    let mut f = ModelFile::from_bytes(model).unwrap();
+    let m = &mut f.model;
+    let k = usize::from(m.dims.mixture);
+    let c = usize::from(m.dims.components);
+    let extra = 9 - k;
+    for _ in 0..extra {
+        let w = m.weights[k - 1] / 2.0;
+        m.weights[k - 1] = w;
+        m.weights.push(w);
+        let mean: Vec<f32> = m.mix_means[(k - 1) * c..k * c].to_vec();
+        let var: Vec<f32> = m.mix_variances[(k - 1) * c..k * c].to_vec();
+        m.mix_means.extend(mean);
+        m.mix_variances.extend(var);
+    }
+    m.dims.mixture = 9;
+    m.meta.id ^= 0x0909_0909;
+    f.to_bytes().expect("encode a 9-component model")
+}
+
+/// Bytes dropped, flipped and inserted in both directions, and every
+/// drift or fault event frame dropped the first time it passes: nothing
+/// damaged is accepted, the board takes exactly the host's samples, and
+/// resends recover every event.
+#[test]
+fn a_noisy_link_loses_nothing_that_matters() {
+    let model = default_model();
+    let file = ModelFile::from_bytes(&model).unwrap();
+    let mut board = Board::start_with(&[], |t| Box::new(Noisy::new(t, 0x5eed, 1e-4)));
+    let mut all = Vec::new();
+    let mut sums = Vec::new();
+    for (log, rows) in [
+        ("loose_mount.csv", 3000..3500),
+        ("sensor_dropout.csv", 2900..3300),
+    ] {
+        let samples = read_rows(&file, &drift_log(log), rows);
+        let (frames, sum) = feed(&mut board, &samples, 300);
+        assert_eq!(
+            sum.taken,
+            samples.len() as u64,
+            "{log}: the board took every sample once"
+        );
+        let want = expected(&model, &samples);
+        let got = observed(&frames, sum.base, samples.len());
+        // Every report that arrived has the host's bits (reports are not
+        // resent, so some may be missing).
+        let mut missing = 0;
+        for (i, (w, g)) in want.reports.iter().zip(&got.reports).enumerate() {
+            let arrived = frames.iter().any(|r| matches!(&r.frame.msg, DeviceMsg::ScoreReport(rep) if rep.sample - sum.base == i as u64));
+            if arrived {
+                assert_eq!(w, g, "{log}: sample {i}: a damaged report was accepted");
+            } else {
+                missing += 1;
+            }
+        }
+        assert_eq!(
+            got.events, want.events,
+            "{log}: events differ (lost or damaged)"
+        );
+        assert!(!want.events.is_empty());
+        eprintln!(
+            "{log}: {} samples, {} events all present, {missing} reports lost, {} samples resent",
+            samples.len(),
+            want.events.len(),
+            sum.resent
+        );
+        sums.push(sum);
+        all.extend(frames);
+    }
+    let stats = board.link.stats();
+    let closing = board.finish(&mut all);
+    let h = closing.host;
+    eprintln!(
+        "host side: {:?}; board side: crc_errors={} framing_errors={} overflows={} undecodable={}; link stats {:?}",
+        h.frames,
+        closing.get("crc_errors"),
+        closing.get("framing_errors"),
+        closing.get("overflows"),
+        closing.get("undecodable"),
+        stats
+    );
+    assert_eq!(h.lost, 0, "no event lost for good");
+    assert!(
+        h.recovered >= 3,
+        "events were dropped on purpose and must come back: {h:?}"
+    );
+    assert!(
+        h.frames.crc_errors + h.frames.framing_errors > 0,
+        "noise reached the host: {h:?}"
+    );
+    assert!(
+        closing.get("crc_errors") + closing.get("framing_errors") + closing.get("overflows") > 0,
+        "noise reached the board"
+    );
+}
+
+/// A slot image written by `plumb image` and loaded by QEMU is what the
+/// board boots: the newest valid slot wins over the built-in model.
+#[test]
+fn a_slot_image_is_what_the_board_boots() {
+    let second = second_model();
+    let id = ModelFile::from_bytes(&second).unwrap().model.meta.id;
+    let scratch = Scratch::new("qemu-image");
+    let hex = scratch.path("slot-b.hex");
+    let bin = scratch.path("slot-a.bin");
+    let model_path = scratch.path("second.plumb");
+    std::fs::write(&model_path, &second).unwrap();
+    for args in [
+        vec![
+            "image",
+            "--board",
+            "mps2-an386",
+            "--slot",
+            "b",
+            "--generation",
+            "5",
+        ],
+        vec![
+            "image",
+            "--board",
+            "mps2-an386",
+            "--slot",
+            "a",
+            "--generation",
+            "2",
+            "--format",
+            "bin",
+        ],
+    ] {
+        let out = if args.contains(&"bin") { &bin } else { &hex };
+        let mut argv: Vec<String> = vec!["plumb".into()];
+        argv.extend(args.iter().map(|s| s.to_string()));
+        argv.push(model_path.display().to_string());
+        argv.push("--out".into());
+        argv.push(out.display().to_string());
+        let cli = <plumb::cli::Cli as clap::Parser>::try_parse_from(&argv).expect("parse");
+        assert_eq!(plumb::cli::run(cli).expect("plumb image"), 0);
+    }
+    // Slot B (generation 5, Intel HEX) alone, then both: B still wins.
+    let loader_hex = format!("loader,file={}", hex.display());
+    let loader_bin = format!("loader,file={},addr=0x40000,force-raw=on", bin.display());
+    for (extra, slot, generation) in [
+        (vec!["-device".to_string(), loader_hex.clone()], Slot::B, 5),
+        (vec!["-device".to_string(), loader_bin.clone()], Slot::A, 2),
+        (
+            vec![
+                "-device".to_string(),
+                loader_hex,
+                "-device".to_string(),
+                loader_bin,
+            ],
+            Slot::B,
+            5,
+        ),
+    ] {
+        let mut board = Board::start(&extra);
+        let g = greet(&mut board);
+        assert_eq!(
+            (g.model_id, g.active, g.generation),
+            (id, Some(slot), generation),
+            "{extra:?}"
+        );
+        board.finish(&mut Vec::new());
+    }
+}
+
+/// `plumb feed` itself (the command, in process): its trace has the host's
+/// bits, and the samples it records read back to the same values.
+#[test]
+fn plumb_feed_trace_has_the_host_bits() {
+    let model_path = board_dir().join("default.plumb");
+    let model = default_model();
+    let file = ModelFile::from_bytes(&model).unwrap();
+    let log = drift_log("new_floor.csv");
+    let rows = 2900..3400;
+    let samples = read_rows(&file, &log, rows.clone());
+    let want = expected(&model, &samples);
+    let scratch = Scratch::new("qemu-feed-cli");
+    let trace = scratch.path("trace.csv");
+    let record = scratch.path("events.csv");
+    let recorded = scratch.path("samples.csv");
+    let exec = format!(
+        "{} {}",
+        board_dir().join("run-qemu.sh").display(),
+        board_elf().display()
+    );
+    let argv: Vec<String> = [
+        "plumb",
+        "feed",
+        &model_path.display().to_string(),
+        &log.display().to_string(),
+        "--rows",
+        "2900..3400",
+        "--exec",
+        &exec,
+        "--trace",
+        &trace.display().to_string(),
+        "--record",
+        &record.display().to_string(),
+        "--record-samples",
+        &recorded.display().to_string(),
+        "--quiet",
+    ]
+    .iter()
+    .map(|s| s.to_string())
+    .collect();
+    let cli = <plumb::cli::Cli as clap::Parser>::try_parse_from(&argv).expect("parse");
+    let code = plumb::cli::run(cli).expect("plumb feed");
+    let raised = want.events.iter().any(|e| e.0 == "raised");
+    assert_eq!(
+        code,
+        u8::from(raised),
+        "exit code 1 exactly when a flag rose"
+    );
+
+    let text = std::fs::read_to_string(&trace).unwrap();
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some(plumb::cmd::feed::TRACE_HEADER));
+    let mut n = 0;
+    for (i, line) in lines.enumerate() {
+        let c: Vec<&str> = line.split(',').collect();
+        assert_eq!(c[0], i.to_string());
+        let (scores, _) = want.reports[i];
+        match scores {
+            Some(bits) => {
+                for k in 0..3 {
+                    let hex = u32::from_str_radix(c[1 + k].trim_start_matches("0x"), 16).unwrap();
+                    let dec: f32 = c[4 + k].parse().unwrap();
+                    assert_eq!(hex, bits[k], "sample {i} score {k} (hex)");
+                    assert_eq!(dec.to_bits(), bits[k], "sample {i} score {k} (decimal)");
+                }
+            }
+            None => assert_eq!(c[1], ""),
+        }
+        n += 1;
+    }
+    assert_eq!(n, samples.len());
+    let events = std::fs::read_to_string(&record).unwrap();
+    assert!(events.starts_with(plumb::events::RECORD_HEADER));
+    // The recorded samples read back (as `plumb fit` reads logs) to the
+    // very values sent.
+    let back = read_rows(&file, &recorded, 0..u64::MAX);
+    assert_eq!(back.len(), samples.len());
+    for (a, b) in back.iter().zip(&samples) {
+        let a: Vec<u32> = a.iter().map(|v| v.to_bits()).collect();
+        let b: Vec<u32> = b.iter().map(|v| v.to_bits()).collect();
+        assert_eq!(a, b);
+    }
+}
+
+/// A fresh directory under the system's temporary directory, removed when
+/// dropped.
+struct Scratch(PathBuf);
+
+impl Scratch {
+    fn new(name: &str) -> Scratch {
+        let dir = std::env::temp_dir().join(format!("plumb-{name}-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        std::fs::create_dir_all(&dir).expect("create a scratch directory");
+        Scratch(dir)
+    }
+
+    fn path(&self, name: &str) -> PathBuf {
+        self.0.join(name)
+    }
+}
+
+impl Drop for Scratch {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+// ------------------------------------------------------------------ noise
+
+/// A transport that damages the byte stream in both directions: each byte
+/// is dropped, flipped (one random bit) or followed by a random byte with
+/// probability `rate` each, and every retained event frame from the board
+/// (drift raised/cleared, sensor fault) is dropped whole the first time it
+/// passes, so only a resend can bring it. After the host's sign-off the
+/// stream passes clean (the board's closing line must arrive).
+struct Noisy {
+    inner: ExecTransport,
+    rng: Rng,
+    rate: f64,
+    /// Board bytes since the last zero.
+    partial: Vec<u8>,
+    dropped_events: std::collections::HashSet<u32>,
+    clean: bool,
+}
+
+impl Noisy {
+    fn new(inner: ExecTransport, seed: u64, rate: f64) -> Self {
+        Noisy {
+            inner,
+            rng: Rng::new(seed, 7),
+            rate,
+            partial: Vec::new(),
+            dropped_events: Default::default(),
+            clean: false,
+        }
+    }
+
+    fn damage(&mut self, bytes: &[u8]) -> Vec<u8> {
+        let mut out = Vec::with_capacity(bytes.len() + 4);
+        for &b in bytes {
+            let u = self.rng.uniform();
+            if u < self.rate {
+                continue; // dropped
+            } else if u < 2.0 * self.rate {
+                out.push(b ^ (1 << self.rng.below(8)));
+            } else if u < 3.0 * self.rate {
+                out.push(b);
+                out.push(self.rng.below(256) as u8);
+            } else {
+                out.push(b);
+            }
+        }
+        out
+    }
+
+    /// Whether a complete board frame is a retained event seen for the
+    /// first time.
+    fn first_event(&mut self, frame: &[u8]) -> bool {
+        let mut dec = DeviceFrameDecoder::new();
+        let mut rest = frame;
+        loop {
+            rest = dec.feed(rest);
+            match dec.take_message::<DeviceFrame>() {
+                Some(Ok(f)) => {
+                    return f.msg.is_retained() && self.dropped_events.insert(f.seq);
+                }
+                Some(Err(_)) => return false,
+                None if rest.is_empty() => return false,
+                None => {}
+            }
+        }
+    }
+}
+
+impl Transport for Noisy {
+    fn send(&mut self, bytes: &[u8]) -> std::io::Result<()> {
+        let b = if self.clean {
+            bytes.to_vec()
+        } else {
+            self.damage(bytes)
+        };
+        self.inner.send(&b)
+    }
+
+    fn recv(&mut self, timeout: Duration) -> Chunk {
+        match self.inner.recv(timeout) {
+            Chunk::Bytes(b) if !self.clean => {
+                let mut out = Vec::new();
+                for &x in &b {
+                    self.partial.push(x);
+                    if x == 0 {
+                        let frame = std::mem::take(&mut self.partial);
+                        if !self.first_event(&frame) {
+                            out.extend(self.damage(&frame));
+                        }
+                    }
+                }
+                if out.is_empty() {
+                    Chunk::Timeout
+                } else {
+                    Chunk::Bytes(out)
+                }
+            }
+            Chunk::Bytes(mut b) => {
+                let mut out = std::mem::take(&mut self.partial);
+                out.append(&mut b);
+                Chunk::Bytes(out)
+            }
+            other => other,
+        }
+    }
+
+    fn end_input(&mut self) {
+        self.clean = true;
+        self.inner.end_input();
+    }
+
+    fn close(&mut self, grace: Duration) -> Option<std::process::ExitStatus> {
+        self.clean = true;
+        self.inner.close(grace)
+    }
+
+    fn describe(&self) -> String {
+        format!("noisy {}", self.inner.describe())
+    }
+
+    fn diagnostics(&self) -> String {
+        self.inner.diagnostics()
+    }
+}
