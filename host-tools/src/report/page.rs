@@ -67,6 +67,7 @@ td.nw{white-space:nowrap}
 .frame{fill:none;stroke:#9aa6b1;stroke-width:1}
 .grid{stroke:#eceff2;stroke-width:1;fill:none}
 .raw{stroke:#b7c8da;fill:none}
+.raw-line{stroke:#a3b8cf;stroke-width:1.1;fill:none;stroke-linejoin:round}
 .ewma{stroke:#173f66;stroke-width:1.6;fill:none;stroke-linejoin:round}
 .cus{stroke:#7b4aa6;stroke-width:1.4;fill:none;stroke-linejoin:round}
 .lim-s{stroke:#56626d;stroke-width:1.2;stroke-dasharray:5 3;fill:none}
@@ -571,18 +572,34 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
         }
     }
 
-    // Per-sample u: one vertical stroke per column, clipped to the scale.
+    // Per-sample u: one vertical stroke per column, clipped to the scale;
+    // when every column is a single sample, a thin line through them.
+    let single = n <= PLOT_COLUMNS as u64;
     let mut d = String::new();
     let mut off = String::new();
     let mut faults = String::new();
+    let mut joined = false;
     for (ci, b) in cols.iter().enumerate() {
-        let Some(b) = b else { continue };
+        let Some(b) = b else {
+            joined = false;
+            continue;
+        };
         let x = xc(ci);
         if b.faults > 0 {
             let _ = write!(faults, "M{} {}v-7", pt(x), pt(MT + MH));
         }
         let r = b.raw[si];
         if r.is_empty() {
+            joined = false;
+            continue;
+        }
+        if f64::from(r.hi) > hi {
+            let _ = write!(off, "M{} {}v5", pt(x), pt(MT));
+        }
+        if single {
+            let cmd = if joined { "L" } else { "M" };
+            let _ = write!(d, "{cmd}{} {}", pt(x), pt(ys.clamped(f64::from(r.hi))));
+            joined = true;
             continue;
         }
         let y1 = ys.clamped(f64::from(r.hi));
@@ -594,15 +611,16 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
             (y1, y2)
         };
         let _ = write!(d, "M{} {}V{}", pt(x), pt(y1), pt(y2));
-        if f64::from(r.hi) > hi {
-            let _ = write!(off, "M{} {}v5", pt(x), pt(MT));
-        }
     }
-    let _ = write!(
-        o,
-        r#"<path class="raw" stroke-width="{}" d="{d}"/>"#,
-        pt(colw.max(1.0))
-    );
+    if single {
+        let _ = write!(o, r#"<path class="raw-line" d="{d}"/>"#);
+    } else {
+        let _ = write!(
+            o,
+            r#"<path class="raw" stroke-width="{}" d="{d}"/>"#,
+            pt(colw.max(1.0))
+        );
+    }
 
     // Limits.
     let clear = f64::from(mp.clear_fraction) * big_l;
@@ -761,7 +779,7 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
                     ST + SH + 25.0,
                     "s",
                     "middle",
-                    &format!("{} s", sig(t)),
+                    &format!("{} s", seconds(t)),
                 );
             }
         }
@@ -781,6 +799,12 @@ fn near_first(prev: f64, a: f64, b: f64) -> (f64, f64) {
     } else {
         (a, b)
     }
+}
+
+/// A log time for an axis: tenths of a second, no trailing `.0`.
+fn seconds(t: f64) -> String {
+    let r = format!("{:.1}", (t * 10.0).round() / 10.0);
+    r.strip_suffix(".0").map(str::to_string).unwrap_or(r)
 }
 
 /// A round number as written by hand: `0.05`, `2`, `500`, `1e6`.
