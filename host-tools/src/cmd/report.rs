@@ -19,8 +19,8 @@ u = (cube root of the score − centre)/spread, with the raw score on the right 
 per-sample values (lightly), the detector's EWMA of u, its CUSUM, the per-sample limit and
 the chart limits, flags shaded from raise to clear, faulted samples marked and, with
 --truth, the known onset. Long logs are reduced to one column per pixel keeping each
-column's minimum and maximum, so the file stays small (well under 2 MB for a million
-samples) and spikes stay visible.
+column's minimum and maximum, so spikes stay visible and each log adds about 150 kB to
+the file whatever its length (a million samples included).
 
 For each flag, the features behind it: the mean squared residual r² of every feature over
 the first 50 scored samples from the raise, with the training mean beside it (--train).
