@@ -6,6 +6,7 @@ use crate::fit::{self, FitConfig, Holdout, MixtureChoice};
 use crate::logs::{self, BadCells, LogSet, ReadOptions};
 use crate::progress::Progress;
 use crate::replay::{self, LogReplay};
+use crate::report::TruthRow;
 use clap::Args;
 use plumb_firmware::Score;
 use plumb_scenario::{Truth, TruthKind, SAMPLE_PERIOD_S};
@@ -323,9 +324,28 @@ pub fn run(args: DemoArgs) -> Result<u8> {
         .map(|((t, rep), tr)| scenario_row(t, rep, tr, baseline, target))
         .collect();
 
-    // 5. Report (wired in once the report module lands).
-    let report: Option<PathBuf> = None;
-    let _ = (&args.no_report, &hold_paths);
+    // 5. Report: the drift logs and the committed held-out logs, with the
+    // training rows in the latent plane.
+    let report = if args.no_report {
+        None
+    } else {
+        let out = args.out.join("report.html");
+        say(quiet, &format!("writing {}", out.display()));
+        let rows: Vec<TruthRow> = truth.iter().map(TruthRow::from).collect();
+        let mut logs = drift_paths.clone();
+        logs.extend(hold_paths.iter().cloned());
+        crate::report::write_report(
+            &model_path,
+            &file,
+            &logs,
+            &train_paths,
+            &rows,
+            replay_read.clone(),
+            &out,
+            &Progress::stderr(quiet),
+        )?;
+        Some(out)
+    };
     let result = DemoResult {
         model: model_path,
         report,
