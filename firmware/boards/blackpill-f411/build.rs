@@ -1,5 +1,7 @@
 //! Link setup: put `memory.x` where the cortex-m-rt `link.x` script can find
-//! it and pass the linker scripts (cortex-m-rt and defmt) to the binaries.
+//! it and pass the linker scripts (cortex-m-rt and defmt) to the binaries;
+//! copy the built-in model (`PLUMB_MODEL`, default
+//! `../mps2-an386/default.plumb`) to `$OUT_DIR/builtin.plumb`.
 
 use std::env;
 use std::fs;
@@ -15,4 +17,25 @@ fn main() {
     println!("cargo:rustc-link-arg-bins=--nmagic");
     println!("cargo:rustc-link-arg-bins=-Tlink.x");
     println!("cargo:rustc-link-arg-bins=-Tdefmt.x");
+
+    // The model compiled into the image: $PLUMB_MODEL when set (relative
+    // paths from this directory), else the emulator board's default model.
+    println!("cargo:rerun-if-env-changed=PLUMB_MODEL");
+    let model = match env::var_os("PLUMB_MODEL") {
+        Some(p) if !p.is_empty() => PathBuf::from(p),
+        _ => PathBuf::from("../mps2-an386/default.plumb"),
+    };
+    println!("cargo:rerun-if-changed={}", model.display());
+    let bytes = fs::read(&model).unwrap_or_else(|e| {
+        panic!(
+            "cannot read the model file {} (PLUMB_MODEL, or ../mps2-an386/default.plumb): {e}",
+            model.display()
+        )
+    });
+    assert!(
+        bytes.starts_with(b"PLMD"),
+        "{} is not a plumbline model file (no PLMD magic)",
+        model.display()
+    );
+    fs::write(out.join("builtin.plumb"), &bytes).expect("write the model into OUT_DIR");
 }

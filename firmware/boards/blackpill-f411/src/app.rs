@@ -1,74 +1,80 @@
-//! Placeholder application: the same UART echo as the emulator board.
+//! The application: the plumbline detector endpoint.
 //!
-//! Protocol on the detector link (lines end with `\n`):
-//! 1. The board prints [`GREETING`].
-//! 2. Every received byte other than [`END`] (0x04) is sent back unchanged;
-//!    the drift line is high while a session is open (first byte seen).
-//! 3. On [`END`] (not echoed) the board prints
-//!    `plumb-echo-done echoed=N errors=N calib_cycles=N`, drops the drift
-//!    line and starts the next session with a new greeting.
+//! 1. `Endpoint::boot`: the newest valid flash slot, else the model compiled
+//!    into the image (`PLUMB_MODEL` at build time, see `build.rs`).
+//! 2. A greeting on the link, then the wire protocol
+//!    (`shared-model/PROTOCOL.md`) forever; the drift line follows the
+//!    drift state.
 //!
-//! There is no emulator to stop on real hardware, so sessions repeat forever.
-//! Replace this module to run a different application on the same board.
+//! Real hardware has no end of run: link errors are counted and logged over
+//! defmt, and the loop goes on.
 
-use embedded_io::{Read, Write};
+use plumb_firmware::endpoint::{BootError, Config, Endpoint, DEFAULT_STATUS_EVERY};
 
-use crate::text::write_field;
+use crate::drift_line::DriftLine;
+use crate::slots::FlashSlots;
 use crate::Board;
 
-/// Greeting printed at the start of every session.
-pub const GREETING: &[u8] = b"plumb-board-f411 echo: send bytes, 0x04 ends\n";
-/// End-of-input byte.
-pub const END: u8 = 0x04;
-/// Calibration loop, as on the emulator board: about 4,000,000 instructions.
-const CALIB_LOOPS: u32 = 1_999_999;
+/// The model file compiled into the image.
+static BUILTIN_MODEL: &[u8] = include_bytes!(concat!(env!("OUT_DIR"), "/builtin.plumb"));
 
-/// Run sessions forever.
-pub fn run(board: &mut Board) -> ! {
-    let ((), calib_cycles) = board.cycles.measure(|| cortex_m::asm::delay(CALIB_LOOPS));
-    defmt::info!("calibration loop: {=u32} cycles", calib_cycles);
-    loop {
-        match session(board, calib_cycles) {
-            Ok(echoed) => defmt::info!("session done: echoed {=u64} bytes", echoed),
-            Err(e) => defmt::warn!("session aborted: {}", e),
+/// Firmware version in the greeting.
+const FIRMWARE: &str = concat!("f411 ", env!("CARGO_PKG_VERSION"));
+
+type Ep = Endpoint<FlashSlots, DriftLine>;
+
+/// Boots the endpoint into a static (so `run`'s frame does not hold it and
+/// boot's frames are gone before the loop starts).
+#[inline(never)]
+fn boot(slots: FlashSlots, drift: DriftLine) -> Option<&'static mut Ep> {
+    let ep = match Endpoint::boot(slots, drift, Some(BUILTIN_MODEL)) {
+        Ok(ep) => ep,
+        Err(BootError::NoModel) => {
+            defmt::error!("no valid slot and no built-in model");
+            return None;
         }
-        board.drift.set(false);
-    }
+        Err(BootError::Builtin(_)) => {
+            defmt::error!("no valid slot, and the built-in model was refused");
+            return None;
+        }
+    };
+    cortex_m::singleton!(: Ep = ep)
 }
 
-fn session(board: &mut Board, calib_cycles: u32) -> Result<u64, crate::link::LinkError> {
-    let Board { link, drift, .. } = board;
-    link.write_all(GREETING)?;
-
-    let mut echoed: u64 = 0;
-    let mut errors: u64 = 0;
-    let mut buf = [0u8; 32];
-    'session: loop {
-        let n = match link.read(&mut buf) {
-            Ok(n) => n,
-            Err(e) => {
-                defmt::warn!("link receive error: {}", e);
-                errors += 1;
-                continue;
-            }
-        };
-        drift.set(true);
-        for (i, &byte) in buf[..n].iter().enumerate() {
-            if byte == END {
-                link.write_all(&buf[..i])?;
-                echoed += i as u64;
-                break 'session;
-            }
+/// Runs the endpoint forever.
+pub fn run(board: Board) -> ! {
+    let Board {
+        mut link,
+        drift,
+        slots,
+        ..
+    } = board;
+    let Some(ep) = boot(slots, drift) else {
+        loop {
+            cortex_m::asm::wfi();
         }
-        link.write_all(&buf[..n])?;
-        echoed += n as u64;
+    };
+    ep.set_config(Config {
+        firmware: FIRMWARE,
+        status_every: DEFAULT_STATUS_EVERY,
+    });
+    defmt::info!(
+        "running model {=u32:#x} from {}",
+        ep.detector().model().meta.id,
+        match ep.active_slot() {
+            Some(plumb_firmware::plumb_model::wire::Slot::A) => "slot A",
+            Some(plumb_firmware::plumb_model::wire::Slot::B) => "slot B",
+            None => "the image",
+        }
+    );
+    if ep.greet(&mut link).is_err() {
+        defmt::warn!("greeting not sent");
     }
-
-    link.write_all(b"plumb-echo-done")?;
-    write_field(link, "echoed", echoed)?;
-    write_field(link, "errors", errors)?;
-    write_field(link, "calib_cycles", u64::from(calib_cycles))?;
-    link.write_all(b"\n")?;
-    link.flush()?;
-    Ok(echoed)
+    let mut errors: u32 = 0;
+    loop {
+        if ep.poll(&mut link).is_err() {
+            errors = errors.wrapping_add(1);
+            defmt::warn!("link error ({=u32} so far)", errors);
+        }
+    }
 }

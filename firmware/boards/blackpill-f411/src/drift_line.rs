@@ -1,6 +1,9 @@
 //! The "drift line": a push-pull GPIO output that the detector drives high
 //! while drift is reported, mirrored on the board's user LED.
 
+use core::convert::Infallible;
+
+use embedded_hal::digital::{ErrorType, OutputPin};
 use stm32f4xx_hal::gpio::{Output, PinState, PushPull, PB0, PC13};
 
 /// Drift output on PB0 (active high, 3.3 V) plus the on-board LED on PC13
@@ -27,5 +30,22 @@ impl DriftLine {
     /// Current state of the line.
     pub fn is_set(&self) -> bool {
         self.pin.is_set_high()
+    }
+}
+
+impl ErrorType for DriftLine {
+    type Error = Infallible;
+}
+
+/// The endpoint drives the line through `embedded-hal`.
+impl OutputPin for DriftLine {
+    fn set_low(&mut self) -> Result<(), Self::Error> {
+        self.set(false);
+        Ok(())
+    }
+
+    fn set_high(&mut self) -> Result<(), Self::Error> {
+        self.set(true);
+        Ok(())
     }
 }

@@ -6,9 +6,10 @@
 //! - Logs: defmt over RTT (read with `probe-rs run`).
 //! - Clocks: 25 MHz HSE crystal, 100 MHz system clock.
 //!
-//! Board support is in [`link`], [`drift_line`] and [`cycles`]; the
-//! application in [`app`] is a placeholder echo that can be swapped for the
-//! detector.
+//! - Model slots: flash sectors 6 and 7 ([`slots`]).
+//!
+//! Board support is in [`link`], [`drift_line`], [`slots`] and [`cycles`];
+//! the application in [`app`] runs the detector endpoint.
 
 #![no_std]
 #![no_main]
@@ -19,15 +20,16 @@ mod cycles;
 #[allow(dead_code)] // board API: not every application uses every item
 mod drift_line;
 mod link;
+mod slots;
+#[allow(dead_code)] // board API: not every application uses every item
 mod text;
 
 use cortex_m_rt::entry;
 use defmt_rtt as _;
 use panic_probe as _;
-use stm32f4xx_hal::{pac, prelude::*, rcc::Config, serial::config::Config as SerialConfig};
-
-// Linked already so that wiring the detector in later is a small change.
-use plumb_firmware as _;
+use stm32f4xx_hal::{
+    flash::LockedFlash, pac, prelude::*, rcc::Config, serial::config::Config as SerialConfig,
+};
 
 /// Detector link baud rate.
 pub const BAUD: u32 = 115_200;
@@ -40,6 +42,8 @@ pub struct Board {
     pub drift: drift_line::DriftLine,
     /// DWT cycle counter.
     pub cycles: cycles::Cycles,
+    /// Model slots in flash sectors 6 and 7.
+    pub slots: slots::FlashSlots,
 }
 
 #[entry]
@@ -74,10 +78,12 @@ fn main() -> ! {
 
     let cycles = cycles::Cycles::start(cp.DCB, cp.DWT);
 
-    let mut board = Board {
+    let slots = slots::FlashSlots::new(LockedFlash::new(dp.FLASH));
+
+    app::run(Board {
         link,
         drift,
         cycles,
-    };
-    app::run(&mut board)
+        slots,
+    })
 }
