@@ -11,7 +11,8 @@
 //!    chosen by BIC (on an evenly spaced subsample of at most
 //!    [`AUTO_SAMPLE`] rows; the chosen `k` is then fitted on every row);
 //! 6. calibration on the held-out rows through the device detector
-//!    ([`calibrate`]);
+//!    ([`calibrate`]): per-chart limits set on the held-out scores, then one
+//!    end-to-end run of the state machine;
 //! 7. metadata: schema fingerprint, model id, creation time, row counts,
 //!    sample period.
 //!

@@ -184,6 +184,15 @@ pub struct Summary {
     pub fit: Option<FitReport>,
 }
 
+/// An ARL for a table: one decimal, or `>1e9` at [`crate::arl::ARL_CEILING`].
+fn fmt_arl(a: f64) -> String {
+    if a >= crate::arl::ARL_CEILING {
+        ">1e9".to_string()
+    } else {
+        format!("{a:.1}")
+    }
+}
+
 /// `YYYY-MM-DD hh:mm:ss` (UTC) for seconds since the epoch, by the civil
 /// calendar algorithm of Hinnant ("days_from_civil", public domain).
 pub fn utc_string(secs: u64) -> String {
@@ -525,19 +534,84 @@ impl Summary {
             let _ = writeln!(o, "\nCalibration on held-out logs");
             let _ = writeln!(
                 o,
-                "  {} rows scored ({} faulted, {} skipped); each of 6 charts designed for ARL0 = {:.0} \
-                 (CUSUM h = {:.4}, EWMA L = {:.4})",
-                c.scored, c.faults, c.skipped, c.chart_arl, c.cusum_h, c.ewma_l
+                "  {} rows scored ({} faulted, {} skipped). Each of the 6 charts may alarm {} time{} \
+                 on its {} samples (rate / 6); limits never below the design for independent \
+                 input (ARL0 = {:.0} per chart). Delays: ARL at a shift of {} spreads, \
+                 independent input.",
+                c.scored,
+                c.faults,
+                c.skipped,
+                c.allowed_per_chart,
+                if c.allowed_per_chart == 1 { "" } else { "s" },
+                c.chart_samples,
+                c.chart_arl,
+                c.design_shift
             );
+            let _ = writeln!(
+                o,
+                "  {:<5} {:>6} {:>8} {:>9} {:>6} {:>8}   {:>7} {:>8} {:>6} {:>8}",
+                "score",
+                "CUSUM k",
+                "h iid",
+                "h",
+                "alarms",
+                "delay",
+                "EWMA L iid",
+                "L",
+                "alarms",
+                "delay"
+            );
+            for s in &c.scores {
+                let _ = writeln!(
+                    o,
+                    "  {:<5} {:>7.2} {:>8.3} {:>9.3} {:>6} {:>8}   {:>10.3} {:>8.3} {:>6} {:>8}",
+                    s.score,
+                    s.cusum_slack,
+                    s.cusum_limit_iid,
+                    s.cusum_limit,
+                    s.cusum_alarms,
+                    fmt_arl(s.cusum_arl_at_shift),
+                    s.ewma_l_iid,
+                    s.ewma_l,
+                    s.ewma_alarms,
+                    fmt_arl(s.ewma_arl_at_shift)
+                );
+            }
+            if c.scores.iter().any(|s| s.cusum_candidates.len() > 1) {
+                let _ = writeln!(
+                    o,
+                    "  CUSUM h by reference value k (delay at {} spreads; * kept):",
+                    c.design_shift
+                );
+                let mut head = format!("  {:>6}", "k");
+                for s in &c.scores {
+                    head.push_str(&format!("  {:>20}", s.score));
+                }
+                let _ = writeln!(o, "{head}");
+                let rows = c.scores.first().map_or(0, |s| s.cusum_candidates.len());
+                for j in 0..rows {
+                    let mut line = format!("  {:>6.2}", c.scores[0].cusum_candidates[j].k);
+                    for s in &c.scores {
+                        let cand = &s.cusum_candidates[j];
+                        let mark = if cand.k == s.cusum_slack { "*" } else { " " };
+                        let cell = format!("{:.3} ({}){mark}", cand.h, fmt_arl(cand.arl_at_shift));
+                        line.push_str(&format!("  {cell:>20}"));
+                    }
+                    let _ = writeln!(o, "{line}");
+                }
+            }
             if c.end_to_end {
                 let _ = writeln!(
                     o,
-                    "  end-to-end detector run: {} flags in {} watched samples (target allows {}), {} round{}",
+                    "  end-to-end detector run: {} flags in {} watched samples (target allows {}){}",
                     c.flags,
                     c.watched,
                     c.allowed,
-                    c.rounds,
-                    if c.rounds == 1 { "" } else { "s" }
+                    if c.widened {
+                        format!("; fallback widening over {} more runs", c.rounds - 1)
+                    } else {
+                        String::new()
+                    }
                 );
                 for s in &c.scores {
                     if s.cusum_widened > 1.0 || s.ewma_widened > 1.0 {
@@ -559,6 +633,12 @@ impl Summary {
                     if c.met_target { "met" } else { "NOT met" }
                 );
             }
+            let _ = writeln!(
+                o,
+                "  calibration time: scoring {:.2} s, limit search {:.2} s ({} chart passes), \
+                 end-to-end {:.2} s",
+                c.seconds.score, c.seconds.design, c.search_passes, c.seconds.check
+            );
             let _ = writeln!(
                 o,
                 "  rows: {} training ({} skipped), {} held out ({} skipped)",

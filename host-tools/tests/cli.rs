@@ -492,3 +492,79 @@ fn no_device_check_writes_a_host_only_model() {
     let o = plumb(&["inspect", s(&m)]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
 }
+
+#[test]
+fn calibration_reports_every_chart() {
+    let d = Scratch::new("charts");
+    let a = d.write("a.csv", &log_text(5, 1500, 1));
+    let b = d.write("b.csv", &log_text(5, 1500, 2));
+    let out = d.path("m.plumb");
+    let fit = |extra: &[&str]| {
+        let mut args = vec!["fit", s(&a), s(&b), "--out", s(&out), "--json"];
+        args.extend(FAST);
+        args.extend(extra);
+        plumb(&args)
+    };
+    let o = fit(&[]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let c = &v["fit"]["calibration"];
+    let allowed = c["allowed_per_chart"].as_u64().unwrap();
+    assert_eq!(c["design_shift"], 2.0);
+    assert!(c["rounds"].as_u64().unwrap() >= 1);
+    for (i, sc) in c["scores"].as_array().unwrap().iter().enumerate() {
+        let f = |k: &str| sc[k].as_f64().unwrap();
+        // Never below the design for independent input; within the allowance.
+        assert!(
+            f("cusum_limit") >= f("cusum_limit_iid") * (1.0 - 1e-6),
+            "{sc}"
+        );
+        assert!(f("ewma_l") >= f("ewma_l_iid") * (1.0 - 1e-6), "{sc}");
+        assert!(sc["cusum_alarms"].as_u64().unwrap() <= allowed, "{sc}");
+        assert!(sc["ewma_alarms"].as_u64().unwrap() <= allowed, "{sc}");
+        let cands = sc["cusum_candidates"].as_array().unwrap();
+        assert_eq!(cands.len(), 7);
+        // The kept k has the shortest delay at the design shift.
+        let best = cands
+            .iter()
+            .map(|c| c["arl_at_shift"].as_f64().unwrap())
+            .fold(f64::INFINITY, f64::min);
+        assert_eq!(f("cusum_arl_at_shift"), best, "{sc}");
+        // The model stores what the report says.
+        let lim = &v["limits"][i];
+        assert_eq!(lim["cusum_slack"].as_f64().unwrap(), f("cusum_slack"));
+        let stored = (f("cusum_limit") * f("cusum_widened")) as f32;
+        assert_eq!(lim["cusum_limit"].as_f64().unwrap() as f32, stored);
+        let stored = (f("ewma_limit") * f("ewma_widened")) as f32;
+        assert_eq!(lim["ewma_limit"].as_f64().unwrap() as f32, stored);
+    }
+    // The text summary (no --quiet) shows the per-chart table.
+    let mut args = vec!["fit", s(&a), s(&b), "--out", s(&out)];
+    args.extend(&FAST[..4]);
+    let o = plumb(&args);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    for needle in ["CUSUM h by reference value k", "EWMA L iid", "limit search"] {
+        assert!(text.contains(needle), "{needle}: {text}");
+    }
+
+    // One reference value fixes k.
+    let o = fit(&["--cusum-slack", "0.75", "--design-shift", "1.5"]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    for sc in v["fit"]["calibration"]["scores"].as_array().unwrap() {
+        assert_eq!(sc["cusum_slack"], 0.75);
+        assert_eq!(sc["cusum_candidates"].as_array().unwrap().len(), 1);
+    }
+    for lim in v["limits"].as_array().unwrap() {
+        assert_eq!(lim["cusum_slack"], 0.75);
+    }
+    for bad in [
+        &["--cusum-slack", "7"][..],
+        &["--cusum-slack", "0.5,x"],
+        &["--design-shift", "0"],
+    ] {
+        let o = fit(bad);
+        assert_eq!(o.status.code(), Some(2), "{bad:?}");
+    }
+}
