@@ -143,7 +143,11 @@ pub fn run(args: UploadArgs) -> Result<u8> {
             Ok(EXIT_CLEAN)
         }
         UploadOutcome::Refused { request, reason } => {
-            let req = format!("{request:?}");
+            let req = match request {
+                plumb_model::wire::Request::UploadBegin => "upload-begin",
+                plumb_model::wire::Request::UploadChunk => "upload-chunk",
+                plumb_model::wire::Request::UploadCommit => "upload-commit",
+            };
             if args.json {
                 println!(
                     "{}",
