@@ -81,8 +81,6 @@ pub struct FitConfig {
     pub device_check: bool,
     /// Threads (1 or 2).
     pub threads: usize,
-    // A later `--base OLD.plumb` (refit starting from an existing model) will
-    // add its starting point here and branch in `fit` before stage 2.
 }
 
 impl Default for FitConfig {
@@ -617,6 +615,71 @@ pub fn fit(
             warnings,
         },
     })
+}
+
+/// Checks that the feature columns of `train` are exactly `labels`, a base
+/// model's (`base` is its path, for messages): same names in the same order,
+/// same units. A refit (`plumb fit --base`) keeps the base model's schema, so
+/// the new model is a drop-in replacement; any difference is refused, naming
+/// the log and the column. [`LogSet::open`] has already held every log to the
+/// first one's columns, so the first log is the one compared.
+pub fn check_schema(train: &LogSet, labels: &[Label], base: &Path) -> Result<()> {
+    if labels.is_empty() {
+        return Err(Error::at(
+            Location::file(base),
+            "the base model has no labels: its feature names are unknown",
+        ));
+    }
+    let file = &train.files()[0];
+    let have = train.labels();
+    let at = |j: usize| Location::cell(&file.path, 1, file.feature_column(j), &have[j].name);
+    let base = base.display();
+    for (j, l) in labels.iter().enumerate() {
+        if !have.iter().any(|h| h.name == l.name) {
+            return Err(Error::at(
+                Location::line(&file.path, 1).named(&l.name),
+                format!(
+                    "expected a column named {:?} (feature {} of the base model {base}),                      found none",
+                    l.name,
+                    j + 1
+                ),
+            ));
+        }
+    }
+    for (j, h) in have.iter().enumerate() {
+        let Some(k) = labels.iter().position(|l| l.name == h.name) else {
+            return Err(Error::at(
+                at(j),
+                format!(
+                    "unexpected column: the base model {base} has no feature {:?}",
+                    h.name
+                ),
+            ));
+        };
+        if h.unit != labels[k].unit {
+            return Err(Error::at(
+                at(j),
+                format!(
+                    "expected unit {:?} as in the base model {base}, found {:?}",
+                    labels[k].unit, h.unit
+                ),
+            ));
+        }
+        if k != j {
+            return Err(Error::at(
+                at(j),
+                format!(
+                    "feature {} of the base model {base} is {:?}, this log has {:?} (its \
+                     feature {}) there: a refit keeps the base model's column order",
+                    j + 1,
+                    labels[j].name,
+                    h.name,
+                    k + 1
+                ),
+            ));
+        }
+    }
+    Ok(())
 }
 
 fn skipped_note(skipped: u64) -> String {

@@ -182,6 +182,9 @@ pub struct Summary {
     /// What the fit found (absent for `inspect`).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub fit: Option<FitReport>,
+    /// What changed from a base model (`plumb fit --base`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub changes: Option<ModelDiff>,
 }
 
 /// An ARL for a table: one decimal, or `>1e9` at [`crate::arl::ARL_CEILING`].
@@ -327,12 +330,19 @@ impl Summary {
                 detector_ram_bytes: std::mem::size_of::<plumb_firmware::Detector>(),
             },
             fit: None,
+            changes: None,
         })
     }
 
     /// Adds what a fit found.
     pub fn with_fit(mut self, report: FitReport) -> Summary {
         self.fit = Some(report);
+        self
+    }
+
+    /// Adds what changed from a base model.
+    pub fn with_changes(mut self, changes: ModelDiff) -> Summary {
+        self.changes = Some(changes);
         self
     }
 
@@ -655,6 +665,10 @@ impl Summary {
             );
         }
 
+        if let Some(c) = &self.changes {
+            o.push_str(&c.to_text());
+        }
+
         let s = &self.size;
         let _ = writeln!(o, "\nSize");
         let _ = writeln!(
@@ -674,6 +688,247 @@ impl Summary {
                     let _ = writeln!(o, "  - {w}");
                 }
             }
+        }
+        o
+    }
+}
+
+/// One number before and after a refit.
+pub type Pair<T> = [T; 2];
+
+/// Limits of one score before and after.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LimitChange {
+    /// `spe`, `t2`, `nll`.
+    pub score: &'static str,
+    /// The base model's limits.
+    pub old: LimitsJson,
+    /// The new model's limits.
+    pub new: LimitsJson,
+}
+
+/// One feature's standardisation before and after.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FeatureChange {
+    /// Name.
+    pub name: String,
+    /// Mean, old and new.
+    pub mean: Pair<f32>,
+    /// Scale, old and new.
+    pub scale: Pair<f32>,
+    /// `(new mean − old mean) / old scale`.
+    pub shift: f64,
+}
+
+/// What changed between a base model and its refit (`plumb fit --base`).
+/// Every pair is `[old, new]`.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ModelDiff {
+    /// The base model file.
+    pub base: String,
+    /// Model ids.
+    pub id: Pair<String>,
+    /// Schema fingerprints (a refit keeps it).
+    pub schema: Pair<String>,
+    /// Training rows.
+    pub train_rows: Pair<u64>,
+    /// Calibration rows.
+    pub calib_rows: Pair<u64>,
+    /// Components kept.
+    pub components: Pair<usize>,
+    /// Explained variance ratio per component (1-based order; `None` where a
+    /// model keeps fewer).
+    pub explained: Vec<Pair<Option<f64>>>,
+    /// Share of the variance left in the residual.
+    pub residual: Pair<f64>,
+    /// Mixture components.
+    pub mixture: Pair<usize>,
+    /// Mixture weights, largest first (components have no identity across
+    /// fits, so they are not matched).
+    pub weights: Pair<Vec<f32>>,
+    /// Limits per score.
+    pub limits: Vec<LimitChange>,
+    /// State-machine settings.
+    pub monitor: Pair<MonitorInfo>,
+    /// Standardisation per feature, in model order.
+    pub features: Vec<FeatureChange>,
+}
+
+impl ModelDiff {
+    /// The changes from `old` (read from `base`) to `new`.
+    pub fn between(base: &str, old: &Summary, new: &Summary) -> ModelDiff {
+        let m = old.components.len().max(new.components.len());
+        let ratio = |s: &Summary, j: usize| s.components.get(j).map(|c| c.ratio);
+        let weights = |s: &Summary| {
+            let mut w: Vec<f32> = s.mixture.iter().map(|c| c.weight).collect();
+            w.sort_by(|a, b| b.total_cmp(a));
+            w
+        };
+        ModelDiff {
+            base: base.to_string(),
+            id: [old.model.id.clone(), new.model.id.clone()],
+            schema: [old.model.schema.clone(), new.model.schema.clone()],
+            train_rows: [old.model.train_rows, new.model.train_rows],
+            calib_rows: [old.model.calib_rows, new.model.calib_rows],
+            components: [old.model.m, new.model.m],
+            explained: (0..m).map(|j| [ratio(old, j), ratio(new, j)]).collect(),
+            residual: [old.residual_ratio, new.residual_ratio],
+            mixture: [old.model.k, new.model.k],
+            weights: [weights(old), weights(new)],
+            limits: old
+                .limits
+                .iter()
+                .zip(&new.limits)
+                .map(|(a, b)| LimitChange {
+                    score: a.score,
+                    old: a.limits.clone(),
+                    new: b.limits.clone(),
+                })
+                .collect(),
+            monitor: [old.monitor.clone(), new.monitor.clone()],
+            features: old
+                .features
+                .iter()
+                .zip(&new.features)
+                .map(|(a, b)| FeatureChange {
+                    name: a.name.clone(),
+                    mean: [a.mean, b.mean],
+                    scale: [a.scale, b.scale],
+                    shift: (f64::from(b.mean) - f64::from(a.mean)) / f64::from(a.scale),
+                })
+                .collect(),
+        }
+    }
+
+    /// The human rendering (a section of the fit summary).
+    pub fn to_text(&self) -> String {
+        let mut o = String::new();
+        let _ = writeln!(
+            o,
+            "\nChanges from the base model {} ({} -> {})",
+            self.base, self.id[0], self.id[1]
+        );
+        if self.schema[0] == self.schema[1] {
+            let _ = writeln!(
+                o,
+                "  schema {} kept ({} features, same names, order and units)",
+                self.schema[1],
+                self.features.len()
+            );
+        } else {
+            let _ = writeln!(
+                o,
+                "  schema CHANGED: {} -> {}",
+                self.schema[0], self.schema[1]
+            );
+        }
+        let _ = writeln!(
+            o,
+            "  rows: training {} -> {}; calibration {} -> {}",
+            self.train_rows[0], self.train_rows[1], self.calib_rows[0], self.calib_rows[1]
+        );
+        let _ = writeln!(
+            o,
+            "  components kept: {} -> {}; residual {:.2}% -> {:.2}% of the variance",
+            self.components[0],
+            self.components[1],
+            100.0 * self.residual[0],
+            100.0 * self.residual[1]
+        );
+        let _ = writeln!(
+            o,
+            "  {:>4}  {:>13}  {:>13}",
+            "#", "old explained", "new explained"
+        );
+        let pct = |r: Option<f64>| r.map_or("-".to_string(), |r| format!("{:.2}%", 100.0 * r));
+        for (j, [a, b]) in self.explained.iter().enumerate() {
+            let _ = writeln!(o, "  {:>4}  {:>13}  {:>13}", j + 1, pct(*a), pct(*b));
+        }
+        let ws = |w: &[f32]| {
+            w.iter()
+                .map(|x| format!("{x:.3}"))
+                .collect::<Vec<_>>()
+                .join(" ")
+        };
+        let _ = writeln!(
+            o,
+            "  mixture: k {} -> {}; weights, largest first: old {}; new {}",
+            self.mixture[0],
+            self.mixture[1],
+            ws(&self.weights[0]),
+            ws(&self.weights[1])
+        );
+        let _ = writeln!(o, "  limits (old -> new):");
+        let _ = writeln!(
+            o,
+            "  {:<5} {:>23} {:>23} {:>15} {:>23} {:>21}",
+            "score", "sample limit", "center", "CUSUM k", "CUSUM h", "EWMA limit"
+        );
+        for l in &self.limits {
+            let (a, b) = (&l.old, &l.new);
+            let _ = writeln!(
+                o,
+                "  {:<5} {:>23} {:>23} {:>15} {:>23} {:>21}",
+                l.score,
+                format!("{:.4} -> {:.4}", a.sample_limit, b.sample_limit),
+                format!("{:.4} -> {:.4}", a.center, b.center),
+                format!("{:.2} -> {:.2}", a.cusum_slack, b.cusum_slack),
+                format!("{:.3} -> {:.3}", a.cusum_limit, b.cusum_limit),
+                format!("{:.4} -> {:.4}", a.ewma_limit, b.ewma_limit)
+            );
+        }
+        let [ma, mb] = &self.monitor;
+        if ma == mb {
+            let _ = writeln!(o, "  drift-state settings unchanged");
+        } else {
+            let mut parts = Vec::new();
+            let mut cmp = |name: &str, a: String, b: String| {
+                if a != b {
+                    parts.push(format!("{name} {a} -> {b}"));
+                }
+            };
+            cmp("warm-up", ma.warmup.to_string(), mb.warmup.to_string());
+            cmp(
+                "raise dwell",
+                ma.raise_dwell.to_string(),
+                mb.raise_dwell.to_string(),
+            );
+            cmp(
+                "clear dwell",
+                ma.clear_dwell.to_string(),
+                mb.clear_dwell.to_string(),
+            );
+            cmp(
+                "minimum hold",
+                ma.min_hold.to_string(),
+                mb.min_hold.to_string(),
+            );
+            cmp(
+                "clear fraction",
+                ma.clear_fraction.to_string(),
+                mb.clear_fraction.to_string(),
+            );
+            cmp(
+                "EWMA lambda",
+                ma.ewma_lambda.to_string(),
+                mb.ewma_lambda.to_string(),
+            );
+            cmp("fault z", ma.fault_z.to_string(), mb.fault_z.to_string());
+            let _ = writeln!(o, "  drift-state settings changed: {}", parts.join(", "));
+        }
+        let mut moved: Vec<&FeatureChange> = self.features.iter().collect();
+        moved.sort_by(|a, b| b.shift.abs().total_cmp(&a.shift.abs()));
+        let top: Vec<String> = moved
+            .iter()
+            .take(3)
+            .map(|f| format!("{} {:+.3}", f.name, f.shift))
+            .collect();
+        if !top.is_empty() {
+            let _ = writeln!(
+                o,
+                "  feature means that moved most, in old scales: {}",
+                top.join(", ")
+            );
         }
         o
     }

@@ -568,3 +568,115 @@ fn calibration_reports_every_chart() {
         assert_eq!(o.status.code(), Some(2), "{bad:?}");
     }
 }
+
+#[test]
+fn refit_keeps_the_base_schema_and_reports_changes() {
+    let d = Scratch::new("refit");
+    let a = d.write("a.csv", &log_text(4, 1000, 1));
+    let b = d.write("b.csv", &log_text(4, 1000, 2));
+    let c = d.write("c.csv", &log_text(4, 1200, 3));
+    let base = d.path("base.plumb");
+    let o = plumb(&[
+        "fit",
+        s(&a),
+        s(&b),
+        "--out",
+        s(&base),
+        "--quiet",
+        "--mixture",
+        "2",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let new = d.path("new.plumb");
+    let refit = |extra: &[&str]| {
+        let mut args = vec!["fit", s(&c), "--base", s(&base), "--out", s(&new)];
+        args.extend(["--mixture", "3", "--restarts", "1"]);
+        args.extend(extra);
+        plumb(&args)
+    };
+    let o = refit(&["--json"]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let ch = &v["changes"];
+    assert_eq!(ch["base"], s(&base));
+    assert_eq!(ch["schema"][0], ch["schema"][1]);
+    assert_eq!(ch["schema"][1], v["model"]["schema"]);
+    assert_eq!(ch["id"][1], v["model"]["id"]);
+    assert_ne!(ch["id"][0], ch["id"][1]);
+    assert_eq!(ch["train_rows"][0], 1600);
+    assert_eq!(ch["train_rows"][1], 960);
+    assert_eq!(ch["mixture"][0], 2);
+    assert_eq!(ch["mixture"][1], 3);
+    assert_eq!(ch["weights"][1].as_array().unwrap().len(), 3);
+    let m = ch["components"][0]
+        .as_u64()
+        .unwrap()
+        .max(ch["components"][1].as_u64().unwrap());
+    assert_eq!(ch["explained"].as_array().unwrap().len() as u64, m);
+    assert_eq!(ch["limits"].as_array().unwrap().len(), 3);
+    assert_eq!(ch["limits"][0]["score"], "spe");
+    assert_eq!(
+        ch["limits"][2]["new"]["cusum_limit"],
+        v["limits"][2]["cusum_limit"]
+    );
+    assert_eq!(ch["features"].as_array().unwrap().len(), 4);
+    // The text ends with the changes.
+    let o = refit(&[]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    for needle in [
+        "Changes from the base model",
+        "kept (4 features, same names, order and units)",
+        "old explained",
+        "mixture: k 2 -> 3",
+        "limits (old -> new)",
+        "drift-state settings unchanged",
+    ] {
+        assert!(text.contains(needle), "{needle}: {text}");
+    }
+    let o = refit(&["--raise-dwell", "5", "--quiet"]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let o = refit(&["--raise-dwell", "5"]);
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(text.contains("raise dwell 3 -> 5"), "{text}");
+
+    // Logs that do not match the base schema: refused, naming file and column.
+    let base_s = base.display().to_string();
+    let with = ["--base", base_s.as_str()];
+    let cases = [
+        (
+            "missing.csv",
+            "t[s],x0[A],x1[V],x2[A]",
+            ":1 (x3): expected a column named \"x3\" (feature 4 of the base model",
+        ),
+        (
+            "unit.csv",
+            "t[s],x0[mA],x1[V],x2[A],x3[V]",
+            ":1:2 (x0): expected unit \"A\" as in the base model",
+        ),
+        (
+            "order.csv",
+            "t[s],x1[V],x0[A],x2[A],x3[V]",
+            ":1:2 (x1): feature 1 of the base model",
+        ),
+        (
+            "extra.csv",
+            "t[s],x0[A],x1[V],x2[A],x3[V],x9[V]",
+            ":1:6 (x9): unexpected column: the base model",
+        ),
+    ];
+    for (name, header, needle) in cases {
+        let p = edited(&d, name, 1, |_| header.to_string());
+        let want = format!("{}{needle}", p.display());
+        fit_fails(&d, &[&p], &with, &[&want, &base_s]);
+    }
+    // A damaged base model.
+    let bad = d.write("bad.plumb", "not a model");
+    let bad_s = bad.display().to_string();
+    fit_fails(
+        &d,
+        &[&c],
+        &["--base", &bad_s],
+        &["not a usable model file", &bad_s],
+    );
+}

@@ -2,12 +2,13 @@
 
 use crate::calibrate::{self, CalibConfig};
 use crate::cli::{LogArgs, OutputArgs};
+use crate::cmd::inspect::read_model;
 use crate::error::{Error, Result, EXIT_CLEAN};
 use crate::fit::{self, FitConfig, Holdout, MixtureChoice};
 use crate::logs::{self, BadCells, LogSet};
 use crate::pca::Keep;
 use crate::progress::Progress;
-use crate::summary::Summary;
+use crate::summary::{ModelDiff, Summary};
 use clap::Args;
 use std::path::PathBuf;
 
@@ -49,6 +50,14 @@ rows are held in memory, about 8·m bytes per training row (m = components kept)
 4 million rows × 6 components ≈ 190 MB, plus 24 bytes per held-out row (raw scores for
 their quantiles, monitored values for the limit search). Measured: 36 000 training rows
 and 1 million held-out rows × 24 features, peak 43 MB.
+
+Refit (--base OLD.plumb): the logs must have exactly the base model's feature columns
+(names, order and units; the first mismatch is refused, naming the log and the column);
+the model is fitted anew with the options given here (nothing is carried over from the
+base but its schema), and the summary ends with what changed: components kept and the
+variance each explains, mixture size and weights, limits per score, drift-state settings,
+the features whose means moved most, and the model id (in --json: `changes`, every pair
+[old, new]). Compare the two on logs with `plumb replay --compare OLD NEW LOG...`.
 
 The output is written atomically: nothing is left half-written on any error. The same
 logs and options always give the same bytes (--seed fixes the EM initialisation).";
@@ -163,6 +172,10 @@ pub struct FitArgs {
         help_heading = "Mixture"
     )]
     pub var_floor: f64,
+
+    /// Refit: keep the schema of this model (feature names, order and units; logs that do not match it are refused) and print what changed
+    #[arg(long, value_name = "OLD.plumb")]
+    pub base: Option<PathBuf>,
 
     /// Calibrate on these logs instead of the tail of each training log
     #[arg(long, value_name = "LOG", num_args = 1.., help_heading = "Calibration")]
@@ -330,9 +343,16 @@ pub fn run(args: FitArgs) -> Result<u8> {
             )));
         }
     }
+    let base = match &args.base {
+        Some(p) => Some((p, read_model(p)?)),
+        None => None,
+    };
     let opts = args.read.options(BadCells::Reject)?;
     let paths = logs::expand_paths(&args.logs)?;
     let train = LogSet::open(&paths, opts.clone())?;
+    if let Some((p, old)) = &base {
+        fit::check_schema(&train, &old.labels, p)?;
+    }
     let hold_set = if args.holdout.is_empty() {
         None
     } else {
@@ -350,7 +370,12 @@ pub fn run(args: FitArgs) -> Result<u8> {
         .to_bytes()
         .map_err(|e| Error::input(format!("the fitted model does not encode: {e}")))?;
     fit::write_atomic(&args.out, &bytes)?;
-    let summary = Summary::from_file(&outcome.file)?.with_fit(outcome.report);
+    let mut summary = Summary::from_file(&outcome.file)?.with_fit(outcome.report);
+    if let Some((p, old)) = &base {
+        let before = Summary::from_file(old)?;
+        let changes = ModelDiff::between(&p.display().to_string(), &before, &summary);
+        summary = summary.with_changes(changes);
+    }
     if args.output.json {
         println!("{}", summary.to_json());
     } else if !args.output.quiet {
