@@ -209,3 +209,112 @@ fn nominal_log_from_a_new_robot_gives_exit_zero() {
     assert_eq!(o.status.code(), Some(0), "{out}");
     assert!(out.contains("0 of 1 logs raised a drift flag"), "{out}");
 }
+
+#[test]
+fn compare_shows_both_models_side_by_side() {
+    // A refit of the shared model on two of the training logs (same schema,
+    // fewer rows): another model id, other limits.
+    let dir = Scratch::new("compare");
+    let new = dir.path("refit.plumb");
+    let o = plumb(&[
+        "fit",
+        demo("train/robot1_day1.csv").to_str().unwrap(),
+        demo("train/robot2_day1.csv").to_str().unwrap(),
+        "--base",
+        model().to_str().unwrap(),
+        "--out",
+        new.to_str().unwrap(),
+        "--mixture",
+        "3",
+        "--restarts",
+        "1",
+        "--quiet",
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let drift = demo("drift/loose_mount.csv");
+    let nominal = demo("holdout/robot4_day1.csv");
+    let args = |json: bool| {
+        let mut a = vec![
+            "replay",
+            "--compare",
+            model().to_str().unwrap(),
+            new.to_str().unwrap(),
+            drift.to_str().unwrap(),
+            nominal.to_str().unwrap(),
+        ];
+        if json {
+            a.push("--json");
+        }
+        a
+    };
+    let o = plumb(&args(true));
+    assert_eq!(
+        o.status.code(),
+        Some(1),
+        "a flag under either model: exit 1"
+    );
+    let v = json(&o);
+    let old_id = v["old"]["id"].as_str().unwrap();
+    assert_ne!(old_id, v["new"]["id"].as_str().unwrap());
+    assert_eq!(v["old"]["path"], model().to_str().unwrap());
+    let logs = v["logs"].as_array().unwrap();
+    assert_eq!(logs.len(), 2);
+    assert_eq!(logs[0]["path"], drift.to_str().unwrap());
+    assert_eq!(logs[0]["samples"], 8000);
+    // The step drift is flagged after the onset (truth.csv: row 3000) by
+    // the shared model (the refit, calibrated on 2400 rows only, may flag
+    // earlier); the shift of the first raise is new minus old.
+    let first = |side: &str| logs[0][side][0]["raised_at"].as_i64().unwrap();
+    assert!(first("old") >= 3000);
+    assert_eq!(logs[0]["first_raise_shift"], first("new") - first("old"));
+    assert!(logs[0]["old"][0]["scores"].as_array().is_some());
+    let sum = &v["summary"];
+    assert_eq!(sum["logs"], 2);
+    assert!(sum["old_flagged"].as_u64().unwrap() >= 1 && sum["new_flagged"].as_u64().unwrap() >= 1);
+    let differ = logs.iter().filter(|l| l["differs"] == true).count();
+    assert_eq!(sum["differ"], differ);
+
+    let o = plumb(&args(false));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(text.contains(&format!("old model {old_id}")), "{text}");
+    assert!(text.contains("flag  old"), "{text}");
+    assert!(text.contains("2 logs, flags differ in"), "{text}");
+
+    // A model against itself: the same flags everywhere.
+    let o = plumb(&[
+        "replay",
+        "--compare",
+        model().to_str().unwrap(),
+        model().to_str().unwrap(),
+        drift.to_str().unwrap(),
+        "--json",
+    ]);
+    let v = json(&o);
+    assert_eq!(v["summary"]["differ"], 0);
+    assert_eq!(v["logs"][0]["first_raise_shift"], 0);
+
+    // Usage: two models and at least one log; no trace.
+    let o = plumb(&[
+        "replay",
+        "--compare",
+        model().to_str().unwrap(),
+        new.to_str().unwrap(),
+    ]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("OLD NEW LOG"));
+    let o = plumb(&[
+        "replay",
+        "--compare",
+        "--trace",
+        dir.path("t.csv").to_str().unwrap(),
+        model().to_str().unwrap(),
+        new.to_str().unwrap(),
+        drift.to_str().unwrap(),
+    ]);
+    assert_eq!(o.status.code(), Some(2));
+}

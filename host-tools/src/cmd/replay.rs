@@ -5,9 +5,10 @@ use crate::cmd::inspect::read_model;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
 use crate::logs::{expand_paths, BadCells};
 use crate::progress::Progress;
-use crate::replay::{self, event_name, fault_name, state_name, LogReplay, Step};
+use crate::replay::{self, event_name, fault_name, state_name, Flag, LogReplay, Step};
 use clap::Args;
 use plumb_firmware::Score;
+use serde::Serialize;
 use std::io::Write;
 use std::path::PathBuf;
 
@@ -22,7 +23,14 @@ Empty or NaN cells are passed to the detector, which counts them as sensor fault
 --trace writes one CSV row per sample: scores, EWMA and CUSUM of each score, state,
 event and fault, for plotting or for comparing with a board bit for bit.
 
-Exit code 1 when any flag was raised, 0 when none, 2 on bad input.";
+--compare OLD NEW LOG... replays every log under both models (a refit and its base, say)
+and shows their flags side by side per log: raise and clear indices and the scores that
+drove each, a note on what differs, and a summary line (how many logs differ, which model
+flagged which, whether the new model raises earlier or later). With --json: `old`, `new`,
+`logs` (both flag lists per log) and `summary`.
+
+Exit code 1 when any flag was raised (under either model with --compare), 0 when none,
+2 on bad input.";
 
 /// Arguments of `plumb replay`.
 #[derive(Debug, Clone, Args)]
@@ -38,6 +46,10 @@ pub struct ReplayArgs {
     /// Write per-sample scores, statistics and states to this CSV
     #[arg(long, value_name = "FILE")]
     pub trace: Option<PathBuf>,
+
+    /// Compare two models on the same logs: `plumb replay --compare OLD NEW LOG...` (MODEL is the old model, the first LOG the new one)
+    #[arg(long, conflicts_with = "trace")]
+    pub compare: bool,
 
     #[command(flatten)]
     pub read: LogArgs,
@@ -143,6 +155,9 @@ pub fn text(reps: &[LogReplay]) -> String {
 
 /// Runs `plumb replay`.
 pub fn run(args: ReplayArgs) -> Result<u8> {
+    if args.compare {
+        return run_compare(args);
+    }
     let file = read_model(&args.model)?;
     let paths = expand_paths(&args.logs)?;
     let opts = args.read.options(BadCells::PassAsNan)?;
@@ -180,4 +195,357 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
     } else {
         EXIT_CLEAN
     })
+}
+
+/// One model of a comparison.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ModelRef {
+    /// The model file.
+    pub path: PathBuf,
+    /// Its model id, hex.
+    pub id: String,
+}
+
+/// One log under both models.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LogCompare {
+    /// The log.
+    pub path: PathBuf,
+    /// Samples replayed.
+    pub samples: u64,
+    /// Faulted samples under the old and the new model.
+    pub faults: [u64; 2],
+    /// Flags under the old model.
+    pub old: Vec<Flag>,
+    /// Flags under the new model.
+    pub new: Vec<Flag>,
+    /// Whether the flags differ (a raise or clear index, or the scores
+    /// behind a raise).
+    pub differs: bool,
+    /// First raise under the new model minus first raise under the old one,
+    /// in samples (negative: the new model is earlier); when both raised.
+    pub first_raise_shift: Option<i64>,
+    /// What differs, in words.
+    pub note: String,
+}
+
+/// The comparison over all logs.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct CompareSummary {
+    /// Logs replayed.
+    pub logs: usize,
+    /// Logs whose flags differ.
+    pub differ: usize,
+    /// Logs with a flag under the old model.
+    pub old_flagged: usize,
+    /// Logs with a flag under the new model.
+    pub new_flagged: usize,
+    /// Flags under the old model.
+    pub old_flags: usize,
+    /// Flags under the new model.
+    pub new_flags: usize,
+    /// Logs flagged only under the old model.
+    pub only_old: usize,
+    /// Logs flagged only under the new model.
+    pub only_new: usize,
+    /// Logs whose first raise is earlier under the new model.
+    pub new_earlier: usize,
+    /// Logs whose first raise is later under the new model.
+    pub new_later: usize,
+}
+
+impl CompareSummary {
+    /// The one-line human rendering.
+    pub fn line(&self) -> String {
+        format!(
+            "{} logs, flags differ in {}: old model raised in {} logs ({} flags), new in {} \
+             ({} flags); only old {}, only new {}; first raise earlier under the new model in \
+             {}, later in {}",
+            self.logs,
+            self.differ,
+            self.old_flagged,
+            self.old_flags,
+            self.new_flagged,
+            self.new_flags,
+            self.only_old,
+            self.only_new,
+            self.new_earlier,
+            self.new_later
+        )
+    }
+}
+
+/// Compares the flags of one log under two models.
+pub fn compare_log(old: &LogReplay, new: &LogReplay) -> LogCompare {
+    let key = |f: &Flag| (f.raised_at, f.cleared_at, f.scores.clone());
+    let differs = old.flags.len() != new.flags.len()
+        || old
+            .flags
+            .iter()
+            .zip(&new.flags)
+            .any(|(a, b)| key(a) != key(b));
+    let first_raise_shift = match (old.flags.first(), new.flags.first()) {
+        (Some(a), Some(b)) => Some(b.raised_at as i64 - a.raised_at as i64),
+        _ => None,
+    };
+    let note = match (old.flags.len(), new.flags.len()) {
+        (0, 0) => "no flag under either model".to_string(),
+        _ if !differs => "same flags".to_string(),
+        (n, 0) => format!("only the old model raised ({n} flag{})", plural(n)),
+        (0, n) => format!("only the new model raised ({n} flag{})", plural(n)),
+        (a, b) => {
+            let mut parts = Vec::new();
+            if a != b {
+                parts.push(format!("old {a} flag{}, new {b}", plural(a)));
+            }
+            match first_raise_shift {
+                Some(d) if d < 0 => parts.push(format!("new raises {} samples earlier", -d)),
+                Some(d) if d > 0 => parts.push(format!("new raises {d} samples later")),
+                _ => {}
+            }
+            if old.flags[0].scores != new.flags[0].scores {
+                parts.push(format!(
+                    "first raise by {} (old) and {} (new)",
+                    old.flags[0].scores.join("+"),
+                    new.flags[0].scores.join("+")
+                ));
+            }
+            if parts.is_empty() {
+                parts.push("later flags differ".to_string());
+            }
+            parts.join("; ")
+        }
+    };
+    LogCompare {
+        path: old.path.clone(),
+        samples: old.samples,
+        faults: [old.faults, new.faults],
+        old: old.flags.clone(),
+        new: new.flags.clone(),
+        differs,
+        first_raise_shift,
+        note,
+    }
+}
+
+fn plural(n: usize) -> &'static str {
+    if n == 1 {
+        ""
+    } else {
+        "s"
+    }
+}
+
+/// Sums up per-log comparisons.
+pub fn compare_summary(logs: &[LogCompare]) -> CompareSummary {
+    let count = |f: &dyn Fn(&LogCompare) -> bool| logs.iter().filter(|l| f(l)).count();
+    CompareSummary {
+        logs: logs.len(),
+        differ: count(&|l| l.differs),
+        old_flagged: count(&|l| !l.old.is_empty()),
+        new_flagged: count(&|l| !l.new.is_empty()),
+        old_flags: logs.iter().map(|l| l.old.len()).sum(),
+        new_flags: logs.iter().map(|l| l.new.len()).sum(),
+        only_old: count(&|l| !l.old.is_empty() && l.new.is_empty()),
+        only_new: count(&|l| l.old.is_empty() && !l.new.is_empty()),
+        new_earlier: count(&|l| l.first_raise_shift.is_some_and(|d| d < 0)),
+        new_later: count(&|l| l.first_raise_shift.is_some_and(|d| d > 0)),
+    }
+}
+
+fn flag_cell(f: Option<&Flag>) -> String {
+    match f {
+        None => String::new(),
+        Some(f) => format!(
+            "raised {} by {}, cleared {}",
+            f.raised_at,
+            f.scores.join("+"),
+            f.cleared_at.map_or("-".to_string(), |c| c.to_string())
+        ),
+    }
+}
+
+/// The human side-by-side table.
+pub fn compare_text(old: &ModelRef, new: &ModelRef, logs: &[LogCompare]) -> String {
+    let mut s = format!(
+        "old model {} ({}), new model {} ({})\n",
+        old.id,
+        old.path.display(),
+        new.id,
+        new.path.display()
+    );
+    for l in logs {
+        let faults = if l.faults[0] == l.faults[1] {
+            format!("{} faults", l.faults[0])
+        } else {
+            format!("{} / {} faults (old / new)", l.faults[0], l.faults[1])
+        };
+        s.push_str(&format!(
+            "{}  {} samples, {faults}: {}\n",
+            l.path.display(),
+            l.samples,
+            l.note
+        ));
+        let rows = l.old.len().max(l.new.len());
+        if rows > 0 {
+            s.push_str(&format!("  {:>4}  {:<42}  {}\n", "flag", "old", "new"));
+        }
+        for i in 0..rows {
+            s.push_str(&format!(
+                "  {:>4}  {:<42}  {}\n",
+                i + 1,
+                flag_cell(l.old.get(i)),
+                flag_cell(l.new.get(i))
+            ));
+        }
+    }
+    s.push_str(&compare_summary(logs).line());
+    s.push('\n');
+    s
+}
+
+/// Runs `plumb replay --compare OLD NEW LOG...`.
+fn run_compare(args: ReplayArgs) -> Result<u8> {
+    let (new_path, log_args) = match args.logs.split_first() {
+        Some((n, rest)) if !rest.is_empty() => (n.clone(), rest.to_vec()),
+        _ => {
+            return Err(Error::input(
+                "--compare needs two models and at least one log: plumb replay --compare OLD \
+                 NEW LOG...",
+            ))
+        }
+    };
+    let old_file = read_model(&args.model)?;
+    let new_file = read_model(&new_path)?;
+    let paths = expand_paths(&log_args)?;
+    let opts = args.read.options(BadCells::PassAsNan)?;
+    let progress = Progress::stderr(args.output.quiet || args.output.json);
+    let total: u64 = paths
+        .iter()
+        .map(|p| std::fs::metadata(p).map(|m| m.len()).unwrap_or(0))
+        .sum();
+    let mut runs = Vec::with_capacity(2);
+    for (label, file) in [("old", &old_file), ("new", &new_file)] {
+        let stage = progress.stage(label, total, true);
+        runs.push(replay::replay(file, &paths, opts.clone(), &stage, |_| {
+            Ok(())
+        })?);
+    }
+    let logs: Vec<LogCompare> = runs[0]
+        .iter()
+        .zip(&runs[1])
+        .map(|(a, b)| compare_log(a, b))
+        .collect();
+    let old = ModelRef {
+        path: args.model.clone(),
+        id: format!("{:08x}", old_file.model.meta.id),
+    };
+    let new = ModelRef {
+        path: new_path,
+        id: format!("{:08x}", new_file.model.meta.id),
+    };
+    if args.output.json {
+        println!(
+            "{}",
+            serde_json::json!({
+                "old": old,
+                "new": new,
+                "logs": logs,
+                "summary": compare_summary(&logs),
+            })
+        );
+    } else if !args.output.quiet {
+        print!("{}", compare_text(&old, &new, &logs));
+    }
+    Ok(
+        if logs.iter().any(|l| !l.old.is_empty() || !l.new.is_empty()) {
+            EXIT_DRIFT
+        } else {
+            EXIT_CLEAN
+        },
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::replay::{Faults, ScoreValues};
+
+    fn flag(raised: u64, cleared: Option<u64>, scores: &[&'static str]) -> Flag {
+        Flag {
+            raised_at: raised,
+            cleared_at: cleared,
+            scores: scores.to_vec(),
+            values: ScoreValues {
+                spe: 0.0,
+                t2: 0.0,
+                nll: 0.0,
+            },
+            top_features: Vec::new(),
+            raised_t: None,
+            cleared_t: None,
+        }
+    }
+
+    fn rep(flags: Vec<Flag>) -> LogReplay {
+        LogReplay {
+            path: PathBuf::from("a.csv"),
+            samples: 100,
+            faults: 0,
+            fault_kinds: Faults::default(),
+            flags,
+            over_sample_limit: [0; 3],
+            period_s: None,
+        }
+    }
+
+    #[test]
+    fn notes_say_what_differs() {
+        let none = compare_log(&rep(vec![]), &rep(vec![]));
+        assert!(!none.differs && none.note == "no flag under either model");
+        let a = rep(vec![flag(40, Some(90), &["spe"])]);
+        let same = compare_log(&a, &a.clone());
+        assert!(!same.differs && same.note == "same flags");
+        assert_eq!(same.first_raise_shift, Some(0));
+        let only_old = compare_log(&a, &rep(vec![]));
+        assert_eq!(only_old.note, "only the old model raised (1 flag)");
+        let only_new = compare_log(&rep(vec![]), &a);
+        assert_eq!(only_new.note, "only the new model raised (1 flag)");
+        let b = rep(vec![
+            flag(30, None, &["spe", "nll"]),
+            flag(95, None, &["t2"]),
+        ]);
+        let c = compare_log(&a, &b);
+        assert!(c.differs);
+        assert_eq!(c.first_raise_shift, Some(-10));
+        assert_eq!(
+            c.note,
+            "old 1 flag, new 2; new raises 10 samples earlier; first raise by spe (old) and \
+             spe+nll (new)"
+        );
+        // Same raise, another clear: differs, said so.
+        let d = rep(vec![flag(40, Some(99), &["spe"])]);
+        let c2 = compare_log(&a, &d);
+        assert!(c2.differs && c2.note == "later flags differ");
+        let s = compare_summary(&[none, same, only_old, only_new, c, c2]);
+        assert_eq!((s.logs, s.differ), (6, 4));
+        assert_eq!((s.old_flagged, s.new_flagged), (4, 4));
+        assert_eq!((s.old_flags, s.new_flags), (4, 5));
+        assert_eq!((s.only_old, s.only_new), (1, 1));
+        assert_eq!((s.new_earlier, s.new_later), (1, 0));
+        let text = compare_text(
+            &ModelRef {
+                path: "o.plumb".into(),
+                id: "0000000a".into(),
+            },
+            &ModelRef {
+                path: "n.plumb".into(),
+                id: "0000000b".into(),
+            },
+            &[compare_log(&a, &b)],
+        );
+        assert!(text.contains("raised 40 by spe, cleared 90"), "{text}");
+        assert!(text.contains("raised 95 by t2, cleared -"), "{text}");
+        assert!(text.ends_with("later in 0\n"), "{text}");
+    }
 }
