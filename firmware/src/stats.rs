@@ -38,7 +38,13 @@ macro_rules! real {
             }
             #[inline]
             fn from_count(n: u64) -> Self {
-                n as $t
+                // u32 → float is one instruction on a Cortex-M4F; u64 → float
+                // is a library call. Same value either way.
+                if n <= u64::from(u32::MAX) {
+                    n as u32 as $t
+                } else {
+                    n as $t
+                }
             }
         }
     };
