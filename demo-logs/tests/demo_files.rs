@@ -240,7 +240,9 @@ fn truth_table_points_at_real_rows(demo: &Demo) {
     }
     let text = fs::read_to_string(dir.join("truth.csv")).unwrap();
     assert!(text.starts_with("scenario,file,onset_row,onset_t_s,kind,features\n"));
-    assert!(text.contains("\ngain_change,drift/gain_change.csv,3000,300.0,drift,motor_current_left\n"));
+    assert!(
+        text.contains("\ngain_change,drift/gain_change.csv,3000,300.0,drift,motor_current_left\n")
+    );
 }
 
 fn dropout_is_nan_only_from_onset_and_only_in_its_features(demo: &Demo) {
