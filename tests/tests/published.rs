@@ -1,5 +1,6 @@
 //! The detector and the fit against published tables and exact identities
 //! (values from shared/references.md; each check names its source).
+#![allow(clippy::needless_range_loop)] // index loops mirror the published tables
 
 use plumb::pca::{symmetric_eigen, Moments};
 use plumb_checks::{data, read_csv};
