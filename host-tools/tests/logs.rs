@@ -120,7 +120,8 @@ fn mapped_to_model_labels() {
             unit: "V".into(),
         },
     ];
-    let set = LogSet::open_for_labels(&[p.clone()], &labels, ReadOptions::default()).unwrap();
+    let set =
+        LogSet::open_for_labels(std::slice::from_ref(&p), &labels, ReadOptions::default()).unwrap();
     let (v, _, t, _) = read_all(&set, &Selection::all(1));
     assert_eq!(v, vec![1.0, 2.0, 3.0, 4.0]);
     assert_eq!(t, vec![0.0, 0.1]);
@@ -134,7 +135,8 @@ fn mapped_to_model_labels() {
         }],
     ]
     .concat();
-    let e = LogSet::open_for_labels(&[p.clone()], &more, ReadOptions::default()).unwrap_err();
+    let e = LogSet::open_for_labels(std::slice::from_ref(&p), &more, ReadOptions::default())
+        .unwrap_err();
     assert_eq!(e.code, 2);
     assert!(
         e.to_string()
@@ -162,7 +164,7 @@ fn dropouts_pass_as_nan_or_skip() {
         bad_cells: BadCells::PassAsNan,
         ..ReadOptions::default()
     };
-    let set = LogSet::open(&[p.clone()], pass).unwrap();
+    let set = LogSet::open(std::slice::from_ref(&p), pass).unwrap();
     let (v, l, _, skipped) = read_all(&set, &Selection::all(1));
     assert_eq!(l, vec![2, 3, 4, 5]);
     assert_eq!(skipped, 0);
@@ -172,7 +174,7 @@ fn dropouts_pass_as_nan_or_skip() {
         bad_cells: BadCells::SkipRow,
         ..ReadOptions::default()
     };
-    let set = LogSet::open(&[p.clone()], skip).unwrap();
+    let set = LogSet::open(std::slice::from_ref(&p), skip).unwrap();
     let (v, l, _, skipped) = read_all(&set, &Selection::all(1));
     assert_eq!((v, l, skipped), (vec![3.0, 4.0], vec![4], 3));
     let set = LogSet::open(&[p], ReadOptions::default()).unwrap();
