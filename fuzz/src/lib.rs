@@ -1,0 +1,139 @@
+//! Pieces the fuzz targets share: the small valid models of the workspace
+//! tests, model files, an in-memory serial link, a drift line, and a
+//! deterministic chunker that turns a seed into read sizes.
+
+#![forbid(unsafe_code)]
+
+pub mod ops;
+
+#[path = "../../shared-model/tests/support/mod.rs"]
+pub mod support;
+
+use plumb_model::file::ModelFile;
+use plumb_model::ModelOwned;
+use std::collections::VecDeque;
+use std::convert::Infallible;
+
+/// The model every endpoint run boots on, and the fallback of the detector
+/// target: d = 4, m = 2, k = 2.
+pub fn builtin_model() -> ModelOwned {
+    support::example_model(4, 2, 2, 7)
+}
+
+/// A second valid model (another id, mean and mixture) to upload.
+pub fn other_model(id: u32) -> ModelOwned {
+    let mut m = support::example_model(4, 2, 2, 11);
+    m.meta.id = id;
+    m
+}
+
+/// The model file of `m`, without labels.
+pub fn file_of(m: &ModelOwned) -> Vec<u8> {
+    ModelFile {
+        model: m.clone(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .expect("a valid model")
+}
+
+/// Frames a payload that `ModelFile::to_bytes` would refuse.
+pub fn file_unchecked(m: &ModelOwned) -> Vec<u8> {
+    let payload = postcard::to_allocvec(m).expect("encodes");
+    frame_payload(&payload)
+}
+
+/// Header, payload, empty label section and a correct CRC around `payload`.
+pub fn frame_payload(payload: &[u8]) -> Vec<u8> {
+    let mut out = vec![0u8; payload.len() + 64];
+    let n = plumb_model::file::frame_into(payload, &[], &mut out).expect("room");
+    out.truncate(n);
+    out
+}
+
+/// Read sizes from a seed: 1 ..= `max` bytes, by SplitMix64.
+pub struct Chunker {
+    rng: support::Rng,
+    max: usize,
+}
+
+impl Chunker {
+    /// `max` 0 is taken as 1.
+    pub fn new(seed: u64, max: usize) -> Self {
+        Chunker {
+            rng: support::Rng(seed),
+            max: max.max(1),
+        }
+    }
+
+    /// The next read size.
+    pub fn next_len(&mut self) -> usize {
+        1 + (self.rng.next_u64() % self.max as u64) as usize
+    }
+}
+
+/// An in-memory serial link: what the host wrote waits in `to_device`, what
+/// the device writes lands in `from_device`; reads hand out the sizes a
+/// [`Chunker`] picks.
+pub struct Pipe {
+    /// Bytes not yet read by the device.
+    pub to_device: VecDeque<u8>,
+    /// Bytes the device wrote.
+    pub from_device: Vec<u8>,
+    /// Read sizes.
+    pub chunker: Chunker,
+}
+
+impl embedded_io::ErrorType for Pipe {
+    type Error = Infallible;
+}
+
+impl embedded_io::Read for Pipe {
+    fn read(&mut self, buf: &mut [u8]) -> Result<usize, Infallible> {
+        let n = buf
+            .len()
+            .min(self.chunker.next_len())
+            .min(self.to_device.len());
+        for (dst, src) in buf.iter_mut().zip(self.to_device.drain(..n)) {
+            *dst = src;
+        }
+        Ok(n)
+    }
+}
+
+impl embedded_io::ReadReady for Pipe {
+    fn read_ready(&mut self) -> Result<bool, Infallible> {
+        Ok(!self.to_device.is_empty())
+    }
+}
+
+impl embedded_io::Write for Pipe {
+    fn write(&mut self, buf: &[u8]) -> Result<usize, Infallible> {
+        self.from_device.extend_from_slice(buf);
+        Ok(buf.len())
+    }
+
+    fn flush(&mut self) -> Result<(), Infallible> {
+        Ok(())
+    }
+}
+
+/// A drift line that remembers its level.
+#[derive(Debug, Default)]
+pub struct Line(pub bool);
+
+impl embedded_hal::digital::ErrorType for Line {
+    type Error = Infallible;
+}
+
+impl embedded_hal::digital::OutputPin for Line {
+    fn set_low(&mut self) -> Result<(), Infallible> {
+        self.0 = false;
+        Ok(())
+    }
+
+    fn set_high(&mut self) -> Result<(), Infallible> {
+        self.0 = true;
+        Ok(())
+    }
+}

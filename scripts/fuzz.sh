@@ -1,0 +1,66 @@
+#!/usr/bin/env bash
+# Runs every fuzz target in fuzz/ for a fixed budget, one after another, one
+# job each, and prints executions per target and any crash.
+#
+#   scripts/fuzz.sh [SECONDS_PER_TARGET]      (default 60)
+#
+# Environment:
+#   FUZZ_TARGETS    targets to run, space-separated (default: all five)
+#   FUZZ_RUNS       stop a target after this many executions (default 10^7)
+#   FUZZ_SANITIZER  cargo-fuzz sanitizer: none (default) or address
+#
+# Needs the nightly toolchain and cargo-fuzz (`cargo install cargo-fuzz`).
+# New corpus entries go to fuzz/corpus-work/<target> (not committed); the
+# committed seeds in fuzz/corpus/<target> are only read. Crashes land in
+# fuzz/artifacts/<target>/; reproduce one with
+#   cargo +nightly fuzz run -s none <target> fuzz/artifacts/<target>/crash-...
+# Exit status: 0 when no target crashed, 1 otherwise.
+set -uo pipefail
+cd "$(dirname "$0")/.."
+
+secs="${1:-60}"
+targets="${FUZZ_TARGETS:-model_decode frame_decoder detector csv_reader endpoint}"
+runs="${FUZZ_RUNS:-10000000}"
+sanitizer="${FUZZ_SANITIZER:-none}"
+
+if ! cargo +nightly fuzz --version >/dev/null 2>&1; then
+    echo "cargo-fuzz is missing: cargo install cargo-fuzz" >&2
+    exit 2
+fi
+
+# Build once, then run the binaries: `cargo fuzz run` would rebuild whatever
+# changed in the tree between two targets.
+cargo +nightly fuzz build -s "$sanitizer" || exit 2
+host="$(rustc +nightly -vV | sed -n 's/^host: //p')"
+bin="fuzz/target/$host/release"
+
+logs="fuzz/corpus-work/logs"
+mkdir -p "$logs"
+summary=()
+failed=0
+for t in $targets; do
+    mkdir -p "fuzz/corpus-work/$t" "fuzz/artifacts/$t"
+    log="$logs/$t.log"
+    printf '\n== %s: up to %s s or %s executions\n' "$t" "$secs" "$runs"
+    start=$(date +%s)
+    "$bin/$t" "fuzz/corpus-work/$t" "fuzz/corpus/$t" \
+        -max_total_time="$secs" -runs="$runs" -print_final_stats=1 \
+        -artifact_prefix="fuzz/artifacts/$t/" >"$log" 2>&1
+    status=$?
+    elapsed=$(( $(date +%s) - start ))
+    execs=$(sed -n 's/^stat::number_of_executed_units: *//p' "$log" | tail -1)
+    execs="${execs:-0}"
+    rate=$(( execs / (elapsed > 0 ? elapsed : 1) ))
+    crash=$(sed -n 's/.*Test unit written to \(.*\)$/\1/p' "$log" | tail -1)
+    if [ "$status" -ne 0 ] || [ -n "$crash" ]; then
+        failed=1
+        grep -m1 -A4 "panicked at" "$log" || tail -20 "$log"
+        summary+=("$(printf '%-14s %12s execs %7s s %8s/s  CRASH %s' "$t" "$execs" "$elapsed" "$rate" "${crash:-see $log}")")
+    else
+        summary+=("$(printf '%-14s %12s execs %7s s %8s/s  ok' "$t" "$execs" "$elapsed" "$rate")")
+    fi
+done
+
+printf '\n== summary (sanitizer: %s, corpus: %s)\n' "$sanitizer" "fuzz/corpus-work"
+printf '%s\n' "${summary[@]}"
+exit "$failed"
