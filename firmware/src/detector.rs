@@ -325,37 +325,39 @@ impl Detector {
         self.index = self.index.wrapping_add(1);
         let scored = match score::score(&self.model, &self.derived, x) {
             Ok(s) => s,
-            Err(fault) => {
-                self.faults.count(fault);
-                return Outcome {
-                    index,
-                    scores: None,
-                    fault: Some(fault),
-                    state: self.state,
-                    event: None,
-                    hot: self.hot_set(),
-                    top: [Contribution {
-                        feature: score::NO_FEATURE,
-                        value: 0.0,
-                    }; TOP_FEATURES],
-                };
-            }
+            Err(fault) => return self.faulted(index, fault),
         };
         let s = scored.scores;
+        let mp = self.model.monitor;
+        let limits = [&mp.spe, &mp.t2, &mp.nll];
+        let values = [s.spe, s.t2, s.nll];
+        // Standardised scores. One that overflows (a model with a tiny
+        // spread), or would carry its EWMA out of the f32 range, makes the
+        // sample a score overflow before any statistic moves: a non-finite
+        // EWMA would stay NaN and the flag could never clear.
+        let mut us = [0.0f32; 3];
+        for (((u, lim), which), value) in us.iter_mut().zip(limits).zip(Score::ALL).zip(values) {
+            *u = (transform(which, value, self.derived.nll_floor()) - lim.center) / lim.spread;
+        }
+        let in_range = us.iter().zip(&self.tracks).all(|(u, track)| {
+            let mut ewma = track.ewma;
+            ewma.push(*u);
+            ewma.value().is_finite()
+        });
+        if !in_range {
+            return self.faulted(index, Fault::Overflow);
+        }
         self.valid += 1;
         self.window_len += 1;
         let roll = self.window_len >= WINDOW;
         if roll {
             self.window_len = 0;
         }
-        let mp = self.model.monitor;
-        let limits = [&mp.spe, &mp.t2, &mp.nll];
-        let values = [s.spe, s.t2, s.nll];
-        for ((track, lim), (which, value)) in self
+        for ((track, lim), (value, u)) in self
             .tracks
             .iter_mut()
             .zip(limits)
-            .zip(Score::ALL.into_iter().zip(values))
+            .zip(values.into_iter().zip(us))
         {
             track.since_reset.push(value);
             track.window.push(value);
@@ -366,7 +368,6 @@ impl Detector {
             if value > lim.sample_limit {
                 track.over_sample_limit = track.over_sample_limit.saturating_add(1);
             }
-            let u = (transform(which, value, self.derived.nll_floor()) - lim.center) / lim.spread;
             track.ewma.push(u);
             track.cusum.push(u);
         }
@@ -380,6 +381,23 @@ impl Detector {
             event,
             hot,
             top: scored.top,
+        }
+    }
+
+    /// Counts a faulted sample; no statistic moves.
+    fn faulted(&mut self, index: u64, fault: Fault) -> Outcome {
+        self.faults.count(fault);
+        Outcome {
+            index,
+            scores: None,
+            fault: Some(fault),
+            state: self.state,
+            event: None,
+            hot: self.hot_set(),
+            top: [Contribution {
+                feature: score::NO_FEATURE,
+                value: 0.0,
+            }; TOP_FEATURES],
         }
     }
 

@@ -50,7 +50,8 @@ pub enum Fault {
         /// Feature index.
         feature: u8,
     },
-    /// A score overflowed f32 (possible only with extreme models).
+    /// A score, or its standardised value, overflowed f32 (possible only with
+    /// extreme models).
     Overflow,
 }
 
