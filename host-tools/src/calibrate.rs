@@ -17,9 +17,13 @@
 //!    value. It is reported and counted, never a flag on its own.
 //! 4. Allowance. The target false-alarm rate per sample is split evenly over
 //!    the six charts (three scores × upper CUSUM and upper EWMA;
-//!    Bonferroni). Each chart may alarm at most `⌊rate / 6 × n⌋` times on the
-//!    held-out data, `n` being the samples it can alarm on (those after each
-//!    log's warm-up); when that is 0, it may not alarm at all.
+//!    Bonferroni): each chart's budget is `B = rate / 6 × n` false alarms,
+//!    `n` being the samples it can alarm on (those after each log's
+//!    warm-up). A limit that gives `a` alarms on the held-out data gives
+//!    about `a + 1` on new data of the same length (rank argument, see
+//!    [`chart_allowance`]), so each chart may alarm at most `⌊B⌋ − 1` times
+//!    on the held-out data; when that is 0 (or `B < 1`, which the report
+//!    warns about), not at all.
 //! 5. Per-chart run ([`Chart::alarms`]): one chart alone over the held-out
 //!    `u`, with the detector's own arithmetic ([`plumb_firmware::stats`]):
 //!    from 0 at the start of each log, no alarm during warm-up, an alarm after
@@ -426,6 +430,23 @@ pub fn smallest_limit(chart: Chart, s: &Series<'_>, floor: f64, allowed: u64) ->
     }
 }
 
+/// Each chart's false-alarm budget on `samples` held-out samples,
+/// `B = rate / 6 × samples`, and the alarms it may give there,
+/// `⌊B⌋ − 1` (at least 0).
+///
+/// Why one fewer than the budget: a limit at which a chart alarms `a` times
+/// on the held-out data sits at the `(a + 1)`-th highest of its excursion
+/// peaks there. If the excursions of new data are exchangeable with those,
+/// each exceeds that peak with probability `(a + 1) / (N + 1)` (N peaks held
+/// out), so new data of the same length alarm about `a + 1` times: the rank
+/// argument behind empirical quantile limits. `a + 1 ≤ B` keeps the expected
+/// count on new data within the budget. With `B < 1` no allowance can; 0 is
+/// used and the calibration warns.
+pub fn chart_allowance(rate: f64, samples: u64) -> (f64, u64) {
+    let budget = rate / CHARTS as f64 * samples as f64;
+    (budget, (budget.floor() as u64).saturating_sub(1))
+}
+
 /// Maps `f` over `items` on up to `threads` threads; results in item order.
 fn par_map<T: Sync, R: Send>(items: &[T], threads: usize, f: impl Fn(&T) -> R + Sync) -> Vec<R> {
     let threads = threads.clamp(1, items.len().max(1));
@@ -550,7 +571,11 @@ pub struct CalibReport {
     pub chart_arl: f64,
     /// Held-out samples a chart can alarm on (after each log's warm-up).
     pub chart_samples: u64,
-    /// Alarms each chart may give on them (`⌊rate / 6 × samples⌋`).
+    /// False alarms each chart may raise on them by the target
+    /// (`rate / 6 × samples`).
+    pub chart_budget: f64,
+    /// Alarms each chart may give on the held-out data (`⌊budget⌋ − 1`, at
+    /// least 0; see [`chart_allowance`]).
     pub allowed_per_chart: u64,
     /// Shift (spreads) at which delays are estimated and `k` is chosen.
     pub design_shift: f64,
@@ -602,7 +627,12 @@ pub fn wilson(x: u64, n: u64, z: f64) -> [f64; 2] {
     let denom = 1.0 + z2 / n;
     let centre = (p + z2 / (2.0 * n)) / denom;
     let half = z / denom * (p * (1.0 - p) / n + z2 / (4.0 * n * n)).sqrt();
-    [(centre - half).max(0.0), (centre + half).min(1.0)]
+    let lo = if x == 0 {
+        0.0
+    } else {
+        (centre - half).max(0.0)
+    };
+    [lo, (centre + half).min(1.0)]
 }
 
 /// Jackson & Mudholkar (1979) SPE limit at significance `alpha` from θ1..θ3
@@ -814,8 +844,17 @@ pub fn calibrate(
         dwell: cfg.raise_dwell,
     };
     let chart_samples = series(0).eligible();
-    let allowed_per_chart =
-        (cfg.false_alarm_rate / CHARTS as f64 * chart_samples as f64).floor() as u64;
+    let (chart_budget, allowed_per_chart) = chart_allowance(cfg.false_alarm_rate, chart_samples);
+    if chart_budget < 1.0 {
+        warnings.push(format!(
+            "the held-out data are too few to hold each chart to its share of the target on \
+             new data: a chart may raise {chart_budget:.3} false alarms in its {chart_samples} \
+             samples, but its limit can only sit at its highest held-out peak, which new data \
+             of that length exceed about once. Expect up to about one false alarm per chart \
+             per {chart_samples} samples, or hold out at least {:.0} rows",
+            2.0 * CHARTS as f64 / cfg.false_alarm_rate
+        ));
+    }
     // Work items: the EWMA design, then the CUSUM design for each k.
     let ks = &cfg.cusum_slacks;
     let theory: Vec<Option<f64>> =
@@ -936,6 +975,7 @@ pub fn calibrate(
         skipped,
         chart_arl,
         chart_samples,
+        chart_budget,
         allowed_per_chart,
         design_shift: cfg.design_shift,
         ewma_l_iid: l_iid,
@@ -1307,6 +1347,18 @@ mod tests {
             assert_eq!(sc.push(x), c.push(x));
             assert_eq!(se.push(x), e.push(x));
         }
+    }
+
+    #[test]
+    fn allowance_is_the_budget_less_one() {
+        // 1e-5 over 6 charts on 999 600 samples: budget 1.666; one alarm on
+        // the held-out data would mean about two on new data, so none.
+        let (b, a) = chart_allowance(1e-5, 999_600);
+        assert!((b - 1.666).abs() < 1e-12 && a == 0, "{b} {a}");
+        assert_eq!(chart_allowance(6e-4, 200_000).1, 19);
+        assert_eq!(chart_allowance(6e-4, 199_999).1, 18);
+        assert_eq!(chart_allowance(1e-5, 7_000).1, 0);
+        assert_eq!(chart_allowance(1e-5, 0), (0.0, 0));
     }
 
     #[test]

@@ -544,18 +544,22 @@ impl Summary {
             let _ = writeln!(o, "\nCalibration on held-out logs");
             let _ = writeln!(
                 o,
-                "  {} rows scored ({} faulted, {} skipped). Each of the 6 charts may alarm {} time{} \
-                 on its {} samples (rate / 6); limits never below the design for independent \
-                 input (ARL0 = {:.0} per chart). Delays: ARL at a shift of {} spreads, \
-                 independent input.",
+                "  {} rows scored ({} faulted, {} skipped). Each of the 6 charts has a budget of \
+                 {:.3} false alarms on its {} samples (rate / 6) and may alarm {} time{} there \
+                 (budget rounded down, less one: a limit that alarms a times on held-out data \
+                 alarms about a + 1 times on new data). Limits never below the design for \
+                 independent input (ARL0 = {:.0} per chart). Delays: ARL at a shift of {} \
+                 spreads, independent input; a flag rises {} samples later (raise dwell).",
                 c.scored,
                 c.faults,
                 c.skipped,
+                c.chart_budget,
+                c.chart_samples,
                 c.allowed_per_chart,
                 if c.allowed_per_chart == 1 { "" } else { "s" },
-                c.chart_samples,
                 c.chart_arl,
-                c.design_shift
+                c.design_shift,
+                self.monitor.raise_dwell.saturating_sub(1)
             );
             let _ = writeln!(
                 o,

@@ -27,9 +27,11 @@ machine is run once over the held-out logs to check the result.
 Limits: per score, centre and spread are the mean and standard deviation of the
 transformed held-out score; the per-sample limit is its empirical 0.999 quantile (inverted
 distribution function: the ⌈0.999 n⌉-th smallest value). The false-alarm rate is split
-evenly over the six charts (3 scores × CUSUM and EWMA): each may alarm at most
-⌊rate / 6 × n⌋ times on the n held-out samples it watches (0: not at all), run alone as
-the detector runs it (from 0 in each log, no alarm in warm-up, --raise-dwell samples over
+evenly over the six charts (3 scores × CUSUM and EWMA): each has a budget of
+B = rate / 6 × n false alarms on the n held-out samples it watches, and may alarm there at
+most ⌊B⌋ − 1 times (a limit that alarms a times on held-out data alarms about a + 1 times
+on new data of the same length; with B < 1 it may not alarm at all, and the fit warns),
+run alone as the detector runs it (from 0 in each log, no alarm in warm-up, --raise-dwell samples over
 the limit, restart from 0 after an alarm). Real scores are autocorrelated, so each limit
 is the smallest meeting that allowance (bisection), never below the design for
 independent N(0, 1) input (in-control ARL 6 / rate, Markov-chain method of Brook & Evans
