@@ -51,7 +51,7 @@ Memory: the logs stream from disk in 4 MiB blocks; the latent scores of the trai
 rows are held in memory, about 8·m bytes per training row (m = components kept), e.g.
 4 million rows × 6 components ≈ 190 MB, plus 24 bytes per held-out row (raw scores for
 their quantiles, monitored values for the limit search). Measured: 36 000 training rows
-and 1 million held-out rows × 24 features, peak 43 MB.
+and 1 million held-out rows × 24 features, peak 46 MB.
 
 Refit (--base OLD.plumb): the logs must have exactly the base model's feature columns
 (names, order and units; the first mismatch is refused, naming the log and the column);
