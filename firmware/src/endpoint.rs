@@ -31,7 +31,12 @@
 //!   only after its length, whole-file CRC-32, model file checks and the
 //!   detector's own checks pass and the slot's record is written; anything
 //!   else leaves the running model and its statistics untouched and is
-//!   answered with a refusal code.
+//!   answered with a refusal code;
+//! * with [`Config::trusted_key`] set, an upload (and a slot at boot, see
+//!   [`Endpoint::boot_with`]) must also carry a valid ed25519 signature by
+//!   that key (`shared-model/FORMAT.md`, "Signature"), checked after the
+//!   file's framing and CRC and before its payload is decoded; unsigned and
+//!   wrongly signed files are refused with their own codes.
 //!
 //! Nothing allocates and every failure is a value. The big buffers live
 //! inside the type: on `thumbv7em-none-eabihf` an `Endpoint` with the default
@@ -48,6 +53,7 @@ use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
 use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
 use embedded_io::{ErrorType, Read, ReadReady, Write};
 use heapless::Deque;
+use plumb_model::signature::{self, TrustedKey};
 use plumb_model::wire::{
     self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, FaultKind, FaultTally, Greeting,
     HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal, Request, ResendDone,
@@ -74,6 +80,10 @@ pub struct Config {
     pub firmware: &'static str,
     /// A status message every this many samples; 0 turns them off.
     pub status_every: u32,
+    /// Run only model files signed by this key (uploads, and slots at boot
+    /// through [`Endpoint::boot_with`]); `None` runs any valid file. A
+    /// model built into the image is trusted as it is.
+    pub trusted_key: Option<TrustedKey>,
 }
 
 impl Default for Config {
@@ -81,8 +91,20 @@ impl Default for Config {
         Config {
             firmware: env!("CARGO_PKG_VERSION"),
             status_every: DEFAULT_STATUS_EVERY,
+            trusted_key: None,
         }
     }
+}
+
+/// Whether a model file passes `config`'s signature policy: always without
+/// a trusted key; else framing and CRC first, then the signature (the
+/// payload is not decoded here).
+pub fn check_trust(file: &[u8], config: &Config) -> Result<(), Reason> {
+    let Some(key) = config.trusted_key else {
+        return Ok(());
+    };
+    let sections = plumb_model::file::split(file).map_err(Reason::from)?;
+    signature::verify(&sections, &key).map_err(Reason::from)
 }
 
 /// Why a call could not finish its output. Input problems are never errors:
@@ -218,8 +240,21 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
 
     /// Starts on the newest valid slot (highest generation whose record,
     /// CRC-32 and model file all pass), else on `builtin` (a model file in
-    /// the image), else fails.
+    /// the image), else fails. Default [`Config`]: no signature needed.
     pub fn boot(slots: S, pin: P, builtin: Option<&[u8]>) -> Result<Self, BootError> {
+        Self::boot_with(slots, pin, builtin, Config::default())
+    }
+
+    /// [`Endpoint::boot`] with settings: with [`Config::trusted_key`] set, a
+    /// slot whose file is not signed by that key is passed over like an
+    /// invalid one (the built-in model is not checked: it is part of the
+    /// image).
+    pub fn boot_with(
+        slots: S,
+        pin: P,
+        builtin: Option<&[u8]>,
+        config: Config,
+    ) -> Result<Self, BootError> {
         let mut order = [Slot::A, Slot::B].map(|s| (s, slots.record(s)));
         if let [(_, Some(a)), (_, Some(b))] = order {
             if b.generation > a.generation {
@@ -231,13 +266,22 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
             let Some(bytes) = slot_file(&slots, slot) else {
                 continue;
             };
+            if check_trust(bytes, &config).is_err() {
+                continue;
+            }
             if let Ok(det) = Detector::from_file(bytes) {
-                return Ok(Self::assemble(det, Some(slot), rec.generation, slots, pin));
+                let mut ep = Self::assemble(det, Some(slot), rec.generation, slots, pin);
+                ep.config = config;
+                return Ok(ep);
             }
         }
         match builtin {
             Some(file) => Detector::from_file(file)
-                .map(|det| Self::assemble(det, None, 0, slots, pin))
+                .map(|det| {
+                    let mut ep = Self::assemble(det, None, 0, slots, pin);
+                    ep.config = config;
+                    ep
+                })
                 .map_err(BootError::Builtin),
             None => Err(BootError::NoModel),
         }
@@ -793,6 +837,9 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
                 computed,
             });
         }
+        // On a board that trusts a key: framing, CRC and signature before
+        // any of the payload is decoded.
+        check_trust(file, &self.config)?;
         // `Detector::from_file` = `file::decode` (framing, CRC, validation,
         // capacity) + `Detector::new` (the detector's own checks); the same
         // checks `Detector::install` runs, without replacing the running

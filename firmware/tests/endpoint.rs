@@ -384,6 +384,7 @@ mod greeting_and_boot {
         rig.ep.set_config(Config {
             firmware: "board-x 1.2.3-rc.4+g0123456",
             status_every: 0,
+            ..Config::default()
         });
         let DeviceMsg::Greeting(g) = rig.ask(&HostMsg::GreetingQuery) else {
             panic!()
@@ -1172,4 +1173,161 @@ fn footprint() {
         size_of::<wire::HostFrameDecoder>(),
     );
     assert!(endpoint < detector + 8 * 1024, "{endpoint}");
+}
+
+mod signed_models {
+    use super::*;
+    use plumb_model::signature::{self, KeyId, TrustedKey};
+
+    const SEED: [u8; 32] = [0x11; 32];
+    const OTHER: [u8; 32] = [0x22; 32];
+
+    fn key() -> TrustedKey {
+        TrustedKey::new(signature::public_key(&SEED))
+    }
+
+    fn trusting() -> Config {
+        Config {
+            trusted_key: Some(key()),
+            ..Config::default()
+        }
+    }
+
+    fn signed(m: &ModelOwned, seed: &[u8; 32]) -> Vec<u8> {
+        signature::sign(&file_of(m), seed).unwrap()
+    }
+
+    /// Uploads `bytes` to a rig that trusts [`SEED`]'s key (model 1 running,
+    /// unsigned, from before the key was set) and checks the refusal and
+    /// that nothing changed.
+    fn refused_when_trusting(bytes: Vec<u8>, want: Reason) {
+        let mut rig: Rig = Rig::new();
+        rig.ep.set_config(trusting());
+        let warm = mixed_samples(31, 60);
+        let mut reference = Detector::from_file(&file_of(&model(1, 0.0))).unwrap();
+        assert_scores_match(&mut rig, &mut reference, &warm);
+        let before = rig.ep.status();
+        let answers = rig.upload(&bytes, wire::crc32(&bytes));
+        let r = refusal(&answers).unwrap_or_else(|| panic!("no refusal in {answers:?}"));
+        assert_eq!((r.request, r.reason), (Request::UploadCommit, want));
+        assert_eq!(switched(&answers), None);
+        assert_eq!(
+            (rig.ep.active_slot(), rig.ep.generation()),
+            (Some(Slot::A), 1)
+        );
+        assert_eq!(rig.ep.detector().model().meta.id, 1);
+        let after = rig.ep.status();
+        assert_eq!(
+            (after.samples, after.levels),
+            (before.samples, before.levels)
+        );
+        assert_scores_match(&mut rig, &mut reference, &mixed_samples(32, 40));
+        // The slot written is not recorded: a reboot (without the key, as
+        // model 1 is unsigned) runs model 1.
+        let (_, slots, _) = rig.ep.release();
+        assert_eq!(slots.record(Slot::B), None);
+        let ep = Endpoint::<_, _>::boot(slots, Line::default(), None).unwrap();
+        assert_eq!(ep.detector().model().meta.id, 1);
+    }
+
+    #[test]
+    fn a_trusting_board_takes_a_file_signed_by_its_key() {
+        let mut rig: Rig = Rig::new();
+        rig.ep.set_config(trusting());
+        let bytes = signed(&model(2, 0.25), &SEED);
+        let answers = rig.upload(&bytes, wire::crc32(&bytes));
+        assert_eq!(switched(&answers), Some((Slot::B, 2, 2)), "{answers:?}");
+        let mut reference = Detector::from_file(&bytes).unwrap();
+        assert_scores_match(&mut rig, &mut reference, &mixed_samples(33, 50));
+    }
+
+    #[test]
+    fn an_unsigned_file_is_refused() {
+        refused_when_trusting(file_of(&model(2, 0.25)), Reason::Unsigned);
+    }
+
+    #[test]
+    fn a_file_signed_by_another_key_is_refused_with_its_key_id() {
+        let key_id = KeyId::of(&signature::public_key(&OTHER));
+        refused_when_trusting(
+            signed(&model(2, 0.25), &OTHER),
+            Reason::UnknownKey { key_id },
+        );
+    }
+
+    #[test]
+    fn a_file_changed_after_signing_is_refused() {
+        let mut bytes = signed(&model(2, 0.25), &SEED);
+        // A payload byte (the model id), CRC made to match: only the
+        // signature can tell.
+        bytes[file::HEADER_LEN] ^= 0x01;
+        let end = bytes.len() - 4;
+        let crc = file::CRC.checksum(&bytes[..end]);
+        bytes[end..].copy_from_slice(&crc.to_le_bytes());
+        refused_when_trusting(bytes, Reason::BadSignature);
+    }
+
+    #[test]
+    fn a_damaged_signed_file_is_a_crc_error_first() {
+        let mut bytes = signed(&model(2, 0.25), &SEED);
+        let k = bytes.len() - 30; // inside the signature
+        bytes[k] ^= 0x01;
+        let Err(plumb_model::ModelError::BadCrc { stored, computed }) = file::split(&bytes) else {
+            panic!("expected a CRC error")
+        };
+        refused_when_trusting(bytes, Reason::BadCrc { stored, computed });
+    }
+
+    #[test]
+    fn a_board_without_a_key_runs_signed_and_unsigned_files() {
+        let mut rig: Rig = Rig::new();
+        let bytes = signed(&model(2, 0.25), &OTHER);
+        assert_eq!(
+            switched(&rig.upload(&bytes, wire::crc32(&bytes))),
+            Some((Slot::B, 2, 2))
+        );
+        let bytes = file_of(&model(3, 0.5));
+        assert_eq!(
+            switched(&rig.upload(&bytes, wire::crc32(&bytes))),
+            Some((Slot::A, 3, 3))
+        );
+    }
+
+    #[test]
+    fn boot_passes_over_slots_not_signed_by_the_key() {
+        let builtin = file_of(&model(9, 0.0));
+        let boot = |a: Option<Vec<u8>>, b: Option<Vec<u8>>| {
+            let mut slots: RamSlots<SLOT> = RamSlots::new();
+            if let Some(f) = a {
+                slots.store(Slot::A, &f, 1).unwrap();
+            }
+            if let Some(f) = b {
+                slots.store(Slot::B, &f, 2).unwrap();
+            }
+            let ep =
+                Endpoint::<_, _>::boot_with(slots, Line::default(), Some(&builtin), trusting())
+                    .unwrap();
+            assert_eq!(ep.config().trusted_key, Some(key()));
+            (ep.detector().model().meta.id, ep.active_slot())
+        };
+        let good = |id| signed(&model(id, 0.0), &SEED);
+        // The newest slot is signed: it runs.
+        assert_eq!(boot(Some(good(1)), Some(good(2))), (2, Some(Slot::B)));
+        // The newest is unsigned or signed by another key: the older one.
+        assert_eq!(
+            boot(Some(good(1)), Some(file_of(&model(2, 0.0)))),
+            (1, Some(Slot::A))
+        );
+        assert_eq!(
+            boot(Some(good(1)), Some(signed(&model(2, 0.0), &OTHER))),
+            (1, Some(Slot::A))
+        );
+        // Neither: the built-in model (part of the image, not checked).
+        assert_eq!(boot(Some(file_of(&model(1, 0.0))), None), (9, None));
+        // Without a key, the newest valid slot as always.
+        let mut slots: RamSlots<SLOT> = RamSlots::new();
+        slots.store(Slot::B, &file_of(&model(2, 0.0)), 2).unwrap();
+        let ep = Endpoint::<_, _>::boot(slots, Line::default(), None).unwrap();
+        assert_eq!(ep.detector().model().meta.id, 2);
+    }
 }

@@ -73,12 +73,18 @@ pub enum Command {
     /// Show what a model file holds.
     #[command(long_about = cmd::inspect::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Inspect(cmd::inspect::InspectArgs),
+    /// Make an ed25519 key pair for signing model files.
+    #[command(long_about = cmd::keygen::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Keygen(cmd::keygen::KeygenArgs),
     /// Listen to a board: greeting, drift raised and cleared, faults, status, link health.
     #[command(long_about = cmd::listen::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Listen(cmd::listen::ListenArgs),
     /// Upload a model file to a board over the link (it switches only if every check passes).
     #[command(long_about = cmd::upload::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Upload(cmd::upload::UploadArgs),
+    /// Sign a model file with a secret key (boards built to trust the key run only signed models).
+    #[command(long_about = cmd::sign::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Sign(cmd::sign::SignArgs),
     /// Run logs through the firmware detector on the host and report drift flags.
     #[command(long_about = cmd::replay::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Replay(cmd::replay::ReplayArgs),
@@ -95,8 +101,10 @@ pub fn run(cli: Cli) -> Result<u8> {
         Command::Feed(args) => cmd::feed::run(args),
         Command::Image(args) => cmd::image::run(args),
         Command::Inspect(args) => cmd::inspect::run(args),
+        Command::Keygen(args) => cmd::keygen::run(args),
         Command::Listen(args) => cmd::listen::run(args),
         Command::Upload(args) => cmd::upload::run(args),
+        Command::Sign(args) => cmd::sign::run(args),
         Command::Replay(args) => cmd::replay::run(args),
         Command::Report(args) => cmd::report::run(args),
     }

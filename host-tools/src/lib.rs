@@ -18,6 +18,7 @@
 //! | [`link`] | the serial link on the host: transports (serial port, spawned program, loopback TCP), framing, sequence gaps and resends |
 //! | [`device`] | conversations with a board: requests with retries, feeding samples, uploads |
 //! | [`events`] | text, JSON and CSV views of what a board says; the seam for a live view |
+//! | [`keys`] | ed25519 key files, signing model files, what a file's signature says |
 //! | [`boards`] | boards' model-slot memory maps and flashable slot images (Intel HEX, binary) |
 //! | [`cli`], [`cmd`] | the command line |
 //! | [`error`] | the error type: message, location, exit code |
@@ -40,6 +41,7 @@ pub mod error;
 pub mod events;
 pub mod fit;
 pub mod gmm;
+pub mod keys;
 pub mod link;
 pub mod logs;
 pub mod pca;

@@ -4,16 +4,18 @@
 //! offset  size  field
 //! 0       4     magic "PLMD"
 //! 4       2     format version, u16 little-endian (FORMAT_VERSION)
-//! 6       2     flags, u16 little-endian (must be 0 in version 1)
+//! 6       2     flags, u16 little-endian (bit 0: signed; others must be 0)
 //! 8       4     payload length P, u32 little-endian
 //! 12      4     label section length L, u32 little-endian
 //! 16      P     payload: postcard encoding of the model
 //! 16+P    L     labels: postcard encoding of the feature names and units (host only)
-//! 16+P+L  4     CRC-32/ISO-HDLC of bytes [0, 16+P+L), u32 little-endian
+//! 16+P+L  S     signature block, S = 72 when flag bit 0 is set, else 0 (`signature`)
+//! 16+P+L+S 4    CRC-32/ISO-HDLC of bytes [0, 16+P+L+S), u32 little-endian
 //! ```
 //! See `FORMAT.md` for the full specification and its stability rules.
 
 use crate::error::ModelError;
+use crate::signature::{SignatureBlock, BLOCK_LEN, FLAG_SIGNED, KNOWN_FLAGS};
 use crate::{Capacity, Dims, Model, ModelMeta};
 
 /// The four bytes every model file starts with.
@@ -37,6 +39,9 @@ pub struct Sections<'a> {
     pub payload: &'a [u8],
     /// The postcard-encoded label section (may be empty).
     pub labels: &'a [u8],
+    /// The signature block, when the header's signed flag is set (not yet
+    /// verified: see [`crate::signature::verify`]).
+    pub signature: Option<SignatureBlock<'a>>,
 }
 
 fn le16(b: &[u8], at: usize) -> u16 {
@@ -47,7 +52,8 @@ fn le32(b: &[u8], at: usize) -> u32 {
     u32::from_le_bytes([b[at], b[at + 1], b[at + 2], b[at + 3]])
 }
 
-/// Checks magic, version, flags, lengths and CRC; returns the sections.
+/// Checks magic, version, flags, lengths and CRC; returns the sections. A
+/// signed file's signature is located, not verified.
 pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
     let got = bytes.len() as u32;
     if bytes.len() < 4 {
@@ -70,12 +76,17 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
         return Err(ModelError::UnknownVersion { found: version });
     }
     let flags = le16(bytes, 6);
-    if flags != 0 {
+    if flags & !KNOWN_FLAGS != 0 {
         return Err(ModelError::UnknownFlags { found: flags });
     }
+    let block_len = if flags & FLAG_SIGNED != 0 {
+        BLOCK_LEN as u64
+    } else {
+        0
+    };
     let payload_len = le32(bytes, 8) as u64;
     let labels_len = le32(bytes, 12) as u64;
-    let total = HEADER_LEN as u64 + payload_len + labels_len + CRC_LEN as u64;
+    let total = HEADER_LEN as u64 + payload_len + labels_len + block_len + CRC_LEN as u64;
     if (bytes.len() as u64) < total {
         return Err(ModelError::Truncated {
             needed: total.min(u32::MAX as u64) as u32,
@@ -94,10 +105,16 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
         return Err(ModelError::BadCrc { stored, computed });
     }
     let payload_end = HEADER_LEN + payload_len as usize;
+    let labels_end = body_end - block_len as usize;
     Ok(Sections {
         version,
         payload: &bytes[HEADER_LEN..payload_end],
-        labels: &bytes[payload_end..body_end],
+        labels: &bytes[payload_end..labels_end],
+        signature: if block_len > 0 {
+            SignatureBlock::at(bytes, labels_end)
+        } else {
+            None
+        },
     })
 }
 

@@ -7,7 +7,8 @@
 //!   loadings, the diagonal Gaussian mixture, every limit of the streaming
 //!   logic), stored in fixed-capacity [`heapless`] vectors;
 //! * the model file (`.plumb`): magic, format version, lengths, a postcard
-//!   payload, a host-only label section and a CRC-32 ([`mod@file`]);
+//!   payload, a host-only label section, an optional ed25519 signature
+//!   ([`signature`]) and a CRC-32 ([`mod@file`]);
 //! * the schema fingerprint that ties a model to the logs it was fitted on
 //!   ([`schema`]);
 //! * the capacities a device build accepts ([`Capacity`]).
@@ -27,6 +28,7 @@ mod error;
 pub mod file;
 mod model;
 pub mod schema;
+pub mod signature;
 pub mod wire;
 
 pub use error::{Dim, Field, ModelError};

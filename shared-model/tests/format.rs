@@ -189,9 +189,23 @@ fn each_framing_error_is_distinct() {
     b[4] = 2;
     assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 2 }));
 
+    // Flag bit 0 is the signature's; any other set flag is unknown.
+    let mut b = good.clone();
+    b[6] = 2;
+    assert_eq!(decode(&b), Err(ModelError::UnknownFlags { found: 2 }));
+    let mut b = good.clone();
+    b[7] = 0x80;
+    assert_eq!(decode(&b), Err(ModelError::UnknownFlags { found: 0x8000 }));
+    // The signed flag on a file without the block: 72 bytes short.
     let mut b = good.clone();
     b[6] = 1;
-    assert_eq!(decode(&b), Err(ModelError::UnknownFlags { found: 1 }));
+    assert_eq!(
+        decode(&b),
+        Err(ModelError::Truncated {
+            needed: good.len() as u32 + 72,
+            got: good.len() as u32
+        })
+    );
 
     let n = good.len() as u32;
     assert_eq!(
@@ -389,5 +403,204 @@ proptest! {
         let mut out = vec![0u8; HEADER_LEN + payload_len + 4];
         file::frame_into(&payload, &[], &mut out).unwrap();
         let _ = decode(&out);
+    }
+}
+
+// ------------------------------------------------------------ signatures
+
+mod signed {
+    use super::*;
+    use plumb_model::signature::{self, KeyId, SignatureError, TrustedKey, BLOCK_LEN, FLAG_SIGNED};
+
+    /// RFC 8032, section 7.1, TEST 1: secret key (seed), public key, and
+    /// the signature of the empty message (published test vector).
+    const RFC_SEED: &str = "9d61b19deffd5a60ba844af492ec2cc44449c5697b326919703bac031cae7f60";
+    const RFC_PUBLIC: &str = "d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a";
+    const RFC_SIG_EMPTY: &str = "e5564300c360ac729086e2cc806e828a84877f1eb8e5d974d873e065\
+                                 224901555fb8821590a33bacc61e39701cf9b46bd25bf5f0595bbe24\
+                                 655141438e7a100b";
+
+    fn hex<const N: usize>(s: &str) -> [u8; N] {
+        let v: Vec<u8> = (0..s.len())
+            .step_by(2)
+            .map(|i| u8::from_str_radix(&s[i..i + 2], 16).unwrap())
+            .collect();
+        v.try_into().unwrap()
+    }
+
+    fn seed() -> [u8; 32] {
+        hex(RFC_SEED)
+    }
+
+    fn trusted() -> TrustedKey {
+        TrustedKey::new(hex(RFC_PUBLIC))
+    }
+
+    fn unsigned() -> Vec<u8> {
+        ModelFile {
+            model: tiny(),
+            labels: vec![],
+        }
+        .to_bytes()
+        .unwrap()
+    }
+
+    #[test]
+    fn the_ed25519_implementation_matches_rfc_8032() {
+        assert_eq!(signature::public_key(&seed()), hex::<32>(RFC_PUBLIC));
+        let block = signature::SignatureBlock {
+            key_id: trusted().id(),
+            signature: &hex::<64>(RFC_SIG_EMPTY),
+            signed: &[],
+        };
+        assert_eq!(signature::verify_block(&block, &trusted()), Ok(()));
+        let mut bad = hex::<64>(RFC_SIG_EMPTY);
+        bad[10] ^= 1;
+        let block = signature::SignatureBlock {
+            signature: &bad,
+            ..block
+        };
+        assert_eq!(
+            signature::verify_block(&block, &trusted()),
+            Err(SignatureError::BadSignature)
+        );
+    }
+
+    #[test]
+    fn key_id_is_the_start_of_sha512_of_the_public_key() {
+        // Python: hashlib.sha512(bytes.fromhex(RFC_PUBLIC)).hexdigest()[:16]
+        assert_eq!(trusted().id().to_string(), "0e02a50225b4baaa");
+        assert_eq!(KeyId::of(&hex(RFC_PUBLIC)), trusted().id());
+    }
+
+    #[test]
+    fn signed_tiny_model_layout() {
+        let plain = unsigned();
+        let signed = signature::sign(&plain, &seed()).unwrap();
+        let p = plain.len() - HEADER_LEN - 4; // no labels
+        assert_eq!(signed.len(), plain.len() + BLOCK_LEN);
+        // Header: flag bit 0 set, lengths unchanged.
+        assert_eq!(&signed[0..6], &plain[0..6]);
+        assert_eq!(
+            u16::from_le_bytes([signed[6], signed[7]]),
+            FLAG_SIGNED,
+            "flags"
+        );
+        assert_eq!(&signed[8..16], &plain[8..16]);
+        // Payload as it was, then the key id, the signature, the CRC.
+        assert_eq!(
+            &signed[HEADER_LEN..HEADER_LEN + p],
+            &plain[HEADER_LEN..HEADER_LEN + p]
+        );
+        let at = HEADER_LEN + p;
+        assert_eq!(&signed[at..at + 8], &trusted().id().0);
+        let sig: [u8; 64] = signed[at + 8..at + 72].try_into().unwrap();
+        let pk = ed25519_compact::PublicKey::new(hex(RFC_PUBLIC));
+        pk.verify(&signed[..at + 8], &ed25519_compact::Signature::new(sig))
+            .expect("the signature covers header, payload, labels and key id");
+        let end = signed.len() - 4;
+        assert_eq!(
+            u32::from_le_bytes(signed[end..].try_into().unwrap()),
+            CRC.checksum(&signed[..end])
+        );
+        // RFC 8032 signatures are deterministic: the whole file is pinned.
+        assert_eq!(signature::sign(&plain, &seed()).unwrap(), signed);
+        assert_eq!(
+            CRC.checksum(&signed),
+            0x2144_df1c,
+            "pinned CRC of the signed tiny model file"
+        );
+        // Stripping gives the unsigned bytes back; signing twice replaces.
+        assert_eq!(signature::strip(&signed).unwrap(), plain);
+        assert_eq!(signature::sign(&signed, &seed()).unwrap(), signed);
+    }
+
+    #[test]
+    fn readers_take_a_signed_file_as_the_model_it_holds() {
+        let plain = unsigned();
+        let signed = signature::sign(&plain, &seed()).unwrap();
+        assert_eq!(decode(&signed).unwrap(), decode(&plain).unwrap());
+        assert_eq!(
+            ModelFile::from_bytes(&signed).unwrap(),
+            ModelFile::from_bytes(&plain).unwrap()
+        );
+        let s = file::split(&signed).unwrap();
+        assert_eq!(s.signature.unwrap().key_id, trusted().id());
+        assert!(s.labels.is_empty());
+        assert!(file::split(&plain).unwrap().signature.is_none());
+        // With labels: the block follows them.
+        let mut with_labels = ModelFile::from_bytes(&plain).unwrap();
+        with_labels.labels = vec![
+            Label {
+                name: "a".into(),
+                unit: "".into(),
+            },
+            Label {
+                name: "b".into(),
+                unit: "m".into(),
+            },
+        ];
+        with_labels.model.meta.schema = plumb_model::schema::fingerprint(
+            with_labels
+                .labels
+                .iter()
+                .map(|l| (l.name.as_str(), l.unit.as_str())),
+        );
+        let lab = with_labels.to_bytes().unwrap();
+        let slab = signature::sign(&lab, &seed()).unwrap();
+        assert_eq!(ModelFile::from_bytes(&slab).unwrap(), with_labels);
+        let s = file::split(&slab).unwrap();
+        assert_eq!(s.labels, file::split(&lab).unwrap().labels);
+        assert_eq!(signature::verify(&s, &trusted()), Ok(()));
+    }
+
+    #[test]
+    fn each_signature_failure_is_distinct() {
+        let plain = unsigned();
+        let signed = signature::sign(&plain, &seed()).unwrap();
+        let check = |b: &[u8]| signature::verify(&file::split(b).unwrap(), &trusted());
+        assert_eq!(check(&signed), Ok(()));
+        assert_eq!(check(&plain), Err(SignatureError::Unsigned));
+        // Another key.
+        let other = signature::sign(&plain, &[7u8; 32]).unwrap();
+        let other_id = KeyId::of(&signature::public_key(&[7u8; 32]));
+        assert_eq!(
+            check(&other),
+            Err(SignatureError::UnknownKey { found: other_id })
+        );
+        // A payload or signature byte changed (CRC made to match again).
+        let at = signed.len() - 4 - BLOCK_LEN;
+        for k in [HEADER_LEN, HEADER_LEN + 40, at + 8, at + 40, at + 71] {
+            let mut b = signed.clone();
+            b[k] ^= 0x04;
+            fix_crc(&mut b);
+            assert_eq!(check(&b), Err(SignatureError::BadSignature), "byte {k}");
+        }
+        // The key id changed: not the trusted key any more.
+        let mut b = signed.clone();
+        b[at] ^= 0x01;
+        fix_crc(&mut b);
+        assert!(matches!(check(&b), Err(SignatureError::UnknownKey { .. })));
+        // Without fixing the CRC, damage is a CRC error first.
+        let mut b = signed.clone();
+        b[at + 20] ^= 0x01;
+        assert!(matches!(decode(&b), Err(ModelError::BadCrc { .. })));
+        // Cut inside the block.
+        assert!(matches!(
+            decode(&signed[..signed.len() - 10]),
+            Err(ModelError::Truncated { .. })
+        ));
+    }
+
+    proptest! {
+        #[test]
+        fn sign_then_strip_is_the_identity(d in 1u16..6, m in 1u16..4, k in 1u16..4, s in any::<u64>()) {
+            let m = m.min(d);
+            let model = example_model(usize::from(d), usize::from(m), usize::from(k), s);
+            let plain = ModelFile { model, labels: vec![] }.to_bytes().unwrap();
+            let signed = signature::sign(&plain, &seed()).unwrap();
+            prop_assert_eq!(signature::strip(&signed).unwrap(), plain);
+            prop_assert_eq!(signature::verify(&file::split(&signed).unwrap(), &trusted()), Ok(()));
+        }
     }
 }

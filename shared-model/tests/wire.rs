@@ -1,6 +1,7 @@
 //! The wire protocol: COBS, exact frame bytes, round trips, and a decoder
 //! that survives any byte stream.
 
+use plumb_model::signature::KeyId;
 use plumb_model::wire::{
     self, cobs, decode_frame, encode_frame, Ack, Crossing, DeviceFrame, DeviceFrameDecoder,
     DeviceMsg, DriftCleared, DriftRaised, FaultKind, FaultTally, FrameDecoder, FrameError,
@@ -315,6 +316,48 @@ mod exact_bytes {
     }
 
     #[test]
+    fn signature_refusals() {
+        // seq 3, variant 7, request UploadCommit = 2, reason UnknownKey = 24
+        // (0x18) with the key id's 8 bytes as they are (no length).
+        check(
+            DeviceFrame {
+                seq: 3,
+                msg: DeviceMsg::Refused(Refusal {
+                    request: Request::UploadCommit,
+                    reason: Reason::UnknownKey {
+                        key_id: KeyId([0x01, 0x23, 0x45, 0x67, 0x89, 0xab, 0xcd, 0xef]),
+                    },
+                }),
+            },
+            "03 07 02 18 01 23 45 67 89 ab cd ef",
+            "11 03 07 02 18 01 23 45 67 89 ab cd ef 8f 3f 78 7b 00",
+        );
+        // Unsigned = 23 (0x17), BadSignature = 25 (0x19): no fields.
+        check(
+            DeviceFrame {
+                seq: 4,
+                msg: DeviceMsg::Refused(Refusal {
+                    request: Request::UploadCommit,
+                    reason: Reason::Unsigned,
+                }),
+            },
+            "04 07 02 17",
+            "09 04 07 02 17 8b b9 8c 1a 00",
+        );
+        check(
+            DeviceFrame {
+                seq: 5,
+                msg: DeviceMsg::Refused(Refusal {
+                    request: Request::UploadCommit,
+                    reason: Reason::BadSignature,
+                }),
+            },
+            "05 07 02 19",
+            "09 05 07 02 19 e9 f3 88 45 00",
+        );
+    }
+
+    #[test]
     fn chunk_ack() {
         // seq 1, variant 6, Ack variant 3 (ChunkTaken), next 128 = 80 01.
         check(
@@ -588,6 +631,11 @@ fn every_reason() -> Vec<Reason> {
             total: m,
         },
         Reason::Storage,
+        Reason::Unsigned,
+        Reason::UnknownKey {
+            key_id: KeyId([0xff; 8]),
+        },
+        Reason::BadSignature,
     ]);
     v
 }
@@ -639,7 +687,7 @@ mod messages {
     fn reason_codes_are_distinct_and_map_back() {
         let reasons = every_reason();
         let mut codes: Vec<u8> = reasons.iter().map(|r| r.code()).collect();
-        assert_eq!(codes, (0..23).collect::<Vec<u8>>());
+        assert_eq!(codes, (0..26).collect::<Vec<u8>>());
         codes.dedup();
         assert_eq!(codes.len(), reasons.len());
         for r in &reasons {
@@ -650,6 +698,14 @@ mod messages {
         }
         for e in every_model_error() {
             assert_eq!(Reason::from(e).model_error(), Some(e));
+        }
+        for r in &reasons {
+            let sig = r.signature_error();
+            assert_eq!(sig.is_some(), (23..=25).contains(&r.code()), "{r:?}");
+            if let Some(e) = sig {
+                assert_eq!(Reason::from(e), *r);
+                assert_eq!(r.model_error(), None);
+            }
         }
         for f in wire::FIELDS {
             assert_eq!(wire::field_from_code(wire::field_code(f)), Some(f));

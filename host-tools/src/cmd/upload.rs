@@ -19,7 +19,8 @@ and passed every check (transfer CRC-32, the file's own CRC, format, dimensions 
 board's capacity, numeric validation); only then does it switch, and it says which slot,
 model id and generation now run. A refusal names the reason, and the old model keeps
 running. A lost chunk or acknowledgement is sent again; an interrupted upload changes
-nothing on the board.
+nothing on the board. A board built to trust a signing key (PLUMB_TRUSTED_KEY) also refuses
+a file that is unsigned, signed by another key, or changed after signing (`plumb sign`).
 
 The file is checked on the host first; --unchecked sends it anyway (to test a board).
 Exit code 0 when the board switched, 2 when it refused or on a link error.";

@@ -1,14 +1,16 @@
 //! Refusal reasons: one per [`ModelError`] variant, then the upload protocol's
 //! own. The variant index is the reason code on the wire.
 
+use crate::signature::{KeyId, SignatureError};
 use crate::{Dim, Field, ModelError};
 use core::fmt;
 use serde::{Deserialize, Serialize};
 
 /// Why a request was refused. Codes 0–13 mirror [`ModelError`] variant by
 /// variant (the model file did not pass); codes from 14 on belong to the
-/// upload protocol. Fields and dimensions travel as the codes of
-/// [`field_code`] and [`dim_code`].
+/// upload protocol; codes 23–25 refuse a file a board that trusts a signing
+/// key will not run ([`SignatureError`]). Fields and dimensions travel as the
+/// codes of [`field_code`] and [`dim_code`].
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub enum Reason {
@@ -137,6 +139,18 @@ pub enum Reason {
     /// 22: the slot storage failed to erase, write or record. The upload is
     /// dropped.
     Storage,
+    /// 23: the board trusts a signing key and the file is not signed
+    /// ([`SignatureError::Unsigned`]).
+    Unsigned,
+    /// 24: the file is signed by a key the board does not trust
+    /// ([`SignatureError::UnknownKey`]).
+    UnknownKey {
+        /// Key id in the file.
+        key_id: KeyId,
+    },
+    /// 25: the file names the trusted key but its signature does not verify
+    /// ([`SignatureError::BadSignature`]).
+    BadSignature,
 }
 
 /// Wire code of a model [`Field`] (its position in this list).
@@ -240,7 +254,27 @@ impl From<ModelError> for Reason {
     }
 }
 
+impl From<SignatureError> for Reason {
+    fn from(e: SignatureError) -> Self {
+        match e {
+            SignatureError::Unsigned => Reason::Unsigned,
+            SignatureError::UnknownKey { found } => Reason::UnknownKey { key_id: found },
+            SignatureError::BadSignature => Reason::BadSignature,
+        }
+    }
+}
+
 impl Reason {
+    /// The signature error this reason mirrors, if it is one (codes 23–25).
+    pub fn signature_error(&self) -> Option<SignatureError> {
+        match *self {
+            Reason::Unsigned => Some(SignatureError::Unsigned),
+            Reason::UnknownKey { key_id } => Some(SignatureError::UnknownKey { found: key_id }),
+            Reason::BadSignature => Some(SignatureError::BadSignature),
+            _ => None,
+        }
+    }
+
     /// The model error this reason mirrors, if it is one (codes 0–13) and
     /// its field or dimension code is known.
     pub fn model_error(&self) -> Option<ModelError> {
@@ -309,6 +343,9 @@ impl Reason {
             Reason::TransferCrc { .. } => 20,
             Reason::Abandoned { .. } => 21,
             Reason::Storage => 22,
+            Reason::Unsigned => 23,
+            Reason::UnknownKey { .. } => 24,
+            Reason::BadSignature => 25,
         }
     }
 }
@@ -316,6 +353,9 @@ impl Reason {
 impl fmt::Display for Reason {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         if let Some(e) = self.model_error() {
+            return write!(f, "model refused: {e}");
+        }
+        if let Some(e) = self.signature_error() {
             return write!(f, "model refused: {e}");
         }
         match *self {

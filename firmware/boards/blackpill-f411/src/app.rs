@@ -1,7 +1,9 @@
 //! The application: the plumbline detector endpoint.
 //!
-//! 1. `Endpoint::boot`: the newest valid flash slot, else the model compiled
-//!    into the image (`PLUMB_MODEL` at build time, see `build.rs`).
+//! 1. `Endpoint::boot_with`: the newest valid flash slot, else the model
+//!    compiled into the image (`PLUMB_MODEL` at build time, see `build.rs`);
+//!    built with `PLUMB_TRUSTED_KEY`, slots and uploads must be signed by
+//!    that key.
 //! 2. A greeting on the link, then the wire protocol
 //!    (`shared-model/PROTOCOL.md`) forever; the drift line follows the
 //!    drift state.
@@ -10,6 +12,10 @@
 //! defmt, and the loop goes on.
 
 use plumb_firmware::endpoint::{BootError, Config, Endpoint, DEFAULT_STATUS_EVERY};
+use plumb_firmware::plumb_model::signature::TrustedKey;
+
+// `TRUSTED_KEY`: the public key of `PLUMB_TRUSTED_KEY` at build time, if any.
+include!(concat!(env!("OUT_DIR"), "/trusted_key.rs"));
 
 use crate::drift_line::DriftLine;
 use crate::slots::FlashSlots;
@@ -27,7 +33,12 @@ type Ep = Endpoint<FlashSlots, DriftLine>;
 /// boot's frames are gone before the loop starts).
 #[inline(never)]
 fn boot(slots: FlashSlots, drift: DriftLine) -> Option<&'static mut Ep> {
-    let ep = match Endpoint::boot(slots, drift, Some(BUILTIN_MODEL)) {
+    let config = Config {
+        firmware: FIRMWARE,
+        status_every: DEFAULT_STATUS_EVERY,
+        trusted_key: TRUSTED_KEY.map(TrustedKey::new),
+    };
+    let ep = match Endpoint::boot_with(slots, drift, Some(BUILTIN_MODEL), config) {
         Ok(ep) => ep,
         Err(BootError::NoModel) => {
             defmt::error!("no valid slot and no built-in model");
@@ -54,10 +65,6 @@ pub fn run(board: Board) -> ! {
             cortex_m::asm::wfi();
         }
     };
-    ep.set_config(Config {
-        firmware: FIRMWARE,
-        status_every: DEFAULT_STATUS_EVERY,
-    });
     defmt::info!(
         "running model {=u32:#x} from {}",
         ep.detector().model().meta.id,

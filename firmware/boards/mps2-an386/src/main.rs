@@ -4,8 +4,10 @@
 //! 1. Reset: paint the stack, claim UART0, SysTick, the drift line (FPGAIO
 //!    LED 0) and the two RAM model slots; preload the slots from code memory
 //!    (`slots`).
-//! 2. `Endpoint::boot`: run the newest valid slot, else the model compiled
-//!    into the image (`PLUMB_MODEL` at build time, see `build.rs`).
+//! 2. `Endpoint::boot_with`: run the newest valid slot, else the model
+//!    compiled into the image (`PLUMB_MODEL` at build time, see `build.rs`).
+//!    Built with `PLUMB_TRUSTED_KEY`, slots and uploads must be signed by
+//!    that key.
 //! 3. Send a greeting, then serve the wire protocol (`shared-model/PROTOCOL.md`)
 //!    on UART0, sleeping while the line is idle.
 //! 4. On the end-of-run marker (16 zero bytes in a row, `link::END_RUN`)
@@ -28,6 +30,10 @@ use plumb_board_mps2::slots::BoardSlots;
 use plumb_board_mps2::text::write_field;
 use plumb_board_mps2::{semihost, Board};
 use plumb_firmware::endpoint::{Config, Endpoint, DEFAULT_STATUS_EVERY};
+use plumb_firmware::plumb_model::signature::TrustedKey;
+
+// `TRUSTED_KEY`: the public key of `PLUMB_TRUSTED_KEY` at build time, if any.
+include!(concat!(env!("OUT_DIR"), "/trusted_key.rs"));
 
 /// The model file compiled into the image (chosen by `PLUMB_MODEL` when
 /// building; `default.plumb` otherwise).
@@ -49,10 +55,6 @@ fn main() -> ! {
         let _ = link.write_all(b"plumb-board-mps2 boot failed\n");
         semihost::exit_failure()
     };
-    ep.set_config(Config {
-        firmware: FIRMWARE,
-        status_every: DEFAULT_STATUS_EVERY,
-    });
 
     let mut write_errors: u64 = 0;
     if ep.greet(&mut link).is_err() {
@@ -108,6 +110,11 @@ type Ep = Endpoint<BoardSlots, DriftLine>;
 /// before the serving loop starts. `None` when no model can run.
 #[inline(never)]
 fn boot(slots: BoardSlots, pin: DriftLine) -> Option<&'static mut Ep> {
-    let ep = Endpoint::boot(slots, pin, Some(BUILTIN_MODEL)).ok()?;
+    let config = Config {
+        firmware: FIRMWARE,
+        status_every: DEFAULT_STATUS_EVERY,
+        trusted_key: TRUSTED_KEY.map(TrustedKey::new),
+    };
+    let ep = Endpoint::boot_with(slots, pin, Some(BUILTIN_MODEL), config).ok()?;
     cortex_m::singleton!(: Ep = ep)
 }
