@@ -12,11 +12,15 @@
 //!   model keeps scoring exactly as before;
 //! * with bytes dropped, flipped and inserted in both directions, no damaged
 //!   message is accepted and resends recover every drift event;
-//! * a slot image from `plumb image`, loaded by QEMU, is what the board boots.
+//! * a slot image from `plumb image`, loaded by QEMU, is what the board boots;
+//! * a board built with `PLUMB_TRUSTED_KEY` refuses unsigned and wrongly
+//!   signed uploads with their own reasons, keeps its model, and switches to
+//!   a model signed by its key; at boot it passes over unsigned slots.
 //!
 //! The board is built once (`cargo build --release` in
-//! `firmware/boards/mps2-an386`, reused by every test); each QEMU run has a
-//! deadline and is killed when its link is dropped.
+//! `firmware/boards/mps2-an386`, reused by every test), and once more with a
+//! test key in `target/trusted-key` for the signed-model test; each QEMU run
+//! has a deadline and is killed when its link is dropped.
 
 use plumb::device::{self, FeedConfig, Patience, UploadConfig, UploadOutcome};
 use plumb::link::{Chunk, ExecTransport, Link, LinkStats, Received, Transport};
@@ -43,44 +47,83 @@ fn board_dir() -> PathBuf {
     root().join("firmware/boards/mps2-an386")
 }
 
+/// Builds the endpoint into `target` (under the board's folder) with
+/// `PLUMB_TRUSTED_KEY` set to `key`, or unset; returns the ELF.
+fn build_board(target: &str, key: Option<&Path>) -> PathBuf {
+    let dir = board_dir();
+    let start = Instant::now();
+    let mut cmd = Command::new(std::env::var_os("CARGO").unwrap_or_else(|| "cargo".into()));
+    cmd.current_dir(&dir)
+        .args([
+            "build",
+            "--release",
+            "--bin",
+            "plumb-board-mps2",
+            "--target-dir",
+        ])
+        .arg(dir.join(target))
+        // The board's own .cargo/config.toml sets the target; nothing of
+        // the outer build may leak in.
+        .env_remove("CARGO_TARGET_DIR")
+        .env_remove("CARGO_BUILD_TARGET")
+        .env_remove("RUSTFLAGS")
+        .env_remove("CARGO_ENCODED_RUSTFLAGS")
+        .env_remove("PLUMB_MODEL")
+        .env_remove("PLUMB_TRUSTED_KEY");
+    if let Some(k) = key {
+        cmd.env("PLUMB_TRUSTED_KEY", k);
+    }
+    let out = cmd.output().expect("run cargo to build the board");
+    assert!(
+        out.status.success(),
+        "building the board ({target}) failed:\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    eprintln!(
+        "board ({target}) built in {:.1} s",
+        start.elapsed().as_secs_f64()
+    );
+    dir.join(target)
+        .join("thumbv7em-none-eabihf/release/plumb-board-mps2")
+}
+
 /// The board's ELF, built once per test process.
 fn board_elf() -> &'static Path {
     static ELF: OnceLock<PathBuf> = OnceLock::new();
+    ELF.get_or_init(|| build_board("target", None))
+}
+
+/// The seed of the key the trusted board is built with (a test key, made
+/// here; never a real one).
+const TEST_KEY_SEED: [u8; 32] = [0x5e; 32];
+
+/// The board built with `PLUMB_TRUSTED_KEY` = the test key's public key, in
+/// its own target folder (the default build stays a board that takes
+/// unsigned models). Built once per test process.
+fn trusted_board_elf() -> &'static Path {
+    static ELF: OnceLock<PathBuf> = OnceLock::new();
     ELF.get_or_init(|| {
-        let dir = board_dir();
-        let start = Instant::now();
-        let out = Command::new(std::env::var_os("CARGO").unwrap_or_else(|| "cargo".into()))
-            .current_dir(&dir)
-            .args([
-                "build",
-                "--release",
-                "--bin",
-                "plumb-board-mps2",
-                "--target-dir",
-            ])
-            .arg(dir.join("target"))
-            // The board's own .cargo/config.toml sets the target; nothing of
-            // the outer build may leak in.
-            .env_remove("CARGO_TARGET_DIR")
-            .env_remove("CARGO_BUILD_TARGET")
-            .env_remove("RUSTFLAGS")
-            .env_remove("CARGO_ENCODED_RUSTFLAGS")
-            .env_remove("PLUMB_MODEL")
-            .output()
-            .expect("run cargo to build the board");
-        assert!(
-            out.status.success(),
-            "building the board failed:\n{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-        eprintln!("board built in {:.1} s", start.elapsed().as_secs_f64());
-        dir.join("target/thumbv7em-none-eabihf/release/plumb-board-mps2")
+        let dir = board_dir().join("target/trusted-key");
+        std::fs::create_dir_all(&dir).expect("create target/trusted-key");
+        let key = plumb::keys::SigningKey::from_seed(TEST_KEY_SEED);
+        let public = dir.join("test-key.pub");
+        // Written only when it differs, so cargo does not rebuild for a
+        // new modification time.
+        if std::fs::read_to_string(&public).ok().as_deref() != Some(&key.public_text()) {
+            std::fs::write(&public, key.public_text()).expect("write the test key");
+        }
+        build_board("target/trusted-key", Some(&public))
     })
 }
 
 /// The QEMU command line (as `run-qemu.sh` has it) with `extra` before
 /// `-kernel`.
 fn qemu(extra: &[String]) -> Command {
+    qemu_elf(board_elf(), extra)
+}
+
+/// [`qemu`] for another build of the endpoint.
+fn qemu_elf(elf: &Path, extra: &[String]) -> Command {
     let mut c = Command::new(std::env::var_os("QEMU").unwrap_or_else(|| "qemu-system-arm".into()));
     c.args([
         "-machine",
@@ -95,7 +138,7 @@ fn qemu(extra: &[String]) -> Command {
         "enable=on,target=native",
     ]);
     c.args(extra);
-    c.arg("-kernel").arg(board_elf());
+    c.arg("-kernel").arg(elf);
     c
 }
 
@@ -117,7 +160,11 @@ impl Board {
         extra: &[String],
         wrap: impl FnOnce(ExecTransport) -> Box<dyn Transport>,
     ) -> Board {
-        let t = ExecTransport::spawn_command(qemu(extra), "qemu-system-arm").expect("start QEMU");
+        Self::start_cmd(qemu(extra), wrap)
+    }
+
+    fn start_cmd(cmd: Command, wrap: impl FnOnce(ExecTransport) -> Box<dyn Transport>) -> Board {
+        let t = ExecTransport::spawn_command(cmd, "qemu-system-arm").expect("start QEMU");
         let mut link = Link::new(wrap(t));
         link.set_resend_timeout(Duration::from_millis(300));
         Board {
@@ -836,6 +883,117 @@ fn a_slot_image_is_what_the_board_boots() {
             (id, Some(slot), generation),
             "{extra:?}"
         );
+        board.finish(&mut Vec::new());
+    }
+}
+
+/// A board built with `PLUMB_TRUSTED_KEY`: an unsigned upload, one signed
+/// by another key and one changed after signing are refused, each with its
+/// own reason, and the built-in model keeps scoring bit for bit; a model
+/// signed by the board's key takes over. At boot, a slot image that is not
+/// signed by the key is passed over and a signed one runs.
+#[test]
+fn a_board_with_a_trusted_key_runs_only_signed_models() {
+    let elf = trusted_board_elf();
+    let model = default_model();
+    let file = ModelFile::from_bytes(&model).unwrap();
+    let builtin_id = file.model.meta.id;
+    let second = second_model();
+    let second_id = ModelFile::from_bytes(&second).unwrap().model.meta.id;
+    let key = plumb::keys::SigningKey::from_seed(TEST_KEY_SEED);
+    let other = plumb::keys::SigningKey::from_seed([0x77; 32]);
+    let signed = key.sign(&second).unwrap();
+    let foreign = other.sign(&second).unwrap();
+    // A payload byte changed after signing, the CRC made to match: only
+    // the signature can tell.
+    let mut tampered = signed.clone();
+    tampered[plumb_model::file::HEADER_LEN + 1] ^= 0x01;
+    let end = tampered.len() - 4;
+    let crc = plumb_model::file::CRC.checksum(&tampered[..end]);
+    tampered[end..].copy_from_slice(&crc.to_le_bytes());
+
+    let samples = read_rows(&file, &drift_log("new_floor.csv"), 3000..3200);
+    let before = expected(&model, &samples);
+    let mut board = Board::start_cmd(qemu_elf(elf, &[]), |t| Box::new(t));
+    let g = greet(&mut board);
+    assert_eq!((g.model_id, g.active), (builtin_id, None));
+    let cfg = UploadConfig {
+        patience: patience(2000),
+        ..UploadConfig::default()
+    };
+    for (what, bytes, want) in [
+        ("an unsigned file", &second, Reason::Unsigned),
+        (
+            "a file signed by another key",
+            &foreign,
+            Reason::UnknownKey { key_id: other.id() },
+        ),
+        (
+            "a file changed after signing",
+            &tampered,
+            Reason::BadSignature,
+        ),
+    ] {
+        let outcome =
+            device::upload(&mut board.link, bytes, cfg, &mut |_| {}, &mut |_| {}).expect("upload");
+        assert_eq!(refused(outcome), (Request::UploadCommit, want), "{what}");
+        let g = greet(&mut board);
+        assert_eq!((g.model_id, g.active), (builtin_id, None), "after {what}");
+    }
+    let (frames, sum) = feed(&mut board, &samples, 2000);
+    let got = observed(&frames, sum.base, samples.len());
+    let diff = report_mismatches(&before, &got);
+    assert!(diff.is_empty(), "after the refusals:\n{diff}");
+
+    let outcome =
+        device::upload(&mut board.link, &signed, cfg, &mut |_| {}, &mut |_| {}).expect("upload");
+    assert_eq!(
+        outcome,
+        UploadOutcome::Switched {
+            slot: Slot::A,
+            model_id: second_id,
+            generation: 1
+        }
+    );
+    let closing = board.finish(&mut Vec::new());
+    assert_eq!(closing.get("model_id"), u64::from(second_id));
+    assert!(closing.get("stack_hwm") < closing.get("stack_size"));
+    eprintln!(
+        "trusted board: three refusals, then the signed model; stack {} of {} bytes",
+        closing.get("stack_hwm"),
+        closing.get("stack_size")
+    );
+
+    // Boot: an unsigned slot B (generation 5) beside a signed slot A
+    // (generation 2) runs A; the unsigned one alone leaves the built-in.
+    let map = plumb::boards::board("mps2-an386").unwrap();
+    let scratch = Scratch::new("qemu-trusted");
+    let image = |name: &str, slot: Slot, bytes: &[u8], generation: u32| {
+        let p = scratch.path(name);
+        let img = plumb::boards::SlotImage::new(map, slot, bytes, generation).unwrap();
+        std::fs::write(&p, img.to_hex()).unwrap();
+        format!("loader,file={}", p.display())
+    };
+    let unsigned_b = image("b.hex", Slot::B, &second, 5);
+    let signed_a = image("a.hex", Slot::A, &signed, 2);
+    for (extra, want) in [
+        (
+            vec!["-device".to_string(), unsigned_b.clone()],
+            (builtin_id, None, 0),
+        ),
+        (
+            vec![
+                "-device".to_string(),
+                unsigned_b,
+                "-device".to_string(),
+                signed_a,
+            ],
+            (second_id, Some(Slot::A), 2),
+        ),
+    ] {
+        let mut board = Board::start_cmd(qemu_elf(elf, &extra), |t| Box::new(t));
+        let g = greet(&mut board);
+        assert_eq!((g.model_id, g.active, g.generation), want, "{extra:?}");
         board.finish(&mut Vec::new());
     }
 }
