@@ -4,7 +4,8 @@
 //! resume hints are used).
 //!
 //! The first input byte picks the options: time column `t` or none, what
-//! to do with bad cells, and the labels for `open_for_labels`.
+//! to do with bad cells, the labels for `open_for_labels`, and whether the
+//! rows are repeated past two read blocks.
 //!
 //! * Nothing panics.
 //! * Every error names the file (and a line or cell where the header or
@@ -99,7 +100,22 @@ fuzz_target!(|data: &[u8]| {
         return;
     };
     let path = scratch();
-    std::fs::write(path, text).expect("scratch file");
+    if mode & 0x20 == 0 {
+        std::fs::write(path, text).expect("scratch file");
+    } else {
+        // The rows again and again past two read blocks (4 KiB each), so
+        // lines and carries cross block boundaries.
+        let cut = text
+            .iter()
+            .position(|&b| b == b'\n')
+            .map_or(text.len(), |p| p + 1);
+        let (head, rows) = text.split_at(cut);
+        let mut long = head.to_vec();
+        while !rows.is_empty() && long.len() < 9000 {
+            long.extend_from_slice(rows);
+        }
+        std::fs::write(path, long).expect("scratch file");
+    }
     let paths = vec![path.to_path_buf()];
     let bad = match mode & 3 {
         0 => BadCells::Reject,

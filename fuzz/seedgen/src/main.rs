@@ -38,10 +38,20 @@ fn main() {
     let root: PathBuf = Path::new(env!("CARGO_MANIFEST_DIR")).join("../corpus");
     let builtin = builtin_model();
 
-    // model_decode: model files as written by the host.
+    // model_decode: mode byte 1 and a model file as written by the host, or
+    // mode byte 0, payload length, payload and labels (framed by the target).
     let dir = root.join("model_decode");
-    write(&dir, "valid.plumb", &file_of(&builtin));
-    write(&dir, "labelled.plumb", &labelled_file());
+    for (name, file) in [("valid", file_of(&builtin)), ("labelled", labelled_file())] {
+        let mut bytes = vec![1];
+        bytes.extend(&file);
+        write(&dir, &format!("{name}.bin"), &bytes);
+        let sections = plumb_model::file::split(&file).expect("valid");
+        let mut bytes = vec![0];
+        bytes.extend((sections.payload.len() as u16).to_le_bytes());
+        bytes.extend(sections.payload);
+        bytes.extend(sections.labels);
+        write(&dir, &format!("{name}_payload.bin"), &bytes);
+    }
 
     // frame_decoder: two bytes of chunking, then frames of both directions.
     let dir = root.join("frame_decoder");
@@ -105,6 +115,21 @@ fn main() {
         bytes.extend(encode_frame_vec(f));
     }
     write(&dir, "device.bin", &bytes);
+    // Framed mode (top bit of the second byte): `len, message bytes` pieces.
+    let mut bytes = vec![5, 0x80 | 9];
+    for m in &host {
+        let msg = postcard::to_allocvec(m).expect("encodes");
+        bytes.push(msg.len() as u8);
+        bytes.extend(msg);
+    }
+    for f in &device {
+        let msg = postcard::to_allocvec(f).expect("encodes");
+        bytes.push(msg.len() as u8);
+        bytes.extend(msg);
+    }
+    bytes.push(255);
+    bytes.extend([0x11, 0x00, 0x22, 0x05, 0x05, 0x05, 0x05, 0x00]);
+    write(&dir, "framed.bin", &bytes);
 
     // endpoint: operation lists (see `plumb_fuzz::ops`).
     let dir = root.join("endpoint");
