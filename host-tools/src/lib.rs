@@ -18,6 +18,7 @@
 //! | [`link`] | the serial link on the host: transports (serial port, spawned program, loopback TCP), framing, sequence gaps and resends |
 //! | [`device`] | conversations with a board: requests with retries, feeding samples, uploads |
 //! | [`events`] | text, JSON and CSV views of what a board says; the seam for a live view |
+//! | [`live`] | the full-screen live view of `plumb listen` (state, rendering, terminal) |
 //! | [`keys`] | ed25519 key files, signing model files, what a file's signature says |
 //! | [`boards`] | boards' model-slot memory maps and flashable slot images (Intel HEX, binary) |
 //! | [`cli`], [`cmd`] | the command line |
@@ -43,6 +44,7 @@ pub mod fit;
 pub mod gmm;
 pub mod keys;
 pub mod link;
+pub mod live;
 pub mod logs;
 pub mod pca;
 pub mod progress;

@@ -5,7 +5,8 @@ use crate::cmd::inspect::read_model;
 use crate::device;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
 use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
-use crate::link::Received;
+use crate::link::{LinkStats, Received};
+use crate::live;
 use clap::Args;
 use plumb_model::wire::DeviceMsg;
 use std::path::PathBuf;
@@ -25,6 +26,11 @@ messages, so a gap in the numbers means a frame was lost; listen then asks the d
 send its retained events again (drift raised/cleared and faults) and marks what came back
 `recovered=1`. The last line (`link ...`) counts good frames, CRC and framing errors,
 resend requests, events recovered and events lost.
+
+On a terminal (and without --json) listen draws a live view instead: the board's identity,
+its drift state (waiting, priming, watching, drifting), each score's EWMA and CUSUM as a
+gauge against its limit (limits from --model), the last flags and sensor faults, and link
+health; it is printed once more when listening ends. --plain prints lines on a terminal.
 
 Runs until the device closes the link, --for elapses, or Ctrl-C. Exit code 1 if a drift
 flag was raised while listening, 0 otherwise, 2 on a link or usage error.";
@@ -58,14 +64,22 @@ pub struct ListenArgs {
     /// One JSON object per line
     #[arg(long)]
     pub json: bool,
+
+    /// Full-screen live view (the default when standard output is a terminal)
+    #[arg(long, conflicts_with_all = ["plain", "json"])]
+    pub live: bool,
+
+    /// One line per event, even on a terminal
+    #[arg(long)]
+    pub plain: bool,
 }
 
 /// Runs `plumb listen`.
 pub fn run(args: ListenArgs) -> Result<u8> {
-    let names = match &args.model {
-        Some(p) => Names::from_labels(&read_model(p)?.labels),
-        None => Names::default(),
-    };
+    let model = args.model.as_deref().map(read_model).transpose()?;
+    let names = model
+        .as_ref()
+        .map_or_else(Names::default, |m| Names::from_labels(&m.labels));
     let format = if args.json {
         LineFormat::Json
     } else {
@@ -77,7 +91,7 @@ pub fn run(args: ListenArgs) -> Result<u8> {
         Some(p) => {
             let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
             Some(
-                Recorder::new(std::io::BufWriter::new(f), names)
+                Recorder::new(std::io::BufWriter::new(f), names.clone())
                     .map_err(|e| Error::io(p, "write", &e))?,
             )
         }
@@ -92,9 +106,17 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     }
 
     let mut link = args.link.open()?;
+    let mut live = live::wanted(args.live, args.plain, args.json).then(|| {
+        let info = model.as_ref().map(live::ModelInfo::of);
+        live::LiveView::start(live::LiveState::new(link.describe(), names.clone(), info))
+    });
+    let mut watch = live.as_ref().map(|v| v.watcher());
     let mut drift = false;
     let result = {
-        let mut sinks: Vec<&mut dyn EventSink> = vec![&mut printer];
+        let mut sinks: Vec<&mut dyn EventSink> = match live.as_mut() {
+            Some(v) => vec![v],
+            None => vec![&mut printer],
+        };
         if let Some(r) = recorder.as_mut() {
             sinks.push(r);
         }
@@ -105,7 +127,8 @@ pub fn run(args: ListenArgs) -> Result<u8> {
             }
             fan.frame(r);
         };
-        let res = listen(&args, &mut link, &stop, &mut sink);
+        let mut tick = |s: &LinkStats| watch.iter_mut().for_each(|w| w(s));
+        let res = listen(&args, &mut link, &stop, &mut sink, &mut tick);
         let fin = connect::finish(&mut link, &mut fan, format, false);
         res.and(fin)
     };
@@ -127,6 +150,7 @@ fn listen(
     link: &mut crate::link::Link,
     stop: &AtomicBool,
     sink: &mut dyn FnMut(&Received),
+    tick: &mut dyn FnMut(&LinkStats),
 ) -> Result<()> {
     if !args.no_greeting {
         let g = device::greeting(link, args.link.patience(), sink)?;
@@ -144,6 +168,7 @@ fn listen(
             None if link.is_closed() => break,
             None => {}
         }
+        tick(&link.stats());
     }
     Ok(())
 }

@@ -1,0 +1,1698 @@
+//! The live view of `plumb listen`: one full terminal screen that keeps what
+//! a board said in view instead of scrolling it away.
+//!
+//! Two halves, kept apart so the picture can be tested without a terminal:
+//!
+//! * [`LiveState`] takes frames ([`LiveState::frame`]) and the host's link
+//!   counters ([`LiveState::link`]) and remembers what the screen needs: the
+//!   board's identity from its greeting, the drift state, each score's EWMA
+//!   and CUSUM from the newest status, the last flags and sensor faults, and
+//!   link health. [`LiveState::render`] turns it into a [`Screen`] of styled
+//!   lines for a given size and time; [`Screen::text`] is the plain text a
+//!   test reads, [`Screen::ansi`] what a terminal gets.
+//! * [`LiveView`] is the [`EventSink`] that owns the terminal: it switches
+//!   to the alternate screen, redraws from a painter thread at most
+//!   [`FRAMES_PER_SECOND`] times a second (and once a second when nothing
+//!   arrives, so "last frame … ago" moves), and gives the terminal back on
+//!   [`EventSink::finish`], on drop and on a panic. The last picture is then
+//!   printed once on the normal screen, so it stays in the scrollback.
+//!
+//! Limits of the charts come from the model file given with `--model` when
+//! it is the model the board runs; without it a limit is known only once a
+//! drift flag reported a crossing of it.
+
+use crate::events::{fault_parts, EventSink, Names};
+use crate::link::{LinkStats, Received};
+use plumb_model::file::ModelFile;
+use plumb_model::wire::{
+    Ack, Crossing, DeviceMsg, FaultKind, Greeting, Request, ScoreKind, ScoreTriple, Slot, State,
+    Statistic, Status,
+};
+use plumb_model::MonitorParams;
+use std::collections::VecDeque;
+use std::io::{IsTerminal, Write};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Condvar, Mutex, MutexGuard, Once};
+use std::thread;
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+
+/// Most redraws a second.
+pub const FRAMES_PER_SECOND: u32 = 10;
+
+/// Flags (raised and cleared) kept for the screen.
+const KEEP_FLAGS: usize = 64;
+/// Sensor-fault events kept.
+const KEEP_FAULTS: usize = 32;
+/// Per-sample scores kept for the sparklines.
+const KEEP_SCORES: usize = 256;
+/// Notices (acknowledgements, refusals, resends, restarts) kept.
+const KEEP_NOTES: usize = 8;
+/// Seconds without a frame after which the link line says the board is quiet
+/// (when the board announced no status period, or it is shorter).
+const QUIET_AFTER: f64 = 5.0;
+
+// ------------------------------------------------------------------ styles
+
+/// A terminal colour (the 8 basic ones, and grey).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Colour {
+    /// Red.
+    Red,
+    /// Green.
+    Green,
+    /// Yellow.
+    Yellow,
+    /// Blue.
+    Blue,
+    /// Cyan.
+    Cyan,
+    /// White.
+    White,
+    /// Black.
+    Black,
+    /// Bright black.
+    Grey,
+}
+
+impl Colour {
+    fn code(self) -> u8 {
+        match self {
+            Colour::Black => 0,
+            Colour::Red => 1,
+            Colour::Green => 2,
+            Colour::Yellow => 3,
+            Colour::Blue => 4,
+            Colour::Cyan => 6,
+            Colour::White => 7,
+            Colour::Grey => 8,
+        }
+    }
+}
+
+/// How a span looks.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Style {
+    /// Text colour.
+    pub fg: Option<Colour>,
+    /// Background colour.
+    pub bg: Option<Colour>,
+    /// Bold.
+    pub bold: bool,
+    /// Faint.
+    pub dim: bool,
+    /// Swapped colours (what a banner falls back to without colour).
+    pub reverse: bool,
+}
+
+impl Style {
+    const PLAIN: Style = Style {
+        fg: None,
+        bg: None,
+        bold: false,
+        dim: false,
+        reverse: false,
+    };
+
+    fn fg(c: Colour) -> Style {
+        Style {
+            fg: Some(c),
+            ..Style::PLAIN
+        }
+    }
+
+    fn dim() -> Style {
+        Style {
+            dim: true,
+            ..Style::PLAIN
+        }
+    }
+
+    fn bold() -> Style {
+        Style {
+            bold: true,
+            ..Style::PLAIN
+        }
+    }
+
+    fn sgr(self, colour: bool) -> String {
+        let mut codes: Vec<String> = Vec::new();
+        if self.bold {
+            codes.push("1".into());
+        }
+        if self.dim {
+            codes.push("2".into());
+        }
+        if colour {
+            if let Some(c) = self.fg {
+                codes.push(colour_code(30, 90, c));
+            }
+            if let Some(c) = self.bg {
+                codes.push(colour_code(40, 100, c));
+            }
+            if self.reverse {
+                codes.push("7".into());
+            }
+        } else if self.reverse || self.bg.is_some() {
+            codes.push("7".into());
+        }
+        if codes.is_empty() {
+            String::new()
+        } else {
+            format!("\x1b[{}m", codes.join(";"))
+        }
+    }
+}
+
+fn colour_code(base: u8, bright: u8, c: Colour) -> String {
+    match c {
+        Colour::Grey => bright.to_string(),
+        _ => (base + c.code()).to_string(),
+    }
+}
+
+/// A run of text in one style.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Span {
+    /// The text (no control characters).
+    pub text: String,
+    /// Its look.
+    pub style: Style,
+}
+
+/// One screen row.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct Line {
+    /// Its spans, left to right.
+    pub spans: Vec<Span>,
+}
+
+impl Line {
+    fn new() -> Self {
+        Line::default()
+    }
+
+    fn push(&mut self, text: impl Into<String>, style: Style) -> &mut Self {
+        let text: String = text.into();
+        if !text.is_empty() {
+            self.spans.push(Span { text, style });
+        }
+        self
+    }
+
+    fn plain(&mut self, text: impl Into<String>) -> &mut Self {
+        self.push(text, Style::PLAIN)
+    }
+
+    fn with(text: impl Into<String>, style: Style) -> Line {
+        let mut l = Line::new();
+        l.push(text, style);
+        l
+    }
+
+    /// Characters in the row.
+    pub fn width(&self) -> usize {
+        self.spans.iter().map(|s| s.text.chars().count()).sum()
+    }
+
+    /// The row's text.
+    pub fn text(&self) -> String {
+        self.spans.iter().map(|s| s.text.as_str()).collect()
+    }
+
+    /// Cut to `width` characters.
+    fn fit(mut self, width: usize) -> Line {
+        let mut left = width;
+        let mut out = Vec::new();
+        for mut s in self.spans.drain(..) {
+            if left == 0 {
+                break;
+            }
+            let n = s.text.chars().count();
+            if n > left {
+                s.text = s.text.chars().take(left).collect();
+                left = 0;
+            } else {
+                left -= n;
+            }
+            out.push(s);
+        }
+        Line { spans: out }
+    }
+
+    /// Padded with spaces in `style` to `width` characters.
+    fn pad(mut self, width: usize, style: Style) -> Line {
+        let w = self.width();
+        if w < width {
+            self.push(" ".repeat(width - w), style);
+        }
+        self
+    }
+}
+
+/// A rendered screen: at most as many lines as rows, each at most as wide as
+/// the terminal.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct Screen {
+    /// Rows from the top.
+    pub lines: Vec<Line>,
+}
+
+impl Screen {
+    /// The plain text, one row per line.
+    pub fn text(&self) -> String {
+        let mut s = String::new();
+        for l in &self.lines {
+            s.push_str(l.text().trim_end());
+            s.push('\n');
+        }
+        s
+    }
+
+    /// Row `i`'s text ("" past the end).
+    pub fn row(&self, i: usize) -> String {
+        self.lines.get(i).map(Line::text).unwrap_or_default()
+    }
+
+    /// The first row containing `needle`.
+    pub fn find(&self, needle: &str) -> Option<String> {
+        self.lines
+            .iter()
+            .map(Line::text)
+            .find(|t| t.contains(needle))
+    }
+
+    /// Each row with its styles as ANSI escapes (colours only when `colour`),
+    /// every row ending with the style reset; rows joined by `sep`.
+    pub fn ansi(&self, colour: bool, sep: &str, clear_eol: bool) -> String {
+        let mut out = String::new();
+        for (i, l) in self.lines.iter().enumerate() {
+            if i > 0 {
+                out.push_str(sep);
+            }
+            for s in &l.spans {
+                let sgr = s.style.sgr(colour);
+                out.push_str(&sgr);
+                out.push_str(&s.text);
+                if !sgr.is_empty() {
+                    out.push_str("\x1b[0m");
+                }
+            }
+            if clear_eol {
+                out.push_str("\x1b[K");
+            }
+        }
+        out
+    }
+}
+
+// ------------------------------------------------------------------ state
+
+/// What the view knows of the model file given with `--model`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ModelInfo {
+    /// Its model id.
+    pub id: u32,
+    /// Its limits and drift-state parameters.
+    pub monitor: MonitorParams,
+}
+
+impl ModelInfo {
+    /// From a model file.
+    pub fn of(file: &ModelFile) -> Self {
+        ModelInfo {
+            id: file.model.meta.id,
+            monitor: file.model.monitor,
+        }
+    }
+}
+
+/// A flag that rose or cleared.
+#[derive(Debug, Clone, PartialEq)]
+struct Flag {
+    raised: bool,
+    sample: u64,
+    drivers: u8,
+    top: Vec<(u8, f32)>,
+    crossed: Vec<Crossing>,
+    at: Duration,
+    recovered: bool,
+}
+
+/// A sensor fault that began.
+#[derive(Debug, Clone, PartialEq)]
+struct FaultSeen {
+    sample: u64,
+    fault: FaultKind,
+    at: Duration,
+    recovered: bool,
+}
+
+/// Everything the live screen shows, updated frame by frame. Times are
+/// durations since the session started (the clock shown is that start plus
+/// the duration, in UTC).
+#[derive(Debug, Clone)]
+pub struct LiveState {
+    source: String,
+    names: Names,
+    model: Option<ModelInfo>,
+    start_unix: f64,
+    greeting: Option<Greeting>,
+    greeting_seq: Option<u32>,
+    max_seq: Option<u32>,
+    /// Model the board runs, newest word (greeting, status, a switch).
+    board_model: Option<u32>,
+    status: Option<Status>,
+    status_at: Duration,
+    state: Option<State>,
+    /// Newest sample index heard of.
+    sample: Option<u64>,
+    /// Sample and time the standing flag rose, if one stands.
+    up_since: Option<(u64, Duration, u8)>,
+    flags: VecDeque<Flag>,
+    raised: u64,
+    cleared: u64,
+    faults: VecDeque<FaultSeen>,
+    fault_events: u64,
+    scores: VecDeque<Option<ScoreTriple>>,
+    reports: u64,
+    /// Limits learnt from crossings: `[score][statistic]`.
+    seen_limits: [[Option<f32>; 2]; 3],
+    host: LinkStats,
+    frames: u64,
+    last_frame: Option<Duration>,
+    notes: VecDeque<(Duration, String)>,
+    ended: bool,
+}
+
+const SCORES: [ScoreKind; 3] = [ScoreKind::Spe, ScoreKind::T2, ScoreKind::Nll];
+
+fn score_index(s: ScoreKind) -> usize {
+    match s {
+        ScoreKind::Spe => 0,
+        ScoreKind::T2 => 1,
+        ScoreKind::Nll => 2,
+    }
+}
+
+fn score_label(s: ScoreKind) -> &'static str {
+    match s {
+        ScoreKind::Spe => "SPE",
+        ScoreKind::T2 => "T²",
+        ScoreKind::Nll => "NLL",
+    }
+}
+
+fn statistic_label(s: Statistic) -> &'static str {
+    match s {
+        Statistic::Ewma => "EWMA",
+        Statistic::Cusum => "CUSUM",
+    }
+}
+
+/// Score bits as `SPE + NLL` ("none" when empty).
+fn drivers_text(bits: u8) -> String {
+    let names: Vec<&str> = SCORES
+        .iter()
+        .filter(|s| bits & (1 << score_index(**s)) != 0)
+        .map(|s| score_label(*s))
+        .collect();
+    if names.is_empty() {
+        "none".into()
+    } else {
+        names.join(" + ")
+    }
+}
+
+fn triple(t: &ScoreTriple, s: ScoreKind) -> f32 {
+    match s {
+        ScoreKind::Spe => t.spe,
+        ScoreKind::T2 => t.t2,
+        ScoreKind::Nll => t.nll,
+    }
+}
+
+fn push_bounded<T>(q: &mut VecDeque<T>, v: T, keep: usize) {
+    q.push_back(v);
+    while q.len() > keep {
+        q.pop_front();
+    }
+}
+
+impl LiveState {
+    /// A state for a session with `source` (what the link is connected to),
+    /// feature `names` and, when given, the model file's limits.
+    pub fn new(source: impl Into<String>, names: Names, model: Option<ModelInfo>) -> Self {
+        let start_unix = SystemTime::now()
+            .duration_since(UNIX_EPOCH)
+            .map_or(0.0, |d| d.as_secs_f64());
+        LiveState {
+            source: source.into(),
+            names,
+            model,
+            start_unix,
+            greeting: None,
+            greeting_seq: None,
+            max_seq: None,
+            board_model: None,
+            status: None,
+            status_at: Duration::ZERO,
+            state: None,
+            sample: None,
+            up_since: None,
+            flags: VecDeque::new(),
+            raised: 0,
+            cleared: 0,
+            faults: VecDeque::new(),
+            fault_events: 0,
+            scores: VecDeque::new(),
+            reports: 0,
+            seen_limits: [[None; 2]; 3],
+            host: LinkStats::default(),
+            frames: 0,
+            last_frame: None,
+            notes: VecDeque::new(),
+            ended: false,
+        }
+    }
+
+    /// Sets the wall-clock time of the session's start (seconds since the
+    /// Unix epoch); tests use it for fixed clock readings.
+    pub fn set_start(&mut self, unix_seconds: f64) {
+        self.start_unix = unix_seconds;
+    }
+
+    /// The drift state, when a board said it.
+    pub fn state(&self) -> Option<State> {
+        self.state
+    }
+
+    /// Whether the model file's limits apply: it was given, and the board
+    /// runs it (or has not said what it runs yet).
+    fn file_limits(&self) -> Option<&MonitorParams> {
+        let m = self.model.as_ref()?;
+        match self.board_model {
+            Some(id) if id != m.id => None,
+            _ => Some(&m.monitor),
+        }
+    }
+
+    /// Limit of `stat` of `score`, from the model file or a crossing seen.
+    fn limit(&self, score: ScoreKind, stat: Statistic) -> Option<f32> {
+        if let Some(m) = self.file_limits() {
+            let l = match score {
+                ScoreKind::Spe => &m.spe,
+                ScoreKind::T2 => &m.t2,
+                ScoreKind::Nll => &m.nll,
+            };
+            return Some(match stat {
+                Statistic::Ewma => l.ewma_limit,
+                Statistic::Cusum => l.cusum_limit,
+            });
+        }
+        self.seen_limits[score_index(score)][usize::from(stat == Statistic::Cusum)]
+    }
+
+    fn sample_limit(&self, score: ScoreKind) -> Option<f32> {
+        let m = self.file_limits()?;
+        Some(match score {
+            ScoreKind::Spe => m.spe.sample_limit,
+            ScoreKind::T2 => m.t2.sample_limit,
+            ScoreKind::Nll => m.nll.sample_limit,
+        })
+    }
+
+    fn note(&mut self, at: Duration, text: String) {
+        push_bounded(&mut self.notes, (at, text), KEEP_NOTES);
+    }
+
+    fn see_sample(&mut self, s: u64) {
+        self.sample = Some(self.sample.map_or(s, |o| o.max(s)));
+    }
+
+    /// Takes one frame that arrived `at` after the session started.
+    pub fn frame(&mut self, r: &Received, at: Duration) {
+        self.frames += 1;
+        self.last_frame = Some(at);
+        let seq = r.frame.seq;
+        let newer = self
+            .max_seq
+            .is_none_or(|m| plumb_model::wire::seq_at_or_after(seq, m));
+        match &r.frame.msg {
+            DeviceMsg::Greeting(g) => {
+                let restarted = self
+                    .max_seq
+                    .is_some_and(|m| !plumb_model::wire::seq_at_or_after(seq, m));
+                if restarted {
+                    self.note(at, format!("the board restarted (greeting numbered {seq})"));
+                    // Whatever stood before the restart is gone with it.
+                    self.state = None;
+                    self.status = None;
+                    self.up_since = None;
+                    self.sample = None;
+                    self.max_seq = None;
+                } else if let Some(old) = &self.greeting {
+                    if old.model_id != g.model_id {
+                        self.note(at, format!("the board now runs model {:#010x}", g.model_id));
+                    }
+                }
+                self.greeting = Some(g.clone());
+                self.greeting_seq = Some(seq);
+                self.board_model = Some(g.model_id);
+            }
+            DeviceMsg::Status(s) => {
+                self.status = Some(*s);
+                self.status_at = at;
+                self.state = Some(s.state);
+                self.board_model = Some(s.model_id);
+                self.sample = s.samples.checked_sub(1);
+                if s.state != State::Drifting {
+                    self.up_since = None;
+                }
+            }
+            DeviceMsg::DriftRaised(d) => {
+                self.raised += 1;
+                for c in &d.crossed {
+                    self.seen_limits[score_index(c.score)]
+                        [usize::from(c.statistic == Statistic::Cusum)] = Some(c.limit);
+                }
+                if newer || !r.recovered {
+                    self.state = Some(State::Drifting);
+                    self.up_since = Some((d.sample, at, d.drivers));
+                }
+                self.see_sample(d.sample);
+                self.push_flag(Flag {
+                    raised: true,
+                    sample: d.sample,
+                    drivers: d.drivers,
+                    top: d
+                        .top
+                        .iter()
+                        .filter(|s| s.feature != u8::MAX)
+                        .map(|s| (s.feature, s.value))
+                        .collect(),
+                    crossed: d.crossed.iter().copied().collect(),
+                    at,
+                    recovered: r.recovered,
+                });
+            }
+            DeviceMsg::DriftCleared(c) => {
+                self.cleared += 1;
+                if newer || !r.recovered {
+                    self.state = Some(State::Watching);
+                    self.up_since = None;
+                }
+                self.see_sample(c.sample);
+                self.push_flag(Flag {
+                    raised: false,
+                    sample: c.sample,
+                    drivers: 0,
+                    top: Vec::new(),
+                    crossed: Vec::new(),
+                    at,
+                    recovered: r.recovered,
+                });
+            }
+            DeviceMsg::SensorFault(f) => {
+                self.fault_events += 1;
+                self.see_sample(f.sample);
+                let seen = FaultSeen {
+                    sample: f.sample,
+                    fault: f.fault,
+                    at,
+                    recovered: r.recovered,
+                };
+                let pos = self
+                    .faults
+                    .iter()
+                    .position(|o| o.sample > f.sample)
+                    .unwrap_or(self.faults.len());
+                self.faults.insert(pos, seen);
+                while self.faults.len() > KEEP_FAULTS {
+                    self.faults.pop_front();
+                }
+            }
+            DeviceMsg::ScoreReport(rep) => {
+                self.reports += 1;
+                self.state = Some(rep.state);
+                if rep.state != State::Drifting {
+                    self.up_since = None;
+                }
+                self.see_sample(rep.sample);
+                push_bounded(&mut self.scores, rep.scores, KEEP_SCORES);
+            }
+            DeviceMsg::Ack(a) => {
+                let text = match a {
+                    Ack::Reports { on } => {
+                        format!("score reports {}", if *on { "on" } else { "off" })
+                    }
+                    Ack::StatsReset => {
+                        self.up_since = None;
+                        "statistics reset: warm-up starts again".into()
+                    }
+                    Ack::UploadOpen { slot, total } => {
+                        format!(
+                            "upload opened: {total} bytes into slot {}",
+                            slot_text(*slot)
+                        )
+                    }
+                    Ack::ChunkTaken { next } => format!("upload: {next} bytes taken"),
+                    Ack::ModelSwitched {
+                        slot,
+                        model_id,
+                        generation,
+                    } => {
+                        self.board_model = Some(*model_id);
+                        self.up_since = None;
+                        format!(
+                            "switched to model {model_id:#010x} from slot {} (generation {generation})",
+                            slot_text(*slot)
+                        )
+                    }
+                };
+                // Chunk acknowledgements come by the hundred: keep one.
+                if matches!(a, Ack::ChunkTaken { .. })
+                    && self
+                        .notes
+                        .back()
+                        .is_some_and(|(_, t)| t.starts_with("upload: "))
+                {
+                    self.notes.pop_back();
+                }
+                self.note(at, text);
+            }
+            DeviceMsg::Refused(f) => {
+                let req = match f.request {
+                    Request::UploadBegin => "upload begin",
+                    Request::UploadChunk => "upload chunk",
+                    Request::UploadCommit => "upload commit",
+                };
+                self.note(at, format!("{req} refused: {}", f.reason));
+            }
+            DeviceMsg::ResendDone(d) => {
+                let mut t = format!("resent from {}: {} events", d.from, d.count);
+                if d.oldest
+                    .is_some_and(|o| o != d.from && !plumb_model::wire::seq_at_or_after(d.from, o))
+                {
+                    t.push_str(" (some were already gone)");
+                }
+                self.note(at, t);
+            }
+        }
+        if newer {
+            self.max_seq = Some(seq);
+        }
+    }
+
+    fn push_flag(&mut self, f: Flag) {
+        // In sample order: a recovered flag goes where it belongs.
+        let pos = self
+            .flags
+            .iter()
+            .position(|o| o.sample > f.sample)
+            .unwrap_or(self.flags.len());
+        self.flags.insert(pos, f);
+        while self.flags.len() > KEEP_FLAGS {
+            self.flags.pop_front();
+        }
+    }
+
+    /// Takes the host's link counters so far.
+    pub fn link(&mut self, stats: &LinkStats) {
+        self.host = *stats;
+    }
+
+    /// The session ended (the board closed the link, time ran out or the
+    /// user stopped it); final counters.
+    pub fn end(&mut self, stats: &LinkStats) {
+        self.host = *stats;
+        self.ended = true;
+    }
+
+    fn clock(&self, at: Duration) -> String {
+        let t = self.start_unix + at.as_secs_f64();
+        let s = (t.max(0.0) as u64) % 86_400;
+        format!("{:02}:{:02}:{:02}", s / 3600, s / 60 % 60, s % 60)
+    }
+
+    /// The screen for a terminal of `cols` × `rows` at `now` (since the
+    /// session started). `rows` = `usize::MAX` gives every section in full
+    /// (the picture printed at the end).
+    pub fn render(&self, cols: usize, rows: usize, now: Duration) -> Screen {
+        let cols = cols.max(20);
+        let mut head = vec![self.title(cols, now)];
+        head.extend(self.identity(cols));
+        head.push(self.banner(cols, now));
+        let charts = self.charts(cols);
+        let link = self.link_lines(cols, now);
+        let note = self.notes.back().map(|(at, t)| {
+            let mut l = Line::new();
+            l.push(" note  ", Style::dim())
+                .plain(t.clone())
+                .push(format!("  {}", self.clock(*at)), Style::dim());
+            l
+        });
+        let footer = if self.ended {
+            Line::with(" the session ended", Style::dim())
+        } else {
+            Line::with(" Ctrl-C stops · --plain prints lines instead", Style::dim())
+        };
+
+        // Flags and faults share the rows the rest leaves.
+        let flag_lines = self.flag_lines();
+        let fault_lines = self.fault_lines();
+        let fixed =
+            head.len() + charts.len() + 2 + 2 + link.len() + usize::from(note.is_some()) + 1;
+        let (flags_n, faults_n) = if rows == usize::MAX {
+            (flag_lines.len().min(12), fault_lines.len().min(6))
+        } else {
+            let avail = rows.saturating_sub(fixed);
+            let faults_n = fault_lines.len().min((avail / 3).max(1)).min(avail);
+            let flags_n = flag_lines.len().min(avail - faults_n);
+            (flags_n, faults_n)
+        };
+
+        let mut lines = head;
+        lines.extend(charts);
+        lines.push(rule(
+            " flags ",
+            cols,
+            &[],
+            Some(format!(
+                " {} raised · {} cleared ",
+                self.raised, self.cleared
+            )),
+        ));
+        if flag_lines.is_empty() {
+            lines.push(Line::with("  none so far", Style::dim()));
+        } else {
+            lines.extend(flag_lines.into_iter().take(flags_n.max(1)));
+        }
+        let tally = self.status.map(|s| s.faults);
+        lines.push(rule(
+            " sensor faults ",
+            cols,
+            &[],
+            Some(match tally {
+                Some(f) => format!(
+                    " wrong length {} · non-finite {} · out of range {} · overflow {} ",
+                    f.wrong_length, f.non_finite, f.out_of_range, f.overflow
+                ),
+                None => format!(" {} reported ", self.fault_events),
+            }),
+        ));
+        if fault_lines.is_empty() {
+            lines.push(Line::with("  none so far", Style::dim()));
+        } else {
+            lines.extend(fault_lines.into_iter().take(faults_n.max(1)));
+        }
+        lines.extend(link);
+        lines.extend(note);
+        lines.push(footer);
+        lines.truncate(rows);
+        Screen {
+            lines: lines.into_iter().map(|l| l.fit(cols)).collect(),
+        }
+    }
+
+    fn title(&self, cols: usize, now: Duration) -> Line {
+        let style = Style {
+            reverse: true,
+            ..Style::PLAIN
+        };
+        let left = format!(" plumb listen · {}", self.source);
+        let right = format!(
+            "{}{} UTC ",
+            if self.ended { "ended · " } else { "" },
+            self.clock(now)
+        );
+        let room = cols.saturating_sub(right.chars().count() + 1);
+        let left: String = if left.chars().count() > room {
+            let mut s: String = left.chars().take(room.saturating_sub(1)).collect();
+            s.push('…');
+            s
+        } else {
+            left
+        };
+        let gap = cols.saturating_sub(left.chars().count() + right.chars().count());
+        let mut l = Line::new();
+        l.push(format!("{left}{}{right}", " ".repeat(gap)), style);
+        l
+    }
+
+    fn identity(&self, cols: usize) -> Vec<Line> {
+        let key = Style::dim();
+        let Some(g) = &self.greeting else {
+            let mut l = Line::new();
+            l.push(" board  ", key)
+                .push("no greeting yet", Style::dim());
+            return vec![l, self.model_file_line()];
+        };
+        let mut model = Line::new();
+        model.plain("model ").push(
+            format!("{:#010x}", self.board_model.unwrap_or(g.model_id)),
+            Style::bold(),
+        );
+        model.plain(match g.active {
+            Some(s) => format!(" (slot {}, gen {})", slot_text(s), g.generation),
+            None => " (built in)".into(),
+        });
+        let items = vec![
+            Line::with(g.firmware.as_str(), Style::bold()),
+            Line::with(format!("protocol {}", g.protocol), Style::PLAIN),
+            model,
+            Line::with(
+                format!(
+                    "status every {}",
+                    match g.status_every {
+                        0 => "request only".to_string(),
+                        1 => "sample".to_string(),
+                        n => format!("{n} samples"),
+                    }
+                ),
+                Style::PLAIN,
+            ),
+            Line::with(format!("schema {:#018x}", g.schema), Style::PLAIN),
+            Line::with(
+                format!(
+                    "{} features, {} components, {} mixture (room for {}, {}, {})",
+                    g.dims.features,
+                    g.dims.components,
+                    g.dims.mixture,
+                    g.capacity.features,
+                    g.capacity.components,
+                    g.capacity.mixture
+                ),
+                Style::PLAIN,
+            ),
+        ];
+        let mut out = flow(" board  ", items, cols, 3);
+        if self.model.is_some() {
+            out.push(self.model_file_line());
+        }
+        out
+    }
+
+    fn model_file_line(&self) -> Line {
+        let mut l = Line::new();
+        l.push(" model  ", Style::dim());
+        match (&self.model, self.board_model) {
+            (None, _) => {
+                l.push(
+                    "no model file: give --model for feature names and chart limits",
+                    Style::dim(),
+                );
+            }
+            (Some(m), Some(id)) if id != m.id => {
+                l.push(
+                    format!(
+                        "the model file is {:#010x} but the board runs {id:#010x}: its limits are not used",
+                        m.id
+                    ),
+                    Style::fg(Colour::Yellow),
+                );
+            }
+            (Some(m), _) => {
+                l.plain(format!(
+                    "file {:#010x}: feature names and chart limits from it",
+                    m.id
+                ));
+            }
+        }
+        l
+    }
+
+    fn banner(&self, cols: usize, now: Duration) -> Line {
+        let (word, bg, fg, detail) = match self.state {
+            None => (
+                "WAITING",
+                Colour::Grey,
+                Colour::Black,
+                if self.frames == 0 {
+                    "nothing from the board yet".to_string()
+                } else {
+                    "no status from the board yet".to_string()
+                },
+            ),
+            Some(State::Priming) => {
+                let valid = self.sample.map_or(0, |s| s + 1);
+                let detail = match self.file_limits() {
+                    Some(m) => format!(
+                        "warming up: about {} of {} samples; no flag can rise yet",
+                        valid.min(u64::from(m.warmup)),
+                        m.warmup
+                    ),
+                    None => "warming up; no flag can rise yet".to_string(),
+                };
+                ("PRIMING", Colour::Yellow, Colour::Black, detail)
+            }
+            Some(State::Watching) => (
+                "WATCHING",
+                Colour::Green,
+                Colour::Black,
+                format!(
+                    "no drift{}",
+                    self.sample
+                        .map_or(String::new(), |s| format!(" · sample {s}"))
+                ),
+            ),
+            Some(State::Drifting) => {
+                let detail = match self.up_since {
+                    Some((sample, at, drivers)) => format!(
+                        "drift flag up since sample {sample} ({}, {} ago) · driven by {}",
+                        self.clock(at),
+                        ago(now.saturating_sub(at)),
+                        drivers_text(drivers)
+                    ),
+                    None => "drift flag up".to_string(),
+                };
+                ("DRIFTING", Colour::Red, Colour::White, detail)
+            }
+        };
+        let style = Style {
+            fg: Some(fg),
+            bg: Some(bg),
+            bold: true,
+            ..Style::PLAIN
+        };
+        let mut l = Line::new();
+        l.push(format!("  ■ {word}  "), style).push(
+            format!(" {detail} "),
+            Style {
+                bold: false,
+                ..style
+            },
+        );
+        l.fit(cols).pad(cols, style)
+    }
+
+    /// Cells in each half of a gauge, for a screen `cols` wide.
+    fn half(cols: usize) -> usize {
+        // " SPE  CUSUM " (13) + gauge (2h + 1) + "  12.34 / 5.00  over" (≤ 22).
+        (cols.saturating_sub(13 + 1 + 22) / 2).clamp(4, 30)
+    }
+
+    fn charts(&self, cols: usize) -> Vec<Line> {
+        let h = Self::half(cols);
+        let start = 13;
+        let mut marks = vec![(start, "0".to_string())];
+        marks.push((start + h.saturating_sub(2), "limit".to_string()));
+        marks.push((start + 2 * h, "2×".to_string()));
+        let mut out = vec![rule(" charts ", cols, &marks, None)];
+        let clear = self.file_limits().map(|m| m.clear_fraction);
+        for s in SCORES {
+            let i = score_index(s);
+            let hot = self.status.is_some_and(|st| st.hot & (1 << i) != 0);
+            for stat in [Statistic::Ewma, Statistic::Cusum] {
+                let mut l = Line::new();
+                let name = if stat == Statistic::Ewma {
+                    score_label(s)
+                } else {
+                    ""
+                };
+                l.push(format!(" {name:<5}"), Style::bold())
+                    .push(format!("{:<7}", statistic_label(stat)), Style::dim());
+                let value = self.status.map(|st| {
+                    let lv = st.levels[i];
+                    match stat {
+                        Statistic::Ewma => lv.ewma,
+                        Statistic::Cusum => lv.cusum,
+                    }
+                });
+                let limit = self.limit(s, stat);
+                match (value, limit) {
+                    (Some(v), Some(lim)) => {
+                        gauge(&mut l, v, lim, h, clear);
+                        let over = v > lim;
+                        l.plain(format!("  {} / {}", num(v), num(lim)));
+                        if over {
+                            l.push("  over", Style::fg(Colour::Red));
+                        }
+                    }
+                    (Some(v), None) => {
+                        let msg = if stat == Statistic::Ewma {
+                            "limit not known (give --model)"
+                        } else {
+                            ""
+                        };
+                        l.push(format!("{msg:<w$}", w = 2 * h + 1), Style::dim());
+                        l.plain(format!("  {}", num(v)));
+                        if hot {
+                            l.push("  hot", Style::fg(Colour::Red));
+                        }
+                    }
+                    (None, _) => {
+                        l.push(format!("{:<w$}", "", w = 2 * h + 1), Style::dim());
+                        l.push("  –", Style::dim());
+                    }
+                }
+                out.push(l);
+            }
+            if self.reports > 0 {
+                out.push(self.score_row(s, h));
+            }
+        }
+        out
+    }
+
+    /// Newest per-sample scores of `s` as a sparkline, scaled to twice the
+    /// per-sample limit (or to the largest shown without a model file).
+    fn score_row(&self, s: ScoreKind, h: usize) -> Line {
+        let width = 2 * h + 1;
+        let recent: Vec<Option<f32>> = self
+            .scores
+            .iter()
+            .rev()
+            .take(width)
+            .rev()
+            .map(|t| t.as_ref().map(|t| triple(t, s)))
+            .collect();
+        let limit = self.sample_limit(s);
+        let top = match limit {
+            Some(l) => 2.0 * l,
+            None => recent.iter().flatten().fold(0.0f32, |a, &b| a.max(b)),
+        };
+        let mut l = Line::new();
+        l.push("      ", Style::PLAIN)
+            .push(format!("{:<7}", "sample"), Style::dim());
+        let pad = width - recent.len();
+        l.push(" ".repeat(pad), Style::PLAIN);
+        for v in &recent {
+            match v {
+                None => l.push("×", Style::fg(Colour::Yellow)),
+                Some(v) => {
+                    let over = limit.is_some_and(|lim| *v > lim);
+                    let c = spark(*v, top);
+                    l.push(
+                        c.to_string(),
+                        if over {
+                            Style::fg(Colour::Red)
+                        } else {
+                            Style::fg(Colour::Cyan)
+                        },
+                    )
+                }
+            };
+        }
+        match recent.last() {
+            Some(Some(v)) => {
+                l.plain(format!("  {}", num(*v)));
+                if let Some(lim) = limit {
+                    l.push(format!(" / {}", num(lim)), Style::PLAIN);
+                }
+            }
+            Some(None) => {
+                l.push("  faulted", Style::fg(Colour::Yellow));
+            }
+            None => {}
+        }
+        l
+    }
+
+    fn flag_lines(&self) -> Vec<Line> {
+        let mut out = Vec::new();
+        let newest_raised = self.flags.iter().rposition(|f| f.raised);
+        for (k, f) in self.flags.iter().enumerate().rev() {
+            let mut l = Line::new();
+            if f.raised {
+                l.push("  ▲ raised  ", Style::fg(Colour::Red));
+            } else {
+                l.push("  ▼ cleared ", Style::fg(Colour::Green));
+            }
+            l.plain(format!(" sample {:<8}", f.sample))
+                .push(format!(" {} ", self.clock(f.at)), Style::dim());
+            if f.raised {
+                l.plain(format!(" by {}", drivers_text(f.drivers)));
+                if !f.top.is_empty() {
+                    let top: Vec<String> = f
+                        .top
+                        .iter()
+                        .map(|(i, v)| format!("{} {}", self.names.feature(*i), num(*v)))
+                        .collect();
+                    l.push("  top ", Style::dim()).plain(top.join(", "));
+                }
+            }
+            if f.recovered {
+                l.push("  (recovered)", Style::dim());
+            }
+            out.push(l);
+            if Some(k) == newest_raised && !f.crossed.is_empty() {
+                let c: Vec<String> = f
+                    .crossed
+                    .iter()
+                    .map(|c| {
+                        format!(
+                            "{} {} {} > {}",
+                            score_label(c.score),
+                            statistic_label(c.statistic),
+                            num(c.value),
+                            num(c.limit)
+                        )
+                    })
+                    .collect();
+                let mut l = Line::new();
+                l.push("              crossed ", Style::dim())
+                    .plain(c.join(", "));
+                out.push(l);
+            }
+        }
+        out
+    }
+
+    fn fault_lines(&self) -> Vec<Line> {
+        self.faults
+            .iter()
+            .rev()
+            .map(|f| {
+                let (kind, feature, got) = fault_parts(f.fault);
+                let mut l = Line::new();
+                l.push("  ! ", Style::fg(Colour::Yellow))
+                    .plain(format!("{:<13}", kind.replace('-', " ")));
+                let what = match (feature, got) {
+                    (Some(i), _) => format!(" {}", self.names.feature(i)),
+                    (None, Some(g)) => format!(" {g} values"),
+                    _ => String::new(),
+                };
+                l.plain(what)
+                    .plain(format!("  sample {}", f.sample))
+                    .push(format!("  {}", self.clock(f.at)), Style::dim());
+                if f.recovered {
+                    l.push("  (recovered)", Style::dim());
+                }
+                l
+            })
+            .collect()
+    }
+
+    fn link_lines(&self, cols: usize, now: Duration) -> Vec<Line> {
+        let h = &self.host;
+        let f = h.frames;
+        let warn = |n: u64, c: Colour| {
+            if n > 0 {
+                Style::fg(c)
+            } else {
+                Style::PLAIN
+            }
+        };
+        let sep = || Span {
+            text: " · ".into(),
+            style: Style::dim(),
+        };
+        let mut out = vec![rule(" link ", cols, &[], None)];
+        let mut a = Line::new();
+        a.push(" in   ", Style::dim()).plain(format!(
+            "{} ok",
+            plural(u64::from(f.frames_ok).max(self.frames), "frame")
+        ));
+        for (text, n, c) in [
+            (
+                plural(u64::from(f.crc_errors), "CRC error"),
+                u64::from(f.crc_errors),
+                Colour::Yellow,
+            ),
+            (
+                plural(u64::from(f.framing_errors), "framing error"),
+                u64::from(f.framing_errors),
+                Colour::Yellow,
+            ),
+            (
+                plural(h.resend_requests, "resend request"),
+                h.resend_requests,
+                Colour::Yellow,
+            ),
+            (format!("{} recovered", h.recovered), 0, Colour::Yellow),
+            (format!("{} lost", h.lost), h.lost, Colour::Red),
+        ] {
+            a.spans.push(sep());
+            a.push(text, warn(n, c));
+        }
+        out.push(a);
+
+        let mut b = Line::new();
+        b.push("      ", Style::dim());
+        match self.last_frame {
+            Some(at) => {
+                let quiet = now.saturating_sub(at);
+                let period = self.greeting.as_ref().map_or(0, |g| g.status_every);
+                let style = if quiet.as_secs_f64() > QUIET_AFTER && !self.ended && period != 0 {
+                    Style::fg(Colour::Yellow)
+                } else {
+                    Style::PLAIN
+                };
+                b.push(format!("last frame {} ago", ago(quiet)), style);
+            }
+            None => {
+                b.push("no frame yet", Style::dim());
+            }
+        }
+        if let Some(st) = &self.status {
+            b.spans.push(sep());
+            b.plain(format!(
+                "last status {} ago (sample {})",
+                ago(now.saturating_sub(self.status_at)),
+                st.samples.saturating_sub(1)
+            ));
+        }
+        // Gaps and restarts always; the rest when they happened.
+        let dup = h.duplicates;
+        let ovf = u64::from(f.overflows);
+        let und = u64::from(f.undecodable);
+        for (text, n, always, colour) in [
+            (plural(h.gaps, "gap"), h.gaps, true, Colour::Yellow),
+            (
+                plural(h.restarts, "restart"),
+                h.restarts,
+                true,
+                Colour::Yellow,
+            ),
+            (plural(dup, "duplicate"), dup, false, Colour::Grey),
+            (plural(ovf, "overflow"), ovf, false, Colour::Yellow),
+            (format!("{und} undecodable"), und, false, Colour::Yellow),
+        ] {
+            if always || n > 0 {
+                b.spans.push(sep());
+                b.push(text, warn(n, colour));
+            }
+        }
+        out.push(b);
+
+        let mut c = Line::new();
+        c.push(" out  ", Style::dim());
+        match &self.status {
+            Some(s) => {
+                let d = s.link;
+                c.plain(format!(
+                    "the board took {} ok · {} · {} · {} · {} undecodable",
+                    plural(u64::from(d.frames_ok), "frame"),
+                    plural(u64::from(d.crc_errors), "CRC error"),
+                    plural(u64::from(d.framing_errors), "framing error"),
+                    plural(u64::from(d.overflows), "overflow"),
+                    d.undecodable
+                ));
+            }
+            None => {
+                c.push(
+                    "the board's own counters come with its status",
+                    Style::dim(),
+                );
+            }
+        }
+        out.push(c);
+        out
+    }
+}
+
+/// `1 frame`, `2 frames`.
+fn plural(n: u64, word: &str) -> String {
+    if n == 1 {
+        format!("1 {word}")
+    } else {
+        format!("{n} {word}s")
+    }
+}
+
+fn slot_text(s: Slot) -> &'static str {
+    match s {
+        Slot::A => "a",
+        Slot::B => "b",
+    }
+}
+
+/// `items` on rows after `label` (later rows indented as far), separated by
+/// " · ", a new row when the next item would pass `cols`, at most `rows`.
+fn flow(label: &str, items: Vec<Line>, cols: usize, rows: usize) -> Vec<Line> {
+    let indent = label.chars().count();
+    let mut out: Vec<Line> = Vec::new();
+    let mut cur = Line::with(label, Style::dim());
+    let mut empty = true;
+    for item in items {
+        let w = item.width();
+        if !empty && cur.width() + 3 + w > cols && out.len() + 1 < rows {
+            out.push(std::mem::replace(
+                &mut cur,
+                Line::with(" ".repeat(indent), Style::PLAIN),
+            ));
+            empty = true;
+        }
+        if !empty {
+            cur.push(" · ", Style::dim());
+        }
+        cur.spans.extend(item.spans);
+        empty = false;
+    }
+    out.push(cur);
+    out
+}
+
+/// A section rule: `─ title ───…── right ─`, with `marks` (column, text)
+/// written into the rule.
+fn rule(title: &str, width: usize, marks: &[(usize, String)], right: Option<String>) -> Line {
+    let mut cells: Vec<char> = vec!['─'; width];
+    let mut put = |at: usize, text: &str| {
+        for (k, ch) in text.chars().enumerate() {
+            if let Some(c) = cells.get_mut(at + k) {
+                *c = ch;
+            }
+        }
+    };
+    put(1, title);
+    for (at, t) in marks {
+        put(*at, t);
+    }
+    if let Some(r) = &right {
+        let n = r.chars().count();
+        if n + title.chars().count() + 4 < width {
+            put(width - n - 1, r);
+        }
+    }
+    let mut l = Line::new();
+    let text: String = cells.into_iter().collect();
+    // The title stands out; the rest is faint.
+    let tlen = title.chars().count() + 1;
+    let head: String = text.chars().take(tlen).collect();
+    let tail: String = text.chars().skip(tlen).collect();
+    l.push(head, Style::bold()).push(tail, Style::dim());
+    l
+}
+
+/// A horizontal gauge of `value` on 0 … 2 × `limit`: `half` cells below the
+/// limit, the limit mark, `half` cells above. Calm (below the clearing
+/// fraction of the limit, when known) is green, over the clearing fraction
+/// yellow, over the limit red.
+fn gauge(l: &mut Line, value: f32, limit: f32, half: usize, clear: Option<f32>) {
+    let colour = if value > limit {
+        Colour::Red
+    } else if clear.is_some_and(|f| value > f * limit) {
+        Colour::Yellow
+    } else {
+        Colour::Green
+    };
+    let frac = if limit > 0.0 && value.is_finite() {
+        (value / limit).max(0.0)
+    } else if value.is_nan() {
+        0.0
+    } else {
+        2.0
+    };
+    // Eighths of a cell filled, below and above the limit.
+    let eighths = |f: f32| -> usize { (f.clamp(0.0, 1.0) * (half * 8) as f32).round() as usize };
+    let below = eighths(frac);
+    let above = eighths(frac - 1.0);
+    let cells = |l: &mut Line, filled: usize| {
+        let mut s = String::new();
+        let mut empty = 0usize;
+        for i in 0..half {
+            let n = filled.saturating_sub(8 * i).min(8);
+            match n {
+                0 => empty += 1,
+                8 => s.push('█'),
+                _ => s.push(PARTIAL[n - 1]),
+            }
+        }
+        l.push(s, Style::fg(colour));
+        l.push("·".repeat(empty), Style::dim());
+    };
+    cells(l, below);
+    l.push(
+        "┃",
+        if value > limit {
+            Style::fg(Colour::Red)
+        } else {
+            Style::bold()
+        },
+    );
+    cells(l, above);
+    l.push(if frac > 2.0 { "▶" } else { " " }, Style::fg(Colour::Red));
+}
+
+const PARTIAL: [char; 7] = ['▏', '▎', '▍', '▌', '▋', '▊', '▉'];
+const SPARK: [char; 8] = ['▁', '▂', '▃', '▄', '▅', '▆', '▇', '█'];
+
+fn spark(v: f32, top: f32) -> char {
+    if !v.is_finite() || top <= 0.0 {
+        return if v.is_nan() { '?' } else { '█' };
+    }
+    let k = ((v / top).clamp(0.0, 1.0) * 7.0).round() as usize;
+    SPARK[k]
+}
+
+/// A number with about three significant digits.
+fn num(v: f32) -> String {
+    if v.is_nan() {
+        return "NaN".into();
+    }
+    if v.is_infinite() {
+        return if v > 0.0 { "∞".into() } else { "-∞".into() };
+    }
+    let a = v.abs();
+    if a >= 10_000.0 {
+        format!("{v:.3e}")
+    } else if a >= 100.0 {
+        format!("{v:.0}")
+    } else if a >= 10.0 {
+        format!("{v:.1}")
+    } else if a >= 1.0 {
+        format!("{v:.2}")
+    } else {
+        format!("{v:.3}")
+    }
+}
+
+/// A duration for people: `0.4 s`, `12 s`, `3 min 4 s`, `2 h 5 min`.
+fn ago(d: Duration) -> String {
+    let s = d.as_secs_f64();
+    if s < 10.0 {
+        format!("{s:.1} s")
+    } else if s < 60.0 {
+        format!("{} s", s as u64)
+    } else if s < 3600.0 {
+        let s = s as u64;
+        format!("{} min {} s", s / 60, s % 60)
+    } else {
+        let s = s as u64;
+        format!("{} h {} min", s / 3600, s / 60 % 60)
+    }
+}
+
+// ------------------------------------------------------------------ terminal
+
+/// Whether `plumb listen` should draw the live view: not with `--plain` or
+/// `--json`, and only when standard output is a terminal (with `--live` on
+/// something else it says so and prints lines).
+pub fn wanted(live: bool, plain: bool, json: bool) -> bool {
+    if plain || json {
+        return false;
+    }
+    let tty =
+        std::io::stdout().is_terminal() && std::env::var_os("TERM").is_none_or(|t| t != "dumb");
+    if live && !tty {
+        eprintln!("plumb: standard output is not a terminal: printing lines, not the live view");
+    }
+    tty
+}
+
+/// Terminal size in columns and rows: the terminal's own, else `COLUMNS`
+/// and `LINES`, else 80 × 24.
+pub fn terminal_size() -> (usize, usize) {
+    if let Some((terminal_size::Width(w), terminal_size::Height(h))) =
+        terminal_size::terminal_size()
+    {
+        if w > 0 && h > 0 {
+            return (usize::from(w), usize::from(h));
+        }
+    }
+    let env = |k: &str, d: usize| {
+        std::env::var(k)
+            .ok()
+            .and_then(|v| v.parse::<usize>().ok())
+            .filter(|&n| n > 0)
+            .unwrap_or(d)
+    };
+    (env("COLUMNS", 80), env("LINES", 24))
+}
+
+/// Enter the alternate screen, hide the cursor, no line wrap, clear.
+const ENTER: &str = "\x1b[?1049h\x1b[?25l\x1b[?7l\x1b[H\x1b[2J";
+/// Undo [`ENTER`].
+const LEAVE: &str = "\x1b[0m\x1b[?7h\x1b[?25h\x1b[?1049l";
+
+/// Whether the terminal is in the live view's mode (for the panic hook).
+static ACTIVE: AtomicBool = AtomicBool::new(false);
+static HOOK: Once = Once::new();
+
+/// Gives the terminal back, if the view has it.
+fn restore_terminal() {
+    let mut out = std::io::stdout().lock();
+    if ACTIVE.swap(false, Ordering::SeqCst) {
+        let _ = out.write_all(LEAVE.as_bytes());
+        let _ = out.flush();
+    }
+}
+
+fn install_panic_hook() {
+    HOOK.call_once(|| {
+        let previous = std::panic::take_hook();
+        std::panic::set_hook(Box::new(move |info| {
+            restore_terminal();
+            previous(info);
+        }));
+    });
+}
+
+struct Inner {
+    state: LiveState,
+    dirty: bool,
+    stop: bool,
+}
+
+struct Shared {
+    inner: Mutex<Inner>,
+    wake: Condvar,
+    started: Instant,
+    colour: bool,
+}
+
+impl Shared {
+    fn lock(&self) -> MutexGuard<'_, Inner> {
+        self.inner.lock().unwrap_or_else(|e| e.into_inner())
+    }
+
+    fn now(&self) -> Duration {
+        self.started.elapsed()
+    }
+
+    /// Draws `state` over the whole alternate screen.
+    fn draw(&self, state: &LiveState) {
+        let (cols, rows) = terminal_size();
+        let screen = state.render(cols, rows, self.now());
+        let mut text = String::from("\x1b[H");
+        text.push_str(&screen.ansi(self.colour, "\r\n", true));
+        text.push_str("\x1b[J");
+        let mut out = std::io::stdout().lock();
+        if ACTIVE.load(Ordering::SeqCst) {
+            let _ = out.write_all(text.as_bytes());
+            let _ = out.flush();
+        }
+    }
+}
+
+/// The live view on the terminal: an [`EventSink`] that redraws the screen
+/// from its own thread.
+pub struct LiveView {
+    shared: Arc<Shared>,
+    painter: Option<thread::JoinHandle<()>>,
+}
+
+impl LiveView {
+    /// Takes the terminal (standard output) and starts drawing `state`.
+    pub fn start(state: LiveState) -> Self {
+        let colour = std::env::var_os("NO_COLOR").is_none_or(|v| v.is_empty());
+        let shared = Arc::new(Shared {
+            inner: Mutex::new(Inner {
+                state,
+                dirty: true,
+                stop: false,
+            }),
+            wake: Condvar::new(),
+            started: Instant::now(),
+            colour,
+        });
+        install_panic_hook();
+        {
+            let mut out = std::io::stdout().lock();
+            ACTIVE.store(true, Ordering::SeqCst);
+            let _ = out.write_all(ENTER.as_bytes());
+            let _ = out.flush();
+        }
+        let painter = {
+            let shared = Arc::clone(&shared);
+            thread::spawn(move || paint(&shared))
+        };
+        LiveView {
+            shared,
+            painter: Some(painter),
+        }
+    }
+
+    /// A function that hands the host's link counters to the view (call it
+    /// now and then while listening).
+    pub fn watcher(&self) -> impl FnMut(&LinkStats) + 'static {
+        let shared = Arc::clone(&self.shared);
+        move |s: &LinkStats| {
+            let mut g = shared.lock();
+            if g.state.host != *s {
+                g.state.link(s);
+                g.dirty = true;
+            }
+        }
+    }
+
+    fn stop_painter(&mut self) {
+        if let Some(p) = self.painter.take() {
+            self.shared.lock().stop = true;
+            self.shared.wake.notify_all();
+            let _ = p.join();
+        }
+    }
+}
+
+/// The painter thread: at most [`FRAMES_PER_SECOND`] draws a second, and
+/// one a second while nothing changes (the clocks move).
+fn paint(shared: &Shared) {
+    let frame = Duration::from_secs(1) / FRAMES_PER_SECOND;
+    let mut drawn: Option<Instant> = None;
+    loop {
+        let mut g = shared.lock();
+        if g.stop {
+            return;
+        }
+        let since = drawn.map(|d| d.elapsed());
+        let due = since.is_none_or(|e| (g.dirty && e >= frame) || e >= Duration::from_secs(1));
+        if due {
+            g.dirty = false;
+            let state = g.state.clone();
+            drop(g);
+            shared.draw(&state);
+            drawn = Some(Instant::now());
+            g = shared.lock();
+        }
+        if g.stop {
+            return;
+        }
+        // Woken early only to stop; the lock goes with the result.
+        drop(shared.wake.wait_timeout(g, frame));
+    }
+}
+
+impl EventSink for LiveView {
+    fn frame(&mut self, r: &Received) {
+        let at = self.shared.now();
+        let mut g = self.shared.lock();
+        g.state.frame(r, at);
+        g.dirty = true;
+    }
+
+    /// Draws the end, gives the terminal back and prints the last picture
+    /// on the normal screen.
+    fn finish(&mut self, stats: &LinkStats) {
+        self.stop_painter();
+        let state = {
+            let mut g = self.shared.lock();
+            g.state.end(stats);
+            g.state.clone()
+        };
+        self.shared.draw(&state);
+        restore_terminal();
+        let (cols, _) = terminal_size();
+        let screen = state.render(cols, usize::MAX, self.shared.now());
+        let mut out = std::io::stdout().lock();
+        let _ = writeln!(out, "{}", screen.ansi(self.shared.colour, "\n", false));
+        let _ = out.flush();
+    }
+}
+
+impl Drop for LiveView {
+    fn drop(&mut self) {
+        self.stop_painter();
+        restore_terminal();
+    }
+}
