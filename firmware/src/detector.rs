@@ -101,13 +101,19 @@ pub struct Track {
     pub ewma: Ewma,
     /// Upper CUSUM of the standardised transformed score.
     pub cusum: Cusum,
-    /// Samples whose raw score exceeded the per-sample limit.
+    /// Samples whose score exceeded the per-sample limit.
     pub over_sample_limit: u32,
+    /// The standardised transformed score `u` of the latest scored sample.
+    pub last_u: f32,
+    /// The per-sample limit on the same scale as `u`.
+    pub sample_u: f32,
 }
 
 impl Track {
-    fn new(lambda: f32, limits: &ScoreLimits) -> Self {
+    fn new(lambda: f32, limits: &ScoreLimits, sample_u: f32) -> Self {
         Track {
+            last_u: 0.0,
+            sample_u,
             since_reset: Welford::new(),
             window: Welford::new(),
             last_window: Welford::new(),
@@ -129,6 +135,31 @@ pub fn transform(score: Score, value: f32, nll_floor: f32) -> f32 {
         Score::Spe | Score::T2 => crate::math::cbrt(value),
         Score::Nll => crate::math::cbrt(value - nll_floor),
     }
+}
+
+/// The monitored value of a score: `u = (g(value) − center) / spread`, with
+/// `g` the [`transform`]. The detector and the host calibration both use this
+/// function, so they agree to the bit.
+pub fn standardise(score: Score, value: f32, nll_floor: f32, lim: &ScoreLimits) -> f32 {
+    (transform(score, value, nll_floor) - lim.center) / lim.spread
+}
+
+/// Statistics of the three scores at their starting point.
+fn fresh_tracks(model: &Model, derived: &Derived) -> [Track; 3] {
+    let mp = &model.monitor;
+    let floor = derived.nll_floor();
+    let track = |which: Score, lim: &ScoreLimits| {
+        Track::new(
+            mp.ewma_lambda,
+            lim,
+            standardise(which, lim.sample_limit, floor, lim),
+        )
+    };
+    [
+        track(Score::Spe, &mp.spe),
+        track(Score::T2, &mp.t2),
+        track(Score::Nll, &mp.nll),
+    ]
 }
 
 /// Counts of faulted samples by cause.
@@ -213,12 +244,7 @@ impl Detector {
         Capacity::DEVICE.admits(&model.dims)?;
         model.validate()?;
         let derived = Derived::new(&model)?;
-        let lambda = model.monitor.ewma_lambda;
-        let tracks = [
-            Track::new(lambda, &model.monitor.spe),
-            Track::new(lambda, &model.monitor.t2),
-            Track::new(lambda, &model.monitor.nll),
-        ];
+        let tracks = fresh_tracks(&model, &derived);
         let mut det = Detector {
             model,
             derived,
@@ -251,13 +277,8 @@ impl Detector {
 
     /// Forgets all statistics and restarts warm-up.
     pub fn reset(&mut self) {
-        let mp = &self.model.monitor;
-        self.tracks = [
-            Track::new(mp.ewma_lambda, &mp.spe),
-            Track::new(mp.ewma_lambda, &mp.t2),
-            Track::new(mp.ewma_lambda, &mp.nll),
-        ];
-        self.state = if mp.warmup == 0 {
+        self.tracks = fresh_tracks(&self.model, &self.derived);
+        self.state = if self.model.monitor.warmup == 0 {
             DriftState::Watching
         } else {
             DriftState::Priming
@@ -337,7 +358,7 @@ impl Detector {
         // EWMA would stay NaN and the flag could never clear.
         let mut us = [0.0f32; 3];
         for (((u, lim), which), value) in us.iter_mut().zip(limits).zip(Score::ALL).zip(values) {
-            *u = (transform(which, value, self.derived.nll_floor()) - lim.center) / lim.spread;
+            *u = standardise(which, value, self.derived.nll_floor(), lim);
         }
         let in_range = us.iter().zip(&self.tracks).all(|(u, track)| {
             let mut ewma = track.ewma;
@@ -353,19 +374,15 @@ impl Detector {
         if roll {
             self.window_len = 0;
         }
-        for ((track, lim), (value, u)) in self
-            .tracks
-            .iter_mut()
-            .zip(limits)
-            .zip(values.into_iter().zip(us))
-        {
+        for (track, (value, u)) in self.tracks.iter_mut().zip(values.into_iter().zip(us)) {
             track.since_reset.push(value);
             track.window.push(value);
             if roll {
                 track.last_window = track.window;
                 track.window = Welford::new();
             }
-            if value > lim.sample_limit {
+            track.last_u = u;
+            if u > track.sample_u {
                 track.over_sample_limit = track.over_sample_limit.saturating_add(1);
             }
             track.ewma.push(u);
@@ -406,7 +423,10 @@ impl Detector {
         let limits = [&mp.spe, &mp.t2, &mp.nll];
         let mut set = ScoreSet::EMPTY;
         for ((track, lim), which) in self.tracks.iter().zip(limits).zip(Score::ALL) {
-            if track.cusum.value() > lim.cusum_limit || track.ewma.value() > lim.ewma_limit {
+            if track.cusum.value() > lim.cusum_limit
+                || track.ewma.value() > lim.ewma_limit
+                || track.last_u > track.sample_u
+            {
                 set.insert(which);
             }
         }
@@ -418,7 +438,9 @@ impl Detector {
         let f = mp.clear_fraction;
         let limits = [&mp.spe, &mp.t2, &mp.nll];
         self.tracks.iter().zip(limits).all(|(track, lim)| {
-            track.cusum.value() <= f * lim.cusum_limit && track.ewma.value() <= f * lim.ewma_limit
+            track.cusum.value() <= f * lim.cusum_limit
+                && track.ewma.value() <= f * lim.ewma_limit
+                && track.last_u <= track.sample_u
         })
     }
 
@@ -439,7 +461,11 @@ impl Detector {
                 } else {
                     self.hot_run.saturating_add(1)
                 };
-                if self.hot_run >= u32::from(mp.raise_dwell) {
+                // A sample over a per-sample limit raises at once (the
+                // Shewhart part of a combined scheme); the CUSUM and EWMA
+                // must stay over their limits for `raise_dwell` samples.
+                let spike = self.tracks.iter().any(|t| t.last_u > t.sample_u);
+                if spike || self.hot_run >= u32::from(mp.raise_dwell) {
                     self.state = DriftState::Drifting;
                     self.held = 0;
                     self.calm_run = 0;

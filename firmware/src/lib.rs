@@ -32,13 +32,17 @@
 //!
 //! Each score is transformed (cube root of SPE, of T², and of the NLL above
 //! the model's floor, after Wilson & Hilferty),
-//! standardised with its calibrated centre and spread, and fed to an EWMA and
-//! an upper CUSUM. A score is *hot* when its CUSUM exceeds `h` or its EWMA
-//! exceeds `L`. States: [`DriftState::Priming`] (warm-up) →
-//! [`DriftState::Watching`] → [`DriftState::Drifting`] after `raise_dwell`
-//! consecutive hot samples; back to watching after `clear_dwell` consecutive
-//! calm samples (every CUSUM and EWMA below `clear_fraction` of its limit) and
-//! at least `min_hold` samples raised. Every parameter comes from the model.
+//! standardised with its calibrated centre and spread (`u`), and watched by
+//! three charts combined (as in combined Shewhart–CUSUM schemes, Lucas 1982):
+//! an EWMA of `u`, an upper CUSUM of `u`, and a per-sample limit on `u`
+//! itself. A score is *hot* when its CUSUM exceeds `h`, its EWMA exceeds `L`
+//! or the sample exceeds the per-sample limit. States: [`DriftState::Priming`]
+//! (warm-up) → [`DriftState::Watching`] → [`DriftState::Drifting`] after
+//! `raise_dwell` consecutive hot samples, or at once on a sample over a
+//! per-sample limit; back to watching after `clear_dwell` consecutive calm
+//! samples (every CUSUM and EWMA below `clear_fraction` of its limit and no
+//! sample over its per-sample limit) and at least `min_hold` samples raised.
+//! Every parameter comes from the model.
 //!
 //! ## Numbers
 //!

@@ -493,3 +493,28 @@ proptest! {
         }
     }
 }
+
+#[test]
+fn one_sample_over_the_per_sample_limit_raises_at_once() {
+    // The Shewhart part of the combined scheme: no dwell for a spike.
+    let mut rng = Rng(41);
+    let mut model = calibrated(&example_model(6, 2, 2, 5), &mut rng);
+    // SPE per-sample limit 30 (the nominal SPE here is below 1).
+    model.monitor.spe.sample_limit = 30.0;
+    let mut det = Detector::new(model.to_device().unwrap()).unwrap();
+    let mut events = Vec::new();
+    feed(&mut det, &model, &mut rng, 300, 0.0, &mut events);
+    assert_eq!(events, vec![(9, Event::Primed)]);
+    // One sample far off the PCA plane (feature 0 moved by 10 scales).
+    feed(&mut det, &model, &mut rng, 1, 10.0, &mut events);
+    assert_eq!(det.track(Score::Spe).over_sample_limit, 1);
+    assert_eq!(
+        events.last(),
+        Some(&(
+            300,
+            Event::Raised {
+                drivers: plumb_firmware::ScoreSet(1)
+            }
+        ))
+    );
+}

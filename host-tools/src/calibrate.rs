@@ -12,12 +12,14 @@
 //!    scores: plain moments, not robust estimates. The `u` of every scored
 //!    row is kept (f32, computed as the detector computes it) with the place
 //!    where each log starts.
-//! 3. `sample_limit` is the empirical 0.999 quantile of the raw score by the
-//!    inverted distribution function (R type 1): the `⌈0.999 n⌉`-th smallest
-//!    value. It is reported and counted, never a flag on its own.
+//! 3. The empirical 0.999 quantile of each raw score (inverted distribution
+//!    function, R type 1: the `⌈0.999 n⌉`-th smallest value) is reported.
+//!    The stored `sample_limit` is the per-sample (Shewhart) chart's limit,
+//!    set like the other charts below and mapped back to the raw score.
 //! 4. Allowance. The target false-alarm rate per sample is split evenly over
-//!    the six charts (three scores × upper CUSUM and upper EWMA;
-//!    Bonferroni): each chart's budget is `B = rate / 6 × n` false alarms,
+//!    the nine charts (three scores × upper CUSUM, upper EWMA and the
+//!    per-sample chart; Bonferroni): each chart's budget is `B = rate / 9 × n`
+//!    false alarms,
 //!    `n` being the samples it can alarm on (those after each log's
 //!    warm-up). A limit that gives `a` alarms on the held-out data gives
 //!    about `a + 1` on new data of the same length (rank argument, see
@@ -34,7 +36,7 @@
 //!    limit is therefore the smallest that meets its allowance on the held-out
 //!    data, found by bisection ([`smallest_limit`], to [`SEARCH_TOL`]), and
 //!    never below the design for independent N(0, 1) input: the limit whose
-//!    in-control ARL is `6 / rate` (Markov chain of Brook & Evans 1972,
+//!    in-control ARL is `9 / rate` (Markov chain of Brook & Evans 1972,
 //!    [`crate::arl`]).
 //! 6. CUSUM: for every reference value `k` of the slack grid (default
 //!    [`SLACK_GRID`]) the decision limit `h` is set as in 5; the `(k, h)`
@@ -78,8 +80,9 @@ pub const MAX_ROUNDS: usize = 25;
 pub const SAMPLE_QUANTILE: f64 = 0.999;
 /// Significance of the Jackson–Mudholkar SPE limit shown beside it.
 pub const JM_ALPHA: f64 = 0.001;
-/// Charts sharing the false-alarm rate: three scores × CUSUM and EWMA.
-pub const CHARTS: usize = 6;
+/// Charts sharing the false-alarm rate: three scores × CUSUM, EWMA and the
+/// per-sample (Shewhart) chart, combined as in Lucas (1982).
+pub const CHARTS: usize = 9;
 /// CUSUM reference values `k` (spreads) tried per score by default.
 pub const SLACK_GRID: [f64; 7] = [0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0];
 /// Largest CUSUM reference value accepted (spreads).
@@ -285,12 +288,15 @@ pub enum Chart {
         /// λ in (0, 1].
         lambda: f32,
     },
+    /// The sample itself against a per-sample limit (Shewhart).
+    Sample,
 }
 
 /// The detector's statistic for a chart, restartable.
 enum Stat {
     Cusum(Cusum),
     Ewma(Ewma),
+    Sample,
 }
 
 impl Stat {
@@ -302,6 +308,7 @@ impl Stat {
                 Stat::Cusum(Cusum::new(slack, limit.map_or(f32::INFINITY, |h| 2.0 * h)))
             }
             Chart::Ewma { lambda } => Stat::Ewma(Ewma::new(lambda, 0.0)),
+            Chart::Sample => Stat::Sample,
         }
     }
 
@@ -310,6 +317,7 @@ impl Stat {
         match self {
             Stat::Cusum(c) => c.push(u),
             Stat::Ewma(e) => e.push(u),
+            Stat::Sample => u,
         }
     }
 }
@@ -431,7 +439,7 @@ pub fn smallest_limit(chart: Chart, s: &Series<'_>, floor: f64, allowed: u64) ->
 }
 
 /// Each chart's false-alarm budget on `samples` held-out samples,
-/// `B = rate / 6 × samples`, and the alarms it may give there,
+/// `B = rate / 9 × samples`, and the alarms it may give there,
 /// `⌊B⌋ − 1` (at least 0).
 ///
 /// Why one fewer than the budget: a limit at which a chart alarms `a` times
@@ -528,6 +536,19 @@ pub struct ScoreCalib {
     /// ARL of the EWMA at the design shift, independent input, at the stored
     /// limit.
     pub ewma_arl_at_shift: f64,
+    /// Per-sample limit on `u` for independent N(0, 1) input: one sample
+    /// over it raises a flag, with the chart's in-control ARL.
+    pub sample_u_iid: f64,
+    /// Per-sample limit on `u` set on the held-out data (before widening).
+    pub sample_u: f64,
+    /// Alarms (samples over it) of the per-sample chart alone on the
+    /// held-out data.
+    pub sample_alarms: u64,
+    /// The per-sample limit as stored, on the raw score.
+    pub sample_limit: f64,
+    /// Steps of 0.25 the per-sample limit on `u` was raised by in the
+    /// end-to-end fallback.
+    pub sample_widened: u32,
     /// Factor the CUSUM limit was widened by in the end-to-end fallback.
     pub cusum_widened: f64,
     /// Factor the EWMA limit was widened by.
@@ -543,6 +564,23 @@ impl ScoreCalib {
     /// The EWMA limit on `u` as stored (after widening).
     pub fn ewma_stored(&self) -> f32 {
         (self.ewma_limit * self.ewma_widened) as f32
+    }
+
+    /// The per-sample limit on `u` after widening.
+    pub fn sample_u_stored(&self) -> f64 {
+        self.sample_u + 0.25 * f64::from(self.sample_widened)
+    }
+
+    /// The per-sample limit on the raw score for a limit `u` on the
+    /// standardised scale: the inverse of the detector's transform.
+    fn raw_limit(&self, u: f64, nll_floor: f64) -> f64 {
+        let g = self.center + self.spread * u;
+        let cube = g * g * g;
+        if self.score == "nll" {
+            cube + nll_floor
+        } else {
+            cube.max(0.0)
+        }
     }
 }
 
@@ -567,12 +605,12 @@ pub struct CalibReport {
     /// Held-out rows left out for empty or non-finite cells.
     pub skipped: u64,
     /// In-control ARL each chart is designed for with independent input
-    /// (`6 / rate`).
+    /// (`9 / rate`).
     pub chart_arl: f64,
     /// Held-out samples a chart can alarm on (after each log's warm-up).
     pub chart_samples: u64,
     /// False alarms each chart may raise on them by the target
-    /// (`rate / 6 × samples`).
+    /// (`rate / 9 × samples`).
     pub chart_budget: f64,
     /// Alarms each chart may give on the held-out data (`⌊budget⌋ − 1`, at
     /// least 0; see [`chart_allowance`]).
@@ -670,6 +708,26 @@ pub fn quantile_type1(v: &mut [f32], p: f64) -> f64 {
 /// Raw and transformed scores of one sample by the host model (f64
 /// arithmetic on the stored f32 parameters), for models over the device
 /// capacities; mirrors the detector's definitions.
+/// The model's smallest NLL in f64 (the device computes it in f32 at load):
+/// `−ln Σ_c exp(ln π_c − ½ Σ_j ln(2π v_cj))`.
+fn host_nll_floor(model: &ModelOwned) -> f64 {
+    let m = usize::from(model.dims.components).max(1);
+    let logs: Vec<f64> = model
+        .weights
+        .iter()
+        .zip(model.mix_variances.chunks_exact(m))
+        .map(|(w, v)| {
+            f64::from(*w).ln()
+                - 0.5
+                    * v.iter()
+                        .map(|x| (2.0 * std::f64::consts::PI * f64::from(*x)).ln())
+                        .sum::<f64>()
+        })
+        .collect();
+    let top = logs.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+    -(top + logs.iter().map(|l| (l - top).exp()).sum::<f64>().ln())
+}
+
 fn host_scores(model: &ModelOwned, x: &[f64], fault_z: f64) -> Option<[[f32; 3]; 2]> {
     let d = usize::from(model.dims.features);
     let m = usize::from(model.dims.components);
@@ -752,6 +810,7 @@ pub fn calibrate(
     let mut moments = [Welford::<f64>::new(); 3];
     let mut faults = 0u64;
     let skipped: u64;
+    let nll_floor: f64;
     {
         let det = if device {
             Some(
@@ -762,6 +821,10 @@ pub fn calibrate(
             )
         } else {
             None
+        };
+        nll_floor = match &det {
+            Some(det) => f64::from(det.nll_floor()),
+            None => host_nll_floor(model),
         };
         let mut x32 = vec![0.0f32; d];
         let mut current = usize::MAX;
@@ -825,13 +888,6 @@ pub fn calibrate(
         quantile[i] = quantile_type1(&mut raw[i], SAMPLE_QUANTILE);
     }
     drop(raw);
-    let nll_q = quantile[2];
-    if !(nll_q > 0.0) {
-        warnings.push(format!(
-            "the NLL 0.999 quantile is {nll_q:.4} ≤ 0; the model format needs a positive \
-             per-sample limit, so the stored NLL sample limit is 1e-6"
-        ));
-    }
     seconds.score = clock.elapsed().as_secs_f64();
 
     // 3. Designs for independent input, then the per-chart searches.
@@ -907,7 +963,22 @@ pub fn calibrate(
             )
         }
     });
-    let search_passes = found.iter().map(|(r, _)| u64::from(r.passes)).sum();
+    // The per-sample (Shewhart) chart of each score: one sample over the
+    // limit raises a flag (no dwell). For independent N(0, 1) input the
+    // design limit is Φ⁻¹(1 − 1/ARL).
+    let sample_iid = arl::phi_inv(1.0 - 1.0 / chart_arl);
+    let sample_found: Vec<LimitSearch> = par_map(&[0usize, 1, 2], cfg.threads, |&i| {
+        let s = Series {
+            dwell: 1,
+            ..series(i)
+        };
+        smallest_limit(Chart::Sample, &s, sample_iid, allowed_per_chart)
+    });
+    let search_passes = found.iter().map(|(r, _)| u64::from(r.passes)).sum::<u64>()
+        + sample_found
+            .iter()
+            .map(|r| u64::from(r.passes))
+            .sum::<u64>();
     let mut scores = Vec::new();
     for (i, which) in Score::ALL.into_iter().enumerate() {
         let row = &found[i * (ks.len() + 1)..(i + 1) * (ks.len() + 1)];
@@ -947,6 +1018,11 @@ pub fn calibrate(
             ewma_alarms: ewma.alarms,
             ewma_arl_at_shift: ewma_arl,
             cusum_candidates: candidates,
+            sample_u_iid: sample_iid,
+            sample_u: f64::from(sample_found[i].limit),
+            sample_alarms: sample_found[i].alarms,
+            sample_limit: 0.0,
+            sample_widened: 0,
             cusum_widened: 1.0,
             ewma_widened: 1.0,
         });
@@ -954,9 +1030,12 @@ pub fn calibrate(
     drop(u);
     seconds.design = clock.elapsed().as_secs_f64();
 
-    let apply = |model: &mut ModelOwned, scores: &[ScoreCalib]| {
+    let apply = |model: &mut ModelOwned, scores: &mut [ScoreCalib]| {
+        for s in scores.iter_mut() {
+            s.sample_limit = s.raw_limit(s.sample_u_stored(), nll_floor);
+        }
         let lim = |s: &ScoreCalib| ScoreLimits {
-            sample_limit: (s.quantile_999 as f32).max(1e-6),
+            sample_limit: s.sample_limit as f32,
             center: s.center as f32,
             spread: s.spread as f32,
             cusum_slack: s.cusum_slack as f32,
@@ -967,7 +1046,7 @@ pub fn calibrate(
         model.monitor.t2 = lim(&scores[1]);
         model.monitor.nll = lim(&scores[2]);
     };
-    apply(model, &scores);
+    apply(model, &mut scores);
 
     let mut report = CalibReport {
         scored,
@@ -1021,7 +1100,7 @@ pub fn calibrate(
         let mut current = usize::MAX;
         let mut flags = 0u64;
         let mut watched = 0u64;
-        let mut widen = [[false; 2]; 3];
+        let mut widen = [[false; 3]; 3];
         let mut x32 = vec![0.0f32; d];
         let label = if round == 1 {
             "check".to_string()
@@ -1055,6 +1134,9 @@ pub fn calibrate(
                     if tr.ewma.value() > limits[i].ewma_limit {
                         widen[i][1] = true;
                     }
+                    if tr.last_u > tr.sample_u {
+                        widen[i][2] = true;
+                    }
                 }
             }
         })?;
@@ -1075,8 +1157,11 @@ pub fn calibrate(
             if w[1] {
                 s.ewma_widened *= GROWTH;
             }
+            if w[2] {
+                s.sample_widened += 1;
+            }
         }
-        apply(model, &scores);
+        apply(model, &mut scores);
     }
     seconds.check = clock.elapsed().as_secs_f64();
     if report.widened {
@@ -1351,12 +1436,12 @@ mod tests {
 
     #[test]
     fn allowance_is_the_budget_less_one() {
-        // 1e-5 over 6 charts on 999 600 samples: budget 1.666; one alarm on
+        // 1e-5 over 9 charts on 999 900 samples: budget 1.111; one alarm on
         // the held-out data would mean about two on new data, so none.
-        let (b, a) = chart_allowance(1e-5, 999_600);
-        assert!((b - 1.666).abs() < 1e-12 && a == 0, "{b} {a}");
-        assert_eq!(chart_allowance(6e-4, 200_000).1, 19);
-        assert_eq!(chart_allowance(6e-4, 199_999).1, 18);
+        let (b, a) = chart_allowance(1e-5, 999_900);
+        assert!((b - 1.111).abs() < 1e-12 && a == 0, "{b} {a}");
+        assert_eq!(chart_allowance(9e-4, 200_000).1, 19);
+        assert_eq!(chart_allowance(9e-4, 199_999).1, 18);
         assert_eq!(chart_allowance(1e-5, 7_000).1, 0);
         assert_eq!(chart_allowance(1e-5, 0), (0.0, 0));
     }

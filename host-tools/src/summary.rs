@@ -520,7 +520,7 @@ impl Summary {
             Some(q) => {
                 let _ = writeln!(
                     o,
-                    "  SPE limit at alpha = {JM_ALPHA}: Jackson-Mudholkar {q:.5}, empirical 0.999 quantile {:.5}",
+                    "  SPE per-sample limit: Jackson-Mudholkar {q:.5} at alpha = {JM_ALPHA} (independent Gaussian residuals); calibrated {:.5} (held-out data, all charts together at the target rate)",
                     self.limits[0].limits.sample_limit
                 );
             }
@@ -544,8 +544,8 @@ impl Summary {
             let _ = writeln!(o, "\nCalibration on held-out logs");
             let _ = writeln!(
                 o,
-                "  {} rows scored ({} faulted, {} skipped). Each of the 6 charts has a budget of \
-                 {:.3} false alarms on its {} samples (rate / 6) and may alarm {} time{} there \
+                "  {} rows scored ({} faulted, {} skipped). Each of the 9 charts has a budget of \
+                 {:.3} false alarms on its {} samples (rate / 9) and may alarm {} time{} there \
                  (budget rounded down, less one: a limit that alarms a times on held-out data \
                  alarms about a + 1 times on new data). Limits never below the design for \
                  independent input (ARL0 = {:.0} per chart). Delays: ARL at a shift of {} \

@@ -50,8 +50,10 @@ pub struct Dims {
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub struct ScoreLimits {
-    /// Per-sample limit on the raw score (reported, counted; never raises a
-    /// flag on its own).
+    /// Per-sample limit on the raw score: a sample whose score exceeds it is
+    /// hot for this score (a Shewhart chart beside the CUSUM and EWMA, as in
+    /// combined Shewhart–CUSUM schemes, Lucas 1982). Finite; may be ≤ 0 for the
+    /// NLL.
     pub sample_limit: f32,
     /// In-control mean of the transformed score.
     pub center: f32,
@@ -156,7 +158,7 @@ impl ScoreLimits {
         // (value, must be > 0), in field order; the index reported is the
         // field's position in the struct.
         let values = [
-            (self.sample_limit, true),
+            (self.sample_limit, false),
             (self.center, false),
             (self.spread, true),
             (self.cusum_slack, false),

@@ -25,16 +25,17 @@ chart's limit is set on those scores for --false-alarm-rate, and the full drift 
 machine is run once over the held-out logs to check the result.
 
 Limits: per score, centre and spread are the mean and standard deviation of the
-transformed held-out score; the per-sample limit is its empirical 0.999 quantile (inverted
-distribution function: the ⌈0.999 n⌉-th smallest value). The false-alarm rate is split
-evenly over the six charts (3 scores × CUSUM and EWMA): each has a budget of
-B = rate / 6 × n false alarms on the n held-out samples it watches, and may alarm there at
+transformed held-out score. Each score has three charts: an upper CUSUM and an upper EWMA
+of u, and a per-sample (Shewhart) limit on u itself, combined as in Lucas (1982); a score
+is hot when any of its charts is over its limit. The false-alarm rate is split evenly
+over the nine charts: each has a budget of
+B = rate / 9 × n false alarms on the n held-out samples it watches, and may alarm there at
 most ⌊B⌋ − 1 times (a limit that alarms a times on held-out data alarms about a + 1 times
 on new data of the same length; with B < 1 it may not alarm at all, and the fit warns),
 run alone as the detector runs it (from 0 in each log, no alarm in warm-up, --raise-dwell samples over
 the limit, restart from 0 after an alarm). Real scores are autocorrelated, so each limit
 is the smallest meeting that allowance (bisection), never below the design for
-independent N(0, 1) input (in-control ARL 6 / rate, Markov-chain method of Brook & Evans
+independent N(0, 1) input (in-control ARL 9 / rate, Markov-chain method of Brook & Evans
 1972). The CUSUM tries every reference value k of --cusum-slack and keeps the (k, h) with
 the shortest ARL at --design-shift spreads (the usual way to trade k against h; the
 default shift 2 is common practice, no source). Only if the end-to-end run still raises
@@ -42,7 +43,7 @@ more flags than the target allows are the charts behind them widened, round by r
 (reported). The summary reports, per chart, the limits for independent input and as
 set, the held-out alarms and the delay at the design shift, the rate achieved on the
 held-out logs with a 95 % Wilson score interval, and the Jackson–Mudholkar SPE limit at
-α = 0.001 beside the empirical quantile. The drift-state defaults (warm-up 50, raise
+α = 0.001 beside the empirical 0.999 quantile (inverted distribution function). The drift-state defaults (warm-up 50, raise
 dwell 3, clear dwell 50, minimum hold 100, clear fraction 0.5, fault beyond 50 scales)
 and the EM variance floor (a fraction of each latent score's variance) are common
 practice, no source.
@@ -193,7 +194,7 @@ pub struct FitArgs {
     )]
     pub holdout_fraction: f64,
 
-    /// Target false alarms per sample, all six charts together
+    /// Target false alarms per sample, all nine charts together
     #[arg(
         long,
         value_name = "RATE",
