@@ -98,16 +98,14 @@ SKLEARN = textwrap.dedent(
     t1 = time.perf_counter()
     gm.fit(t)
     t_gmm = time.perf_counter() - t1
-    # One EM iteration alone, timed on the fitted parameters.
-    one = GaussianMixture(4, covariance_type="diag", max_iter=1, tol=0.0, warm_start=True,
-                          weights_init=gm.weights_, means_init=gm.means_,
-                          precisions_init=gm.precisions_)
-    t2 = time.perf_counter()
-    import warnings
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        one.fit(t)
-    t_iter = time.perf_counter() - t2
+    # One EM iteration alone (E step then M step, scikit-learn's own private
+    # methods, as its fit loop calls them), best of three on the fitted model.
+    t_iter = float("inf")
+    for _ in range(3):
+        t2 = time.perf_counter()
+        _, log_resp = gm._e_step(t)
+        gm._m_step(t, log_resp)
+        t_iter = min(t_iter, time.perf_counter() - t2)
     print(json.dumps({"read": t_read, "pca": t_pca, "gmm": t_gmm, "iter": t_iter,
                       "n_iter": int(gm.n_iter_), "mean_ll": float(gm.score(t))}))
     """
