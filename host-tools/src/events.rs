@@ -20,12 +20,13 @@
 //! | `ack` | a request done | `seq what ...` |
 //! | `refused` | a request refused | `seq request code reason` |
 //! | `resend` | end of a resend | `seq from count oldest dropped` |
+//! | `notice` | the link itself: noise before the first frame, a device restart, the port gone and back | `what` (`garbage`, `restart`, `disconnected`, `reconnecting`, `reconnected`) and its fields, see [`notice_line`] |
 //! | `link` | counters, at the end | see [`link_line`] |
 //!
 //! A frame that arrived through a resend carries ` recovered=1`. Scores are
 //! printed as the shortest decimal that reads back to the same `f32`.
 
-use crate::link::{LinkStats, Received};
+use crate::link::{LinkStats, Notice, Received};
 use plumb_model::file::Label;
 use plumb_model::wire::{
     Ack, Crossing, DeviceMsg, FaultKind, Greeting, Request, ScoreKind, ScoreTriple, Slot, State,
@@ -39,6 +40,8 @@ use std::io::Write;
 pub trait EventSink {
     /// One frame from the device.
     fn frame(&mut self, r: &Received);
+    /// Something that happened to the link itself.
+    fn notice(&mut self, _n: &Notice) {}
     /// The session ended; final counters.
     fn finish(&mut self, _stats: &LinkStats) {}
 }
@@ -105,6 +108,15 @@ impl<W: Write> EventSink for LinePrinter<W> {
         let _ = self.out.flush();
     }
 
+    fn notice(&mut self, n: &Notice) {
+        let line = match self.format {
+            LineFormat::Text => notice_line(n),
+            LineFormat::Json => notice_json(n).to_string(),
+        };
+        let _ = writeln!(self.out, "{line}");
+        let _ = self.out.flush();
+    }
+
     fn finish(&mut self, stats: &LinkStats) {
         let line = match self.format {
             LineFormat::Text => link_line(stats),
@@ -125,10 +137,89 @@ impl EventSink for Fan<'_> {
         }
     }
 
+    fn notice(&mut self, n: &Notice) {
+        for s in self.0.iter_mut() {
+            s.notice(n);
+        }
+    }
+
     fn finish(&mut self, stats: &LinkStats) {
         for s in self.0.iter_mut() {
             s.finish(stats);
         }
+    }
+}
+
+/// One line for a [`Notice`]:
+///
+/// * `notice what=garbage bytes=N frames=K`: N bytes that made no frame
+///   (K damaged frames among them) before the first good one;
+/// * `notice what=restart seq=S last=L by=greeting|sequence`: the device's
+///   numbering began again at S after L (it restarted);
+/// * `notice what=disconnected from="..."`: the port or connection went away;
+/// * `notice what=reconnecting attempt=N wait_ms=M error="..."`: attempt N
+///   failed, the next in M ms;
+/// * `notice what=reconnected to="..." attempts=N after_ms=M`: back after M ms.
+pub fn notice_line(n: &Notice) -> String {
+    match n {
+        Notice::Garbage { bytes, frames } => {
+            format!("notice what=garbage bytes={bytes} frames={frames}")
+        }
+        Notice::Restarted {
+            seq,
+            last,
+            by_greeting,
+        } => format!(
+            "notice what=restart seq={seq} last={last} by={}",
+            if *by_greeting { "greeting" } else { "sequence" }
+        ),
+        Notice::Disconnected { what } => format!("notice what=disconnected from={what:?}"),
+        Notice::Reconnecting {
+            attempt,
+            wait,
+            error,
+        } => format!(
+            "notice what=reconnecting attempt={attempt} wait_ms={} error={error:?}",
+            wait.as_millis()
+        ),
+        Notice::Reconnected {
+            what,
+            attempts,
+            after,
+        } => format!(
+            "notice what=reconnected to={what:?} attempts={attempts} after_ms={}",
+            after.as_millis()
+        ),
+    }
+}
+
+/// A [`Notice`] as JSON (`event: "notice"` and the fields of [`notice_line`]).
+pub fn notice_json(n: &Notice) -> Value {
+    match n {
+        Notice::Garbage { bytes, frames } => {
+            json!({"event": "notice", "what": "garbage", "bytes": bytes, "frames": frames})
+        }
+        Notice::Restarted {
+            seq,
+            last,
+            by_greeting,
+        } => json!({"event": "notice", "what": "restart", "seq": seq, "last": last,
+            "by": if *by_greeting { "greeting" } else { "sequence" }}),
+        Notice::Disconnected { what } => {
+            json!({"event": "notice", "what": "disconnected", "from": what})
+        }
+        Notice::Reconnecting {
+            attempt,
+            wait,
+            error,
+        } => json!({"event": "notice", "what": "reconnecting", "attempt": attempt,
+            "wait_ms": wait.as_millis() as u64, "error": error}),
+        Notice::Reconnected {
+            what,
+            attempts,
+            after,
+        } => json!({"event": "notice", "what": "reconnected", "to": what,
+            "attempts": attempts, "after_ms": after.as_millis() as u64}),
     }
 }
 
@@ -422,7 +513,7 @@ pub fn json_line(r: &Received, names: &Names) -> Value {
 pub fn link_line(s: &LinkStats) -> String {
     let f = s.frames;
     format!(
-        "link frames_ok={} crc_errors={} framing_errors={} overflows={} undecodable={} bytes={} gaps={} missing={} resend_requests={} recovered={} lost={} duplicates={} restarts={}",
+        "link frames_ok={} crc_errors={} framing_errors={} overflows={} undecodable={} bytes={} gaps={} missing={} resend_requests={} recovered={} lost={} duplicates={} restarts={} reconnects={}",
         f.frames_ok,
         f.crc_errors,
         f.framing_errors,
@@ -435,7 +526,8 @@ pub fn link_line(s: &LinkStats) -> String {
         s.recovered,
         s.lost,
         s.duplicates,
-        s.restarts
+        s.restarts,
+        s.reconnects
     )
 }
 
@@ -447,6 +539,7 @@ pub fn link_json(s: &LinkStats) -> Value {
         "framing_errors": f.framing_errors, "overflows": f.overflows, "undecodable": f.undecodable,
         "bytes": s.bytes, "gaps": s.gaps, "missing": s.missing, "resend_requests": s.resend_requests,
         "recovered": s.recovered, "lost": s.lost, "duplicates": s.duplicates, "restarts": s.restarts,
+        "reconnects": s.reconnects,
     })
 }
 

@@ -10,6 +10,14 @@
 //!   decoder, counts damage, watches the device's sequence numbers and asks
 //!   for a resend (`ResendFrom`) on every gap, drops duplicates, and says
 //!   which frames were recovered ([`Received`]).
+//! * A link given a way to reopen its transport ([`Link::set_reopen`]: a
+//!   serial path or a TCP address) survives the port going away: it says so,
+//!   tries again with a growing pause ([`RECONNECT_FIRST`] doubling up to
+//!   [`RECONNECT_MAX`]) and carries on where the device is. It notices a
+//!   device that restarted (a greeting, or any unretained message, numbered
+//!   behind what it expected) and bytes of noise before the first frame.
+//!   Each of these is a [`Notice`] ([`Link::take_notices`]) for the caller
+//!   to show.
 //!
 //! The flows built on it (greeting, feeding samples, uploads) are in
 //! [`crate::device`]; the text, JSON and CSV views of what arrives are in
@@ -344,6 +352,67 @@ impl Drop for ExecTransport {
     }
 }
 
+/// First pause before reopening a transport that went away.
+pub const RECONNECT_FIRST: Duration = Duration::from_millis(100);
+/// Longest pause between two attempts to reopen.
+pub const RECONNECT_MAX: Duration = Duration::from_secs(5);
+
+/// Something that happened to the link itself (not a device message), for
+/// the caller to show: one line each.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Notice {
+    /// Bytes that made no frame arrived before the first good frame (a boot
+    /// banner, line noise, the tail of an earlier session).
+    Garbage {
+        /// Bytes before the first good frame.
+        bytes: u64,
+        /// Damaged frames dropped among them.
+        frames: u64,
+    },
+    /// The device restarted: its numbering began again.
+    Restarted {
+        /// Number of the frame that showed it.
+        seq: u32,
+        /// Last number seen before.
+        last: u32,
+        /// `true`: a greeting showed it; `false`: another message.
+        by_greeting: bool,
+    },
+    /// The transport went away (port unplugged, connection closed).
+    Disconnected {
+        /// What it was connected to.
+        what: String,
+    },
+    /// An attempt to reopen failed; the next follows after `wait`.
+    Reconnecting {
+        /// Attempts so far.
+        attempt: u32,
+        /// Pause before the next.
+        wait: Duration,
+        /// Why it failed.
+        error: String,
+    },
+    /// The transport is back.
+    Reconnected {
+        /// What it is connected to.
+        what: String,
+        /// Attempts it took.
+        attempts: u32,
+        /// Time since it went away.
+        after: Duration,
+    },
+}
+
+/// Opens the transport again after it went away.
+pub type Reopen = Box<dyn FnMut() -> Result<Box<dyn Transport>> + Send>;
+
+/// A transport that went away and is being reopened.
+struct Down {
+    since: Instant,
+    attempts: u32,
+    next_try: Instant,
+}
+
 /// Counters of the host's receiving side and of resends.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
 pub struct LinkStats {
@@ -365,8 +434,10 @@ pub struct LinkStats {
     /// Missing sequence numbers the device could no longer resend (its ring
     /// had dropped them): they may have been events.
     pub lost: u64,
-    /// Greetings that showed the device had restarted.
+    /// Greetings (or other messages) that showed the device had restarted.
     pub restarts: u64,
+    /// Times the transport went away and came back.
+    pub reconnects: u64,
 }
 
 /// A frame handed to the caller.
@@ -408,6 +479,14 @@ pub struct Link {
     tail: Vec<u8>,
     closed: bool,
     exit: Option<ExitStatus>,
+    notices: VecDeque<Notice>,
+    reopen: Option<Reopen>,
+    down: Option<Down>,
+    /// Whether a good frame arrived yet, and the bytes before it.
+    first_seen: bool,
+    bytes_before_first: u64,
+    /// A zero went before the first frame sent on this transport.
+    flush_sent: bool,
 }
 
 /// Longest gap taken as lost frames; a longer jump is a restart or another
@@ -433,7 +512,29 @@ impl Link {
             tail: Vec::new(),
             closed: false,
             exit: None,
+            notices: VecDeque::new(),
+            reopen: None,
+            down: None,
+            first_seen: false,
+            bytes_before_first: 0,
+            flush_sent: false,
         }
+    }
+
+    /// Lets the link reopen its transport when it goes away (a serial path
+    /// or a TCP address; not a spawned program, whose end is the end).
+    pub fn set_reopen(&mut self, reopen: Reopen) {
+        self.reopen = Some(reopen);
+    }
+
+    /// What happened to the link since the last call, oldest first.
+    pub fn take_notices(&mut self) -> Vec<Notice> {
+        self.notices.drain(..).collect()
+    }
+
+    /// Whether the transport is away and being reopened.
+    pub fn is_reconnecting(&self) -> bool {
+        self.down.is_some()
     }
 
     /// Sets how long to wait for the answer to a resend request.
@@ -446,12 +547,27 @@ impl Link {
         self.transport.describe()
     }
 
-    /// Sends one host message as a frame.
+    /// Sends one host message as a frame. The first frame on a transport
+    /// gets a leading zero, which ends whatever half frame the device held
+    /// (an empty frame to the protocol). While the transport is away the
+    /// message is dropped (the caller's retries send it again).
     pub fn send(&mut self, msg: &HostMsg) -> Result<()> {
-        let frame = wire::encode_frame_vec(msg);
-        self.transport
-            .send(&frame)
-            .map_err(|e| self.link_error(format!("cannot send to the device: {e}")))
+        if self.down.is_some() {
+            return Ok(());
+        }
+        let mut frame = wire::encode_frame_vec(msg);
+        if !self.flush_sent {
+            frame.insert(0, 0);
+            self.flush_sent = true;
+        }
+        match self.transport.send(&frame) {
+            Ok(()) => Ok(()),
+            Err(_) if self.reopen.is_some() => {
+                self.went_away();
+                Ok(())
+            }
+            Err(e) => Err(self.link_error(format!("cannot send to the device: {e}"))),
+        }
     }
 
     /// Sends raw bytes (tests send damaged frames this way).
@@ -527,10 +643,81 @@ impl Link {
                         .max(Duration::from_millis(1)),
                 );
             }
+            if self.down.is_some() {
+                self.try_reopen(deadline);
+                continue;
+            }
             match self.transport.recv(wait) {
                 Chunk::Bytes(b) => self.ingest(&b)?,
                 Chunk::Timeout => {}
+                Chunk::Closed if self.reopen.is_some() => self.went_away(),
                 Chunk::Closed => self.closed = true,
+            }
+        }
+    }
+
+    /// The transport went away: say so and start reopening it.
+    fn went_away(&mut self) {
+        if self.down.is_some() {
+            return;
+        }
+        self.notices.push_back(Notice::Disconnected {
+            what: self.transport.describe(),
+        });
+        let now = Instant::now();
+        self.down = Some(Down {
+            since: now,
+            attempts: 0,
+            next_try: now + RECONNECT_FIRST,
+        });
+        self.pending = None;
+    }
+
+    /// Waits (up to `deadline`) for the next attempt and makes it.
+    fn try_reopen(&mut self, deadline: Instant) {
+        let Some(down) = self.down.as_mut() else {
+            return;
+        };
+        let now = Instant::now();
+        if now < down.next_try {
+            thread::sleep(down.next_try.min(deadline).saturating_duration_since(now));
+            return;
+        }
+        down.attempts += 1;
+        let Some(reopen) = self.reopen.as_mut() else {
+            return;
+        };
+        match reopen() {
+            Ok(t) => {
+                let attempts = down.attempts;
+                let after = down.since.elapsed();
+                self.transport = t;
+                self.down = None;
+                self.flush_sent = false;
+                self.stats.reconnects += 1;
+                // Whatever half frame the old connection left ends here
+                // (a damaged frame, counted): nothing of it belongs to the
+                // new one.
+                let mut held = std::mem::take(&mut self.tail);
+                held.push(0);
+                let _ = self.decode(&held);
+                self.notices.push_back(Notice::Reconnected {
+                    what: self.transport.describe(),
+                    attempts,
+                    after,
+                });
+            }
+            Err(e) => {
+                let wait = RECONNECT_FIRST
+                    .saturating_mul(1 << down.attempts.min(16))
+                    .min(RECONNECT_MAX);
+                down.next_try = Instant::now() + wait;
+                let attempt = down.attempts;
+                self.notices.push_back(Notice::Reconnecting {
+                    attempt,
+                    wait,
+                    error: e.to_string().lines().next().unwrap_or_default().to_string(),
+                });
             }
         }
     }
@@ -602,9 +789,29 @@ impl Link {
     fn decode(&mut self, bytes: &[u8]) -> Result<()> {
         let mut rest = bytes;
         loop {
+            let before = rest.len();
             rest = self.decoder.feed(rest);
+            if !self.first_seen {
+                self.bytes_before_first += (before - rest.len()) as u64;
+            }
             match self.decoder.take_message::<DeviceFrame>() {
-                Some(Ok(frame)) => self.accept(frame)?,
+                Some(Ok(frame)) => {
+                    if !self.first_seen {
+                        self.first_seen = true;
+                        let c = self.decoder.counters();
+                        let frames = c.crc_errors + c.framing_errors + c.overflows + c.undecodable;
+                        // The good frame's own bytes were counted too.
+                        let own = wire::encode_frame_vec(&frame).len() as u64;
+                        let bytes = self.bytes_before_first.saturating_sub(own);
+                        if bytes > 0 {
+                            self.notices.push_back(Notice::Garbage {
+                                bytes,
+                                frames: u64::from(frames),
+                            });
+                        }
+                    }
+                    self.accept(frame)?
+                }
                 // Counted by the decoder.
                 Some(Err(_)) => {}
                 None if rest.is_empty() => break,
@@ -617,10 +824,20 @@ impl Link {
     fn accept(&mut self, frame: DeviceFrame) -> Result<()> {
         let seq = frame.seq;
         let retained = frame.msg.is_retained();
-        // A greeting numbered below what we expect: the device restarted.
-        if let (DeviceMsg::Greeting(_), Some(next)) = (&frame.msg, self.next) {
-            if !wire::seq_at_or_after(seq, next) && !self.missing.contains(&seq) {
+        // A message numbered below what we expect that cannot be a resend:
+        // the device restarted. A greeting says so itself; any other
+        // unretained message (status, report, ack) is never sent twice, so
+        // an old number means the numbering began again (the greeting after
+        // the restart was lost).
+        if let Some(next) = self.next {
+            let behind = !wire::seq_at_or_after(seq, next) && !self.missing.contains(&seq);
+            if behind && !retained {
                 self.stats.restarts += 1;
+                self.notices.push_back(Notice::Restarted {
+                    seq,
+                    last: next.wrapping_sub(1),
+                    by_greeting: matches!(frame.msg, DeviceMsg::Greeting(_)),
+                });
                 self.next = None;
                 self.missing.clear();
                 self.events.clear();
@@ -703,7 +920,10 @@ impl Link {
         }
         // Every retained message from `from` on arrived; what is still
         // missing before the summary was not retained (reports, acks), or
-        // had left the ring before the request.
+        // had left the ring before the request. Only a ring that dropped
+        // something can have lost an event: while `dropped` is 0 every
+        // event since boot is still retained, so a number before the oldest
+        // was a report or an acknowledgement.
         let gone: Vec<u32> = self
             .missing
             .iter()
@@ -712,11 +932,10 @@ impl Link {
             .collect();
         for s in gone {
             self.missing.remove(&s);
-            if let Some(oldest) = done.oldest {
-                if !wire::seq_at_or_after(s, oldest) {
-                    self.stats.lost += 1;
-                }
-            } else if done.dropped > 0 {
+            let before_oldest = done
+                .oldest
+                .is_none_or(|oldest| !wire::seq_at_or_after(s, oldest));
+            if done.dropped > 0 && before_oldest {
                 self.stats.lost += 1;
             }
         }
@@ -742,5 +961,297 @@ impl Link {
             answered: 0,
         });
         self.send(&HostMsg::ResendFrom { seq: from })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use plumb_model::wire::{Ack, DriftCleared, DriftRaised, Greeting, ScoreTriple, Share};
+    use plumb_model::{Capacity, Dims};
+    use std::sync::atomic::{AtomicU32, Ordering};
+
+    /// A transport that plays chunks, then says `Closed` (or times out
+    /// forever when `hold` is set).
+    struct Script {
+        chunks: VecDeque<Vec<u8>>,
+        hold: bool,
+        sent: Arc<Mutex<Vec<u8>>>,
+    }
+
+    impl Script {
+        fn new(chunks: Vec<Vec<u8>>, hold: bool) -> (Self, Arc<Mutex<Vec<u8>>>) {
+            let sent = Arc::new(Mutex::new(Vec::new()));
+            (
+                Script {
+                    chunks: chunks.into(),
+                    hold,
+                    sent: Arc::clone(&sent),
+                },
+                sent,
+            )
+        }
+    }
+
+    impl Transport for Script {
+        fn send(&mut self, bytes: &[u8]) -> std::io::Result<()> {
+            self.sent.lock().unwrap().extend_from_slice(bytes);
+            Ok(())
+        }
+        fn recv(&mut self, timeout: Duration) -> Chunk {
+            match self.chunks.pop_front() {
+                Some(c) => Chunk::Bytes(c),
+                None if self.hold => {
+                    thread::sleep(timeout.min(Duration::from_millis(5)));
+                    Chunk::Timeout
+                }
+                None => Chunk::Closed,
+            }
+        }
+        fn describe(&self) -> String {
+            "script".into()
+        }
+    }
+
+    fn greeting() -> DeviceMsg {
+        DeviceMsg::Greeting(Greeting {
+            protocol: 1,
+            firmware: heapless::String::try_from("test").unwrap(),
+            model_id: 9,
+            schema: 1,
+            dims: Dims {
+                features: 2,
+                components: 1,
+                mixture: 1,
+            },
+            capacity: Capacity::DEVICE,
+            active: None,
+            generation: 0,
+            status_every: 0,
+        })
+    }
+
+    fn raised(sample: u64) -> DeviceMsg {
+        DeviceMsg::DriftRaised(DriftRaised {
+            sample,
+            drivers: 1,
+            scores: ScoreTriple {
+                spe: 1.0,
+                t2: 2.0,
+                nll: 3.0,
+            },
+            crossed: heapless::Vec::new(),
+            top: [Share {
+                feature: 255,
+                value: 0.0,
+            }; 3],
+        })
+    }
+
+    fn f(seq: u32, msg: DeviceMsg) -> Vec<u8> {
+        wire::encode_frame_vec(&DeviceFrame { seq, msg })
+    }
+
+    fn ack(seq: u32) -> Vec<u8> {
+        f(seq, DeviceMsg::Ack(Ack::StatsReset))
+    }
+
+    /// Everything the link hands over, until it closes.
+    fn all(link: &mut Link) -> Vec<Received> {
+        let mut out = Vec::new();
+        while let Some(r) = link.recv(Duration::from_millis(50)).unwrap() {
+            out.push(r);
+        }
+        out
+    }
+
+    fn seqs(rs: &[Received]) -> Vec<(u32, bool)> {
+        rs.iter()
+            .map(|r| (r.frame.seq, r.frame.msg.is_retained()))
+            .collect()
+    }
+
+    #[test]
+    fn a_greeting_numbered_behind_is_a_restart() {
+        let (t, _) = Script::new(
+            vec![
+                f(0, greeting()),
+                ack(1),
+                f(2, raised(10)),
+                ack(3),
+                // Reboot: greeting 0, then a new event with an old number.
+                f(0, greeting()),
+                f(1, DeviceMsg::DriftCleared(DriftCleared { sample: 4 })),
+                f(2, raised(30)),
+            ],
+            false,
+        );
+        let mut link = Link::new(Box::new(t));
+        let got = all(&mut link);
+        assert_eq!(
+            seqs(&got),
+            [
+                (0, false),
+                (1, false),
+                (2, true),
+                (3, false),
+                (0, false),
+                (1, true),
+                (2, true)
+            ]
+        );
+        assert_eq!(
+            link.take_notices(),
+            [Notice::Restarted {
+                seq: 0,
+                last: 3,
+                by_greeting: true
+            }]
+        );
+        let s = link.stats();
+        assert_eq!((s.restarts, s.duplicates, s.gaps), (1, 0, 0));
+    }
+
+    #[test]
+    fn an_old_number_on_an_unretained_message_is_a_restart() {
+        // The greeting after the reboot was lost: the acknowledgement
+        // numbered 1 shows it (acks are never sent twice).
+        let (t, _) = Script::new(
+            vec![
+                f(0, greeting()),
+                ack(1),
+                f(2, raised(10)),
+                ack(3),
+                ack(1),
+                f(2, raised(30)),
+            ],
+            false,
+        );
+        let mut link = Link::new(Box::new(t));
+        let got = all(&mut link);
+        assert_eq!(got.len(), 6, "{:?}", seqs(&got));
+        assert!(matches!(&got[5].frame.msg, DeviceMsg::DriftRaised(d) if d.sample == 30));
+        assert_eq!(
+            link.take_notices(),
+            [Notice::Restarted {
+                seq: 1,
+                last: 3,
+                by_greeting: false
+            }]
+        );
+    }
+
+    #[test]
+    fn a_resent_event_is_not_a_restart() {
+        let (t, sent) = Script::new(
+            vec![
+                f(0, greeting()),
+                ack(1),
+                // 2 (an event) is lost; 3 shows the gap; the resend brings 2.
+                ack(3),
+                f(2, raised(10)),
+                f(
+                    4,
+                    DeviceMsg::ResendDone(ResendDone {
+                        from: 2,
+                        count: 1,
+                        oldest: Some(2),
+                        dropped: 0,
+                    }),
+                ),
+            ],
+            false,
+        );
+        let mut link = Link::new(Box::new(t));
+        let got = all(&mut link);
+        assert!(got[3].recovered);
+        assert!(link.take_notices().is_empty());
+        let s = link.stats();
+        assert_eq!((s.restarts, s.recovered, s.lost), (0, 1, 0));
+        // The request went out (after the leading zero of the first send).
+        let sent = sent.lock().unwrap().clone();
+        assert_eq!(sent[0], 0, "a zero before the first frame");
+        assert_eq!(
+            &sent[1..],
+            &wire::encode_frame_vec(&HostMsg::ResendFrom { seq: 2 })[..]
+        );
+    }
+
+    #[test]
+    fn noise_before_the_first_frame_is_reported_once() {
+        let banner = b"boot rom 1.2\r\n\xff\xfe".to_vec();
+        let first = f(0, greeting());
+        let mut noisy = banner.clone();
+        // No zero in the banner: it runs into the first frame, which is lost.
+        noisy.extend_from_slice(&first);
+        let (t, _) = Script::new(vec![noisy, ack(1), b"\x07junk\x00".to_vec(), ack(2)], false);
+        let mut link = Link::new(Box::new(t));
+        let got = all(&mut link);
+        assert_eq!(seqs(&got), [(1, false), (2, false)]);
+        assert_eq!(
+            link.take_notices(),
+            [Notice::Garbage {
+                bytes: (banner.len() + first.len()) as u64,
+                frames: 1
+            }]
+        );
+    }
+
+    #[test]
+    fn a_port_that_goes_away_is_reopened_with_backoff() {
+        let (t, _) = Script::new(vec![f(0, greeting()), ack(1), vec![0x11, 0x22]], false);
+        let tries = Arc::new(AtomicU32::new(0));
+        let n = Arc::clone(&tries);
+        let mut link = Link::new(Box::new(t));
+        link.set_reopen(Box::new(move || {
+            if n.fetch_add(1, Ordering::SeqCst) < 2 {
+                Err(Error::input("no such port"))
+            } else {
+                // Back, and the device carried on (3 is an event after a
+                // lost 2).
+                let (t, _) = Script::new(vec![f(3, raised(5)), ack(4)], true);
+                Ok(Box::new(t))
+            }
+        }));
+        let start = Instant::now();
+        let mut got = Vec::new();
+        while got.len() < 4 && start.elapsed() < Duration::from_secs(5) {
+            if let Some(r) = link.recv(Duration::from_millis(100)).unwrap() {
+                got.push(r);
+            }
+        }
+        assert_eq!(seqs(&got), [(0, false), (1, false), (3, true), (4, false)]);
+        let notices = link.take_notices();
+        assert_eq!(notices.len(), 4, "{notices:?}");
+        assert_eq!(
+            notices[0],
+            Notice::Disconnected {
+                what: "script".into()
+            }
+        );
+        let waits: Vec<Duration> = notices[1..3]
+            .iter()
+            .map(|n| match n {
+                Notice::Reconnecting { wait, error, .. } => {
+                    assert!(error.contains("no such port"));
+                    *wait
+                }
+                other => panic!("{other:?}"),
+            })
+            .collect();
+        assert_eq!(
+            waits,
+            [Duration::from_millis(200), Duration::from_millis(400)]
+        );
+        assert!(matches!(
+            notices[3],
+            Notice::Reconnected { attempts: 3, .. }
+        ));
+        let s = link.stats();
+        assert_eq!(s.reconnects, 1);
+        assert_eq!(s.gaps, 1, "2 is missing: a resend is asked for");
+        // The half frame the old connection left was dropped and counted.
+        assert_eq!(s.frames.framing_errors, 1);
+        assert!(!link.is_closed());
     }
 }

@@ -4,7 +4,7 @@
 use crate::device::Patience;
 use crate::error::{Error, Result};
 use crate::events::{EventSink, LineFormat};
-use crate::link::{ExecTransport, Link, SerialTransport, TcpTransport, Transport};
+use crate::link::{ExecTransport, Link, Reopen, SerialTransport, TcpTransport, Transport};
 use clap::{ArgGroup, Args};
 use std::io::Write;
 use std::time::Duration;
@@ -64,6 +64,27 @@ impl LinkArgs {
         let mut link = Link::new(transport);
         link.set_resend_timeout(self.reply());
         Ok(link)
+    }
+
+    /// How to open the transport again after it went away: a serial path
+    /// or a TCP address (`None` for a spawned program: its end is the end).
+    pub fn reopener(&self) -> Option<Reopen> {
+        if let Some(p) = &self.port {
+            let (p, baud) = (p.clone(), self.baud);
+            Some(Box::new(move || {
+                Ok(Box::new(SerialTransport::open(&p, baud)?) as Box<dyn Transport>)
+            }))
+        } else if let Some(a) = &self.tcp {
+            let a = a.clone();
+            Some(Box::new(move || {
+                Ok(
+                    Box::new(TcpTransport::connect(&a, Duration::from_millis(200))?)
+                        as Box<dyn Transport>,
+                )
+            }))
+        } else {
+            None
+        }
     }
 
     /// Wait for one answer.

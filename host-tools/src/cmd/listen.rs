@@ -5,10 +5,10 @@ use crate::cmd::inspect::read_model;
 use crate::device;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
 use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
-use crate::link::{LinkStats, Received};
+use crate::link::{Link, LinkStats, Notice, Received};
 use crate::live;
 use clap::Args;
-use plumb_model::wire::DeviceMsg;
+use plumb_model::wire::{DeviceMsg, HostMsg};
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
@@ -32,8 +32,17 @@ its drift state (waiting, priming, watching, drifting), each score's EWMA and CU
 gauge against its limit (limits from --model), the last flags and sensor faults, and link
 health; it is printed once more when listening ends. --plain prints lines on a terminal.
 
-Runs until the device closes the link, --for elapses, or Ctrl-C. Exit code 1 if a drift
-flag was raised while listening, 0 otherwise, 2 on a link or usage error.";
+The link itself is watched too, one `notice` line each: bytes of noise before the first
+frame (`what=garbage`), a device that restarted (`what=restart`: a greeting, or any other
+message, numbered behind what came before; the numbering starts again), and a serial port
+or TCP connection that went away (`what=disconnected`), the attempts to reopen it with a
+pause growing from 0.1 s to 5 s (`what=reconnecting`) and its return (`what=reconnected`;
+a greeting is then asked for, so a restart or a gap shows). --no-reconnect ends listening
+when the port goes away instead.
+
+Runs until the device closes the link (a spawned program ends, or the port goes away with
+--no-reconnect), --for elapses, or Ctrl-C. Exit code 1 if a drift flag was raised while
+listening, 0 otherwise, 2 on a link or usage error.";
 
 /// Arguments of `plumb listen`.
 #[derive(Debug, Clone, Args)]
@@ -72,6 +81,10 @@ pub struct ListenArgs {
     /// One line per event, even on a terminal
     #[arg(long)]
     pub plain: bool,
+
+    /// Stop when the serial port or TCP connection goes away (default: reopen it)
+    #[arg(long)]
+    pub no_reconnect: bool,
 }
 
 /// Runs `plumb listen`.
@@ -106,6 +119,11 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     }
 
     let mut link = args.link.open()?;
+    if !args.no_reconnect {
+        if let Some(reopen) = args.link.reopener() {
+            link.set_reopen(reopen);
+        }
+    }
     let mut live = live::wanted(args.live, args.plain, args.json).then(|| {
         let info = model.as_ref().map(live::ModelInfo::of);
         live::LiveView::start(live::LiveState::new(link.describe(), names.clone(), info))
@@ -120,16 +138,18 @@ pub fn run(args: ListenArgs) -> Result<u8> {
         if let Some(r) = recorder.as_mut() {
             sinks.push(r);
         }
-        let mut fan = Fan(sinks);
+        // Frames and the link's notices go to the same sinks.
+        let fan = std::cell::RefCell::new(Fan(sinks));
         let mut sink = |r: &Received| {
             if matches!(r.frame.msg, DeviceMsg::DriftRaised(_)) {
                 drift = true;
             }
-            fan.frame(r);
+            fan.borrow_mut().frame(r);
         };
+        let mut note = |n: &Notice| fan.borrow_mut().notice(n);
         let mut tick = |s: &LinkStats| watch.iter_mut().for_each(|w| w(s));
-        let res = listen(&args, &mut link, &stop, &mut sink, &mut tick);
-        let fin = connect::finish(&mut link, &mut fan, format, false);
+        let res = listen(&args, &mut link, &stop, &mut sink, &mut note, &mut tick);
+        let fin = connect::finish(&mut link, &mut *fan.borrow_mut(), format, false);
         res.and(fin)
     };
     if let Some(r) = recorder.as_mut() {
@@ -145,16 +165,34 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     Ok(if drift { EXIT_DRIFT } else { EXIT_CLEAN })
 }
 
+/// Hands the link's notices to `note`; after a reconnect, asks for a
+/// greeting (its number shows a restart, or a gap to resend).
+fn notices(link: &mut Link, note: &mut dyn FnMut(&Notice)) -> Result<()> {
+    for n in link.take_notices() {
+        note(&n);
+        if matches!(n, Notice::Reconnected { .. }) {
+            link.send(&HostMsg::GreetingQuery)?;
+        }
+    }
+    Ok(())
+}
+
 fn listen(
     args: &ListenArgs,
-    link: &mut crate::link::Link,
+    link: &mut Link,
     stop: &AtomicBool,
     sink: &mut dyn FnMut(&Received),
+    note: &mut dyn FnMut(&Notice),
     tick: &mut dyn FnMut(&LinkStats),
 ) -> Result<()> {
     if !args.no_greeting {
-        let g = device::greeting(link, args.link.patience(), sink)?;
-        device::check_protocol(&g)?;
+        // Frames are held until the greeting is in, so that a notice (noise
+        // before the first frame, say) prints before the frames after it.
+        let mut held = Vec::new();
+        let g = device::greeting(link, args.link.patience(), &mut |r| held.push(r.clone()));
+        notices(link, note)?;
+        held.iter().for_each(&mut *sink);
+        device::check_protocol(&g?)?;
     }
     let end = args
         .duration
@@ -163,7 +201,9 @@ fn listen(
         if end.is_some_and(|e| Instant::now() >= e) {
             break;
         }
-        match link.recv(Duration::from_millis(200))? {
+        let got = link.recv(Duration::from_millis(200))?;
+        notices(link, note)?;
+        match got {
             Some(r) => sink(&r),
             None if link.is_closed() => break,
             None => {}
