@@ -6,7 +6,6 @@ use crate::fit::{self, FitConfig, Holdout, MixtureChoice};
 use crate::logs::{self, BadCells, LogSet, ReadOptions};
 use crate::progress::Progress;
 use crate::replay::{self, LogReplay};
-use crate::report::TruthRow;
 use clap::Args;
 use plumb_firmware::Score;
 use plumb_scenario::{Truth, TruthKind, SAMPLE_PERIOD_S};
@@ -331,7 +330,6 @@ pub fn run(args: DemoArgs) -> Result<u8> {
     } else {
         let out = args.out.join("report.html");
         say(quiet, &format!("writing {}", out.display()));
-        let rows: Vec<TruthRow> = truth.iter().map(TruthRow::from).collect();
         let mut logs = drift_paths.clone();
         logs.extend(hold_paths.iter().cloned());
         crate::report::write_report(
@@ -339,7 +337,7 @@ pub fn run(args: DemoArgs) -> Result<u8> {
             &file,
             &logs,
             &train_paths,
-            &rows,
+            &truth,
             replay_read.clone(),
             &out,
             &Progress::stderr(quiet),

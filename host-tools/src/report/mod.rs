@@ -42,40 +42,9 @@ pub const LATENT_FIELD_POINTS: usize = 3000;
 /// drawn column per unit.
 pub const PLOT_COLUMNS: usize = 940;
 
-/// Whether a ground-truth row is a drift of the process or a sensor fault.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum TruthKind {
-    /// The process or a calibration changed.
-    Drift,
-    /// A sensor failed (missing or invalid readings).
-    Fault,
-}
-
-impl TruthKind {
-    /// `drift` or `fault`.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            TruthKind::Drift => "drift",
-            TruthKind::Fault => "fault",
-        }
-    }
-}
-
-/// What is known about a log: when its change began.
-#[derive(Debug, Clone, PartialEq)]
-pub struct TruthRow {
-    /// Scenario name (may be empty).
-    pub scenario: String,
-    /// The log it describes.
-    pub file: PathBuf,
-    /// 0-based data row (the header not counted) of the first affected row;
-    /// the same numbering as replay's sample index.
-    pub onset_row: u64,
-    /// Drift or fault.
-    pub kind: TruthKind,
-    /// Names of the features the change acts on (may be empty).
-    pub features: Vec<String>,
-}
+/// Ground truth of a log (when its change began, drift or fault): the demo
+/// scenario's own row type.
+pub use plumb_scenario::{Truth as TruthRow, TruthKind};
 
 /// Reads a ground-truth CSV (the demo scenario's format, read by
 /// [`plumb_scenario::read_truth`]): header
@@ -83,30 +52,14 @@ pub struct TruthRow {
 /// is relative to the truth file's folder, `features` is `;`-separated. The
 /// report places the onset by row.
 pub fn read_truth(path: &Path) -> Result<Vec<TruthRow>> {
-    let rows = plumb_scenario::read_truth(path).map_err(|e| {
+    plumb_scenario::read_truth(path).map_err(|e| {
         if e.kind() == std::io::ErrorKind::InvalidData {
             // The message already says file:line.
             Error::input(e.to_string())
         } else {
             Error::io(path, "read", &e)
         }
-    })?;
-    Ok(rows.iter().map(TruthRow::from).collect())
-}
-
-impl From<&plumb_scenario::Truth> for TruthRow {
-    fn from(t: &plumb_scenario::Truth) -> Self {
-        TruthRow {
-            scenario: t.scenario.clone(),
-            file: t.file.clone(),
-            onset_row: t.onset_row as u64,
-            kind: match t.kind {
-                plumb_scenario::TruthKind::Drift => TruthKind::Drift,
-                plumb_scenario::TruthKind::Fault => TruthKind::Fault,
-            },
-            features: t.features.clone(),
-        }
-    }
+    })
 }
 
 /// The truth row describing `log`: the same file (canonical paths), else

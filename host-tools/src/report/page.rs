@@ -282,7 +282,7 @@ fn overview(o: &mut String, c: &Collected<'_>) {
                 .map(|t| format!(
                     "{} from sample {}{}",
                     t.kind.as_str(),
-                    count(t.onset_row),
+                    count(t.onset_row as u64),
                     if t.scenario.is_empty() {
                         String::new()
                     } else {
@@ -391,7 +391,7 @@ fn log_section(o: &mut String, c: &Collected<'_>, li: usize) {
             o,
             " · ground truth: {} from sample {}",
             t.kind.as_str(),
-            count(t.onset_row)
+            count(t.onset_row as u64)
         );
         if !t.features.is_empty() {
             let _ = write!(o, " on {}", esc(&t.features.join(", ")));
@@ -715,7 +715,7 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
 
     // Ground truth.
     if let Some(t) = &data.truth {
-        if t.onset_row <= n {
+        if t.onset_row as u64 <= n {
             let x = xs.at(t.onset_row as f64);
             line(o, x, MT - 4.0, x, ST + SH, "onset");
             let label = match t.kind {
