@@ -282,8 +282,11 @@ impl Screen {
     }
 
     /// Each row with its styles as ANSI escapes (colours only when `colour`),
-    /// every row ending with the style reset; rows joined by `sep`.
-    pub fn ansi(&self, colour: bool, sep: &str, clear_eol: bool) -> String {
+    /// every row ending with the style reset; rows joined by `sep`. With
+    /// `clear_to`, a row narrower than that many columns ends by erasing the
+    /// rest of the terminal row (a full one must not: with line wrap off the
+    /// cursor stays on its last character, which the erase would take).
+    pub fn ansi(&self, colour: bool, sep: &str, clear_to: Option<usize>) -> String {
         let mut out = String::new();
         for (i, l) in self.lines.iter().enumerate() {
             if i > 0 {
@@ -297,7 +300,7 @@ impl Screen {
                     out.push_str("\x1b[0m");
                 }
             }
-            if clear_eol {
+            if clear_to.is_some_and(|w| l.width() < w) {
                 out.push_str("\x1b[K");
             }
         }
@@ -716,6 +719,12 @@ impl LiveState {
         }
     }
 
+    /// Something about the link itself (a disconnection, a reconnection, a
+    /// restart seen by the link), shown as the newest note.
+    pub fn notice(&mut self, at: Duration, text: impl Into<String>) {
+        self.note(at, text.into());
+    }
+
     /// Takes the host's link counters so far.
     pub fn link(&mut self, stats: &LinkStats) {
         self.host = *stats;
@@ -739,36 +748,65 @@ impl LiveState {
     /// (the picture printed at the end).
     pub fn render(&self, cols: usize, rows: usize, now: Duration) -> Screen {
         let cols = cols.max(20);
+        // Rows are saved in turn until the screen holds a few flags and a
+        // fault: first the per-sample score lines, then the note and the
+        // footer; what still does not fit is cut at the bottom.
+        let mut lines = Vec::new();
+        for level in 0..3 {
+            let (l, fits) = self.compose(cols, rows, now, level);
+            lines = l;
+            if fits {
+                break;
+            }
+        }
+        lines.truncate(rows);
+        Screen {
+            lines: lines.into_iter().map(|l| l.fit(cols)).collect(),
+        }
+    }
+
+    /// The rows at a compaction `level` (0: all; 1: no per-sample score
+    /// lines; 2: no note or footer either), and whether they fit `rows`
+    /// with room for some flags and a fault.
+    fn compose(&self, cols: usize, rows: usize, now: Duration, level: u8) -> (Vec<Line>, bool) {
         let mut head = vec![self.title(cols, now)];
         head.extend(self.identity(cols));
         head.push(self.banner(cols, now));
-        let charts = self.charts(cols);
+        let charts = self.charts(cols, level == 0);
         let link = self.link_lines(cols, now);
-        let note = self.notes.back().map(|(at, t)| {
+        let note = self.notes.back().filter(|_| level < 2).map(|(at, t)| {
             let mut l = Line::new();
             l.push(" note  ", Style::dim())
                 .plain(t.clone())
                 .push(format!("  {}", self.clock(*at)), Style::dim());
             l
         });
-        let footer = if self.ended {
-            Line::with(" the session ended", Style::dim())
-        } else {
-            Line::with(" Ctrl-C stops · --plain prints lines instead", Style::dim())
-        };
+        let footer = (level < 2).then(|| {
+            if self.ended {
+                Line::with(" the session ended", Style::dim())
+            } else {
+                Line::with(" Ctrl-C stops · --plain prints lines instead", Style::dim())
+            }
+        });
 
-        // Flags and faults share the rows the rest leaves.
-        let flag_lines = self.flag_lines();
+        // Flags and faults share the rows the rest leaves (at least one
+        // each).
+        let flag_lines = self.flag_lines(cols);
         let fault_lines = self.fault_lines();
-        let fixed =
-            head.len() + charts.len() + 2 + 2 + link.len() + usize::from(note.is_some()) + 1;
-        let (flags_n, faults_n) = if rows == usize::MAX {
-            (flag_lines.len().min(12), fault_lines.len().min(6))
+        let fixed = head.len()
+            + charts.len()
+            + 2
+            + link.len()
+            + usize::from(note.is_some())
+            + usize::from(footer.is_some());
+        let (flags_n, faults_n, fits) = if rows == usize::MAX {
+            (flag_lines.len().min(12), fault_lines.len().min(6), true)
         } else {
-            let avail = rows.saturating_sub(fixed);
-            let faults_n = fault_lines.len().min((avail / 3).max(1)).min(avail);
-            let flags_n = flag_lines.len().min(avail - faults_n);
-            (flags_n, faults_n)
+            let avail = rows.saturating_sub(fixed + 2);
+            let faults_n = fault_lines.len().saturating_sub(1).min(avail / 3);
+            let flags_n = flag_lines.len().saturating_sub(1).min(avail - faults_n);
+            let want = flag_lines.len().clamp(1, 3) + fault_lines.len().clamp(1, 1);
+            (flags_n + 1, faults_n + 1, fixed + want <= rows)
         };
 
         let mut lines = head;
@@ -785,33 +823,38 @@ impl LiveState {
         if flag_lines.is_empty() {
             lines.push(Line::with("  none so far", Style::dim()));
         } else {
-            lines.extend(flag_lines.into_iter().take(flags_n.max(1)));
+            lines.extend(flag_lines.into_iter().take(flags_n));
         }
-        let tally = self.status.map(|s| s.faults);
-        lines.push(rule(
-            " sensor faults ",
-            cols,
-            &[],
-            Some(match tally {
-                Some(f) => format!(
-                    " wrong length {} · non-finite {} · out of range {} · overflow {} ",
-                    f.wrong_length, f.non_finite, f.out_of_range, f.overflow
-                ),
-                None => format!(" {} reported ", self.fault_events),
-            }),
-        ));
+        let tally = match self.status.map(|s| s.faults) {
+            Some(f) => {
+                let kinds: Vec<String> = [
+                    ("wrong length", f.wrong_length),
+                    ("non-finite", f.non_finite),
+                    ("out of range", f.out_of_range),
+                    ("overflow", f.overflow),
+                ]
+                .iter()
+                .filter(|(_, n)| *n > 0)
+                .map(|(k, n)| format!("{k} {n}"))
+                .collect();
+                if kinds.is_empty() {
+                    " no faulted samples since the reset ".to_string()
+                } else {
+                    format!(" faulted samples: {} ", kinds.join(" · "))
+                }
+            }
+            None => format!(" {} reported ", self.fault_events),
+        };
+        lines.push(rule(" sensor faults ", cols, &[], Some(tally)));
         if fault_lines.is_empty() {
             lines.push(Line::with("  none so far", Style::dim()));
         } else {
-            lines.extend(fault_lines.into_iter().take(faults_n.max(1)));
+            lines.extend(fault_lines.into_iter().take(faults_n));
         }
         lines.extend(link);
         lines.extend(note);
-        lines.push(footer);
-        lines.truncate(rows);
-        Screen {
-            lines: lines.into_iter().map(|l| l.fit(cols)).collect(),
-        }
+        lines.extend(footer);
+        (lines, fits)
     }
 
     fn title(&self, cols: usize, now: Duration) -> Line {
@@ -845,7 +888,7 @@ impl LiveState {
             let mut l = Line::new();
             l.push(" board  ", key)
                 .push("no greeting yet", Style::dim());
-            return vec![l, self.model_file_line()];
+            return vec![l];
         };
         let mut model = Line::new();
         model.plain("model ").push(
@@ -886,39 +929,23 @@ impl LiveState {
             ),
         ];
         let mut out = flow(" board  ", items, cols, 3);
-        if self.model.is_some() {
-            out.push(self.model_file_line());
-        }
+        out.extend(self.model_mismatch());
         out
     }
 
-    fn model_file_line(&self) -> Line {
+    /// A warning when the model file is not the board's model.
+    fn model_mismatch(&self) -> Option<Line> {
+        let m = self.model.as_ref()?;
+        let id = self.board_model.filter(|&id| id != m.id)?;
         let mut l = Line::new();
-        l.push(" model  ", Style::dim());
-        match (&self.model, self.board_model) {
-            (None, _) => {
-                l.push(
-                    "no model file: give --model for feature names and chart limits",
-                    Style::dim(),
-                );
-            }
-            (Some(m), Some(id)) if id != m.id => {
-                l.push(
-                    format!(
-                        "the model file is {:#010x} but the board runs {id:#010x}: its limits are not used",
-                        m.id
-                    ),
-                    Style::fg(Colour::Yellow),
-                );
-            }
-            (Some(m), _) => {
-                l.plain(format!(
-                    "file {:#010x}: feature names and chart limits from it",
-                    m.id
-                ));
-            }
-        }
-        l
+        l.push(" model  ", Style::dim()).push(
+            format!(
+                "the model file is {:#010x} but the board runs {id:#010x}: its limits are not used",
+                m.id
+            ),
+            Style::fg(Colour::Yellow),
+        );
+        Some(l)
     }
 
     fn banner(&self, cols: usize, now: Duration) -> Line {
@@ -991,7 +1018,7 @@ impl LiveState {
         (cols.saturating_sub(13 + 1 + 22) / 2).clamp(4, 30)
     }
 
-    fn charts(&self, cols: usize) -> Vec<Line> {
+    fn charts(&self, cols: usize, sparks: bool) -> Vec<Line> {
         let h = Self::half(cols);
         let start = 13;
         let mut marks = vec![(start, "0".to_string())];
@@ -999,6 +1026,8 @@ impl LiveState {
         marks.push((start + 2 * h, "2×".to_string()));
         let mut out = vec![rule(" charts ", cols, &marks, None)];
         let clear = self.file_limits().map(|m| m.clear_fraction);
+        // A missing limit or status is explained once, on the first row.
+        let mut said = false;
         for s in SCORES {
             let i = score_index(s);
             let hot = self.status.is_some_and(|st| st.hot & (1 << i) != 0);
@@ -1029,11 +1058,14 @@ impl LiveState {
                         }
                     }
                     (Some(v), None) => {
-                        let msg = if stat == Statistic::Ewma {
-                            "limit not known (give --model)"
-                        } else {
+                        let msg = if said {
                             ""
+                        } else if self.model.is_none() {
+                            "limit unknown: give --model"
+                        } else {
+                            "limit unknown: not the board's model"
                         };
+                        said = true;
                         l.push(format!("{msg:<w$}", w = 2 * h + 1), Style::dim());
                         l.plain(format!("  {}", num(v)));
                         if hot {
@@ -1041,13 +1073,26 @@ impl LiveState {
                         }
                     }
                     (None, _) => {
-                        l.push(format!("{:<w$}", "", w = 2 * h + 1), Style::dim());
+                        let msg = if said {
+                            String::new()
+                        } else {
+                            match self.greeting.as_ref().map(|g| g.status_every) {
+                                Some(0) => "no status yet: this board sends it on request".into(),
+                                Some(n) => format!(
+                                    "no status yet: the board sends one every {}",
+                                    plural(u64::from(n), "sample")
+                                ),
+                                None => "no status yet".into(),
+                            }
+                        };
+                        said = true;
+                        l.push(format!("{msg:<w$}", w = 2 * h + 1), Style::dim());
                         l.push("  –", Style::dim());
                     }
                 }
                 out.push(l);
             }
-            if self.reports > 0 {
+            if sparks && self.reports > 0 {
                 out.push(self.score_row(s, h));
             }
         }
@@ -1108,7 +1153,7 @@ impl LiveState {
         l
     }
 
-    fn flag_lines(&self) -> Vec<Line> {
+    fn flag_lines(&self, cols: usize) -> Vec<Line> {
         let mut out = Vec::new();
         let newest_raised = self.flags.iter().rposition(|f| f.raised);
         for (k, f) in self.flags.iter().enumerate().rev() {
@@ -1118,17 +1163,44 @@ impl LiveState {
             } else {
                 l.push("  ▼ cleared ", Style::fg(Colour::Green));
             }
-            l.plain(format!(" sample {:<8}", f.sample))
+            l.plain(format!(" sample {:<7}", f.sample))
                 .push(format!(" {} ", self.clock(f.at)), Style::dim());
             if f.raised {
                 l.plain(format!(" by {}", drivers_text(f.drivers)));
                 if !f.top.is_empty() {
-                    let top: Vec<String> = f
+                    // Names with their contributions, or names alone when
+                    // the row would not hold them.
+                    let with: Vec<String> = f
                         .top
                         .iter()
                         .map(|(i, v)| format!("{} {}", self.names.feature(*i), num(*v)))
                         .collect();
-                    l.push("  top ", Style::dim()).plain(top.join(", "));
+                    let bare: Vec<String> =
+                        f.top.iter().map(|(i, _)| self.names.feature(*i)).collect();
+                    let with = with.join(", ");
+                    let room =
+                        cols.saturating_sub(l.width() + 6 + if f.recovered { 13 } else { 0 });
+                    let top = if with.chars().count() <= room {
+                        with
+                    } else {
+                        // As many names as fit, then an ellipsis.
+                        let mut t = String::new();
+                        for (k, n) in bare.iter().enumerate() {
+                            let next = if k == 0 {
+                                n.clone()
+                            } else {
+                                format!("{t}, {n}")
+                            };
+                            let more = k + 1 < bare.len();
+                            if next.chars().count() + if more { 3 } else { 0 } > room {
+                                t.push_str(if t.is_empty() { "…" } else { ", …" });
+                                break;
+                            }
+                            t = next;
+                        }
+                        t
+                    };
+                    l.push("  top ", Style::dim()).plain(top);
                 }
             }
             if f.recovered {
@@ -1183,120 +1255,131 @@ impl LiveState {
             .collect()
     }
 
+    /// The link: a rule with the time since the last frame and status, and
+    /// a small table of counters, frames from the board as counted here and
+    /// frames to the board as the board counts them (from its status).
     fn link_lines(&self, cols: usize, now: Duration) -> Vec<Line> {
         let h = &self.host;
         let f = h.frames;
-        let warn = |n: u64, c: Colour| {
-            if n > 0 {
-                Style::fg(c)
-            } else {
-                Style::PLAIN
-            }
-        };
-        let sep = || Span {
-            text: " · ".into(),
-            style: Style::dim(),
-        };
-        let mut out = vec![rule(" link ", cols, &[], None)];
-        let mut a = Line::new();
-        a.push(" in   ", Style::dim()).plain(format!(
-            "{} ok",
-            plural(u64::from(f.frames_ok).max(self.frames), "frame")
-        ));
-        for (text, n, c) in [
-            (
-                plural(u64::from(f.crc_errors), "CRC error"),
-                u64::from(f.crc_errors),
-                Colour::Yellow,
-            ),
-            (
-                plural(u64::from(f.framing_errors), "framing error"),
-                u64::from(f.framing_errors),
-                Colour::Yellow,
-            ),
-            (
-                plural(h.resend_requests, "resend request"),
-                h.resend_requests,
-                Colour::Yellow,
-            ),
-            (format!("{} recovered", h.recovered), 0, Colour::Yellow),
-            (format!("{} lost", h.lost), h.lost, Colour::Red),
-        ] {
-            a.spans.push(sep());
-            a.push(text, warn(n, c));
-        }
-        out.push(a);
-
-        let mut b = Line::new();
-        b.push("      ", Style::dim());
+        let mut right: Vec<String> = Vec::new();
         match self.last_frame {
-            Some(at) => {
-                let quiet = now.saturating_sub(at);
-                let period = self.greeting.as_ref().map_or(0, |g| g.status_every);
-                let style = if quiet.as_secs_f64() > QUIET_AFTER && !self.ended && period != 0 {
-                    Style::fg(Colour::Yellow)
-                } else {
-                    Style::PLAIN
-                };
-                b.push(format!("last frame {} ago", ago(quiet)), style);
-            }
-            None => {
-                b.push("no frame yet", Style::dim());
-            }
+            Some(at) => right.push(format!("last frame {} ago", ago(now.saturating_sub(at)))),
+            None => right.push("no frame yet".into()),
         }
-        if let Some(st) = &self.status {
-            b.spans.push(sep());
-            b.plain(format!(
-                "last status {} ago (sample {})",
-                ago(now.saturating_sub(self.status_at)),
-                st.samples.saturating_sub(1)
+        if self.status.is_some() {
+            right.push(format!(
+                "last status {} ago",
+                ago(now.saturating_sub(self.status_at))
             ));
         }
-        // Gaps and restarts always; the rest when they happened.
-        let dup = h.duplicates;
-        let ovf = u64::from(f.overflows);
-        let und = u64::from(f.undecodable);
-        for (text, n, always, colour) in [
-            (plural(h.gaps, "gap"), h.gaps, true, Colour::Yellow),
-            (
-                plural(h.restarts, "restart"),
-                h.restarts,
-                true,
-                Colour::Yellow,
-            ),
-            (plural(dup, "duplicate"), dup, false, Colour::Grey),
-            (plural(ovf, "overflow"), ovf, false, Colour::Yellow),
-            (format!("{und} undecodable"), und, false, Colour::Yellow),
+        for (n, word) in [
+            (h.restarts, "restart"),
+            (h.gaps, "gap"),
+            (h.duplicates, "duplicate"),
+            (u64::from(f.overflows), "overflow"),
         ] {
-            if always || n > 0 {
-                b.spans.push(sep());
-                b.push(text, warn(n, colour));
+            if n > 0 {
+                right.push(plural(n, word));
             }
         }
-        out.push(b);
+        if f.undecodable > 0 {
+            right.push(format!("{} undecodable", f.undecodable));
+        }
+        // As many as fit, most important first.
+        let room = cols.saturating_sub(" link ".len() + 5);
+        let mut text = String::new();
+        for item in right {
+            let next = if text.is_empty() {
+                item
+            } else {
+                format!("{text} · {item}")
+            };
+            if next.chars().count() > room {
+                break;
+            }
+            text = next;
+        }
+        let mut out = vec![rule(" link ", cols, &[], Some(format!(" {text} ")))];
+        // A quiet board is worth a colour: no frame for longer than the
+        // quiet time while the board sends status on its own.
+        let quiet = self.last_frame.is_some_and(|at| {
+            now.saturating_sub(at).as_secs_f64() > QUIET_AFTER
+                && !self.ended
+                && self.greeting.as_ref().is_some_and(|g| g.status_every != 0)
+        });
+        if quiet {
+            if let Some(first) = out[0].spans.get_mut(1) {
+                first.style = Style::fg(Colour::Yellow);
+            }
+        }
 
-        let mut c = Line::new();
-        c.push(" out  ", Style::dim());
+        const HEADS: [&str; 6] = [
+            "frames ok",
+            "CRC errors",
+            "framing errors",
+            "resends",
+            "recovered",
+            "lost",
+        ];
+        let mut head = Line::new();
+        head.push(format!("{:<12}", ""), Style::PLAIN);
+        for t in HEADS {
+            head.push(format!("  {t}"), Style::dim());
+        }
+        out.push(head);
+        let cell = |l: &mut Line, k: usize, v: Option<u64>, bad: Option<Colour>| {
+            let w = HEADS[k].chars().count() + 2;
+            match v {
+                Some(n) => {
+                    let style = match bad {
+                        Some(c) if n > 0 => Style::fg(c),
+                        _ => Style::PLAIN,
+                    };
+                    l.push(format!("{n:>w$}"), style);
+                }
+                None => {
+                    l.push(format!("{:>w$}", "–"), Style::dim());
+                }
+            }
+        };
+        let y = Some(Colour::Yellow);
+        let mut from = Line::new();
+        from.push(format!("{:<12}", "  from board"), Style::PLAIN);
+        cell(
+            &mut from,
+            0,
+            Some(u64::from(f.frames_ok).max(self.frames)),
+            None,
+        );
+        cell(&mut from, 1, Some(u64::from(f.crc_errors)), y);
+        cell(&mut from, 2, Some(u64::from(f.framing_errors)), y);
+        cell(&mut from, 3, Some(h.resend_requests), y);
+        cell(&mut from, 4, Some(h.recovered), None);
+        cell(&mut from, 5, Some(h.lost), Some(Colour::Red));
+        out.push(from);
+        let mut to = Line::new();
+        to.push(format!("{:<12}", "  to board"), Style::PLAIN);
         match &self.status {
             Some(s) => {
                 let d = s.link;
-                c.plain(format!(
-                    "the board took {} ok · {} · {} · {} · {} undecodable",
-                    plural(u64::from(d.frames_ok), "frame"),
-                    plural(u64::from(d.crc_errors), "CRC error"),
-                    plural(u64::from(d.framing_errors), "framing error"),
-                    plural(u64::from(d.overflows), "overflow"),
-                    d.undecodable
-                ));
+                cell(&mut to, 0, Some(u64::from(d.frames_ok)), None);
+                cell(&mut to, 1, Some(u64::from(d.crc_errors)), y);
+                cell(&mut to, 2, Some(u64::from(d.framing_errors)), y);
+                for k in 3..6 {
+                    cell(&mut to, k, None, None);
+                }
+                if d.overflows + d.undecodable > 0 {
+                    to.push(
+                        format!("  {} over · {} undecodable", d.overflows, d.undecodable),
+                        Style::fg(Colour::Yellow),
+                    );
+                }
             }
             None => {
-                c.push(
-                    "the board's own counters come with its status",
-                    Style::dim(),
-                );
+                to.push("  the board's counts come with its status", Style::dim());
             }
         }
-        out.push(c);
+        out.push(to);
         out
     }
 }
@@ -1565,7 +1648,7 @@ impl Shared {
         let (cols, rows) = terminal_size();
         let screen = state.render(cols, rows, self.now());
         let mut text = String::from("\x1b[H");
-        text.push_str(&screen.ansi(self.colour, "\r\n", true));
+        text.push_str(&screen.ansi(self.colour, "\r\n", Some(cols)));
         text.push_str("\x1b[J");
         let mut out = std::io::stdout().lock();
         if ACTIVE.load(Ordering::SeqCst) {
@@ -1624,6 +1707,14 @@ impl LiveView {
                 g.dirty = true;
             }
         }
+    }
+
+    /// Shows `text` as the newest note (see [`LiveState::notice`]).
+    pub fn notice(&mut self, text: impl Into<String>) {
+        let at = self.shared.now();
+        let mut g = self.shared.lock();
+        g.state.notice(at, text);
+        g.dirty = true;
     }
 
     fn stop_painter(&mut self) {
@@ -1685,7 +1776,7 @@ impl EventSink for LiveView {
         let (cols, _) = terminal_size();
         let screen = state.render(cols, usize::MAX, self.shared.now());
         let mut out = std::io::stdout().lock();
-        let _ = writeln!(out, "{}", screen.ansi(self.shared.colour, "\n", false));
+        let _ = writeln!(out, "{}", screen.ansi(self.shared.colour, "\n", None));
         let _ = out.flush();
     }
 }

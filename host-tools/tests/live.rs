@@ -208,7 +208,7 @@ fn before_anything_arrives_it_says_it_waits() {
     assert!(text.contains("WAITING"), "{text}");
     assert!(text.contains("nothing from the board yet"), "{text}");
     assert!(text.contains("no greeting yet"), "{text}");
-    assert!(text.contains("give --model"), "{text}");
+    assert!(text.contains("no status yet"), "{text}");
     assert!(text.contains("no frame yet"), "{text}");
 }
 
@@ -227,6 +227,14 @@ fn a_scripted_session_shows_identity_state_gauges_flags_and_faults() {
         "{text}"
     );
     assert!(text.contains("status every 50 samples"), "{text}");
+    // Before the first status the charts say when one comes.
+    let mut early = state_with_model();
+    feed(&mut early, msgs[..1].to_vec(), 0);
+    let e = render(&early, 1).text();
+    assert!(
+        e.contains("no status yet: the board sends one every 50 samples"),
+        "{e}"
+    );
     assert!(text.contains("PRIMING"), "{text}");
     assert!(text.contains("about 5 of 10 samples"), "{text}");
     assert_eq!(s.state(), Some(State::Priming));
@@ -262,10 +270,7 @@ fn a_scripted_session_shows_identity_state_gauges_flags_and_faults() {
         fault.contains("imu_yaw") && fault.contains("sample 61"),
         "{fault}"
     );
-    assert!(
-        text.contains("wrong length 0 · non-finite 0 · out of range 2 · overflow 0"),
-        "{text}"
-    );
+    assert!(text.contains("faulted samples: out of range 2 ─"), "{text}");
     // Gauges: SPE CUSUM 10 of limit 5 (the top of the scale, over), SPE EWMA
     // 1.2 of 0.8 (over), T² CUSUM 2.5 of 5 (half of the lower half).
     let spe_cusum = screen.find("CUSUM").expect("SPE CUSUM row");
@@ -301,13 +306,45 @@ fn a_scripted_session_shows_identity_state_gauges_flags_and_faults() {
     );
     assert!(cells.chars().skip(half + 1).all(|c| c == '·'), "{cells}");
     // Status age and both sides' link counters.
-    assert!(text.contains("last status 5.0 s ago (sample 99)"), "{text}");
-    assert!(text.contains("6 frames ok"), "{text}");
+    let rule = screen.find("─ link ").expect("the link rule");
     assert!(
-        text.contains("the board took 7 frames ok · 1 CRC error · 0 framing errors"),
-        "{text}"
+        rule.contains("last frame 5.0 s ago · last status 5.0 s ago"),
+        "{rule}"
     );
-    assert!(text.contains("last frame 5.0 s ago"), "{text}");
+    assert_eq!(
+        counters(&screen, "frames ok"),
+        [
+            "frames",
+            "ok",
+            "CRC",
+            "errors",
+            "framing",
+            "errors",
+            "resends",
+            "recovered",
+            "lost"
+        ]
+    );
+    assert_eq!(
+        counters(&screen, "from board"),
+        ["6", "0", "0", "0", "0", "0"]
+    );
+    assert_eq!(
+        counters(&screen, "to board"),
+        ["7", "1", "0", "–", "–", "–"]
+    );
+}
+
+/// The words after `label` in the first row that has it.
+fn counters(screen: &Screen, label: &str) -> Vec<String> {
+    let row = screen.find(label).unwrap_or_else(|| panic!("{label}"));
+    let at = row.find(label).unwrap();
+    let rest = if label == "frames ok" {
+        &row[at..]
+    } else {
+        &row[at + label.len()..]
+    };
+    rest.split_whitespace().map(String::from).collect()
 }
 
 #[test]
@@ -329,16 +366,32 @@ fn host_link_counters_and_the_end_show() {
         recovered: 1,
         duplicates: 5,
         lost: 1,
-        restarts: 0,
+        ..LinkStats::default()
     };
     s.link(&stats);
-    let text = render(&s, 7).text();
-    assert!(
-        text.contains("40 frames ok · 3 CRC errors · 2 framing errors · 4 resend requests · 1 recovered · 1 lost"),
+    let screen = render(&s, 7);
+    let text = screen.text();
+    assert_eq!(
+        counters(&screen, "from board"),
+        ["40", "3", "2", "4", "1", "1"],
         "{text}"
     );
-    assert!(text.contains("1 gap · 0 restarts · 5 duplicates"), "{text}");
+    let rule = screen.find("─ link ").unwrap();
+    assert!(
+        rule.contains("last frame 2.0 s ago · last status 2.0 s ago · 1 gap · 5 duplicates"),
+        "{rule}"
+    );
     assert!(text.contains("Ctrl-C stops"), "{text}");
+    // A restart comes first among the extras.
+    s.link(&LinkStats {
+        restarts: 1,
+        ..stats
+    });
+    let rule = render(&s, 7).find("─ link ").unwrap();
+    assert!(
+        rule.contains("last status 2.0 s ago · 1 restart · 1 gap"),
+        "{rule}"
+    );
     s.end(&stats);
     let text = render(&s, 7).text();
     assert!(text.contains("the session ended"), "{text}");
@@ -401,7 +454,7 @@ fn without_a_model_limits_come_from_crossings_only() {
     feed(&mut s, session(), 0);
     let screen = render(&s, 7);
     let text = screen.text();
-    assert!(text.contains("limit not known (give --model)"), "{text}");
+    assert!(text.contains("limit unknown: give --model"), "{text}");
     // The flag reported SPE's CUSUM limit: that gauge is drawn.
     let spe_cusum = screen.find("CUSUM").unwrap();
     assert!(spe_cusum.contains("10.0 / 5.00"), "{spe_cusum}");
@@ -428,7 +481,10 @@ fn a_model_file_the_board_does_not_run_is_named_and_its_limits_unused() {
         text.contains("the model file is 0xdead0001 but the board runs 0x12345678"),
         "{text}"
     );
-    assert!(text.contains("limit not known"), "{text}");
+    assert!(
+        text.contains("limit unknown: not the board's model"),
+        "{text}"
+    );
 }
 
 #[test]
@@ -683,6 +739,67 @@ fn listen_live_under_a_terminal_draws_and_gives_the_terminal_back() {
         !tail.windows(4).any(|w| w == b"\x1b[?7l"),
         "line wrap stays on after the view"
     );
+}
+
+#[test]
+fn ctrl_c_gives_the_terminal_back() {
+    if !have_script() {
+        panic!("this test needs `script` (util-linux, Debian's bsdutils)");
+    }
+    let dir = Scratch::new("live-ctrl-c");
+    let mut bytes = vec![0u8];
+    for (i, m) in session().into_iter().enumerate() {
+        bytes.extend(wire::encode_frame_vec(&DeviceFrame {
+            seq: i as u32,
+            msg: m,
+        }));
+    }
+    let frames = dir.path("frames.bin");
+    std::fs::write(&frames, bytes).unwrap();
+    // A board that says its piece and then stays on the line.
+    let board = format!("cat {}; sleep 30", quote(frames.to_str().unwrap()));
+    let inner = format!(
+        "stty cols 90 rows 28; exec {} listen --live --exec {}",
+        quote(env!("CARGO_BIN_EXE_plumb")),
+        quote(&board)
+    );
+    let mut child = Command::new("script")
+        .args(["-qfec", &inner, "/dev/null"])
+        .env("TERM", "xterm-256color")
+        .stdin(std::process::Stdio::piped())
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("run script");
+    std::thread::sleep(Duration::from_millis(1500));
+    // Ctrl-C typed at the terminal: the line discipline makes it SIGINT.
+    {
+        use std::io::Write;
+        let stdin = child.stdin.as_mut().unwrap();
+        stdin.write_all(&[0x03]).unwrap();
+        stdin.flush().unwrap();
+    }
+    let start = std::time::Instant::now();
+    loop {
+        if child.try_wait().unwrap().is_some() {
+            break;
+        }
+        if start.elapsed() > Duration::from_secs(20) {
+            let _ = child.kill();
+            panic!("plumb listen did not stop on Ctrl-C");
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    let out = child.wait_with_output().unwrap();
+    let shown = String::from_utf8_lossy(&out.stdout);
+    let mut term = vt100::Parser::new(28, 90, 0);
+    term.process(&out.stdout);
+    let after = term.screen().contents();
+    assert!(!term.screen().alternate_screen(), "{shown:?}");
+    assert!(!term.screen().hide_cursor(), "{shown:?}");
+    assert!(after.contains("DRIFTING"), "{after}");
+    assert!(after.contains("the session ended"), "{after}");
+    assert_eq!(out.status.code(), Some(1), "{after}");
 }
 
 #[test]
