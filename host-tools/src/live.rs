@@ -22,7 +22,7 @@
 //! drift flag reported a crossing of it.
 
 use crate::events::{fault_parts, EventSink, Names};
-use crate::link::{LinkStats, Received};
+use crate::link::{LinkStats, Notice, Received};
 use plumb_model::file::ModelFile;
 use plumb_model::wire::{
     Ack, Crossing, DeviceMsg, FaultKind, Greeting, Request, ScoreKind, ScoreTriple, Slot, State,
@@ -384,6 +384,8 @@ pub struct LiveState {
     frames: u64,
     last_frame: Option<Duration>,
     notes: VecDeque<(Duration, String)>,
+    /// Since when the transport has been gone, and reopening attempts.
+    down: Option<(Duration, u32)>,
     ended: bool,
 }
 
@@ -474,6 +476,7 @@ impl LiveState {
             frames: 0,
             last_frame: None,
             notes: VecDeque::new(),
+            down: None,
             ended: false,
         }
     }
@@ -546,13 +549,10 @@ impl LiveState {
                     .max_seq
                     .is_some_and(|m| !plumb_model::wire::seq_at_or_after(seq, m));
                 if restarted {
+                    // (A link that noticed it first has said so already,
+                    // and forgotten the numbering.)
                     self.note(at, format!("the board restarted (greeting numbered {seq})"));
-                    // Whatever stood before the restart is gone with it.
-                    self.state = None;
-                    self.status = None;
-                    self.up_since = None;
-                    self.sample = None;
-                    self.max_seq = None;
+                    self.forget_board();
                 } else if let Some(old) = &self.greeting {
                     if old.model_id != g.model_id {
                         self.note(at, format!("the board now runs model {:#010x}", g.model_id));
@@ -719,10 +719,66 @@ impl LiveState {
         }
     }
 
-    /// Something about the link itself (a disconnection, a reconnection, a
-    /// restart seen by the link), shown as the newest note.
+    /// Free text about the session, shown as the newest note.
     pub fn notice(&mut self, at: Duration, text: impl Into<String>) {
         self.note(at, text.into());
+    }
+
+    /// Something that happened to the link itself, `at` after the start: a
+    /// restart forgets what stood before it, a lost transport shows until it
+    /// is back.
+    pub fn link_notice(&mut self, n: &Notice, at: Duration) {
+        match n {
+            Notice::Garbage { bytes, frames } => self.note(
+                at,
+                format!(
+                    "{} of noise before the first frame ({} dropped)",
+                    plural(*bytes, "byte"),
+                    plural(*frames, "damaged frame")
+                ),
+            ),
+            Notice::Restarted { seq, last, .. } => {
+                self.forget_board();
+                self.note(
+                    at,
+                    format!("the board restarted: frame {seq} came after {last}"),
+                );
+            }
+            Notice::Disconnected { what } => {
+                self.down = Some((at, 0));
+                self.note(at, format!("lost the link to {what}"));
+            }
+            Notice::Reconnecting {
+                attempt,
+                wait,
+                error,
+            } => {
+                let since = self.down.map_or(at, |(t, _)| t);
+                self.down = Some((since, *attempt));
+                self.note(
+                    at,
+                    format!(
+                        "reopening failed ({error}); attempt {} in {}",
+                        attempt + 1,
+                        ago(*wait)
+                    ),
+                );
+            }
+            Notice::Reconnected { what, after, .. } => {
+                self.down = None;
+                self.note(at, format!("back on {what} after {}", ago(*after)));
+            }
+        }
+    }
+
+    /// After a restart: the board's state, status and standing flag are
+    /// gone with it (the flags seen stay listed).
+    fn forget_board(&mut self) {
+        self.state = None;
+        self.status = None;
+        self.up_since = None;
+        self.sample = None;
+        self.max_seq = None;
     }
 
     /// Takes the host's link counters so far.
@@ -949,50 +1005,77 @@ impl LiveState {
     }
 
     fn banner(&self, cols: usize, now: Duration) -> Line {
-        let (word, bg, fg, detail) = match self.state {
-            None => (
-                "WAITING",
-                Colour::Grey,
-                Colour::Black,
-                if self.frames == 0 {
-                    "nothing from the board yet".to_string()
-                } else {
-                    "no status from the board yet".to_string()
-                },
-            ),
-            Some(State::Priming) => {
-                let valid = self.sample.map_or(0, |s| s + 1);
-                let detail = match self.file_limits() {
-                    Some(m) => format!(
-                        "warming up: about {} of {} samples; no flag can rise yet",
-                        valid.min(u64::from(m.warmup)),
-                        m.warmup
-                    ),
-                    None => "warming up; no flag can rise yet".to_string(),
-                };
-                ("PRIMING", Colour::Yellow, Colour::Black, detail)
-            }
-            Some(State::Watching) => (
-                "WATCHING",
-                Colour::Green,
+        let down = self.down.filter(|_| !self.ended).map(|(since, attempts)| {
+            (
+                "LINK DOWN",
+                Colour::Yellow,
                 Colour::Black,
                 format!(
-                    "no drift{}",
-                    self.sample
-                        .map_or(String::new(), |s| format!(" · sample {s}"))
+                    "since {} ({} ago){} · last word: {}",
+                    self.clock(since),
+                    ago(now.saturating_sub(since)),
+                    if attempts > 0 {
+                        format!(", {} to reopen", plural(u64::from(attempts), "attempt"))
+                    } else {
+                        String::new()
+                    },
+                    match self.state {
+                        None => "none",
+                        Some(State::Priming) => "priming",
+                        Some(State::Watching) => "watching",
+                        Some(State::Drifting) => "drifting",
+                    }
                 ),
-            ),
-            Some(State::Drifting) => {
-                let detail = match self.up_since {
-                    Some((sample, at, drivers)) => format!(
-                        "drift flag up since sample {sample} ({}, {} ago) · driven by {}",
-                        self.clock(at),
-                        ago(now.saturating_sub(at)),
-                        drivers_text(drivers)
+            )
+        });
+        let (word, bg, fg, detail) = if let Some(d) = down {
+            d
+        } else {
+            match self.state {
+                None => (
+                    "WAITING",
+                    Colour::Grey,
+                    Colour::Black,
+                    if self.frames == 0 {
+                        "nothing from the board yet".to_string()
+                    } else {
+                        "no status from the board yet".to_string()
+                    },
+                ),
+                Some(State::Priming) => {
+                    let valid = self.sample.map_or(0, |s| s + 1);
+                    let detail = match self.file_limits() {
+                        Some(m) => format!(
+                            "warming up: about {} of {} samples; no flag can rise yet",
+                            valid.min(u64::from(m.warmup)),
+                            m.warmup
+                        ),
+                        None => "warming up; no flag can rise yet".to_string(),
+                    };
+                    ("PRIMING", Colour::Yellow, Colour::Black, detail)
+                }
+                Some(State::Watching) => (
+                    "WATCHING",
+                    Colour::Green,
+                    Colour::Black,
+                    format!(
+                        "no drift{}",
+                        self.sample
+                            .map_or(String::new(), |s| format!(" · sample {s}"))
                     ),
-                    None => "drift flag up".to_string(),
-                };
-                ("DRIFTING", Colour::Red, Colour::White, detail)
+                ),
+                Some(State::Drifting) => {
+                    let detail = match self.up_since {
+                        Some((sample, at, drivers)) => format!(
+                            "drift flag up since sample {sample} ({}, {} ago) · driven by {}",
+                            self.clock(at),
+                            ago(now.saturating_sub(at)),
+                            drivers_text(drivers)
+                        ),
+                        None => "drift flag up".to_string(),
+                    };
+                    ("DRIFTING", Colour::Red, Colour::White, detail)
+                }
             }
         };
         let style = Style {
@@ -1274,6 +1357,7 @@ impl LiveState {
         }
         for (n, word) in [
             (h.restarts, "restart"),
+            (h.reconnects, "reconnect"),
             (h.gaps, "gap"),
             (h.duplicates, "duplicate"),
             (u64::from(f.overflows), "overflow"),
@@ -1755,6 +1839,13 @@ fn paint(shared: &Shared) {
 }
 
 impl EventSink for LiveView {
+    fn notice(&mut self, n: &Notice) {
+        let at = self.shared.now();
+        let mut g = self.shared.lock();
+        g.state.link_notice(n, at);
+        g.dirty = true;
+    }
+
     fn frame(&mut self, r: &Received) {
         let at = self.shared.now();
         let mut g = self.shared.lock();

@@ -9,7 +9,7 @@ mod support;
 
 use common::Scratch;
 use plumb::events::Names;
-use plumb::link::{LinkStats, Received};
+use plumb::link::{LinkStats, Notice, Received};
 use plumb::live::{LiveState, ModelInfo, Screen};
 use plumb_model::file::{Label, ModelFile};
 use plumb_model::wire::{
@@ -564,6 +564,90 @@ fn a_restart_is_noted_and_forgets_the_standing_flag() {
     );
     assert!(
         text.contains("the model file is 0x12345678 but the board runs 0x0badcafe"),
+        "{text}"
+    );
+}
+
+#[test]
+fn the_link_going_away_and_coming_back_shows() {
+    let mut s = state_with_model();
+    feed(&mut s, session(), 0);
+    s.link_notice(
+        &Notice::Disconnected {
+            what: "/dev/ttyUSB0".into(),
+        },
+        Duration::from_secs(10),
+    );
+    s.link_notice(
+        &Notice::Reconnecting {
+            attempt: 2,
+            wait: Duration::from_millis(400),
+            error: "no such file".into(),
+        },
+        Duration::from_secs(11),
+    );
+    let screen = render(&s, 13);
+    let banner = screen.find("LINK DOWN").expect("a link-down banner");
+    assert!(
+        banner.contains("since 10:00:10 (3.0 s ago), 2 attempts to reopen · last word: drifting"),
+        "{banner}"
+    );
+    let text = screen.text();
+    assert!(
+        text.contains("reopening failed (no such file); attempt 3 in 0.4 s"),
+        "{text}"
+    );
+    s.link_notice(
+        &Notice::Reconnected {
+            what: "/dev/ttyUSB0".into(),
+            attempts: 3,
+            after: Duration::from_millis(4200),
+        },
+        Duration::from_secs(14),
+    );
+    s.link(&LinkStats {
+        reconnects: 1,
+        ..LinkStats::default()
+    });
+    let screen = render(&s, 15);
+    let text = screen.text();
+    assert!(
+        !text.contains("LINK DOWN") && text.contains("DRIFTING"),
+        "{text}"
+    );
+    assert!(text.contains("back on /dev/ttyUSB0 after 4.2 s"), "{text}");
+    assert!(
+        screen.find("─ link ").unwrap().contains("1 reconnect"),
+        "{text}"
+    );
+
+    // A restart the link saw (a status numbered behind): the board's state
+    // is forgotten until it speaks again; the flags seen stay.
+    s.link_notice(
+        &Notice::Restarted {
+            seq: 2,
+            last: 40,
+            by_greeting: false,
+        },
+        Duration::from_secs(16),
+    );
+    let text = render(&s, 16).text();
+    assert!(text.contains("WAITING"), "{text}");
+    assert!(
+        text.contains("the board restarted: frame 2 came after 40"),
+        "{text}"
+    );
+    assert!(text.contains("1 raised"), "{text}");
+    s.link_notice(
+        &Notice::Garbage {
+            bytes: 37,
+            frames: 1,
+        },
+        Duration::from_secs(17),
+    );
+    let text = render(&s, 17).text();
+    assert!(
+        text.contains("37 bytes of noise before the first frame (1 damaged frame dropped)"),
         "{text}"
     );
 }
