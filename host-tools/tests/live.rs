@@ -855,7 +855,34 @@ fn ctrl_c_gives_the_terminal_back() {
         .stderr(std::process::Stdio::piped())
         .spawn()
         .expect("run script");
-    std::thread::sleep(Duration::from_millis(1500));
+    // Read the terminal as it goes; type Ctrl-C once the view shows the
+    // flag (so the view, and its Ctrl-C handler, are up whatever the load).
+    let seen = std::sync::Arc::new(std::sync::Mutex::new(Vec::<u8>::new()));
+    let reader = {
+        let seen = std::sync::Arc::clone(&seen);
+        let mut out = child.stdout.take().unwrap();
+        std::thread::spawn(move || {
+            use std::io::Read;
+            let mut buf = [0u8; 4096];
+            while let Ok(n) = out.read(&mut buf) {
+                if n == 0 {
+                    break;
+                }
+                seen.lock().unwrap().extend_from_slice(&buf[..n]);
+            }
+        })
+    };
+    let start = std::time::Instant::now();
+    while !String::from_utf8_lossy(&seen.lock().unwrap()).contains("DRIFTING") {
+        if start.elapsed() > Duration::from_secs(30) {
+            let _ = child.kill();
+            panic!(
+                "the view never showed the flag: {:?}",
+                String::from_utf8_lossy(&seen.lock().unwrap())
+            );
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
     // Ctrl-C typed at the terminal: the line discipline makes it SIGINT.
     {
         use std::io::Write;
@@ -864,26 +891,27 @@ fn ctrl_c_gives_the_terminal_back() {
         stdin.flush().unwrap();
     }
     let start = std::time::Instant::now();
-    loop {
-        if child.try_wait().unwrap().is_some() {
-            break;
+    let status = loop {
+        if let Some(st) = child.try_wait().unwrap() {
+            break st;
         }
         if start.elapsed() > Duration::from_secs(20) {
             let _ = child.kill();
             panic!("plumb listen did not stop on Ctrl-C");
         }
         std::thread::sleep(Duration::from_millis(50));
-    }
-    let out = child.wait_with_output().unwrap();
-    let shown = String::from_utf8_lossy(&out.stdout);
+    };
+    reader.join().unwrap();
+    let stdout = seen.lock().unwrap().clone();
+    let shown = String::from_utf8_lossy(&stdout);
     let mut term = vt100::Parser::new(28, 90, 0);
-    term.process(&out.stdout);
+    term.process(&stdout);
     let after = term.screen().contents();
     assert!(!term.screen().alternate_screen(), "{shown:?}");
     assert!(!term.screen().hide_cursor(), "{shown:?}");
     assert!(after.contains("DRIFTING"), "{after}");
     assert!(after.contains("the session ended"), "{after}");
-    assert_eq!(out.status.code(), Some(1), "{after}");
+    assert_eq!(status.code(), Some(1), "{after}");
 }
 
 #[test]
