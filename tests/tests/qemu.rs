@@ -1303,6 +1303,7 @@ impl Faulty {
         let mut rng = Rng::new(seed, 11);
         let now = Instant::now();
         let next_cut = plan.cut_every.map(|e| now + e.mul_f64(0.5 + rng.uniform()));
+        log.lock().unwrap().clean_at = plan.clean_after.map(|d| now + d);
         Faulty {
             inner,
             plan,
@@ -1324,14 +1325,7 @@ impl Faulty {
         if self.clean {
             return false;
         }
-        match self.plan.clean_after {
-            Some(d) if self.started.elapsed() >= d => {
-                let mut log = self.log.lock().unwrap();
-                log.clean_at.get_or_insert_with(Instant::now);
-                false
-            }
-            _ => true,
-        }
+        !matches!(self.plan.clean_after, Some(d) if self.started.elapsed() >= d)
     }
 
     /// Passes `bytes` (direction `dir`: 0 host → board, 1 board → host)
