@@ -162,3 +162,20 @@ fn iris_sample_zero_scores_and_training_identities() {
         sum_t2 / 150.0
     );
 }
+
+#[test]
+fn iris_jackson_mudholkar_limits_match_computed_values() {
+    // Iris, raw data, 2 components kept: Jackson–Mudholkar Q limits 0.334464
+    // (α = 0.05) and 0.571355 (α = 0.01) (Jackson & Mudholkar 1979 formula;
+    // values computed, shared/references.md). θ comes from the fitted
+    // model's discarded eigenvalues, so this checks the fit and the formula
+    // together. 1e-5 relative: θ is stored in f32 (≈ 6e-8 relative) and the
+    // table has six digits.
+    let (_, rows, d) = read_csv(&data("iris.csv"));
+    let (model, _) = raw_pca_model(&rows, d, 2);
+    let theta = model.theta.map(f64::from);
+    for (alpha, want) in [(0.05, 0.334464), (0.01, 0.571355)] {
+        let got = plumb::calibrate::jackson_mudholkar(theta, alpha).expect("defined");
+        assert!((got - want).abs() <= 1e-5 * want, "alpha {alpha}: {got}");
+    }
+}
