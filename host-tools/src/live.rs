@@ -360,7 +360,6 @@ pub struct LiveState {
     model: Option<ModelInfo>,
     start_unix: f64,
     greeting: Option<Greeting>,
-    greeting_seq: Option<u32>,
     max_seq: Option<u32>,
     /// Model the board runs, newest word (greeting, status, a switch).
     board_model: Option<u32>,
@@ -456,7 +455,6 @@ impl LiveState {
             model,
             start_unix,
             greeting: None,
-            greeting_seq: None,
             max_seq: None,
             board_model: None,
             status: None,
@@ -559,7 +557,6 @@ impl LiveState {
                     }
                 }
                 self.greeting = Some(g.clone());
-                self.greeting_seq = Some(seq);
                 self.board_model = Some(g.model_id);
             }
             DeviceMsg::Status(s) => {
