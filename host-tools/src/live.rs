@@ -1104,7 +1104,13 @@ impl LiveState {
         let mut marks = vec![(start, "0".to_string())];
         marks.push((start + h.saturating_sub(2), "limit".to_string()));
         marks.push((start + 2 * h, "2×".to_string()));
-        let mut out = vec![rule(" charts ", cols, &marks, None)];
+        // Which sample the levels are from (they come with each status),
+        // where the rule has room after the scale.
+        let at = self
+            .status
+            .map(|st| format!(" levels at sample {} ", st.samples.saturating_sub(1)));
+        let at = at.filter(|t| start + 2 * h + 2 + t.chars().count() + 2 <= cols);
+        let mut out = vec![rule(" charts ", cols, &marks, at)];
         let clear = self.file_limits().map(|m| m.clear_fraction);
         // A missing limit or status is explained once, on the first row.
         let mut said = false;

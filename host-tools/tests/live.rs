@@ -305,6 +305,8 @@ fn a_scripted_session_shows_identity_state_gauges_flags_and_faults() {
         "half of the lower half, in eighths: {cells}"
     );
     assert!(cells.chars().skip(half + 1).all(|c| c == '·'), "{cells}");
+    let charts = screen.find("─ charts ").unwrap();
+    assert!(charts.contains("levels at sample 99"), "{charts}");
     // Status age and both sides' link counters.
     let rule = screen.find("─ link ").expect("the link rule");
     assert!(
