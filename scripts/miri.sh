@@ -17,7 +17,11 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 
 slow=(
-    # firmware/tests/detector.rs: run-length simulations (thousands of runs)
+    # firmware/tests/detector.rs: thousands of samples through models up to
+    # (64, 16, 8) against an f64 reference; 3,400 samples through the states;
+    # run-length simulations (thousands of runs)
+    f32_scores_match_f64_reference
+    states_prime_raise_hold_and_clear_once
     cusum_run_lengths_match_lucas_crosier
     one_sided_cusum_matches_brook_evans
     ewma_run_lengths_match_lucas_saccucci
@@ -44,4 +48,9 @@ for t in "${slow[@]}"; do skip+=(--skip "$t"); done
 
 export MIRIFLAGS="${MIRIFLAGS:--Zmiri-disable-isolation}"
 export PROPTEST_CASES="${PROPTEST_CASES:-8}"
-cargo +nightly miri test --no-fail-fast -p plumb-model -p plumb-firmware -- "${skip[@]}" "$@"
+# One crate at a time, the model crate first: its results come sooner.
+status=0
+for p in plumb-model plumb-firmware; do
+    cargo +nightly miri test --no-fail-fast -p "$p" -- "${skip[@]}" "$@" || status=1
+done
+exit "$status"
