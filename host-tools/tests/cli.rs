@@ -3,16 +3,9 @@
 
 mod common;
 
-use common::{join, lines, log_text, Scratch};
+use common::{join, lines, log_text, plumb, Scratch};
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
-
-fn plumb(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args(args)
-        .output()
-        .expect("run plumb")
-}
+use std::process::Output;
 
 fn stderr(o: &Output) -> String {
     String::from_utf8_lossy(&o.stderr).into_owned()

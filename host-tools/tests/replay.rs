@@ -3,25 +3,13 @@
 
 mod common;
 
-use common::Scratch;
+use common::{demo, plumb, Scratch};
+
 use plumb_firmware::Detector;
 use plumb_model::file::ModelFile;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
 use std::sync::OnceLock;
-
-fn plumb(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args(args)
-        .output()
-        .expect("run plumb")
-}
-
-fn demo(rel: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("../demo-logs")
-        .join(rel)
-}
 
 /// One model fitted on the demo training logs and calibrated on 3 × 10⁵
 /// generated nominal rows (the 20 % tail of the training logs is too short

@@ -10,26 +10,13 @@
 
 mod common;
 
-use common::{log_text, Scratch};
+use common::{demo, log_text, plumb, Scratch};
 use plumb_firmware::Detector;
 use plumb_model::file::ModelFile;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output, Stdio};
 use std::sync::OnceLock;
 use std::time::{Duration, Instant};
-
-fn plumb(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args(args)
-        .output()
-        .expect("run plumb")
-}
-
-fn demo(rel: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("../demo-logs")
-        .join(rel)
-}
 
 fn s(p: &Path) -> &str {
     p.to_str().unwrap()

@@ -3,16 +3,10 @@
 
 mod common;
 
-use common::Scratch;
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use common::{plumb, Scratch};
 
-fn plumb(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args(args)
-        .output()
-        .expect("run plumb")
-}
+use std::path::{Path, PathBuf};
+use std::process::Output;
 
 fn out(o: &Output) -> String {
     String::from_utf8_lossy(&o.stdout).into_owned()

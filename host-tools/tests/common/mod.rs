@@ -102,3 +102,18 @@ pub fn join(lines: &[String]) -> String {
 pub fn exists(p: &Path) -> bool {
     p.exists()
 }
+
+/// Runs the `plumb` binary of this package with `args`.
+pub fn plumb(args: &[&str]) -> std::process::Output {
+    std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(args)
+        .output()
+        .expect("run plumb")
+}
+
+/// A path inside the committed demo logs.
+pub fn demo(rel: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../demo-logs")
+        .join(rel)
+}
