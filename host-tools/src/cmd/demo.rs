@@ -18,7 +18,9 @@ Run the whole loop on the invented demo scenario: a warehouse tugger robot's dri
 24 features per 100 ms window (currents, speeds, temperatures, vibration bands, IMU
 statistics), four operating modes.
 
-1. Fit a model on the nominal training logs (demo-logs/train).
+1. Fit a model on the nominal training logs (demo-logs/train: three robots, two days), and
+   on --train-rows rows of generated nominal logs from four more robots on more days if
+   asked (made on demand under demo-logs/generated/ and reused).
 2. Calibrate its limits on generated nominal logs (--nominal-rows rows, made on demand under
    demo-logs/generated/ and reused), through the very same detector the boards run.
 3. Replay a second, independent generated nominal set, the committed held-out logs, and
@@ -47,6 +49,11 @@ pub struct DemoArgs {
     #[arg(long, value_name = "N", default_value_t = 1_000_000)]
     pub nominal_rows: usize,
 
+    /// Rows of generated nominal training data fitted together with demo-logs/train (0: the
+    /// committed training logs alone, the default)
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub train_rows: usize,
+
     /// Skip the HTML report
     #[arg(long)]
     pub no_report: bool,
@@ -58,6 +65,7 @@ pub struct DemoArgs {
 /// Seeds of the generated nominal sets (never the committed demo's seed).
 const CALIB_SEED: u64 = 1001;
 const EVAL_SEED: u64 = 2002;
+const TRAIN_SEED: u64 = 3003;
 
 /// Results for one drift or fault scenario.
 #[derive(Debug, Clone, Serialize)]
@@ -247,15 +255,26 @@ pub fn run(args: DemoArgs) -> Result<u8> {
         quiet,
     )?;
     let eval_paths = ensure_nominal(&gen.join("evaluation"), EVAL_SEED, args.nominal_rows, quiet)?;
+    let extra_train = if args.train_rows == 0 {
+        Vec::new()
+    } else {
+        ensure_nominal(&gen.join("training"), TRAIN_SEED, args.train_rows, quiet)?
+    };
 
     // 1–2. Fit and calibrate.
     say(
         quiet,
-        "fitting on demo-logs/train, calibrating on the generated nominal set",
+        if extra_train.is_empty() {
+            "fitting on demo-logs/train, calibrating on the generated nominal set"
+        } else {
+            "fitting on demo-logs/train and the generated training set, calibrating on the generated nominal set"
+        },
     );
     let read = ReadOptions::default();
     let train_paths = logs::expand_paths(&[args.logs.join("train")])?;
-    let train = LogSet::open(&train_paths, read.clone())?;
+    let mut fit_paths = train_paths.clone();
+    fit_paths.extend(extra_train.iter().cloned());
+    let train = LogSet::open(&fit_paths, read.clone())?;
     let calib = LogSet::open_for_labels(&calib_paths, train.labels(), read.clone())?;
     let cfg = FitConfig {
         mixture: MixtureChoice::Auto { max: 8 },
