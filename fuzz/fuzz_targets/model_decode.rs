@@ -2,11 +2,24 @@
 //! (host, growable). Whatever decodes must validate, re-encode, and decode
 //! again to the same model; the two readers must agree. Re-encoding gives
 //! the canonical bytes: no longer than the input's, and a fixed point.
+//!
+//! Signed files: with bit 1 of the first byte set, the target signs the file
+//! itself with a fixed key (a fuzzer cannot forge ed25519), then with bit 2
+//! damages one byte and repairs the CRC, as an attacker who knows the format
+//! would. Checked: a file verifies with the trusted key exactly when it is
+//! the file that was signed, a damaged one is refused with the error for
+//! what was damaged, stripping gives back the unsigned bytes, and the
+//! device's trust check agrees.
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
+use plumb_firmware::endpoint::{check_trust, Config};
 use plumb_model::file::{self, ModelFile};
+use plumb_model::signature::{self, SignatureError, TrustedKey};
 use plumb_model::{Capacity, ModelOwned};
+
+/// Seed of the signing key (fixed: the target checks verification, not keys).
+const SEED: [u8; 32] = [7; 32];
 
 /// The file the fuzzer means. A file's CRC-32 is out of a fuzzer's reach, so
 /// with the first byte even the rest is a payload and label section
@@ -28,10 +41,78 @@ fn file_from(data: &[u8]) -> Option<Vec<u8>> {
     Some(out)
 }
 
+/// Signs `file` with [`SEED`] and, when asked, damages one byte of the
+/// result (position and bit pattern from `params`) and repairs its CRC.
+/// Checks everything that holds for the file before and after.
+fn check_signed(file: &[u8], damage: Option<(usize, u8)>) -> Vec<u8> {
+    let key = TrustedKey::new(signature::public_key(&SEED));
+    let config = Config {
+        trusted_key: Some(key),
+        ..Config::default()
+    };
+    let Ok(signed) = signature::sign(file, &SEED) else {
+        // Only a file that frames can be signed.
+        assert!(file::split(file).is_err(), "sign refused a framed file");
+        return file.to_vec();
+    };
+    let sections = file::split(&signed).expect("a signed file frames");
+    assert_eq!(signature::verify(&sections, &key), Ok(()));
+    assert_eq!(check_trust(&signed, &config), Ok(()));
+    let stripped = signature::strip(&signed).expect("strip");
+    assert_eq!(
+        signature::strip(file).expect("strip the input"),
+        stripped,
+        "sign then strip gives the unsigned bytes"
+    );
+    let other = TrustedKey::new(signature::public_key(&[8; 32]));
+    assert!(matches!(
+        signature::verify(&sections, &other),
+        Err(SignatureError::UnknownKey { .. })
+    ));
+
+    let Some((at, xor)) = damage else {
+        return signed;
+    };
+    let mut bad = signed.clone();
+    let body_end = bad.len() - file::CRC_LEN;
+    let at = at % body_end;
+    bad[at] ^= xor.max(1);
+    let crc = file::CRC.checksum(&bad[..body_end]);
+    bad[body_end..].copy_from_slice(&crc.to_le_bytes());
+    let trust = check_trust(&bad, &config);
+    assert!(trust.is_err(), "a damaged signed file was trusted");
+    if let Ok(sec) = file::split(&bad) {
+        let verdict = signature::verify(&sec, &key);
+        let block = body_end - signature::BLOCK_LEN;
+        let key_id_at = block..block + signature::KEY_ID_LEN;
+        if key_id_at.contains(&at) {
+            assert!(
+                matches!(verdict, Err(SignatureError::UnknownKey { .. })),
+                "{verdict:?}"
+            );
+        } else {
+            assert_eq!(verdict, Err(SignatureError::BadSignature));
+        }
+    }
+    bad
+}
+
 fuzz_target!(|input: &[u8]| {
-    let Some(file) = file_from(input) else {
+    let Some((&mode, rest)) = input.split_first() else {
         return;
     };
+    let (damage, rest) = match rest {
+        [a, b, x, rest @ ..] if mode & 4 == 4 => {
+            (Some((usize::from(u16::from_le_bytes([*a, *b])), *x)), rest)
+        }
+        _ => (None, rest),
+    };
+    let Some(mut file) = file_from(&[&[mode & 1], rest].concat()) else {
+        return;
+    };
+    if mode & 2 == 2 {
+        file = check_signed(&file, damage);
+    }
     let data = &file[..];
     let device = file::decode(data, &Capacity::DEVICE);
     let host = ModelFile::from_bytes(data);
