@@ -30,6 +30,69 @@ impl Default for Patience {
     }
 }
 
+/// Reply timeout of a sample stream that follows the measured round trip:
+/// the smoothed round-trip time and its variation of RFC 6298 (TCP's
+/// retransmission timer), `SRTT + max(G, 4·RTTVAR)`, doubled after each
+/// timeout until the next measurement, and kept within
+/// [[`MIN_REPLY`], `ceiling`]. Karn's rule: a sample sent more than once
+/// gives no measurement. Before the first measurement the timeout is the
+/// ceiling.
+#[derive(Debug, Clone, Copy)]
+pub struct ReplyTimer {
+    srtt: Option<f64>,
+    rttvar: f64,
+    backoff: u32,
+    ceiling: Duration,
+}
+
+/// Shortest reply timeout of a sample stream, and the clock granularity `G`
+/// of [`ReplyTimer`].
+pub const MIN_REPLY: Duration = Duration::from_millis(2);
+
+impl ReplyTimer {
+    /// A timer that never waits longer than `ceiling`.
+    pub fn new(ceiling: Duration) -> Self {
+        ReplyTimer {
+            srtt: None,
+            rttvar: 0.0,
+            backoff: 0,
+            ceiling,
+        }
+    }
+
+    /// The current timeout.
+    pub fn timeout(&self) -> Duration {
+        let floor = MIN_REPLY.min(self.ceiling);
+        let Some(srtt) = self.srtt else {
+            return self.ceiling;
+        };
+        let base = srtt + (4.0 * self.rttvar).max(MIN_REPLY.as_secs_f64());
+        let t = base * f64::from(1u32 << self.backoff.min(16));
+        Duration::from_secs_f64(t.min(self.ceiling.as_secs_f64())).max(floor)
+    }
+
+    /// A measured round trip (RFC 6298, section 2: α = 1/8, β = 1/4).
+    pub fn observe(&mut self, rtt: Duration) {
+        let r = rtt.as_secs_f64();
+        match self.srtt {
+            None => {
+                self.srtt = Some(r);
+                self.rttvar = r / 2.0;
+            }
+            Some(s) => {
+                self.rttvar = 0.75 * self.rttvar + 0.25 * (s - r).abs();
+                self.srtt = Some(0.875 * s + 0.125 * r);
+            }
+        }
+        self.backoff = 0;
+    }
+
+    /// A timeout passed without an answer: back off (RFC 6298, 5.5).
+    pub fn expired(&mut self) {
+        self.backoff = (self.backoff + 1).min(16);
+    }
+}
+
 /// Sends `msg` and waits for the first frame `pick` accepts, sending `msg`
 /// again after each `patience.reply` without one.
 pub fn request<T>(
@@ -149,7 +212,9 @@ pub struct FeedConfig {
     pub reset: bool,
     /// Turn score reports off again at the end.
     pub reports_off_after: bool,
-    /// Answers and retries.
+    /// Answers and retries. While samples stream, the wait for a report
+    /// follows the measured round trip ([`ReplyTimer`]) and `reply` is only
+    /// its ceiling; the feed ends after `reply × tries` without a frame.
     pub patience: Patience,
 }
 
@@ -222,13 +287,18 @@ where
     };
     let mut source = samples.into_iter();
     let mut exhausted = false;
-    // Samples [acked, next) are in flight, oldest first.
-    let mut inflight: std::collections::VecDeque<Vec<f32>> = Default::default();
+    // Samples [acked, next) are in flight, oldest first, with the time each
+    // was sent if it was sent once (a round-trip measurement).
+    let mut inflight: std::collections::VecDeque<(Vec<f32>, Option<Instant>)> = Default::default();
     let mut acked = 0u64;
     let mut next = 0u64;
-    let mut query_sent: Option<Instant> = None;
+    // Statuses received since a silence made us ask, with no progress.
+    let mut probing: Option<u32> = None;
     let mut last_heard = Instant::now();
-    let mut silent_tries = 0u32;
+    // Silence longer than this ends the feed (as `tries` replies would).
+    let give_up = patience.reply * patience.tries.max(1);
+    let mut silent_since: Option<Instant> = None;
+    let mut timer = ReplyTimer::new(patience.reply);
 
     loop {
         while !exhausted && (next - acked) < window {
@@ -237,7 +307,7 @@ where
                     let x = x?;
                     send_sample(link, &x)?;
                     sum.frames_sent += 1;
-                    inflight.push_back(x);
+                    inflight.push_back((x, Some(Instant::now())));
                     next += 1;
                     sum.samples += 1;
                 }
@@ -247,7 +317,7 @@ where
         if exhausted && acked == next {
             break;
         }
-        let wait = patience.reply.saturating_sub(last_heard.elapsed());
+        let wait = timer.timeout().saturating_sub(last_heard.elapsed());
         let got = if wait.is_zero() {
             None
         } else {
@@ -258,18 +328,20 @@ where
                 return Err(closed(link));
             }
             // No progress for a reply time: ask where the device stands.
-            silent_tries += 1;
-            if silent_tries > patience.tries.max(1) {
+            timer.expired();
+            let since = *silent_since.get_or_insert_with(Instant::now);
+            if since.elapsed() > give_up {
                 return Err(Error::input(format!(
-                    "{} stopped answering after {} of {} samples",
+                    "{} stopped answering after {} of {} samples (nothing for {:.1} s)",
                     link.describe(),
                     acked,
-                    sum.samples
+                    sum.samples,
+                    give_up.as_secs_f64()
                 )));
             }
             link.send(&HostMsg::StatusQuery)?;
             sum.status_queries += 1;
-            query_sent = Some(Instant::now());
+            probing.get_or_insert(0);
             last_heard = Instant::now();
             continue;
         };
@@ -278,7 +350,7 @@ where
             continue;
         }
         last_heard = Instant::now();
-        silent_tries = 0;
+        silent_since = None;
         match &r.frame.msg {
             DeviceMsg::ScoreReport(rep) => {
                 let Some(idx) = rep.sample.checked_sub(base) else {
@@ -286,10 +358,17 @@ where
                 };
                 if idx >= acked && idx < next {
                     sum.reports_missing += idx - acked;
-                    for _ in acked..=idx {
+                    for _ in acked..idx {
                         inflight.pop_front();
                     }
+                    if let Some((_, Some(sent))) = inflight.pop_front() {
+                        timer.observe(sent.elapsed());
+                    }
                     acked = idx + 1;
+                    // Progress: an answer still on its way to an earlier
+                    // query describes the device before this sample and must
+                    // not be read as a loss of the samples sent since.
+                    probing = None;
                 }
             }
             DeviceMsg::Status(st) => {
@@ -300,15 +379,32 @@ where
                         inflight.pop_front();
                     }
                     acked = taken;
+                    probing = None;
                 }
-                // Only the answer to our own query (sent after a silence, so
-                // every sample before it had time to arrive) says that the
-                // samples it does not count were lost on the way.
-                if query_sent.take().is_some() && taken == acked && acked < next {
-                    for x in inflight.iter() {
-                        send_sample(link, x)?;
-                        sum.frames_sent += 1;
-                        sum.resent += 1;
+                // After a silence, a status that counts none of the samples
+                // in flight says they were lost, if it is the answer to our
+                // query: the device answers after everything it received
+                // before the query. But one status may be a periodic one sent
+                // before the query arrived (after the last report, late), so
+                // the loss is taken as proven only by the second such status
+                // in a row, and the first one prompts a second query. A
+                // sample sent twice would be taken twice.
+                if let Some(n) = probing.as_mut() {
+                    if taken == acked && acked < next {
+                        *n += 1;
+                        if *n >= 2 {
+                            probing = None;
+                            for (x, sent) in inflight.iter_mut() {
+                                *sent = None;
+                                send_sample(link, x)?;
+                                sum.frames_sent += 1;
+                                sum.resent += 1;
+                            }
+                        } else {
+                            link.send(&HostMsg::StatusQuery)?;
+                            sum.status_queries += 1;
+                            last_heard = Instant::now();
+                        }
                     }
                 }
             }
@@ -508,5 +604,66 @@ pub fn upload(
             }
         }
         Answer::Refused(request, reason) => Ok(UploadOutcome::Refused { request, reason }),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn ms(v: f64) -> Duration {
+        Duration::from_secs_f64(v / 1e3)
+    }
+
+    fn close(a: Duration, b: Duration) -> bool {
+        (a.as_secs_f64() - b.as_secs_f64()).abs() < 1e-9
+    }
+
+    /// RFC 6298, section 2: the first measurement R gives SRTT = R,
+    /// RTTVAR = R/2, RTO = SRTT + max(G, 4·RTTVAR) = 3R; each later one
+    /// RTTVAR ← ¾RTTVAR + ¼|SRTT − R|, SRTT ← ⅞SRTT + ⅛R; section 5.5: the
+    /// timeout doubles after each expiry until the next measurement.
+    #[test]
+    fn reply_timer_follows_rfc_6298() {
+        let mut t = ReplyTimer::new(ms(1000.0));
+        assert!(
+            close(t.timeout(), ms(1000.0)),
+            "no measurement yet: the ceiling"
+        );
+        t.observe(ms(10.0));
+        assert!(close(t.timeout(), ms(30.0)), "{:?}", t.timeout());
+        t.observe(ms(10.0));
+        // RTTVAR = 0.75 × 5 = 3.75 ms; RTO = 10 + 15 = 25 ms.
+        assert!(close(t.timeout(), ms(25.0)), "{:?}", t.timeout());
+        t.observe(ms(18.0));
+        // RTTVAR = 0.75 × 3.75 + 0.25 × 8 = 4.8125; SRTT = 8.75 + 2.25 = 11.
+        assert!(close(t.timeout(), ms(11.0 + 19.25)), "{:?}", t.timeout());
+        t.expired();
+        assert!(close(t.timeout(), ms(2.0 * 30.25)));
+        t.expired();
+        assert!(close(t.timeout(), ms(4.0 * 30.25)));
+        for _ in 0..40 {
+            t.expired();
+        }
+        assert!(close(t.timeout(), ms(1000.0)), "capped at the ceiling");
+        t.observe(ms(11.0));
+        assert!(t.timeout() < ms(40.0), "a measurement ends the back-off");
+    }
+
+    /// A very fast link: the variation term never drops below the clock
+    /// granularity, and the timeout never below the floor.
+    #[test]
+    fn reply_timer_floor_and_granularity() {
+        let mut t = ReplyTimer::new(ms(1000.0));
+        for _ in 0..50 {
+            t.observe(ms(0.1));
+        }
+        assert!(close(t.timeout(), ms(2.1)), "{:?}", t.timeout());
+        let mut tiny = ReplyTimer::new(ms(1.0));
+        tiny.observe(ms(0.1));
+        assert!(
+            close(tiny.timeout(), ms(1.0)),
+            "ceiling below the floor wins"
+        );
     }
 }

@@ -37,7 +37,8 @@ pub struct LinkArgs {
     #[arg(long, value_name = "ADDR", help_heading = "Link")]
     pub tcp: Option<String>,
 
-    /// Milliseconds to wait for each answer before asking again
+    /// Milliseconds to wait for each answer before asking again. While `feed` streams samples
+    /// the wait follows the measured round trip (RFC 6298) and this is its ceiling
     #[arg(long, value_name = "MS", default_value_t = 1000, help_heading = "Link")]
     pub reply_ms: u64,
 
