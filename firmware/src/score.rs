@@ -231,12 +231,42 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         feature: NO_FEATURE,
         value: -1.0,
     }; TOP_FEATURES];
-    for (i, (zi, row)) in z.iter().zip(model.loadings.chunks_exact(m)).enumerate() {
-        let mut recon = 0.0f32;
-        for (p, tj) in row.iter().zip(t) {
-            recon += p * tj;
+    // (P t)_i for four rows at a time, each summed over j in index order:
+    // every t_j is loaded once for the four rows.
+    let mut recon = [0.0f32; MAX_FEATURES];
+    let rows4 = model.loadings.chunks_exact(4 * m);
+    let done = 4 * rows4.len();
+    for (block, out) in rows4.zip(recon.chunks_exact_mut(4)) {
+        let (Some(r0), Some(r1), Some(r2), Some(r3)) = (
+            block.get(..m),
+            block.get(m..2 * m),
+            block.get(2 * m..3 * m),
+            block.get(3 * m..4 * m),
+        ) else {
+            continue;
+        };
+        let (mut a0, mut a1, mut a2, mut a3) = (0.0f32, 0.0f32, 0.0f32, 0.0f32);
+        for ((((p0, p1), p2), p3), tj) in r0.iter().zip(r1).zip(r2).zip(r3).zip(t) {
+            a0 += p0 * tj;
+            a1 += p1 * tj;
+            a2 += p2 * tj;
+            a3 += p3 * tj;
         }
-        let r = zi - recon;
+        out.copy_from_slice(&[a0, a1, a2, a3]);
+    }
+    for (out, row) in recon
+        .iter_mut()
+        .skip(done)
+        .zip(model.loadings.chunks_exact(m).skip(done))
+    {
+        let mut a = 0.0f32;
+        for (p, tj) in row.iter().zip(t) {
+            a += p * tj;
+        }
+        *out = a;
+    }
+    for (i, (zi, ri)) in z.iter().zip(&recon).enumerate() {
+        let r = zi - ri;
         let c = r * r;
         spe += c;
         insert_top(&mut top, i, c);
