@@ -68,7 +68,7 @@ fn main() {
     println!("{path}: {mib:.0} MiB, {d} features, {threads} threads");
     println!("| pass | MiB/s (best of 3) | CPU s per pass |");
     println!("|---|---|---|");
-    let mut run = |name: &str, f: &mut dyn FnMut()| {
+    let run = |name: &str, f: &mut dyn FnMut()| {
         let mut best = f64::INFINITY;
         let cpu0 = cpu_seconds();
         for _ in 0..3 {

@@ -210,7 +210,7 @@ const LANES: usize = 8;
 pub fn exp_nonpositive(x: f64) -> f64 {
     const LOG2E: f64 = std::f64::consts::LOG2_E;
     // fdlibm's split of ln 2: the high part has 32 trailing zero bits.
-    const LN2_HI: f64 = 6.931_471_803_691_238_2e-1;
+    const LN2_HI: f64 = 6.931_471_803_691_238e-1;
     const LN2_LO: f64 = 1.908_214_929_270_587_7e-10;
     // 1.5 · 2⁵²: adding it rounds to an integer held in the low mantissa bits.
     const SHIFT: f64 = 6_755_399_441_055_744.0;
@@ -279,11 +279,11 @@ fn tile_sums2(r: &[f64; TILE], x: &[f64; TILE]) -> (f64, f64) {
     (fold(a), fold(b))
 }
 
-fn tile<'a>(v: &'a [f64], i: usize) -> &'a [f64; TILE] {
+fn tile(v: &[f64], i: usize) -> &[f64; TILE] {
     v[i * TILE..(i + 1) * TILE].try_into().expect("tile")
 }
 
-fn tile_mut<'a>(v: &'a mut [f64], i: usize) -> &'a mut [f64; TILE] {
+fn tile_mut(v: &mut [f64], i: usize) -> &mut [f64; TILE] {
     (&mut v[i * TILE..(i + 1) * TILE]).try_into().expect("tile")
 }
 
@@ -721,7 +721,7 @@ mod tests {
             let u = rng.uniform();
             let x = match i % 4 {
                 0 => -746.0 * u,
-                1 => -1.0 * u,
+                1 => -u,
                 2 => -40.0 * u,
                 _ => -708.0 - 38.0 * u,
             };
