@@ -639,7 +639,7 @@ impl LogSet {
                 if n == 0 {
                     break;
                 }
-                lines += block[..n].iter().filter(|&&b| b == b'\n').count() as u64;
+                lines += memchr::memchr_iter(b'\n', &block[..n]).count() as u64;
                 last = block[n - 1];
                 stage.advance(n as u64);
             }
@@ -724,7 +724,7 @@ impl LogSet {
                     }
                 };
                 let span = &buf[..cut];
-                let lines_in_span = span.iter().filter(|&&b| b == b'\n').count() as u64
+                let lines_in_span = memchr::memchr_iter(b'\n', span).count() as u64
                     + u64::from(eof && !span.is_empty() && !span.ends_with(b"\n"));
                 let span_first = next_line;
                 // Past the selection: stop reading this file.
@@ -781,7 +781,7 @@ impl LogSet {
             _ => span.len(),
         };
         let (a, b) = span.split_at(cut);
-        let b_first = first_line + a.iter().filter(|&&x| x == b'\n').count() as u64;
+        let b_first = first_line + memchr::memchr_iter(b'\n', a).count() as u64;
         let job = |bytes: &[u8], line: u64| -> Result<Option<(Chunk, T)>> {
             if bytes.is_empty() {
                 return Ok(None);
@@ -863,6 +863,17 @@ impl LogSet {
                 line = stripped;
             }
             if line.iter().all(|b| b.is_ascii_whitespace()) {
+                continue;
+            }
+            // The common case first: every cell a plain decimal number. Any
+            // other line (other number forms, blanks, bad cells, a wrong
+            // field count) goes the general way below, with its messages.
+            if let Some(time) = fast_line(line, &file.targets, &mut row) {
+                chunk.values.extend_from_slice(&row);
+                chunk.lines.push(this);
+                if has_time {
+                    chunk.times.push(time);
+                }
                 continue;
             }
             let found = memchr::memchr_iter(b',', line).count() + 1;
@@ -965,6 +976,144 @@ impl Cell {
     }
 }
 
+/// Exact powers of ten in `f64`.
+const POW10: [f64; 23] = [
+    1e0, 1e1, 1e2, 1e3, 1e4, 1e5, 1e6, 1e7, 1e8, 1e9, 1e10, 1e11, 1e12, 1e13, 1e14, 1e15, 1e16,
+    1e17, 1e18, 1e19, 1e20, 1e21, 1e22,
+];
+
+/// Reads a number of the plain decimal form `[+-]digits[.digits][(e|E)[+-]digits]`
+/// (at least one digit before the point) at the start of `b`, when its
+/// value is one exactly rounded operation away: at most 19 significant
+/// digits, a digit string `w ≤ 2⁵³` and a decimal exponent `q` with
+/// `|q| ≤ 22`, so `w · 10^q` (or `w / 10^−q`) multiplies or divides two
+/// exact values and rounds once: the correctly rounded value, as
+/// `str::parse::<f64>` gives (Clinger 1990, the fast path). Returns the
+/// value and the bytes read; `None` for anything else, which the caller
+/// parses the general way.
+#[inline]
+fn plain_decimal(b: &[u8]) -> Option<(f64, usize)> {
+    let mut i = 0;
+    let neg = match b.first() {
+        Some(b'-') => {
+            i = 1;
+            true
+        }
+        Some(b'+') => {
+            i = 1;
+            false
+        }
+        _ => false,
+    };
+    let mut w: u64 = 0;
+    let mut digits = 0u32; // significant digits (after leading zeros)
+    let start = i;
+    while let Some(&c) = b.get(i) {
+        let v = c.wrapping_sub(b'0');
+        if v > 9 {
+            break;
+        }
+        w = w.wrapping_mul(10).wrapping_add(u64::from(v));
+        digits += u32::from(w != 0);
+        i += 1;
+    }
+    if i == start {
+        return None;
+    }
+    let mut q: i64 = 0;
+    if b.get(i) == Some(&b'.') {
+        i += 1;
+        let frac = i;
+        while let Some(&c) = b.get(i) {
+            let v = c.wrapping_sub(b'0');
+            if v > 9 {
+                break;
+            }
+            w = w.wrapping_mul(10).wrapping_add(u64::from(v));
+            digits += u32::from(w != 0);
+            i += 1;
+        }
+        q = -((i - frac) as i64);
+    }
+    if digits > 19 {
+        return None;
+    }
+    if let Some(b'e' | b'E') = b.get(i) {
+        i += 1;
+        let eneg = match b.get(i) {
+            Some(b'-') => {
+                i += 1;
+                true
+            }
+            Some(b'+') => {
+                i += 1;
+                false
+            }
+            _ => false,
+        };
+        let estart = i;
+        let mut e: i64 = 0;
+        while let Some(&c) = b.get(i) {
+            let v = c.wrapping_sub(b'0');
+            if v > 9 || i - estart >= 6 {
+                break;
+            }
+            e = e * 10 + i64::from(v);
+            i += 1;
+        }
+        if i == estart || b.get(i).is_some_and(u8::is_ascii_digit) {
+            return None;
+        }
+        q += if eneg { -e } else { e };
+    }
+    if w > 1 << 53 || !(-22..=22).contains(&q) {
+        return None;
+    }
+    let x = w as f64;
+    let v = if q >= 0 {
+        x * POW10[q as usize]
+    } else {
+        x / POW10[(-q) as usize]
+    };
+    Some((if neg { -v } else { v }, i))
+}
+
+/// Parses a whole line whose cells are all plain decimal numbers
+/// ([`plain_decimal`]) with nothing around them, `targets.len()` of them
+/// separated by commas: fills `row` and returns the time cell (NaN without
+/// one). `None` for any other line, with `row` partly overwritten.
+#[inline]
+fn fast_line(line: &[u8], targets: &[Target], row: &mut [f64]) -> Option<f64> {
+    let mut time = f64::NAN;
+    let mut pos = 0;
+    let last = targets.len().checked_sub(1)?;
+    for (f, target) in targets.iter().enumerate() {
+        let rest = &line[pos..];
+        let used = match target {
+            Target::Ignore => memchr::memchr(b',', rest).unwrap_or(rest.len()),
+            Target::Time | Target::Feature(_) => {
+                let (v, used) = plain_decimal(rest)?;
+                match target {
+                    Target::Time => time = v,
+                    Target::Feature(j) => row[*j] = v,
+                    Target::Ignore => {}
+                }
+                used
+            }
+        };
+        pos += used;
+        if f < last {
+            if line.get(pos) != Some(&b',') {
+                return None;
+            }
+            pos += 1;
+        } else if pos != line.len() {
+            return None;
+        }
+    }
+    Some(time)
+}
+
 fn parse_cell(raw: &[u8]) -> Cell {
     let cell = raw.trim_ascii();
     if cell.is_empty() {
@@ -993,6 +1142,127 @@ mod tests {
         assert_eq!(parse_cell(b"12..3"), Cell::Garbage);
         assert_eq!(parse_cell(b"1.0x"), Cell::Garbage);
         assert_eq!(parse_cell(b"\"1\""), Cell::Garbage);
+    }
+
+    /// Decimal strings of many shapes: signs, leading zeros, points,
+    /// exponents, up to 25 digits, values from 1e-40 to 1e40.
+    fn decimal_strings(n: usize) -> Vec<String> {
+        let mut s = 0x2545_f491_4f6c_dd1du64;
+        let mut next = move |k: u64| {
+            s ^= s << 13;
+            s ^= s >> 7;
+            s ^= s << 17;
+            s % k
+        };
+        let mut out = Vec::with_capacity(n);
+        for _ in 0..n {
+            let mut t = String::new();
+            match next(4) {
+                0 => t.push('-'),
+                1 => t.push('+'),
+                _ => {}
+            }
+            let int = 1 + next(12) as usize;
+            for i in 0..int {
+                let lead_zero = i == 0 && next(4) == 0;
+                t.push(char::from(
+                    b'0' + if lead_zero { 0 } else { next(10) as u8 },
+                ));
+            }
+            if next(3) > 0 {
+                t.push('.');
+                for _ in 0..next(14) {
+                    t.push(char::from(b'0' + next(10) as u8));
+                }
+            }
+            if next(3) == 0 {
+                t.push(if next(2) == 0 { 'e' } else { 'E' });
+                match next(3) {
+                    0 => t.push('-'),
+                    1 => t.push('+'),
+                    _ => {}
+                }
+                t.push_str(&next(41).to_string());
+            }
+            out.push(t);
+        }
+        out
+    }
+
+    #[test]
+    fn plain_decimals_are_correctly_rounded() {
+        // Every string the fast path takes gives the bits of the standard
+        // library's (correctly rounded) parse, and consumes the whole string.
+        let mut taken = 0;
+        for t in decimal_strings(400_000).iter().map(String::as_str).chain([
+            "0",
+            "-0",
+            "+0.0",
+            "9007199254740992",
+            "9007199254740993",
+            "1e22",
+            "1e23",
+            "1e-22",
+            "1e-23",
+            "123456789.0123456789",
+            "0.000000000000000000001",
+            "4.9406564584124654e-324",
+            "1.7976931348623157e308",
+            "00000000000000000000001",
+        ]) {
+            let want: f64 = t.parse().expect(t);
+            if let Some((v, used)) = plain_decimal(t.as_bytes()) {
+                taken += 1;
+                assert_eq!(used, t.len(), "{t}");
+                assert_eq!(v.to_bits(), want.to_bits(), "{t}: {v} vs {want}");
+            }
+            assert_eq!(parse_cell(t.as_bytes()), Cell::Number(want), "{t}");
+        }
+        // The fast path must carry the common case, not just be safe.
+        assert!(taken > 200_000, "{taken}");
+        assert_eq!(plain_decimal(b"-1.25e-3x"), Some((-1.25e-3, 8)));
+        for no in [
+            &b""[..],
+            b"-",
+            b".5",
+            b"e5",
+            b"1e",
+            b"1e+",
+            b"nan",
+            b"inf",
+            b"1e1234567",
+        ] {
+            assert_eq!(plain_decimal(no), None, "{}", String::from_utf8_lossy(no));
+        }
+    }
+
+    #[test]
+    fn fast_lines_take_only_plain_cells() {
+        let t = [
+            Target::Time,
+            Target::Feature(1),
+            Target::Ignore,
+            Target::Feature(0),
+        ];
+        let mut row = [0.0; 2];
+        assert_eq!(fast_line(b"1.5,2,x y,-3e1", &t, &mut row), Some(1.5));
+        assert_eq!(row, [-30.0, 2.0]);
+        for bad in [
+            &b"1.5,2,x,-3e1,"[..],
+            b"1.5,2,x",
+            b"1.5, 2,x,3",
+            b"1.5,,x,3",
+            b"1.5,2,x,3 ",
+            b"1.5,NaN,x,3",
+            b"1.5,2;x,3",
+        ] {
+            assert_eq!(
+                fast_line(bad, &t, &mut row),
+                None,
+                "{}",
+                String::from_utf8_lossy(bad)
+            );
+        }
     }
 
     #[test]

@@ -1,0 +1,98 @@
+//! Cost of the mixture fit on latent scores, printed as figures (not a test).
+//!
+//! `cargo bench -p plumb --bench em`
+//!
+//! 10⁶ rows × 8 latent dimensions drawn from 4 well separated diagonal
+//! Gaussians (the shape of `bench/fit_vs_sklearn.py`). Figures: wall-clock
+//! milliseconds per EM iteration (fixed iteration count, `tol` = 0), per
+//! initialisation (k-means++, Lloyd, hard M step) and per full
+//! `gmm::fit` with 4 restarts, best of three, on one and two threads.
+
+use plumb::gmm::{self, EmOptions, FitOptions};
+use plumb::rng::Rng;
+use std::hint::black_box;
+use std::time::Instant;
+
+/// CPU seconds of this process so far (user + system, all threads), from
+/// `/proc/self/stat` (Linux; 0 elsewhere). Other jobs on the machine slow
+/// the wall clock but not this.
+fn cpu_seconds() -> f64 {
+    let Ok(stat) = std::fs::read_to_string("/proc/self/stat") else {
+        return 0.0;
+    };
+    // Fields after the command name, which ends at the last ')'.
+    let rest = &stat[stat.rfind(')').map_or(0, |p| p + 2)..];
+    let f: Vec<&str> = rest.split_whitespace().collect();
+    let ticks: f64 = f[11].parse::<f64>().unwrap_or(0.0) + f[12].parse::<f64>().unwrap_or(0.0);
+    ticks / 100.0
+}
+
+/// Best wall-clock seconds of `reps` runs, and mean CPU seconds per run.
+fn best_of<T>(reps: usize, mut f: impl FnMut() -> T) -> (f64, f64) {
+    let mut best = f64::INFINITY;
+    let cpu0 = cpu_seconds();
+    for _ in 0..reps {
+        let t = Instant::now();
+        black_box(f());
+        best = best.min(t.elapsed().as_secs_f64());
+    }
+    (best, (cpu_seconds() - cpu0) / reps as f64)
+}
+
+fn main() {
+    let (n, m, k) = (1_000_000usize, 8usize, 4usize);
+    let mut rng = Rng::new(11, 0);
+    let centres: Vec<f64> = (0..k * m).map(|_| 3.0 * rng.normal()).collect();
+    let mut data = Vec::with_capacity(n * m);
+    for _ in 0..n {
+        let c = rng.below(k as u64) as usize;
+        for j in 0..m {
+            data.push(centres[c * m + j] + (1.0 + 0.2 * j as f64) * rng.normal());
+        }
+    }
+    let floor: Vec<f64> = gmm::column_variances(&data, m)
+        .iter()
+        .map(|v| 1e-3 * v)
+        .collect();
+    println!("{n} rows x {m} dimensions, k = {k}; best of 3, wall-clock");
+    println!("| threads | ms per EM iteration (CPU ms) | ms per initialisation (CPU ms) | s per fit, 4 restarts (CPU s) | iterations per fit |");
+    println!("|---|---|---|---|---|");
+    for threads in [1, 2] {
+        let em = EmOptions {
+            tol: 0.0,
+            max_iter: 5,
+            floor: floor.clone(),
+            threads,
+            ..EmOptions::default()
+        };
+        let init = gmm::initialise(&data, m, k, &mut Rng::new(1, 0), &em);
+        let (iter, iter_cpu) = best_of(3, || gmm::em_from(&data, init.clone(), &em));
+        let per = 1e3 / em.max_iter as f64;
+        let (t_init, init_cpu) =
+            best_of(3, || gmm::initialise(&data, m, k, &mut Rng::new(1, 0), &em));
+        let opts = FitOptions {
+            k,
+            restarts: 4,
+            seed: 7,
+            em: EmOptions {
+                tol: 1e-3,
+                max_iter: 100,
+                ..em.clone()
+            },
+        };
+        let mut iters = 0;
+        let (t_fit, fit_cpu) = best_of(3, || {
+            iters = 0;
+            gmm::fit(&data, m, &opts, &mut |_, _, _| iters += 1)
+        });
+        println!(
+            "| {threads} | {:.1} ({:.0}) | {:.1} ({:.0}) | {:.3} ({:.2}) | {iters} |",
+            iter * per,
+            iter_cpu * per,
+            t_init * 1e3,
+            init_cpu * 1e3,
+            t_fit,
+            fit_cpu
+        );
+    }
+}
