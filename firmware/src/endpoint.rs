@@ -1,12 +1,15 @@
 //! The serial endpoint: runs the detector, speaks the wire protocol, keeps model slots.
 //!
-//! [`Endpoint`] owns the [`Detector`], the two model slots ([`ModelSlots`]),
-//! and the drift output line (an `embedded-hal` [`OutputPin`], high while
-//! [`DriftState::Drifting`]). The link is any `embedded-io` byte stream, lent
-//! to each call, so a board keeps its UART driver:
+//! [`Endpoint`] runs a [`Detector`] and owns the two model slots
+//! ([`ModelSlots`]) and the drift output line (an `embedded-hal`
+//! [`OutputPin`], high while [`DriftState::Drifting`]). The link is any
+//! `embedded-io` byte stream, lent to each call, so a board keeps its UART
+//! driver:
 //!
 //! ```ignore
-//! let mut ep = Endpoint::<_, _>::boot(flash_slots, drift_pin, Some(BUILTIN_MODEL))?;
+//! // PLACES: &'static mut Places, from a static initialised to Places::EMPTY.
+//! let ep = cortex_m::singleton!(: Ep = Endpoint::idle_in(PLACES, flash_slots, drift_pin))?;
+//! ep.start(Some(BUILTIN_MODEL), config)?;
 //! ep.greet(&mut uart)?;
 //! loop {
 //!     if let Err(e) = ep.poll(&mut uart) { /* count it; the link resynchronises */ }
@@ -38,25 +41,26 @@
 //!   file's framing and CRC and before its payload is decoded; unsigned and
 //!   wrongly signed files are refused with their own codes.
 //!
-//! Nothing allocates and every failure is a value. The big buffers live
-//! inside the type: on `thumbv7em-none-eabihf` an `Endpoint` with the default
-//! ring takes about 19 KiB (two detector places of 7 KiB, the ring 32 × 144
-//! bytes, the receive buffer 300 bytes) plus the slot storage.
+//! Nothing allocates and every failure is a value. The big buffers live in
+//! [`Places`]: two detector places of about 7 KiB each and the resend ring
+//! (32 × 144 bytes), about 19 KiB on `thumbv7em-none-eabihf`; the rest of an
+//! `Endpoint` (receive buffer of 300 bytes, counters, settings) is small.
 //!
 //! One detector place runs; the other is the staging place. An upload (and
 //! each candidate model at boot) is decoded straight into the staging place
-//! with [`Detector::load`], and a switch only swaps which place runs, so no
-//! model or detector is ever built on the stack or moved. A board puts the
-//! endpoint in a static as [`Endpoint::idle`] (nothing big is built: the
-//! places start as [`Detector::EMPTY`]) and boots it there with
-//! [`Endpoint::start`]; [`Endpoint::boot`] does both and returns the endpoint
-//! by value, for hosts and tests.
+//! with [`Detector::load`], and a switch only flips which place runs, so no
+//! model or detector is ever built on the stack or moved, and the running
+//! model runs until the switch. A board keeps [`Places::EMPTY`] in a static
+//! (all zero: `.bss`), lends it to [`Endpoint::idle_in`] and boots in place
+//! with [`Endpoint::start`]; [`Endpoint::boot`] holds the places by value
+//! and returns the endpoint by value, for hosts and tests.
 
 mod slots;
 
 pub use slots::{newest_valid, slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, RECORD_LEN};
 
 use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
+use core::borrow::BorrowMut;
 use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
 use embedded_io::{ErrorType, Read, ReadReady, Write};
 use heapless::Deque;
@@ -222,14 +226,37 @@ fn send_frame<W: Write>(io: &mut W, seq: u32, msg: &DeviceMsg) -> Result<(), Err
     Ok(())
 }
 
-/// The device side of the link. `S` stores the model slots, `P` drives the
-/// drift line, `R` is the capacity of the resend ring.
-pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED> {
-    /// The two detector places; `second_runs` says which one runs, the
-    /// other is the staging place (its content means nothing until a
-    /// switch).
+/// The big parts of an [`Endpoint`] (about 19 KiB with the default ring):
+/// the two detector places and the resend ring of `R` events.
+///
+/// [`Places::EMPTY`] is all zero or uninitialised bytes, so a static
+/// holding it costs no flash (it lands in `.bss`) and no start-up work
+/// beyond zeroing; a board lends `&'static mut Places` to
+/// [`Endpoint::idle_in`] and nothing big is ever built on the stack.
+pub struct Places<const R: usize = DEFAULT_RETAINED> {
     first: Detector,
     second: Detector,
+    retained: Deque<Retained, R>,
+}
+
+impl<const R: usize> Places<R> {
+    /// Two empty detector places ([`Detector::EMPTY`]) and an empty ring.
+    pub const EMPTY: Places<R> = Places {
+        first: Detector::EMPTY,
+        second: Detector::EMPTY,
+        retained: Deque::new(),
+    };
+}
+
+/// The device side of the link. `S` stores the model slots, `P` drives the
+/// drift line, `R` is the capacity of the resend ring, and `D` holds the
+/// [`Places`]: by value (the default) or lent (`&mut Places<R>`, for a board
+/// that keeps them in a static).
+pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED, D = Places<R>> {
+    /// The detector places and the ring. `second_runs` says which place
+    /// runs; the other is the staging place (its content means nothing
+    /// until a switch).
+    places: D,
     second_runs: bool,
     slots: S,
     pin: P,
@@ -237,7 +264,6 @@ pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED> {
     pin_high: Option<bool>,
     rx: HostFrameDecoder,
     seq: u32,
-    retained: Deque<Retained, R>,
     dropped: u32,
     reports: bool,
     config: Config,
@@ -249,22 +275,27 @@ pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED> {
 }
 
 impl<S, P, const R: usize> Endpoint<S, P, R> {
-    /// An endpoint with no model yet, to be started in place with
-    /// [`Endpoint::start`]. Both detector places are [`Detector::EMPTY`]:
-    /// until a start succeeds every sample is a wrong-length fault. A
-    /// `const fn` with nothing big to compute, so a board can build it
-    /// straight into a static.
+    /// An endpoint with no model yet and its [`Places`] inside it, to be
+    /// started with [`Endpoint::start`]; see [`Endpoint::idle_in`].
     pub const fn idle(slots: S, pin: P) -> Self {
+        Self::idle_in(Places::EMPTY, slots, pin)
+    }
+}
+
+impl<S, P, const R: usize, D: BorrowMut<Places<R>>> Endpoint<S, P, R, D> {
+    /// An endpoint with no model yet, on the given places (which should be
+    /// [`Places::EMPTY`]: whatever they hold is not run and is overwritten
+    /// by the first start), to be started in place with [`Endpoint::start`].
+    /// Until a start succeeds every sample is a wrong-length fault.
+    pub const fn idle_in(places: D, slots: S, pin: P) -> Self {
         Endpoint {
-            first: Detector::EMPTY,
-            second: Detector::EMPTY,
+            places,
             second_runs: false,
             slots,
             pin,
             pin_high: None,
             rx: HostFrameDecoder::new(),
             seq: 0,
-            retained: Deque::new(),
             dropped: 0,
             reports: false,
             config: Config::DEFAULT,
@@ -284,10 +315,8 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     /// in by value (about 7 KiB): a device uses [`Endpoint::idle`] and
     /// [`Endpoint::start`].
     pub fn new(detector: Detector, slots: S, pin: P) -> Self {
-        let mut ep = Endpoint {
-            first: detector,
-            ..Self::idle(slots, pin)
-        };
+        let mut ep = Self::idle(slots, pin);
+        ep.places.first = detector;
         // A failure here is retried after the next sample.
         let _ = ep.drive_pin();
         ep
@@ -313,7 +342,9 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         ep.start(builtin, config)?;
         Ok(ep)
     }
+}
 
+impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpoint<S, P, R, D> {
     /// Boots in place: takes `config`, then runs the newest valid slot
     /// (highest generation whose record, CRC-32 and model file all pass),
     /// else `builtin` (a model file in the image), else fails. With
@@ -340,10 +371,11 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
             if check_trust(bytes, &self.config).is_err() {
                 continue;
             }
+            let places = self.places.borrow_mut();
             let staging = if self.second_runs {
-                &mut self.first
+                &mut places.first
             } else {
-                &mut self.second
+                &mut places.second
             };
             if staging.load(bytes).is_ok() {
                 // A pin failure is retried after the next sample.
@@ -361,27 +393,38 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
 
     /// The running place.
     fn running(&self) -> &Detector {
+        let places = self.places.borrow();
         if self.second_runs {
-            &self.second
+            &places.second
         } else {
-            &self.first
+            &places.first
         }
     }
 
     fn running_mut(&mut self) -> &mut Detector {
+        let places = self.places.borrow_mut();
         if self.second_runs {
-            &mut self.second
+            &mut places.second
         } else {
-            &mut self.first
+            &mut places.first
         }
     }
 
     fn staging_mut(&mut self) -> &mut Detector {
+        let places = self.places.borrow_mut();
         if self.second_runs {
-            &mut self.first
+            &mut places.first
         } else {
-            &mut self.second
+            &mut places.second
         }
+    }
+
+    fn ring(&self) -> &Deque<Retained, R> {
+        &self.places.borrow().retained
+    }
+
+    fn ring_mut(&mut self) -> &mut Deque<Retained, R> {
+        &mut self.places.borrow_mut().retained
     }
 
     /// Runs the staging place (loaded by the caller) from now on: per-model
@@ -432,7 +475,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
 
     /// Events in the resend ring, and events dropped from it since boot.
     pub fn retained(&self) -> (usize, u32) {
-        (self.retained.len(), self.dropped)
+        (self.ring().len(), self.dropped)
     }
 
     /// Whether per-sample score reports are on.
@@ -450,13 +493,9 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         &self.pin
     }
 
-    /// Takes the parts back (the running detector by value).
+    /// Takes the parts back (the running detector as a copy).
     pub fn release(self) -> (Detector, S, P) {
-        let detector = if self.second_runs {
-            self.second
-        } else {
-            self.first
-        };
+        let detector = self.running().clone();
         (detector, self.slots, self.pin)
     }
 
@@ -565,12 +604,12 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     /// Sends an event and keeps it for resend.
     fn send_retained<W: Write>(&mut self, out: &mut Out<'_, W>, msg: DeviceMsg) {
         let seq = self.next_seq_take();
-        if self.retained.is_full() && self.retained.pop_front().is_some() {
+        if self.ring().is_full() && self.ring_mut().pop_front().is_some() {
             self.dropped = self.dropped.wrapping_add(1);
         }
-        match self.retained.push_back(Retained { seq, msg }) {
+        match self.ring_mut().push_back(Retained { seq, msg }) {
             Ok(()) => {
-                if let Some(r) = self.retained.back() {
+                if let Some(r) = self.ring().back() {
                     out.send(r.seq, &r.msg);
                 }
             }
@@ -787,14 +826,14 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
             },
             levels,
             link: self.rx.counters(),
-            last_event: self.retained.back().map(|r| r.seq),
+            last_event: self.ring().back().map(|r| r.seq),
             model_id: self.running().model().meta.id,
         }
     }
 
     fn on_resend<W: Write>(&mut self, from: u32, out: &mut Out<'_, W>) {
         let mut count: u16 = 0;
-        for r in self.retained.iter() {
+        for r in self.ring().iter() {
             if wire::seq_at_or_after(r.seq, from) {
                 out.send(r.seq, &r.msg);
                 count = count.saturating_add(1);
@@ -803,7 +842,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         let done = ResendDone {
             from,
             count,
-            oldest: self.retained.front().map(|r| r.seq),
+            oldest: self.ring().front().map(|r| r.seq),
             dropped: self.dropped,
         };
         self.send(out, DeviceMsg::ResendDone(done));
@@ -925,10 +964,11 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         // `Detector::load` = `file::decode_into` (framing, CRC, capacity,
         // validation) + the detector's own checks, written into the staging
         // place; on error that place is left empty, never run.
+        let places = self.places.borrow_mut();
         let staging = if self.second_runs {
-            &mut self.first
+            &mut places.first
         } else {
-            &mut self.second
+            &mut places.second
         };
         staging.load(file).map_err(Reason::from)?;
         let generation = [Slot::A, Slot::B]

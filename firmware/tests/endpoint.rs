@@ -2,7 +2,8 @@
 //! `embedded-io` traits, a fake drift line, and hand-built models.
 
 use plumb_firmware::endpoint::{
-    BootError, Config, Endpoint, ModelSlots, RamSlots, SlotError, SlotRecord,
+    BootError, Config, Endpoint, ModelSlots, Places, RamSlots, SlotError, SlotRecord,
+    DEFAULT_RETAINED,
 };
 use plumb_firmware::{Detector, DriftState};
 use plumb_model::file::{self, ModelFile};
@@ -474,6 +475,16 @@ mod greeting_and_boot {
         ));
         assert_eq!(ep.detector().model().meta.id, 2);
         assert!(ep.detector().is_loaded());
+
+        // Places lent from outside (as a board's static) work the same.
+        let mut places = Box::new(Places::EMPTY);
+        let mut slots = RamSlots::<SLOT>::new();
+        slots.store(Slot::B, &one, 4).unwrap();
+        let mut ep =
+            Endpoint::<_, _, DEFAULT_RETAINED, _>::idle_in(&mut *places, slots, Line::default());
+        ep.start(None, Config::default()).unwrap();
+        assert_eq!(ep.active_slot(), Some(Slot::B));
+        assert_eq!(ep.detector().model().meta.id, 1);
     }
 
     #[test]
