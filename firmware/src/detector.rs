@@ -330,7 +330,8 @@ impl Detector {
     }
 
     /// Checks the model in place, derives its constants and resets the
-    /// statistics. On error the model is left as it is (the callers clear it).
+    /// statistics. On error the model is left as it is: `load` clears it,
+    /// `new` drops it.
     fn start(&mut self) -> Result<(), ModelError> {
         Capacity::DEVICE.admits(&self.model.dims)?;
         self.model.validate()?;
