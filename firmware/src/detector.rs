@@ -110,6 +110,19 @@ pub struct Track {
 }
 
 impl Track {
+    /// All statistics at zero, with no limits (the state of a detector
+    /// without a model).
+    const IDLE: Track = Track {
+        since_reset: Welford::new(),
+        window: Welford::new(),
+        last_window: Welford::new(),
+        ewma: Ewma::new(0.0, 0.0),
+        cusum: Cusum::new(0.0, 0.0),
+        over_sample_limit: 0,
+        last_u: 0.0,
+        sample_u: 0.0,
+    };
+
     fn new(lambda: f32, limits: &ScoreLimits, sample_u: f32) -> Self {
         Track {
             last_u: 0.0,
@@ -220,6 +233,10 @@ pub struct Outcome {
 ///
 /// Replaying a log through this type on the host gives the same bits as on
 /// the board: see the crate documentation.
+///
+/// A detector is about 7 KiB. A device keeps it in one place and loads models
+/// into it ([`Detector::EMPTY`], then [`Detector::load`]); [`Detector::new`]
+/// and [`Detector::from_file`] return one by value, for hosts and tests.
 #[derive(Debug, Clone)]
 pub struct Detector {
     model: Model,
@@ -239,36 +256,94 @@ pub struct Detector {
 pub const WINDOW: u32 = 1024;
 
 impl Detector {
-    /// Validates `model` against the device capacities and starts a detector.
+    /// A detector without a model: every sample is a wrong-length fault (it
+    /// expects 0 features) and no statistic moves. A `const`, so a static can
+    /// hold one from reset and [`Detector::load`] fill it in place.
+    pub const EMPTY: Detector = Detector {
+        model: Model::EMPTY,
+        derived: Derived::ZERO,
+        tracks: [Track::IDLE; 3],
+        state: DriftState::Priming,
+        index: 0,
+        valid: 0,
+        hot_run: 0,
+        calm_run: 0,
+        held: 0,
+        faults: FaultCounts {
+            wrong_length: 0,
+            non_finite: 0,
+            out_of_range: 0,
+            overflow: 0,
+        },
+        window_len: 0,
+    };
+
+    /// Validates `model` against the device capacities and starts a detector
+    /// (returned by value: see [`Detector::load`] for a device).
     pub fn new(model: Model) -> Result<Self, ModelError> {
-        Capacity::DEVICE.admits(&model.dims)?;
-        model.validate()?;
-        let derived = Derived::new(&model)?;
-        let tracks = fresh_tracks(&model, &derived);
         let mut det = Detector {
             model,
-            derived,
-            tracks,
-            state: DriftState::Priming,
-            index: 0,
-            valid: 0,
-            hot_run: 0,
-            calm_run: 0,
-            held: 0,
-            faults: FaultCounts::default(),
-            window_len: 0,
+            ..Detector::EMPTY
         };
-        det.reset();
+        det.start()?;
         Ok(det)
     }
 
-    /// Decodes a model file and starts a detector on it.
+    /// Decodes a model file and starts a detector on it (returned by value:
+    /// see [`Detector::load`] for a device).
     pub fn from_file(bytes: &[u8]) -> Result<Self, ModelError> {
-        Self::new(plumb_model::file::decode(bytes, &Capacity::DEVICE)?)
+        let mut det = Detector::EMPTY;
+        det.load(bytes)?;
+        Ok(det)
+    }
+
+    /// Decodes a model file into this detector, in place, and starts it:
+    /// framing, CRC, capacity and validation ([`plumb_model::file::decode_into`]),
+    /// then the detector's own checks. No model-sized value is built on the
+    /// stack.
+    ///
+    /// Whatever model this detector held is overwritten from the first
+    /// payload byte on, so load only into a detector that is not running.
+    /// On success the statistics start with warm-up. On error the detector
+    /// is [`Detector::EMPTY`]: no model ([`Detector::is_loaded`] is false),
+    /// every sample a fault; nothing of a half-read file can be scored.
+    pub fn load(&mut self, bytes: &[u8]) -> Result<(), ModelError> {
+        let loaded = plumb_model::file::decode_into(bytes, &Capacity::DEVICE, &mut self.model)
+            .and_then(|()| self.start());
+        if loaded.is_err() {
+            self.unload();
+        }
+        loaded
+    }
+
+    /// Drops the model: back to [`Detector::EMPTY`], in place.
+    pub fn unload(&mut self) {
+        self.model.clear();
+        self.derived = Derived::ZERO;
+        self.reset();
+    }
+
+    /// Whether a model is loaded (false for [`Detector::EMPTY`] and after a
+    /// failed [`Detector::load`]).
+    pub fn is_loaded(&self) -> bool {
+        !self.model.is_empty()
+    }
+
+    /// Checks the model in place, derives its constants and resets the
+    /// statistics. On error the model is left as it is: `load` clears it,
+    /// `new` drops it.
+    fn start(&mut self) -> Result<(), ModelError> {
+        Capacity::DEVICE.admits(&self.model.dims)?;
+        self.model.validate()?;
+        self.derived.compute(&self.model)?;
+        self.reset();
+        Ok(())
     }
 
     /// Replaces the model. On error the running model and its statistics are
-    /// untouched; on success the statistics restart with warm-up.
+    /// untouched; on success the statistics restart with warm-up. (A second
+    /// detector is built by value: a device switches between two places
+    /// instead, as the endpoint does.)
     pub fn install(&mut self, model: Model) -> Result<(), ModelError> {
         let fresh = Detector::new(model)?;
         *self = fresh;
@@ -277,8 +352,12 @@ impl Detector {
 
     /// Forgets all statistics and restarts warm-up.
     pub fn reset(&mut self) {
-        self.tracks = fresh_tracks(&self.model, &self.derived);
-        self.state = if self.model.monitor.warmup == 0 {
+        if !self.is_loaded() {
+            self.tracks = [Track::IDLE; 3];
+        } else {
+            self.tracks = fresh_tracks(&self.model, &self.derived);
+        }
+        self.state = if self.model.monitor.warmup == 0 && self.is_loaded() {
             DriftState::Watching
         } else {
             DriftState::Priming

@@ -1,12 +1,15 @@
 //! The serial endpoint: runs the detector, speaks the wire protocol, keeps model slots.
 //!
-//! [`Endpoint`] owns the [`Detector`], the two model slots ([`ModelSlots`]),
-//! and the drift output line (an `embedded-hal` [`OutputPin`], high while
-//! [`DriftState::Drifting`]). The link is any `embedded-io` byte stream, lent
-//! to each call, so a board keeps its UART driver:
+//! [`Endpoint`] runs a [`Detector`] and owns the two model slots
+//! ([`ModelSlots`]) and the drift output line (an `embedded-hal`
+//! [`OutputPin`], high while [`DriftState::Drifting`]). The link is any
+//! `embedded-io` byte stream, lent to each call, so a board keeps its UART
+//! driver:
 //!
 //! ```ignore
-//! let mut ep = Endpoint::<_, _>::boot(flash_slots, drift_pin, Some(BUILTIN_MODEL))?;
+//! // PLACES: &'static mut Places, from a static initialised to Places::EMPTY.
+//! let ep = cortex_m::singleton!(: Ep = Endpoint::idle_in(PLACES, flash_slots, drift_pin))?;
+//! ep.start(Some(BUILTIN_MODEL), config)?;
 //! ep.greet(&mut uart)?;
 //! loop {
 //!     if let Err(e) = ep.poll(&mut uart) { /* count it; the link resynchronises */ }
@@ -38,18 +41,26 @@
 //!   file's framing and CRC and before its payload is decoded; unsigned and
 //!   wrongly signed files are refused with their own codes.
 //!
-//! Nothing allocates and every failure is a value. The big buffers live
-//! inside the type: on `thumbv7em-none-eabihf` an `Endpoint` with the default
-//! ring takes about 12 KiB (the detector 7 KiB, the ring 32 × 144 bytes, the
-//! receive buffer 300 bytes) plus the slot storage. A model switch (and
-//! [`Endpoint::boot`]) builds the new detector on the stack before moving it
-//! in: allow about 14 KiB of stack for it.
+//! Nothing allocates and every failure is a value. The big buffers live in
+//! [`Places`]: two detector places of about 7 KiB each and the resend ring
+//! (32 × 144 bytes), about 19 KiB on `thumbv7em-none-eabihf`; the rest of an
+//! `Endpoint` (receive buffer of 300 bytes, counters, settings) is small.
+//!
+//! One detector place runs; the other is the staging place. An upload (and
+//! each candidate model at boot) is decoded straight into the staging place
+//! with [`Detector::load`], and a switch only flips which place runs, so no
+//! model or detector is ever built on the stack or moved, and the running
+//! model runs until the switch. A board keeps [`Places::EMPTY`] in a static
+//! (all zero: `.bss`), lends it to [`Endpoint::idle_in`] and boots in place
+//! with [`Endpoint::start`]; [`Endpoint::boot`] holds the places by value
+//! and returns the endpoint by value, for hosts and tests.
 
 mod slots;
 
 pub use slots::{newest_valid, slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, RECORD_LEN};
 
 use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
+use core::borrow::BorrowMut;
 use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
 use embedded_io::{ErrorType, Read, ReadReady, Write};
 use heapless::Deque;
@@ -86,13 +97,19 @@ pub struct Config {
     pub trusted_key: Option<TrustedKey>,
 }
 
+impl Config {
+    /// The defaults: this crate's version, a status message every
+    /// [`DEFAULT_STATUS_EVERY`] samples, no trusted key.
+    pub const DEFAULT: Config = Config {
+        firmware: env!("CARGO_PKG_VERSION"),
+        status_every: DEFAULT_STATUS_EVERY,
+        trusted_key: None,
+    };
+}
+
 impl Default for Config {
     fn default() -> Self {
-        Config {
-            firmware: env!("CARGO_PKG_VERSION"),
-            status_every: DEFAULT_STATUS_EVERY,
-            trusted_key: None,
-        }
+        Config::DEFAULT
     }
 }
 
@@ -209,17 +226,44 @@ fn send_frame<W: Write>(io: &mut W, seq: u32, msg: &DeviceMsg) -> Result<(), Err
     Ok(())
 }
 
+/// The big parts of an [`Endpoint`] (about 19 KiB with the default ring):
+/// the two detector places and the resend ring of `R` events.
+///
+/// [`Places::EMPTY`] is all zero or uninitialised bytes, so a static
+/// holding it costs no flash (it lands in `.bss`) and no start-up work
+/// beyond zeroing; a board lends `&'static mut Places` to
+/// [`Endpoint::idle_in`] and nothing big is ever built on the stack.
+pub struct Places<const R: usize = DEFAULT_RETAINED> {
+    first: Detector,
+    second: Detector,
+    retained: Deque<Retained, R>,
+}
+
+impl<const R: usize> Places<R> {
+    /// Two empty detector places ([`Detector::EMPTY`]) and an empty ring.
+    pub const EMPTY: Places<R> = Places {
+        first: Detector::EMPTY,
+        second: Detector::EMPTY,
+        retained: Deque::new(),
+    };
+}
+
 /// The device side of the link. `S` stores the model slots, `P` drives the
-/// drift line, `R` is the capacity of the resend ring.
-pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED> {
-    detector: Detector,
+/// drift line, `R` is the capacity of the resend ring, and `D` holds the
+/// [`Places`]: by value (the default) or lent (`&mut Places<R>`, for a board
+/// that keeps them in a static).
+pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED, D = Places<R>> {
+    /// The detector places and the ring. `second_runs` says which place
+    /// runs; the other is the staging place (its content means nothing
+    /// until a switch).
+    places: D,
+    second_runs: bool,
     slots: S,
     pin: P,
     /// Level last driven on the pin; `None` until driven or after an error.
     pin_high: Option<bool>,
     rx: HostFrameDecoder,
     seq: u32,
-    retained: Deque<Retained, R>,
     dropped: u32,
     reports: bool,
     config: Config,
@@ -230,32 +274,90 @@ pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED> {
     generation: u32,
 }
 
+impl<S, P, const R: usize> Endpoint<S, P, R> {
+    /// An endpoint with no model yet and its [`Places`] inside it, to be
+    /// started with [`Endpoint::start`]; see [`Endpoint::idle_in`].
+    pub const fn idle(slots: S, pin: P) -> Self {
+        Self::idle_in(Places::EMPTY, slots, pin)
+    }
+}
+
+impl<S, P, const R: usize, D: BorrowMut<Places<R>>> Endpoint<S, P, R, D> {
+    /// An endpoint with no model yet, on the given places (which should be
+    /// [`Places::EMPTY`]: whatever they hold is not run and is overwritten
+    /// by the first start), to be started in place with [`Endpoint::start`].
+    /// Until a start succeeds every sample is a wrong-length fault.
+    pub const fn idle_in(places: D, slots: S, pin: P) -> Self {
+        Endpoint {
+            places,
+            second_runs: false,
+            slots,
+            pin,
+            pin_high: None,
+            rx: HostFrameDecoder::new(),
+            seq: 0,
+            dropped: 0,
+            reports: false,
+            config: Config::DEFAULT,
+            since_status: 0,
+            last_fault: None,
+            upload: None,
+            active: None,
+            generation: 0,
+        }
+    }
+}
+
 impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     /// Starts on a detector the board built itself (for instance from a model
     /// compiled into the image); the greeting reports no active slot and
-    /// generation 0. The first upload goes to slot A.
+    /// generation 0. The first upload goes to slot A. The detector is moved
+    /// in by value (about 7 KiB): a device uses [`Endpoint::idle`] and
+    /// [`Endpoint::start`].
     pub fn new(detector: Detector, slots: S, pin: P) -> Self {
-        Self::assemble(detector, None, 0, slots, pin)
+        let mut ep = Self::idle(slots, pin);
+        ep.places.first = detector;
+        // A failure here is retried after the next sample.
+        let _ = ep.drive_pin();
+        ep
     }
 
     /// Starts on the newest valid slot (highest generation whose record,
     /// CRC-32 and model file all pass), else on `builtin` (a model file in
     /// the image), else fails. Default [`Config`]: no signature needed.
+    /// Returns the endpoint by value (about 19 KiB): see [`Endpoint::start`].
     pub fn boot(slots: S, pin: P, builtin: Option<&[u8]>) -> Result<Self, BootError> {
         Self::boot_with(slots, pin, builtin, Config::default())
     }
 
-    /// [`Endpoint::boot`] with settings: with [`Config::trusted_key`] set, a
-    /// slot whose file is not signed by that key is passed over like an
-    /// invalid one (the built-in model is not checked: it is part of the
-    /// image).
+    /// [`Endpoint::boot`] with settings: [`Endpoint::idle`], then
+    /// [`Endpoint::start`].
     pub fn boot_with(
         slots: S,
         pin: P,
         builtin: Option<&[u8]>,
         config: Config,
     ) -> Result<Self, BootError> {
-        let mut order = [Slot::A, Slot::B].map(|s| (s, slots.record(s)));
+        let mut ep = Self::idle(slots, pin);
+        ep.start(builtin, config)?;
+        Ok(ep)
+    }
+}
+
+impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpoint<S, P, R, D> {
+    /// Boots in place: takes `config`, then runs the newest valid slot
+    /// (highest generation whose record, CRC-32 and model file all pass),
+    /// else `builtin` (a model file in the image), else fails. With
+    /// [`Config::trusted_key`] set, a slot whose file is not signed by that
+    /// key is passed over like an invalid one (the built-in model is not
+    /// checked: it is part of the image).
+    ///
+    /// Each candidate is decoded into the staging place and switched to only
+    /// when it passes, so a failed start leaves the running place as it was
+    /// (on an [`Endpoint::idle`] endpoint: no model).
+    pub fn start(&mut self, builtin: Option<&[u8]>, config: Config) -> Result<(), BootError> {
+        self.config = config;
+        let mut order = [Slot::A, Slot::B].map(|s| (s, self.slots.record(s)));
         if let [(_, Some(a)), (_, Some(b))] = order {
             if b.generation > a.generation {
                 order.swap(0, 1);
@@ -263,57 +365,77 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         }
         for (slot, rec) in order {
             let Some(rec) = rec else { continue };
-            let Some(bytes) = slot_file(&slots, slot) else {
+            let Some(bytes) = slot_file(&self.slots, slot) else {
                 continue;
             };
-            if check_trust(bytes, &config).is_err() {
+            if check_trust(bytes, &self.config).is_err() {
                 continue;
             }
-            if let Ok(det) = Detector::from_file(bytes) {
-                let mut ep = Self::assemble(det, Some(slot), rec.generation, slots, pin);
-                ep.config = config;
-                return Ok(ep);
+            let places = self.places.borrow_mut();
+            let staging = if self.second_runs {
+                &mut places.first
+            } else {
+                &mut places.second
+            };
+            if staging.load(bytes).is_ok() {
+                // A pin failure is retried after the next sample.
+                let _ = self.switch(Some(slot), rec.generation);
+                return Ok(());
             }
         }
-        match builtin {
-            Some(file) => Detector::from_file(file)
-                .map(|det| {
-                    let mut ep = Self::assemble(det, None, 0, slots, pin);
-                    ep.config = config;
-                    ep
-                })
-                .map_err(BootError::Builtin),
-            None => Err(BootError::NoModel),
+        let Some(file) = builtin else {
+            return Err(BootError::NoModel);
+        };
+        self.staging_mut().load(file).map_err(BootError::Builtin)?;
+        let _ = self.switch(None, 0);
+        Ok(())
+    }
+
+    /// The running place.
+    fn running(&self) -> &Detector {
+        let places = self.places.borrow();
+        if self.second_runs {
+            &places.second
+        } else {
+            &places.first
         }
     }
 
-    fn assemble(
-        detector: Detector,
-        active: Option<Slot>,
-        generation: u32,
-        slots: S,
-        pin: P,
-    ) -> Self {
-        let mut ep = Endpoint {
-            detector,
-            slots,
-            pin,
-            pin_high: None,
-            rx: HostFrameDecoder::new(),
-            seq: 0,
-            retained: Deque::new(),
-            dropped: 0,
-            reports: false,
-            config: Config::default(),
-            since_status: 0,
-            last_fault: None,
-            upload: None,
-            active,
-            generation,
-        };
-        // A failure here is retried after the next sample.
-        let _ = ep.drive_pin();
-        ep
+    fn running_mut(&mut self) -> &mut Detector {
+        let places = self.places.borrow_mut();
+        if self.second_runs {
+            &mut places.second
+        } else {
+            &mut places.first
+        }
+    }
+
+    fn staging_mut(&mut self) -> &mut Detector {
+        let places = self.places.borrow_mut();
+        if self.second_runs {
+            &mut places.first
+        } else {
+            &mut places.second
+        }
+    }
+
+    fn ring(&self) -> &Deque<Retained, R> {
+        &self.places.borrow().retained
+    }
+
+    fn ring_mut(&mut self) -> &mut Deque<Retained, R> {
+        &mut self.places.borrow_mut().retained
+    }
+
+    /// Runs the staging place (loaded by the caller) from now on: per-model
+    /// state restarts and the drift line follows the new state.
+    fn switch(&mut self, active: Option<Slot>, generation: u32) -> Result<(), PinErrorKind> {
+        self.second_runs = !self.second_runs;
+        self.active = active;
+        self.generation = generation;
+        self.last_fault = None;
+        self.since_status = 0;
+        self.drive_pin()
     }
 
     /// Replaces the settings.
@@ -328,7 +450,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
 
     /// The running detector.
     pub fn detector(&self) -> &Detector {
-        &self.detector
+        self.running()
     }
 
     /// Slot of the running model (`None`: built-in).
@@ -353,7 +475,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
 
     /// Events in the resend ring, and events dropped from it since boot.
     pub fn retained(&self) -> (usize, u32) {
-        (self.retained.len(), self.dropped)
+        (self.ring().len(), self.dropped)
     }
 
     /// Whether per-sample score reports are on.
@@ -371,9 +493,10 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         &self.pin
     }
 
-    /// Takes the parts back.
+    /// Takes the parts back (the running detector as a copy).
     pub fn release(self) -> (Detector, S, P) {
-        (self.detector, self.slots, self.pin)
+        let detector = self.running().clone();
+        (detector, self.slots, self.pin)
     }
 
     /// Sends a greeting (do this once the link is up, after boot).
@@ -481,12 +604,12 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     /// Sends an event and keeps it for resend.
     fn send_retained<W: Write>(&mut self, out: &mut Out<'_, W>, msg: DeviceMsg) {
         let seq = self.next_seq_take();
-        if self.retained.is_full() && self.retained.pop_front().is_some() {
+        if self.ring().is_full() && self.ring_mut().pop_front().is_some() {
             self.dropped = self.dropped.wrapping_add(1);
         }
-        match self.retained.push_back(Retained { seq, msg }) {
+        match self.ring_mut().push_back(Retained { seq, msg }) {
             Ok(()) => {
-                if let Some(r) = self.retained.back() {
+                if let Some(r) = self.ring().back() {
                     out.send(r.seq, &r.msg);
                 }
             }
@@ -518,7 +641,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
             HostMsg::UploadChunk { offset, data } => self.on_chunk(*offset, data, out),
             HostMsg::UploadCommit => self.on_commit(out),
             HostMsg::ResetStats => {
-                self.detector.reset();
+                self.running_mut().reset();
                 self.last_fault = None;
                 self.since_status = 0;
                 self.pin_or_fail(out);
@@ -529,7 +652,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     }
 
     fn send_greeting<W: Write>(&mut self, out: &mut Out<'_, W>) {
-        let model = self.detector.model();
+        let model = self.running().model();
         let mut firmware = heapless::String::new();
         for c in self.config.firmware.chars() {
             if firmware.push(c).is_err() {
@@ -551,7 +674,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     }
 
     fn drive_pin(&mut self) -> Result<(), PinErrorKind> {
-        let want = self.detector.state() == DriftState::Drifting;
+        let want = self.running().state() == DriftState::Drifting;
         if self.pin_high == Some(want) {
             return Ok(());
         }
@@ -579,7 +702,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     }
 
     fn on_sample<W: Write>(&mut self, x: &[f32], out: &mut Out<'_, W>) {
-        let o = self.detector.update(x);
+        let o = self.running_mut().update(x);
         if self.reports {
             let report = ScoreReport {
                 sample: o.index,
@@ -628,7 +751,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     }
 
     fn limits(&self, s: Score) -> ScoreLimits {
-        let mp = &self.detector.model().monitor;
+        let mp = &self.running().model().monitor;
         match s {
             Score::Spe => mp.spe,
             Score::T2 => mp.t2,
@@ -639,7 +762,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     fn raised(&self, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
         let mut crossed = heapless::Vec::new();
         for s in drivers.iter() {
-            let t = self.detector.track(s);
+            let t = self.running().track(s);
             let lim = self.limits(s);
             let pairs = [
                 (Statistic::Ewma, t.ewma.value(), lim.ewma_limit),
@@ -680,7 +803,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         let mut levels = [Level::default(); 3];
         let mut hot = ScoreSet::EMPTY;
         for (level, s) in levels.iter_mut().zip(Score::ALL) {
-            let t = self.detector.track(s);
+            let t = self.running().track(s);
             let lim = self.limits(s);
             *level = Level {
                 ewma: t.ewma.value(),
@@ -690,10 +813,10 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
                 hot.insert(s);
             }
         }
-        let f = self.detector.faults();
+        let f = self.running().faults();
         Status {
-            samples: self.detector.samples(),
-            state: wire_state(self.detector.state()),
+            samples: self.running().samples(),
+            state: wire_state(self.running().state()),
             hot: hot.0,
             faults: FaultTally {
                 wrong_length: f.wrong_length,
@@ -703,14 +826,14 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
             },
             levels,
             link: self.rx.counters(),
-            last_event: self.retained.back().map(|r| r.seq),
-            model_id: self.detector.model().meta.id,
+            last_event: self.ring().back().map(|r| r.seq),
+            model_id: self.running().model().meta.id,
         }
     }
 
     fn on_resend<W: Write>(&mut self, from: u32, out: &mut Out<'_, W>) {
         let mut count: u16 = 0;
-        for r in self.retained.iter() {
+        for r in self.ring().iter() {
             if wire::seq_at_or_after(r.seq, from) {
                 out.send(r.seq, &r.msg);
                 count = count.saturating_add(1);
@@ -719,7 +842,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         let done = ResendDone {
             from,
             count,
-            oldest: self.retained.front().map(|r| r.seq),
+            oldest: self.ring().front().map(|r| r.seq),
             dropped: self.dropped,
         };
         self.send(out, DeviceMsg::ResendDone(done));
@@ -806,16 +929,13 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         // From here on the upload is over, switched or refused.
         self.upload = None;
         match self.check_upload(up) {
-            Ok((detector, generation)) => {
-                self.detector = detector;
-                self.active = Some(up.slot);
-                self.generation = generation;
-                self.last_fault = None;
-                self.since_status = 0;
-                self.pin_or_fail(out);
+            Ok(generation) => {
+                if let Err(k) = self.switch(Some(up.slot), generation) {
+                    out.fail(Error::Pin(k));
+                }
                 let ack = Ack::ModelSwitched {
                     slot: up.slot,
-                    model_id: self.detector.model().meta.id,
+                    model_id: self.running().model().meta.id,
                     generation,
                 };
                 self.send(out, DeviceMsg::Ack(ack));
@@ -824,9 +944,10 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         }
     }
 
-    /// Every check of a finished upload, then the slot's record. The running
-    /// detector is not touched: the caller swaps it in only on success.
-    fn check_upload(&mut self, up: Upload) -> Result<(Detector, u32), Reason> {
+    /// Every check of a finished upload, then the slot's record; returns the
+    /// new generation. The file is decoded into the staging place; the
+    /// running place is not touched: the caller switches only on success.
+    fn check_upload(&mut self, up: Upload) -> Result<u32, Reason> {
         self.slots.flush(up.slot).map_err(|_| Reason::Storage)?;
         let len = usize::try_from(up.total).map_err(|_| Reason::Storage)?;
         let file = self.slots.read(up.slot).get(..len).ok_or(Reason::Storage)?;
@@ -840,11 +961,16 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         // On a board that trusts a key: framing, CRC and signature before
         // any of the payload is decoded.
         check_trust(file, &self.config)?;
-        // `Detector::from_file` = `file::decode` (framing, CRC, validation,
-        // capacity) + `Detector::new` (the detector's own checks); the same
-        // checks `Detector::install` runs, without replacing the running
-        // detector before the slot record is written.
-        let detector = Detector::from_file(file).map_err(Reason::from)?;
+        // `Detector::load` = `file::decode_into` (framing, CRC, capacity,
+        // validation) + the detector's own checks, written into the staging
+        // place; on error that place is left empty, never run.
+        let places = self.places.borrow_mut();
+        let staging = if self.second_runs {
+            &mut places.first
+        } else {
+            &mut places.second
+        };
+        staging.load(file).map_err(Reason::from)?;
         let generation = [Slot::A, Slot::B]
             .iter()
             .filter_map(|s| self.slots.record(*s))
@@ -859,7 +985,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
         self.slots
             .commit(up.slot, record)
             .map_err(|_| Reason::Storage)?;
-        Ok((detector, generation))
+        Ok(generation)
     }
 }
 

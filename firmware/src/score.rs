@@ -80,16 +80,28 @@ pub struct Derived {
 }
 
 impl Derived {
+    /// All zero: the constants of no model.
+    pub const ZERO: Derived = Derived {
+        inv_scale: [0.0; MAX_FEATURES],
+        inv_eigen: [0.0; MAX_COMPONENTS],
+        inv_var: [0.0; MAX_MIX_PARAMS],
+        log_norm: [0.0; MAX_MIXTURE],
+        nll_floor: 0.0,
+    };
+
     /// Precomputes reciprocals and the per-component log normalising
     /// constants `ln π_c − ½ Σ_j ln(2π v_cj)`. The model must be validated.
     pub fn new(model: &Model) -> Result<Self, ModelError> {
-        let mut d = Derived {
-            inv_scale: [0.0; MAX_FEATURES],
-            inv_eigen: [0.0; MAX_COMPONENTS],
-            inv_var: [0.0; MAX_MIX_PARAMS],
-            log_norm: [0.0; MAX_MIXTURE],
-            nll_floor: 0.0,
-        };
+        let mut d = Derived::ZERO;
+        d.compute(model)?;
+        Ok(d)
+    }
+
+    /// [`Derived::new`] in place. On error the values are partly computed
+    /// and must not be used.
+    pub fn compute(&mut self, model: &Model) -> Result<(), ModelError> {
+        let d = self;
+        *d = Derived::ZERO;
         for (o, s) in d.inv_scale.iter_mut().zip(model.scale.iter()) {
             *o = 1.0 / s;
         }
@@ -134,7 +146,7 @@ impl Derived {
                 field: plumb_model::Field::MixVariances,
             });
         }
-        Ok(d)
+        Ok(())
     }
 
     /// The smallest NLL the model can give (computed at load time).
@@ -166,7 +178,8 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
     let d = usize::from(model.dims.features);
     let m = usize::from(model.dims.components);
     let k = usize::from(model.dims.mixture);
-    if x.len() != d {
+    // d = 0 only without a model (`Model::EMPTY`): nothing can be scored.
+    if x.len() != d || d == 0 || m == 0 || k == 0 {
         return Err(Fault::WrongLength {
             got: x.len().min(u16::MAX as usize) as u16,
         });

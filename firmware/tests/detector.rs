@@ -350,6 +350,97 @@ fn refused_model_keeps_the_running_one() {
 }
 
 /// Normal deviates as f32 for the run-length checks.
+fn file_bytes(model: &ModelOwned) -> Vec<u8> {
+    plumb_model::file::ModelFile {
+        model: model.clone(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .unwrap()
+}
+
+#[test]
+fn loading_in_place_equals_a_fresh_detector() {
+    // One place, reused for models of shrinking and growing size: nothing of
+    // the previous model may survive a load.
+    let models = [
+        example_model(64, 16, 8, 1),
+        example_model(5, 2, 2, 2),
+        example_model(12, 4, 3, 3),
+    ];
+    let mut place = Detector::EMPTY;
+    assert!(!place.is_loaded());
+    let mut rng = Rng(77);
+    for model in &models {
+        place.load(&file_bytes(model)).unwrap();
+        assert!(place.is_loaded());
+        let mut fresh = Detector::new(model.to_device().unwrap()).unwrap();
+        assert_eq!(place.model(), fresh.model());
+        assert_eq!(place.state(), DriftState::Priming);
+        for i in 0..300 {
+            // A drifted tail, so states and events move too.
+            let noise = if i < 200 { 0.1 } else { 3.0 };
+            let x: Vec<f32> = draw(model, &mut rng, noise)
+                .iter()
+                .map(|v| *v as f32)
+                .collect();
+            let a = place.update(&x);
+            let b = fresh.update(&x);
+            assert_eq!(format!("{a:?}"), format!("{b:?}"));
+        }
+    }
+}
+
+#[test]
+fn a_failed_load_leaves_no_model() {
+    let model = example_model(6, 3, 2, 4);
+    let good = file_bytes(&model);
+    let mut det = Detector::from_file(&good).unwrap();
+    let x: Vec<f32> = model.mean.clone();
+    assert!(det.update(&x).scores.is_some());
+
+    // Damaged (CRC), invalid (a zero scale) and truncated files: each an
+    // error, after which the detector holds no model and scores nothing.
+    let mut damaged = good.clone();
+    damaged[30] ^= 1;
+    let mut invalid = model.clone();
+    invalid.scale[1] = 0.0;
+    let payload = postcard::to_allocvec(&invalid).unwrap();
+    let mut invalid_file = vec![0u8; payload.len() + 20];
+    plumb_model::file::frame_into(&payload, &[], &mut invalid_file).unwrap();
+    for bad in [&damaged[..], &invalid_file[..], &good[..good.len() / 2]] {
+        let mut det = det.clone();
+        assert!(det.load(bad).is_err());
+        assert!(!det.is_loaded());
+        assert_eq!(det.model(), &plumb_model::Model::EMPTY);
+        let o = det.update(&x);
+        assert_eq!(o.scores, None);
+        assert_eq!(o.fault, Some(Fault::WrongLength { got: 6 }));
+        assert_eq!(o.state, DriftState::Priming);
+        // Loading a good file afterwards works as on a fresh place.
+        det.load(&good).unwrap();
+        assert!(det.update(&x).scores.is_some());
+    }
+}
+
+#[test]
+fn an_empty_detector_never_scores_or_panics() {
+    let mut det = Detector::EMPTY;
+    let inputs: [&[f32]; 4] = [&[], &[1.0], &[f32::NAN; 64], &[0.0; 65]];
+    for x in inputs {
+        assert!(det.score(x).is_err());
+        let o = det.update(x);
+        assert!(matches!(o.fault, Some(Fault::WrongLength { .. })), "{o:?}");
+        assert_eq!(o.state, DriftState::Priming);
+        assert_eq!(o.event, None);
+    }
+    assert_eq!(det.faults().wrong_length, 4);
+    det.reset();
+    det.unload();
+    assert_eq!(det.samples(), 0);
+    assert!(!det.is_loaded());
+}
+
 fn n32(rng: &mut Rng) -> f32 {
     rng.normal() as f32
 }

@@ -2,7 +2,8 @@
 //! `embedded-io` traits, a fake drift line, and hand-built models.
 
 use plumb_firmware::endpoint::{
-    BootError, Config, Endpoint, ModelSlots, RamSlots, SlotError, SlotRecord,
+    BootError, Config, Endpoint, ModelSlots, Places, RamSlots, SlotError, SlotRecord,
+    DEFAULT_RETAINED,
 };
 use plumb_firmware::{Detector, DriftState};
 use plumb_model::file::{self, ModelFile};
@@ -431,6 +432,62 @@ mod greeting_and_boot {
     }
 
     #[test]
+    fn an_idle_endpoint_starts_in_place_like_boot() {
+        let one = file_of(&model(1, 0.0));
+        let two = file_of(&model(2, 0.1));
+        let mut slots = RamSlots::<SLOT>::new();
+        slots.store(Slot::A, &one, 1).unwrap();
+        let mut ep = Endpoint::<_, _>::idle(slots.clone(), Line::default());
+        // Before a start: no model, every sample a fault, no panic.
+        assert!(!ep.detector().is_loaded());
+        let mut io = Pipe::new(64);
+        ep.feed(&wire::encode_frame_vec(&sample(&[0.0; 4])), &mut io)
+            .unwrap();
+        assert_eq!(ep.detector().faults().wrong_length, 1);
+
+        ep.start(Some(&two), Config::default()).unwrap();
+        assert_eq!(ep.active_slot(), Some(Slot::A));
+        assert_eq!(ep.generation(), 1);
+        assert_eq!(ep.detector().model().meta.id, 1);
+        // As booted by value, but for the link counters and the fault event
+        // of the sample sent before the start.
+        let booted = Endpoint::<_, _>::boot(slots, Line::default(), Some(&two)).unwrap();
+        assert_eq!(ep.detector().model(), booted.detector().model());
+        let (a, b) = (ep.status(), booted.status());
+        assert_eq!(
+            (a.samples, a.state, a.faults, a.levels),
+            (b.samples, b.state, b.faults, b.levels)
+        );
+        assert_eq!(a.model_id, b.model_id);
+
+        // A start that finds nothing leaves the running model running.
+        let mut ep = Endpoint::<_, _>::idle(RamSlots::<SLOT>::new(), Line::default());
+        ep.start(Some(&two), Config::default()).unwrap();
+        assert_eq!(ep.active_slot(), None);
+        assert_eq!(ep.detector().model().meta.id, 2);
+        assert!(matches!(
+            ep.start(Some(&two[..10]), Config::default()),
+            Err(BootError::Builtin(_))
+        ));
+        assert!(matches!(
+            ep.start(None, Config::default()),
+            Err(BootError::NoModel)
+        ));
+        assert_eq!(ep.detector().model().meta.id, 2);
+        assert!(ep.detector().is_loaded());
+
+        // Places lent from outside (as a board's static) work the same.
+        let mut places = Box::new(Places::EMPTY);
+        let mut slots = RamSlots::<SLOT>::new();
+        slots.store(Slot::B, &one, 4).unwrap();
+        let mut ep =
+            Endpoint::<_, _, DEFAULT_RETAINED, _>::idle_in(&mut *places, slots, Line::default());
+        ep.start(None, Config::default()).unwrap();
+        assert_eq!(ep.active_slot(), Some(Slot::B));
+        assert_eq!(ep.detector().model().meta.id, 1);
+    }
+
+    #[test]
     fn slot_record_bytes_check_themselves() {
         let rec = SlotRecord {
             generation: 7,
@@ -612,6 +669,10 @@ mod upload {
         let three = file_of(&model(3, -0.25));
         let answers = rig.upload(&three, wire::crc32(&three));
         assert_eq!(switched(&answers), Some((Slot::A, 3, 3)));
+        // It was decoded into the place model 1 ran in: nothing of model 1
+        // is left, it scores like a fresh detector.
+        let mut reference = Detector::from_file(&three).unwrap();
+        assert_scores_match(&mut rig, &mut reference, &mixed_samples(6, 120));
         let (_, slots, _) = rig.ep.release();
         let ep = Endpoint::<_, _>::boot(slots, Line::default(), None).unwrap();
         assert_eq!(ep.detector().model().meta.id, 3);
@@ -1172,7 +1233,8 @@ fn footprint() {
         size_of::<Endpoint<NoSlots, Line, 1>>() - size_of::<Endpoint<NoSlots, Line, 0>>(),
         size_of::<wire::HostFrameDecoder>(),
     );
-    assert!(endpoint < detector + 8 * 1024, "{endpoint}");
+    // Two detector places (running and staging), the rest under 8 KiB.
+    assert!(endpoint < 2 * detector + 8 * 1024, "{endpoint}");
 }
 
 mod signed_models {

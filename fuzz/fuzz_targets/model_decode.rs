@@ -1,7 +1,8 @@
 //! Bytes → `file::decode` (device, fixed capacity) and `ModelFile::from_bytes`
 //! (host, growable). Whatever decodes must validate, re-encode, and decode
 //! again to the same model; the two readers must agree. Re-encoding gives
-//! the canonical bytes: no longer than the input's, and a fixed point.
+//! the canonical bytes: no longer than the input's, and a fixed point. The
+//! in-place decoder behind `file::decode` agrees with postcard's derived one.
 //!
 //! Signed files: with bit 1 of the first byte set, the target signs the file
 //! itself with a fixed key (a fuzzer cannot forge ed25519), then with bit 2
@@ -16,7 +17,7 @@ use libfuzzer_sys::fuzz_target;
 use plumb_firmware::endpoint::{check_trust, Config};
 use plumb_model::file::{self, ModelFile};
 use plumb_model::signature::{self, SignatureError, TrustedKey};
-use plumb_model::{Capacity, ModelOwned};
+use plumb_model::{Capacity, Model, ModelError, ModelOwned};
 
 /// Seed of the signing key (fixed: the target checks verification, not keys).
 const SEED: [u8; 32] = [7; 32];
@@ -116,6 +117,24 @@ fuzz_target!(|input: &[u8]| {
     let data = &file[..];
     let device = file::decode(data, &Capacity::DEVICE);
     let host = ModelFile::from_bytes(data);
+
+    // `file::decode` is built on the in-place decoder; hold that decoder to
+    // the derived one (postcard's `Deserialize` for `Model`), with the same
+    // checks around it, on every payload that frames.
+    if let Ok(sections) = file::split(data) {
+        let derived = (|| {
+            let (_, dims) = file::peek(sections.payload)?;
+            Capacity::DEVICE.admits(&dims)?;
+            let (m, rest) = postcard::take_from_bytes::<Model>(sections.payload)
+                .map_err(|_| ModelError::Undecodable)?;
+            if !rest.is_empty() {
+                return Err(ModelError::Undecodable);
+            }
+            m.validate()?;
+            Ok(m)
+        })();
+        assert_eq!(derived, device, "in-place and derived decoders disagree");
+    }
 
     if let Ok(model) = &device {
         model.validate().expect("decode returned an invalid model");

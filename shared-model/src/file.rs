@@ -127,23 +127,72 @@ pub fn peek(payload: &[u8]) -> Result<(ModelMeta, Dims), ModelError> {
 
 /// Decodes a model file into fixed-capacity storage and validates it, refusing
 /// a model over `cap`. Never panics, for any input.
+///
+/// Returns the model by value (about 6 KiB): convenient on a host. A device
+/// decodes into a place it already has with [`decode_into`].
 pub fn decode(bytes: &[u8], cap: &Capacity) -> Result<Model, ModelError> {
-    let sections = split(bytes)?;
-    decode_payload(sections.payload, cap)
+    let mut model = Model::EMPTY;
+    decode_into(bytes, cap, &mut model)?;
+    Ok(model)
 }
 
-/// Decodes and validates a bare payload (no header, no CRC).
+/// Decodes and validates a bare payload (no header, no CRC); by value, as
+/// [`decode`].
 pub fn decode_payload(payload: &[u8], cap: &Capacity) -> Result<Model, ModelError> {
+    let mut model = Model::EMPTY;
+    decode_payload_into(payload, cap, &mut model)?;
+    Ok(model)
+}
+
+/// [`decode`] into `model`, in place: the file's framing and CRC are checked
+/// first, then the payload is decoded field by field into `model`'s own
+/// storage (no model-sized value is built or moved) and validated. The same
+/// checks and errors as [`decode`]; never panics.
+///
+/// On success `model` holds the file's model, validated. On error `model` is
+/// [`Model::EMPTY`] (whatever it held before, and whatever part of the
+/// payload was read, is gone): it fails validation, so it cannot be run by
+/// mistake.
+pub fn decode_into(bytes: &[u8], cap: &Capacity, model: &mut Model) -> Result<(), ModelError> {
+    match split(bytes) {
+        Ok(sections) => decode_payload_into(sections.payload, cap, model),
+        Err(e) => {
+            model.clear();
+            Err(e)
+        }
+    }
+}
+
+/// [`decode_payload`] into `model`, in place; on error `model` is
+/// [`Model::EMPTY`], as with [`decode_into`].
+pub fn decode_payload_into(
+    payload: &[u8],
+    cap: &Capacity,
+    model: &mut Model,
+) -> Result<(), ModelError> {
+    let result = fill(payload, cap, model);
+    if result.is_err() {
+        model.clear();
+    }
+    result
+}
+
+/// The steps of [`decode_payload_into`]; on error `model` may hold part of
+/// the payload.
+fn fill(payload: &[u8], cap: &Capacity, model: &mut Model) -> Result<(), ModelError> {
+    use serde::de::DeserializeSeed;
     let (_, dims) = peek(payload)?;
     cap.admits(&dims)?;
     Capacity::DEVICE.admits(&dims)?;
-    let (model, rest) =
-        postcard::take_from_bytes::<Model>(payload).map_err(|_| ModelError::Undecodable)?;
+    let mut de = postcard::Deserializer::from_bytes(payload);
+    crate::inplace::ModelSeed(model)
+        .deserialize(&mut de)
+        .map_err(|_| ModelError::Undecodable)?;
+    let rest = de.finalize().map_err(|_| ModelError::Undecodable)?;
     if !rest.is_empty() {
         return Err(ModelError::Undecodable);
     }
-    model.validate()?;
-    Ok(model)
+    model.validate()
 }
 
 /// Writes the framing around an already encoded payload and label section

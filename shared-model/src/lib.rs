@@ -26,6 +26,7 @@ extern crate alloc;
 
 mod error;
 pub mod file;
+mod inplace;
 mod model;
 pub mod schema;
 pub mod signature;

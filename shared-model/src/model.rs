@@ -320,6 +320,109 @@ model_type!(
     mixp = heapless::Vec<f32, MAX_MIX_PARAMS>
 );
 
+impl ModelMeta {
+    /// All zero.
+    pub const ZERO: ModelMeta = ModelMeta {
+        id: 0,
+        schema: 0,
+        created_unix_s: 0,
+        train_rows: 0,
+        calib_rows: 0,
+        sample_period_us: 0,
+    };
+}
+
+impl Dims {
+    /// No dimensions (not a valid model's).
+    pub const ZERO: Dims = Dims {
+        features: 0,
+        components: 0,
+        mixture: 0,
+    };
+}
+
+impl MonitorParams {
+    /// All zero (not valid parameters).
+    pub const ZERO: MonitorParams = MonitorParams {
+        fault_z: 0.0,
+        warmup: 0,
+        ewma_lambda: 0.0,
+        raise_dwell: 0,
+        clear_dwell: 0,
+        min_hold: 0,
+        clear_fraction: 0.0,
+        spe: ScoreLimits::ZERO,
+        t2: ScoreLimits::ZERO,
+        nll: ScoreLimits::ZERO,
+    };
+}
+
+impl ScoreLimits {
+    /// All zero (not a valid set of limits).
+    pub const ZERO: ScoreLimits = ScoreLimits {
+        sample_limit: 0.0,
+        center: 0.0,
+        spread: 0.0,
+        cusum_slack: 0.0,
+        cusum_limit: 0.0,
+        ewma_limit: 0.0,
+    };
+}
+
+impl Model {
+    /// No model: zero dimensions, empty vectors, zero parameters. It fails
+    /// [`Model::validate`], so nothing runs it by mistake; it is the starting
+    /// point of [`crate::file::decode_into`] and of a detector place that
+    /// holds no model yet. A `const`, so a static can start from it without
+    /// building a model on the stack.
+    pub const EMPTY: Model = Model {
+        meta: ModelMeta::ZERO,
+        dims: Dims::ZERO,
+        mean: heapless::Vec::new(),
+        scale: heapless::Vec::new(),
+        loadings: heapless::Vec::new(),
+        eigenvalues: heapless::Vec::new(),
+        theta: [0.0; 3],
+        weights: heapless::Vec::new(),
+        mix_means: heapless::Vec::new(),
+        mix_variances: heapless::Vec::new(),
+        monitor: MonitorParams::ZERO,
+    };
+
+    /// Returns to [`Model::EMPTY`] in place (no 6 KiB value is built).
+    pub fn clear(&mut self) {
+        let Model {
+            meta,
+            dims,
+            mean,
+            scale,
+            loadings,
+            eigenvalues,
+            theta,
+            weights,
+            mix_means,
+            mix_variances,
+            monitor,
+        } = self;
+        *meta = ModelMeta::ZERO;
+        *dims = Dims::ZERO;
+        mean.clear();
+        scale.clear();
+        loadings.clear();
+        eigenvalues.clear();
+        *theta = [0.0; 3];
+        weights.clear();
+        mix_means.clear();
+        mix_variances.clear();
+        *monitor = MonitorParams::ZERO;
+    }
+
+    /// Whether this is [`Model::EMPTY`]'s state: no features.
+    pub fn is_empty(&self) -> bool {
+        self.dims.features == 0
+    }
+}
+
 #[cfg(feature = "alloc")]
 model_type!(
     /// A model in growable storage, as the host builds it. Encodes to the same

@@ -4,7 +4,7 @@
 mod support;
 
 use plumb_model::file::{self, Label, ModelFile, CRC, HEADER_LEN, MAGIC};
-use plumb_model::{Capacity, Dim, Dims, Field, ModelError, ModelMeta, ModelOwned};
+use plumb_model::{Capacity, Dim, Dims, Field, Model, ModelError, ModelMeta, ModelOwned};
 use proptest::prelude::*;
 use support::example_model;
 
@@ -376,6 +376,109 @@ fn encode_into_small_buffer_is_an_error() {
     );
 }
 
+/// The by-value decoder `decode_payload_into` replaced, kept as the
+/// reference: the derived `Deserialize` of `Model` through postcard.
+fn reference_payload(payload: &[u8], cap: &Capacity) -> Result<Model, ModelError> {
+    let (_, dims) = file::peek(payload)?;
+    cap.admits(&dims)?;
+    Capacity::DEVICE.admits(&dims)?;
+    let (model, rest) =
+        postcard::take_from_bytes::<Model>(payload).map_err(|_| ModelError::Undecodable)?;
+    if !rest.is_empty() {
+        return Err(ModelError::Undecodable);
+    }
+    model.validate()?;
+    Ok(model)
+}
+
+/// In place into `start`, compared with the reference; `start` is reused, so
+/// a decode must not keep anything of what the place held before.
+fn assert_in_place_agrees(payload: &[u8], start: &mut Model) -> Result<(), TestCaseError> {
+    let expected = reference_payload(payload, &Capacity::DEVICE);
+    let got = file::decode_payload_into(payload, &Capacity::DEVICE, start);
+    match (&expected, got) {
+        (Ok(model), Ok(())) => prop_assert_eq!(&*start, model),
+        (Err(e), Err(g)) => {
+            prop_assert_eq!(*e, g);
+            // On error the place is the empty model, which cannot run.
+            prop_assert_eq!(&*start, &Model::EMPTY);
+            prop_assert!(start.validate().is_err());
+        }
+        (e, g) => prop_assert!(false, "reference {e:?}, in place {g:?}"),
+    }
+    Ok(())
+}
+
+#[test]
+fn in_place_decoding_agrees_with_the_derived_decoder() {
+    let mut models = vec![tiny()];
+    for (d, m, k) in [(1, 1, 1), (2, 1, 1), (8, 3, 2), (20, 16, 3), (64, 16, 8)] {
+        for seed in 0..3 {
+            models.push(example_model(d, m, k, seed));
+        }
+    }
+    // The place starts full (the largest model) and is reused throughout,
+    // so every vector must be cleared before it is filled.
+    let mut place = example_model(64, 16, 8, 9).to_device().unwrap();
+    for owned in &models {
+        let payload = postcard::to_allocvec(owned).unwrap();
+        assert_in_place_agrees(&payload, &mut place).unwrap();
+        assert_eq!(ModelOwned::from(&place), *owned);
+        let file = frame(owned);
+        let mut again = Model::EMPTY;
+        file::decode_into(&file, &Capacity::DEVICE, &mut again).unwrap();
+        assert_eq!(again, place);
+        assert_eq!(decode(&file).unwrap(), place);
+    }
+}
+
+#[test]
+fn in_place_decoding_refuses_what_the_derived_decoder_refuses() {
+    let good = postcard::to_allocvec(&example_model(8, 3, 2, 1)).unwrap();
+    let mut place = example_model(64, 16, 8, 9).to_device().unwrap();
+    // Truncated anywhere, one byte too many, over a vector's capacity, an
+    // invalid value: each an error, the same one, and an empty place.
+    for cut in 0..good.len() {
+        assert_in_place_agrees(&good[..cut], &mut place).unwrap();
+        assert_eq!(place, Model::EMPTY);
+        place = example_model(4, 2, 1, 3).to_device().unwrap();
+    }
+    let mut long = good.clone();
+    long.push(0);
+    assert_in_place_agrees(&long, &mut place).unwrap();
+    assert_eq!(place, Model::EMPTY);
+    // 65 means: dims say 8 features, so it is the vector itself that
+    // overflows its capacity (64) while being filled.
+    let mut wide = example_model(8, 3, 2, 1);
+    wide.mean = vec![0.5; 65];
+    let payload = postcard::to_allocvec(&wide).unwrap();
+    place = example_model(4, 2, 1, 3).to_device().unwrap();
+    assert_in_place_agrees(&payload, &mut place).unwrap();
+    assert_eq!(
+        file::decode_payload_into(&payload, &Capacity::DEVICE, &mut place),
+        Err(ModelError::Undecodable)
+    );
+    let mut bad = example_model(8, 3, 2, 1);
+    bad.scale[2] = -1.0;
+    let payload = postcard::to_allocvec(&bad).unwrap();
+    place = example_model(4, 2, 1, 3).to_device().unwrap();
+    assert_in_place_agrees(&payload, &mut place).unwrap();
+    assert!(matches!(
+        file::decode_payload_into(&payload, &Capacity::DEVICE, &mut place),
+        Err(ModelError::NotPositive {
+            field: Field::Scale,
+            index: 2
+        })
+    ));
+    // A framing error empties the place too.
+    place = example_model(4, 2, 1, 3).to_device().unwrap();
+    assert_eq!(
+        file::decode_into(b"PLMD", &Capacity::DEVICE, &mut place),
+        Err(ModelError::Truncated { needed: 16, got: 4 })
+    );
+    assert_eq!(place, Model::EMPTY);
+}
+
 proptest! {
     #![proptest_config(ProptestConfig::with_cases(2000))]
 
@@ -397,12 +500,29 @@ proptest! {
         if let Ok(m) = decode(&bytes) {
             prop_assert!(m.validate().is_ok());
         }
+        let mut place = example_model(3, 2, 1, seed).to_device().unwrap();
+        assert_in_place_agrees(&bytes[HEADER_LEN..bytes.len() - 4], &mut place)?;
         // Truncate the payload but keep the header lengths consistent.
         let payload_len = body.saturating_sub(cut % body);
         let payload = bytes[HEADER_LEN..HEADER_LEN + payload_len].to_vec();
         let mut out = vec![0u8; HEADER_LEN + payload_len + 4];
         file::frame_into(&payload, &[], &mut out).unwrap();
         let _ = decode(&out);
+        assert_in_place_agrees(&payload, &mut place)?;
+    }
+
+    #[test]
+    fn arbitrary_payloads_decode_alike_in_place(
+        bytes in proptest::collection::vec(any::<u8>(), 0..400), seed in 0u64..8
+    ) {
+        // Mostly refused early; a valid prefix (identity and dimensions)
+        // followed by noise reaches the vectors.
+        let mut payload = postcard::to_allocvec(&example_model(5, 2, 2, seed)).unwrap();
+        payload.truncate(40);
+        payload.extend_from_slice(&bytes);
+        let mut place = example_model(64, 16, 8, seed).to_device().unwrap();
+        assert_in_place_agrees(&payload, &mut place)?;
+        assert_in_place_agrees(&bytes, &mut place)?;
     }
 }
 

@@ -12,8 +12,8 @@
 #    and the built-in model; deterministic, whatever the host.
 # 2. arm-none-eabi-size of the endpoint image (text = flash, bss = RAM).
 # 3. Stack high-water mark by painting, with the real endpoint running:
-#    `plumb feed` of a drift log, and `plumb upload` of a model (the deepest
-#    path: the upload is decoded and a detector built beside the running one).
+#    `plumb feed` of a drift log, and `plumb upload` of a model (the upload is
+#    decoded into the staging detector place, then switched to).
 set -euo pipefail
 here=$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)
 root=$(cd "$here/../../.." && pwd)

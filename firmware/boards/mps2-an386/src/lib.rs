@@ -11,13 +11,16 @@
 //! with idle sleep and the end-of-run marker), [`drift_line`] (FPGAIO LED 0
 //! as an `embedded-hal` output pin), [`slots`] (model slots in RAM, preloaded
 //! from two code-memory regions), [`ticks`] (SysTick), [`stack`] (painting),
-//! [`semihost`] (ending the run). All `unsafe` code is in `mmio`.
+//! [`semihost`] (ending the run), and [`endpoint_places`] (the endpoint's
+//! detector places and resend ring, a static in `.bss`). All `unsafe` code
+//! is in `mmio`.
 
 #![no_std]
 
 pub mod drift_line;
 pub mod link;
 mod mmio;
+pub use mmio::endpoint_places;
 mod panic;
 pub mod semihost;
 pub mod slots;

@@ -4,10 +4,10 @@
 //! 1. Reset: paint the stack, claim UART0, SysTick, the drift line (FPGAIO
 //!    LED 0) and the two RAM model slots; preload the slots from code memory
 //!    (`slots`).
-//! 2. `Endpoint::boot_with`: run the newest valid slot, else the model
-//!    compiled into the image (`PLUMB_MODEL` at build time, see `build.rs`).
-//!    Built with `PLUMB_TRUSTED_KEY`, slots and uploads must be signed by
-//!    that key.
+//! 2. `Endpoint::idle_in` on the static places, then `Endpoint::start` in
+//!    place: run the newest valid slot, else the model compiled into the
+//!    image (`PLUMB_MODEL` at build time, see `build.rs`). Built with
+//!    `PLUMB_TRUSTED_KEY`, slots and uploads must be signed by that key.
 //! 3. Send a greeting, then serve the wire protocol (`shared-model/PROTOCOL.md`)
 //!    on UART0, sleeping while the line is idle.
 //! 4. On the end-of-run marker (16 zero bytes in a row, `link::END_RUN`)
@@ -28,8 +28,8 @@ use plumb_board_mps2::drift_line::DriftLine;
 use plumb_board_mps2::link::Link;
 use plumb_board_mps2::slots::BoardSlots;
 use plumb_board_mps2::text::write_field;
-use plumb_board_mps2::{semihost, Board};
-use plumb_firmware::endpoint::{Config, Endpoint, DEFAULT_STATUS_EVERY};
+use plumb_board_mps2::{endpoint_places, semihost, Board};
+use plumb_firmware::endpoint::{Config, Endpoint, Places, DEFAULT_RETAINED, DEFAULT_STATUS_EVERY};
 use plumb_firmware::plumb_model::signature::TrustedKey;
 
 // `TRUSTED_KEY`: the public key of `PLUMB_TRUSTED_KEY` at build time, if any.
@@ -102,12 +102,14 @@ fn main() -> ! {
     semihost::exit(uart_errors == 0 && write_errors == 0)
 }
 
-/// The endpoint type of this board.
-type Ep = Endpoint<BoardSlots, DriftLine>;
+/// The endpoint type of this board: its places (detectors and resend ring)
+/// are lent from a static.
+type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RETAINED, &'static mut Places>;
 
-/// Boots the endpoint into a static, so that `main`'s frame does not hold
-/// it and the frames of boot (model decoding, detector set-up) are gone
-/// before the serving loop starts. `None` when no model can run.
+/// Builds the endpoint in a static and boots it there: the big parts are the
+/// board's static places (`.bss`, never on the stack), the rest of the
+/// idle endpoint is a few hundred bytes, and the model is decoded in place
+/// (`Endpoint::start`). `None` when no model can run.
 #[inline(never)]
 fn boot(slots: BoardSlots, pin: DriftLine) -> Option<&'static mut Ep> {
     let config = Config {
@@ -115,6 +117,8 @@ fn boot(slots: BoardSlots, pin: DriftLine) -> Option<&'static mut Ep> {
         status_every: DEFAULT_STATUS_EVERY,
         trusted_key: TRUSTED_KEY.map(TrustedKey::new),
     };
-    let ep = Endpoint::boot_with(slots, pin, Some(BUILTIN_MODEL), config).ok()?;
-    cortex_m::singleton!(: Ep = ep)
+    let places = endpoint_places()?;
+    let ep = cortex_m::singleton!(: Ep = Endpoint::idle_in(places, slots, pin))?;
+    ep.start(Some(BUILTIN_MODEL), config).ok()?;
+    Some(ep)
 }

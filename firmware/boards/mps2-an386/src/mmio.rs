@@ -1,10 +1,35 @@
 //! The only module of this crate that contains `unsafe` code.
 //!
 //! Everything that touches memory-mapped registers or memory that Rust does
-//! not own (the unused part of the stack) goes through the small safe API
-//! below. Each unsafe block states why it is sound for this board.
+//! not own (the unused part of the stack), and the one `static mut` (the
+//! endpoint's detector places), goes through the small safe API below. Each
+//! unsafe block states why it is sound for this board.
 
 use core::ptr;
+use core::sync::atomic::{AtomicBool, Ordering};
+use plumb_firmware::endpoint::Places;
+
+/// The endpoint's two detector places and resend ring (about 19 KiB).
+/// `Places::EMPTY` is zero and uninitialised bytes only, so this lives in
+/// `.bss`: zeroed at reset, never built on the stack, no flash.
+static mut PLACES: Places = Places::EMPTY;
+
+/// Set by the first [`endpoint_places`] call.
+static PLACES_TAKEN: AtomicBool = AtomicBool::new(false);
+
+/// The endpoint's places, lent for the program's lifetime: `Some` once,
+/// `None` on every later call.
+pub fn endpoint_places() -> Option<&'static mut Places> {
+    if PLACES_TAKEN.swap(true, Ordering::AcqRel) {
+        return None;
+    }
+    // SAFETY: the atomic swap above lets exactly one call past, so this is
+    // the only reference to `PLACES` ever made; no other code names the
+    // static (it is private to this module) and no interrupt handler uses
+    // it. `addr_of_mut!` takes the address without an intermediate
+    // reference.
+    Some(unsafe { &mut *ptr::addr_of_mut!(PLACES) })
+}
 
 /// Base address of UART0 on the mps2-an386 machine (a CMSDK APB UART).
 pub const UART0_BASE: usize = 0x4000_4000;
