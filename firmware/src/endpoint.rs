@@ -43,8 +43,9 @@
 //!
 //! Nothing allocates and every failure is a value. The big buffers live in
 //! [`Places`]: two detector places of about 7 KiB each and the resend ring
-//! (32 × 144 bytes), about 19 KiB on `thumbv7em-none-eabihf`; the rest of an
-//! `Endpoint` (receive buffer of 300 bytes, counters, settings) is small.
+//! (32 × 176 bytes), about 20 KiB on `thumbv7em-none-eabihf`; the rest of an
+//! `Endpoint` (receive buffer of 300 bytes, counters, settings) is small. Each frame is encoded in a
+//! [`MAX_DEVICE_FRAME`] (150 byte) buffer on the stack.
 //!
 //! One detector place runs; the other is the staging place. An upload (and
 //! each candidate model at boot) is decoded straight into the staging place
@@ -759,29 +760,47 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         }
     }
 
+    /// The drift raised message for `o`: every chart of a driving score
+    /// over its limit, SPE before T² before NLL and per score EWMA, CUSUM,
+    /// per-sample limit (the order of [`Statistic::ALL`]).
     fn raised(&self, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
+        let scores = o.scores.unwrap_or_default();
         let mut crossed = heapless::Vec::new();
         for s in drivers.iter() {
             let t = self.running().track(s);
             let lim = self.limits(s);
-            let pairs = [
-                (Statistic::Ewma, t.ewma.value(), lim.ewma_limit),
-                (Statistic::Cusum, t.cusum.value(), lim.cusum_limit),
-            ];
-            for (statistic, value, limit) in pairs {
-                if value > limit {
+            let raw = match s {
+                Score::Spe => scores.spe,
+                Score::T2 => scores.t2,
+                Score::Nll => scores.nll,
+            };
+            for statistic in Statistic::ALL {
+                // Over or not as the detector decides (the per-sample limit
+                // on the standardised scale); the per-sample crossing is
+                // reported in the score's own units.
+                let (over, value, limit) = match statistic {
+                    Statistic::Ewma => {
+                        let v = t.ewma.value();
+                        (v > lim.ewma_limit, v, lim.ewma_limit)
+                    }
+                    Statistic::Cusum => {
+                        let v = t.cusum.value();
+                        (v > lim.cusum_limit, v, lim.cusum_limit)
+                    }
+                    Statistic::Sample => (t.last_u > t.sample_u, raw, lim.sample_limit),
+                };
+                if over {
                     let c = Crossing {
                         score: wire_score(s),
                         statistic,
                         value,
                         limit,
                     };
-                    // At most 3 scores × 2 statistics: always fits.
+                    // At most 3 scores × 3 charts = MAX_CROSSINGS: always fits.
                     let _ = crossed.push(c);
                 }
             }
         }
-        let scores = o.scores.unwrap_or_default();
         DriftRaised {
             sample: o.index,
             drivers: drivers.0,

@@ -8,8 +8,8 @@ use plumb_firmware::endpoint::{
 use plumb_firmware::{Detector, DriftState};
 use plumb_model::file::{self, ModelFile};
 use plumb_model::wire::{
-    self, Ack, DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, HostMsg, Reason, Refusal,
-    Request, ResendDone, ScoreReport, Slot, State, MAX_CHUNK,
+    self, Ack, Crossing, DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, HostMsg, Reason,
+    Refusal, Request, ResendDone, ScoreKind, ScoreReport, Slot, State, Statistic, MAX_CHUNK,
 };
 use plumb_model::{Capacity, Dims, ModelMeta, ModelOwned, MonitorParams, ScoreLimits};
 use proptest::prelude::*;
@@ -556,6 +556,131 @@ mod scoring {
         assert!(c.sample > r.sample);
         assert!(!rig.line.0.get(), "line low again");
         assert_eq!(rig.ep.detector().state(), DriftState::Watching);
+    }
+
+    /// Model 1 with SPE's limits `spe`, T²'s per-sample limit `t2_sample`,
+    /// and every other EWMA, CUSUM and per-sample limit out of reach of the
+    /// samples below.
+    fn chart_model(spe: ScoreLimits, t2_sample: f32) -> ModelOwned {
+        let far = |center, spread, sample_limit| ScoreLimits {
+            sample_limit,
+            cusum_limit: 40.0,
+            ewma_limit: 40.0,
+            ..limits(center, spread)
+        };
+        let mut m = model(1, 0.0);
+        m.monitor.spe = spe;
+        m.monitor.t2 = far(1.0, 0.5, t2_sample);
+        m.monitor.nll = far(3.0, 1.5, 50.0);
+        m
+    }
+
+    /// Boots on `m`, feeds 40 nominal samples (past warm-up, no event), then
+    /// `spike`; returns the drift raised message it caused and a reference
+    /// detector fed the same samples.
+    fn raise_with(m: &ModelOwned, spike: &[f32]) -> (wire::DriftRaised, Detector) {
+        let mut slots = RamSlots::new();
+        slots.store(Slot::A, &file_of(m), 1).unwrap();
+        let mut rig: Rig = Rig::boot_with(slots, 64);
+        let mut reference = Detector::from_file(&file_of(m)).unwrap();
+        let mut g = Lcg(17);
+        for _ in 0..40 {
+            let x = g.nominal();
+            reference.update(&x);
+            let got = rig.send(&sample(&x));
+            assert!(got.iter().all(|f| !f.msg.is_retained()), "{got:?}");
+        }
+        assert_eq!(rig.ep.detector().state(), DriftState::Watching);
+        reference.update(spike);
+        let got = rig.send(&sample(spike));
+        assert_eq!(got.len(), 1, "{got:?}");
+        let DeviceMsg::DriftRaised(r) = &got[0].msg else {
+            panic!("expected a drift raised message: {got:?}")
+        };
+        assert_eq!(rig.ep.detector().state(), DriftState::Drifting);
+        (r.clone(), reference)
+    }
+
+    #[test]
+    fn a_flag_raised_by_the_per_sample_limit_alone_names_it() {
+        // SPE's per-sample limit at 3; its EWMA and CUSUM limits, like every
+        // other chart's, out of reach. One sample pushed 1.5 along each of
+        // four residual directions has SPE ≈ 9: over the per-sample limit,
+        // with u ≈ 19 moving the CUSUM to about 18 and the EWMA to about 4.
+        let spe = ScoreLimits {
+            sample_limit: 3.0,
+            cusum_limit: 40.0,
+            ewma_limit: 40.0,
+            ..limits(0.2, 0.1)
+        };
+        let spike = Lcg(5).drifted();
+        let (r, reference) = raise_with(&chart_model(spe, 50.0), &spike);
+        assert_eq!(r.drivers, 0b001, "{r:?}");
+        assert!(r.scores.spe > 3.0, "{r:?}");
+        let t = reference.track(plumb_firmware::Score::Spe);
+        assert!(t.ewma.value() < 40.0 && t.cusum.value() < 40.0, "{t:?}");
+        assert_eq!(
+            r.crossed.as_slice(),
+            &[Crossing {
+                score: ScoreKind::Spe,
+                statistic: Statistic::Sample,
+                value: r.scores.spe,
+                limit: 3.0,
+            }]
+        );
+        // The value is the raw score the detector computed, bit for bit.
+        let s = reference.score(&spike).unwrap().scores;
+        assert_eq!(r.crossed[0].value.to_bits(), s.spe.to_bits());
+    }
+
+    #[test]
+    fn crossings_list_scores_then_charts_in_a_fixed_order() {
+        // SPE: per-sample limit 3 and the usual EWMA 1.5 and CUSUM 4, so
+        // the spike crosses all three (u ≈ 19 moves the CUSUM to about 18
+        // and the EWMA to about 4); T²: per-sample limit 4, crossed by a
+        // latent shift of 6 (T² ≥ 10), its EWMA and CUSUM out of reach.
+        let spe = ScoreLimits {
+            sample_limit: 3.0,
+            ..limits(0.2, 0.1)
+        };
+        let m = chart_model(spe, 4.0);
+        let mut spike = Lcg(5).drifted();
+        for xi in &mut spike {
+            *xi += 0.5 * 6.0;
+        }
+        let (r, reference) = raise_with(&m, &spike);
+        assert_eq!(r.drivers, 0b011, "{r:?}");
+        let t = reference.track(plumb_firmware::Score::Spe);
+        let want = [
+            Crossing {
+                score: ScoreKind::Spe,
+                statistic: Statistic::Ewma,
+                value: t.ewma.value(),
+                limit: 1.5,
+            },
+            Crossing {
+                score: ScoreKind::Spe,
+                statistic: Statistic::Cusum,
+                value: t.cusum.value(),
+                limit: 4.0,
+            },
+            Crossing {
+                score: ScoreKind::Spe,
+                statistic: Statistic::Sample,
+                value: r.scores.spe,
+                limit: 3.0,
+            },
+            Crossing {
+                score: ScoreKind::T2,
+                statistic: Statistic::Sample,
+                value: r.scores.t2,
+                limit: 4.0,
+            },
+        ];
+        assert_eq!(r.crossed.as_slice(), &want);
+        for c in &r.crossed {
+            assert!(c.value > c.limit, "{c:?}");
+        }
     }
 
     #[test]

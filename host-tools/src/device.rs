@@ -191,9 +191,12 @@ pub fn check_protocol(g: &Greeting) -> Result<()> {
     if PROTOCOLS.contains(&g.protocol) {
         Ok(())
     } else {
+        let known: Vec<String> = PROTOCOLS.iter().map(u16::to_string).collect();
         Err(Error::input(format!(
-            "the device speaks protocol version {}; this host knows {:?}",
-            g.protocol, PROTOCOLS
+            "the device speaks protocol version {}; this host knows version {} \
+             (use a plumb and a board firmware of the same protocol version)",
+            g.protocol,
+            known.join(", ")
         )))
     }
 }

@@ -25,6 +25,11 @@
 //!
 //! A frame that arrived through a resend carries ` recovered=1`. Scores are
 //! printed as the shortest decimal that reads back to the same `f32`.
+//!
+//! `crossed` lists each chart over its limit as `score/chart:value>limit`,
+//! chart `ewma`, `cusum` or `per-sample` (`spe/per-sample:12.5>10`: the
+//! sample's raw SPE over its per-sample limit; EWMA and CUSUM values and
+//! limits are on the standardised scale), or `none`.
 
 use crate::link::{LinkStats, Notice, Received};
 use plumb_model::file::Label;
@@ -239,10 +244,13 @@ fn score_name(s: ScoreKind) -> &'static str {
     }
 }
 
+/// Name of a chart in lines and JSON: `ewma`, `cusum`, or `per-sample`
+/// (the per-sample limit on the raw score).
 fn statistic_name(s: Statistic) -> &'static str {
     match s {
         Statistic::Ewma => "ewma",
         Statistic::Cusum => "cusum",
+        Statistic::Sample => "per-sample",
     }
 }
 

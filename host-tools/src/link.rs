@@ -1015,7 +1015,7 @@ mod tests {
 
     fn greeting() -> DeviceMsg {
         DeviceMsg::Greeting(Greeting {
-            protocol: 1,
+            protocol: plumb_model::wire::PROTOCOL_VERSION,
             firmware: heapless::String::try_from("test").unwrap(),
             model_id: 9,
             schema: 1,

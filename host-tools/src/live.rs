@@ -377,8 +377,9 @@ pub struct LiveState {
     fault_events: u64,
     scores: VecDeque<Option<ScoreTriple>>,
     reports: u64,
-    /// Limits learnt from crossings: `[score][statistic]`.
-    seen_limits: [[Option<f32>; 2]; 3],
+    /// Limits learnt from crossings: `[score][chart]` (EWMA, CUSUM,
+    /// per-sample).
+    seen_limits: [[Option<f32>; 3]; 3],
     host: LinkStats,
     frames: u64,
     last_frame: Option<Duration>,
@@ -410,6 +411,15 @@ fn statistic_label(s: Statistic) -> &'static str {
     match s {
         Statistic::Ewma => "EWMA",
         Statistic::Cusum => "CUSUM",
+        Statistic::Sample => "per-sample",
+    }
+}
+
+fn statistic_index(s: Statistic) -> usize {
+    match s {
+        Statistic::Ewma => 0,
+        Statistic::Cusum => 1,
+        Statistic::Sample => 2,
     }
 }
 
@@ -469,7 +479,7 @@ impl LiveState {
             fault_events: 0,
             scores: VecDeque::new(),
             reports: 0,
-            seen_limits: [[None; 2]; 3],
+            seen_limits: [[None; 3]; 3],
             host: LinkStats::default(),
             frames: 0,
             last_frame: None,
@@ -511,18 +521,15 @@ impl LiveState {
             return Some(match stat {
                 Statistic::Ewma => l.ewma_limit,
                 Statistic::Cusum => l.cusum_limit,
+                Statistic::Sample => l.sample_limit,
             });
         }
-        self.seen_limits[score_index(score)][usize::from(stat == Statistic::Cusum)]
+        self.seen_limits[score_index(score)][statistic_index(stat)]
     }
 
+    /// Per-sample limit of `score`, from the model file or a crossing seen.
     fn sample_limit(&self, score: ScoreKind) -> Option<f32> {
-        let m = self.file_limits()?;
-        Some(match score {
-            ScoreKind::Spe => m.spe.sample_limit,
-            ScoreKind::T2 => m.t2.sample_limit,
-            ScoreKind::Nll => m.nll.sample_limit,
-        })
+        self.limit(score, Statistic::Sample)
     }
 
     fn note(&mut self, at: Duration, text: String) {
@@ -572,8 +579,8 @@ impl LiveState {
             DeviceMsg::DriftRaised(d) => {
                 self.raised += 1;
                 for c in &d.crossed {
-                    self.seen_limits[score_index(c.score)]
-                        [usize::from(c.statistic == Statistic::Cusum)] = Some(c.limit);
+                    self.seen_limits[score_index(c.score)][statistic_index(c.statistic)] =
+                        Some(c.limit);
                 }
                 if newer || !r.recovered {
                     self.state = Some(State::Drifting);
@@ -1126,11 +1133,14 @@ impl LiveState {
                 };
                 l.push(format!(" {name:<5}"), Style::bold())
                     .push(format!("{:<7}", statistic_label(stat)), Style::dim());
+                // The status carries the two statistics; the per-sample
+                // limit has the sparkline row instead.
                 let value = self.status.map(|st| {
                     let lv = st.levels[i];
-                    match stat {
-                        Statistic::Ewma => lv.ewma,
-                        Statistic::Cusum => lv.cusum,
+                    if stat == Statistic::Ewma {
+                        lv.ewma
+                    } else {
+                        lv.cusum
                     }
                 });
                 let limit = self.limit(s, stat);
@@ -1186,7 +1196,8 @@ impl LiveState {
     }
 
     /// Newest per-sample scores of `s` as a sparkline, scaled to twice the
-    /// per-sample limit (or to the largest shown without a model file).
+    /// per-sample limit (from the model file or a per-sample crossing seen;
+    /// without either, to the largest shown).
     fn score_row(&self, s: ScoreKind, h: usize) -> Line {
         let width = 2 * h + 1;
         let recent: Vec<Option<f32>> = self

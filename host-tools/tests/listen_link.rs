@@ -15,8 +15,13 @@ use std::process::Command;
 use std::time::{Duration, Instant};
 
 fn greeting() -> DeviceMsg {
+    greeting_of(wire::PROTOCOL_VERSION)
+}
+
+/// A greeting announcing protocol version `protocol`.
+fn greeting_of(protocol: u16) -> DeviceMsg {
     DeviceMsg::Greeting(Greeting {
-        protocol: wire::PROTOCOL_VERSION,
+        protocol,
         firmware: heapless::String::try_from("script 1").unwrap(),
         model_id: 0xabcd,
         schema: 1,
@@ -52,7 +57,18 @@ fn raised(sample: u64) -> DeviceMsg {
 /// A scripted device on one connection: numbers its messages from `seq`,
 /// answers every greeting query with a greeting and then sends `after`
 /// once; returns when the host closes or `until` passes.
-fn serve(mut c: TcpStream, mut seq: u32, after: Vec<DeviceMsg>, until: Instant) -> u32 {
+fn serve(c: TcpStream, seq: u32, after: Vec<DeviceMsg>, until: Instant) -> u32 {
+    serve_as(c, seq, greeting(), after, until)
+}
+
+/// [`serve`], answering greeting queries with `hello`.
+fn serve_as(
+    mut c: TcpStream,
+    mut seq: u32,
+    hello: DeviceMsg,
+    after: Vec<DeviceMsg>,
+    until: Instant,
+) -> u32 {
     c.set_read_timeout(Some(Duration::from_millis(50))).unwrap();
     let mut dec = HostFrameDecoder::new();
     let mut after = Some(after);
@@ -70,7 +86,7 @@ fn serve(mut c: TcpStream, mut seq: u32, after: Vec<DeviceMsg>, until: Instant) 
                 Some(Ok(HostMsg::GreetingQuery)) => {
                     let mut out = wire::encode_frame_vec(&DeviceFrame {
                         seq,
-                        msg: greeting(),
+                        msg: hello.clone(),
                     });
                     seq += 1;
                     for msg in after.take().unwrap_or_default() {
@@ -166,4 +182,105 @@ fn listen_survives_noise_an_unplugged_port_and_a_restart() {
     assert!(link.contains("restarts=1"), "{link}");
     assert!(link.ends_with("reconnects=1"), "{link}");
     device.join().unwrap();
+}
+
+/// Runs `plumb listen --plain` for at most 4 s against a scripted device
+/// that answers greeting queries with `hello` and then sends `after`;
+/// returns the exit code, standard output and standard error.
+fn listen_to(hello: DeviceMsg, after: Vec<DeviceMsg>) -> (Option<i32>, String, String) {
+    let l = TcpListener::bind("127.0.0.1:0").unwrap();
+    let addr = l.local_addr().unwrap();
+    let device = std::thread::spawn(move || {
+        let (c, _) = l.accept().unwrap();
+        serve_as(c, 0, hello, after, Instant::now() + Duration::from_secs(6));
+    });
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args([
+            "listen",
+            "--tcp",
+            &addr.to_string(),
+            "--for",
+            "4",
+            "--reply-ms",
+            "300",
+            "--plain",
+            "--no-reconnect",
+        ])
+        .output()
+        .expect("run plumb listen");
+    device.join().unwrap();
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+#[test]
+fn listen_refuses_a_device_of_another_protocol_version() {
+    // A version 1 board (before per-sample crossings): listen stops at its
+    // greeting, with usage/link exit code 2 and both versions named, and
+    // prints none of what follows.
+    let (code, text, err) = listen_to(greeting_of(1), vec![raised(10)]);
+    assert_eq!(code, Some(2), "{text}\n{err}");
+    assert!(
+        err.contains("the device speaks protocol version 1; this host knows version 2"),
+        "{err}"
+    );
+    assert!(!text.contains("raised "), "{text}");
+    // The same script speaking this host's version is listened to.
+    let (code, text, err) = listen_to(greeting(), vec![raised(10)]);
+    assert_eq!(code, Some(1), "drift was raised\n{text}\n{err}");
+    assert!(text.contains("raised seq=1 sample=10"), "{text}");
+}
+
+#[test]
+fn listen_stops_when_a_later_greeting_speaks_another_version() {
+    // The board restarts on other firmware mid-session: its new greeting
+    // (numbered from 0 again) announces version 3. What came before is
+    // printed; then listen stops with an error naming the version.
+    let mut late = greeting_of(3);
+    if let DeviceMsg::Greeting(g) = &mut late {
+        g.firmware = heapless::String::try_from("script 2").unwrap();
+    }
+    let l = TcpListener::bind("127.0.0.1:0").unwrap();
+    let addr = l.local_addr().unwrap();
+    let device = std::thread::spawn(move || {
+        let (mut c, _) = l.accept().unwrap();
+        let until = Instant::now() + Duration::from_millis(800);
+        serve(c.try_clone().unwrap(), 0, vec![raised(10)], until);
+        c.write_all(&wire::encode_frame_vec(&DeviceFrame { seq: 0, msg: late }))
+            .unwrap();
+        // Keep the connection open until the host leaves.
+        let mut buf = [0u8; 64];
+        c.set_read_timeout(Some(Duration::from_secs(6))).unwrap();
+        while matches!(c.read(&mut buf), Ok(n) if n > 0) {}
+    });
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args([
+            "listen",
+            "--tcp",
+            &addr.to_string(),
+            "--for",
+            "4",
+            "--reply-ms",
+            "300",
+            "--plain",
+            "--no-reconnect",
+        ])
+        .output()
+        .expect("run plumb listen");
+    let text = String::from_utf8_lossy(&out.stdout).into_owned();
+    let err = String::from_utf8_lossy(&out.stderr).into_owned();
+    device.join().unwrap();
+    assert_eq!(out.status.code(), Some(2), "{text}\n{err}");
+    assert!(text.contains("raised seq=1 sample=10"), "{text}");
+    assert!(
+        text.contains("protocol=3"),
+        "the late greeting is shown: {text}"
+    );
+    assert!(
+        err.contains("the device speaks protocol version 3; this host knows version 2"),
+        "{err}"
+    );
 }

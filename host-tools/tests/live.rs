@@ -529,6 +529,56 @@ fn score_reports_draw_a_line_of_recent_scores() {
 }
 
 #[test]
+fn a_flag_raised_by_a_per_sample_limit_names_it_and_teaches_the_limit() {
+    // No model file: the crossing is the only word on the per-sample limit.
+    let mut s = LiveState::new("test board", names(), None);
+    s.set_start(1_704_103_200.0);
+    let mut flag = raised(88);
+    flag.crossed.clear();
+    flag.crossed
+        .push(Crossing {
+            score: ScoreKind::Spe,
+            statistic: Statistic::Sample,
+            value: 12.5,
+            limit: 10.0,
+        })
+        .unwrap();
+    let reports: Vec<DeviceMsg> = [5.0f32, 20.0]
+        .into_iter()
+        .enumerate()
+        .map(|(i, spe)| {
+            DeviceMsg::ScoreReport(ScoreReport {
+                sample: 89 + i as u64,
+                scores: Some(ScoreTriple {
+                    spe,
+                    t2: 1.0,
+                    nll: 2.0,
+                }),
+                state: State::Drifting,
+            })
+        })
+        .collect();
+    let mut msgs = vec![
+        DeviceMsg::Greeting(greeting()),
+        DeviceMsg::DriftRaised(flag),
+    ];
+    msgs.extend(reports);
+    feed(&mut s, msgs, 0);
+    let text = render(&s, 5).text();
+    assert!(
+        text.contains("crossed SPE per-sample 12.5 > 10.0"),
+        "the chart by name: {text}"
+    );
+    // The SPE score row is scaled to twice the learnt limit and shows it.
+    let spe = text
+        .lines()
+        .find(|r| r.trim_start().starts_with("sample"))
+        .expect("a score row");
+    assert!(spe.contains("20.0 / 10.0"), "{spe}");
+    assert!(spe.contains("▃█"), "5 and 20 on a scale to 20: {spe}");
+}
+
+#[test]
 fn a_restart_is_noted_and_forgets_the_standing_flag() {
     let mut s = state_with_model();
     feed(&mut s, session(), 0);

@@ -29,7 +29,7 @@ use crate::MAX_FEATURES;
 
 /// Version of this protocol, sent in every [`Greeting`]. Bumped by any change
 /// that an older peer would misread (see `PROTOCOL.md`, "Stability").
-pub const PROTOCOL_VERSION: u16 = 1;
+pub const PROTOCOL_VERSION: u16 = 2;
 
 /// Bytes of CRC after each message.
 pub const CRC_LEN: usize = 4;
@@ -63,9 +63,9 @@ pub const MAX_HOST_MESSAGE: usize = max(
 );
 
 /// Bound on the postcard encoding of a [`DeviceFrame`] (the longest, a drift
-/// raised message with six crossings, takes 105 bytes; tests check every
+/// raised message with nine crossings, takes 135 bytes; tests check every
 /// variant at its worst).
-pub const MAX_DEVICE_MESSAGE: usize = 128;
+pub const MAX_DEVICE_MESSAGE: usize = 144;
 
 /// Longest host → device frame, delimiter included.
 pub const MAX_HOST_FRAME: usize = max_frame_len(MAX_HOST_MESSAGE);

@@ -7,7 +7,8 @@ use plumb_model::wire::{
     DeviceMsg, DriftCleared, DriftRaised, FaultKind, FaultTally, FrameDecoder, FrameError,
     Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal, Request, ResendDone,
     ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State, Statistic, Status,
-    MAX_CHUNK, MAX_DEVICE_FRAME, MAX_DEVICE_MESSAGE, MAX_HOST_FRAME, MAX_HOST_MESSAGE,
+    MAX_CHUNK, MAX_CROSSINGS, MAX_DEVICE_FRAME, MAX_DEVICE_MESSAGE, MAX_HOST_FRAME,
+    MAX_HOST_MESSAGE,
 };
 use plumb_model::{Capacity, Dim, Dims, Field, ModelError, MAX_FEATURES};
 use proptest::prelude::*;
@@ -371,6 +372,75 @@ mod exact_bytes {
     }
 
     #[test]
+    fn drift_raised_by_the_per_sample_limit() {
+        // seq 2, variant 2, sample 300 = ac 02, drivers 01 (SPE), scores
+        // 12.5 = 00 00 48 41, 1.0 = 00 00 80 3f, -2.0 = 00 00 00 c0; one
+        // crossing: Spe = 00, Sample = 02, 12.5, limit 10.0 = 00 00 20 41;
+        // top: feature 1 with 8.0 = 00 00 00 41, feature 0 with 4.0 = 00 00
+        // 80 40, unused ff with 0.0. CRC-32 of the 43 bytes = 0xEA8C278F.
+        let mut crossed = heapless::Vec::new();
+        crossed
+            .push(Crossing {
+                score: ScoreKind::Spe,
+                statistic: Statistic::Sample,
+                value: 12.5,
+                limit: 10.0,
+            })
+            .unwrap();
+        check(
+            DeviceFrame {
+                seq: 2,
+                msg: DeviceMsg::DriftRaised(DriftRaised {
+                    sample: 300,
+                    drivers: 0x01,
+                    scores: ScoreTriple {
+                        spe: 12.5,
+                        t2: 1.0,
+                        nll: -2.0,
+                    },
+                    crossed,
+                    top: [
+                        Share {
+                            feature: 1,
+                            value: 8.0,
+                        },
+                        Share {
+                            feature: 0,
+                            value: 4.0,
+                        },
+                        Share {
+                            feature: 255,
+                            value: 0.0,
+                        },
+                    ],
+                }),
+            },
+            "02 02 ac 02 01 00 00 48 41 00 00 80 3f 00 00 00 c0 01 00 02 00 00 48 41 \
+             00 00 20 41 01 00 00 00 41 00 00 00 80 40 ff 00 00 00 00",
+            "06 02 02 ac 02 01 01 03 48 41 01 03 80 3f 01 01 03 c0 01 02 02 01 03 48 41 \
+             01 04 20 41 01 01 01 02 41 01 01 04 80 40 ff 01 01 01 05 8f 27 8c ea 00",
+        );
+    }
+
+    #[test]
+    fn chart_indices() {
+        // The wire tag of each chart (PROTOCOL.md, "Shared types").
+        for (stat, tag) in [
+            (Statistic::Ewma, 0u8),
+            (Statistic::Cusum, 1),
+            (Statistic::Sample, 2),
+        ] {
+            assert_eq!(postcard::to_allocvec(&stat).unwrap(), vec![tag], "{stat:?}");
+        }
+        assert_eq!(
+            Statistic::ALL,
+            [Statistic::Ewma, Statistic::Cusum, Statistic::Sample]
+        );
+        // An index past the last chart is refused, not misread.
+        assert!(postcard::from_bytes::<Statistic>(&[3]).is_err());
+    }
+
+    #[test]
     fn score_report() {
         // seq 5, variant 5, sample 70000 = f0 a2 04, Some = 01, 0.5 = 00 00
         // 00 3f, 2.0 = 00 00 00 40, -1.25 = 00 00 a0 bf, Drifting = 02.
@@ -445,19 +515,18 @@ fn every_host_msg() -> Vec<HostMsg> {
 }
 
 fn every_device_msg() -> Vec<DeviceMsg> {
-    let crossed: heapless::Vec<Crossing, 6> = [ScoreKind::Spe, ScoreKind::T2, ScoreKind::Nll]
-        .into_iter()
-        .flat_map(|score| {
-            [Statistic::Ewma, Statistic::Cusum]
-                .into_iter()
-                .map(move |statistic| Crossing {
+    let crossed: heapless::Vec<Crossing, MAX_CROSSINGS> =
+        [ScoreKind::Spe, ScoreKind::T2, ScoreKind::Nll]
+            .into_iter()
+            .flat_map(|score| {
+                Statistic::ALL.map(move |statistic| Crossing {
                     score,
                     statistic,
                     value: 7.5,
                     limit: 3.25,
                 })
-        })
-        .collect();
+            })
+            .collect();
     let reasons = every_reason();
     let mut msgs = vec![
         DeviceMsg::Greeting(Greeting {
@@ -679,8 +748,11 @@ mod messages {
             assert_eq!(got, vec![Ok(frame.clone())]);
             assert_eq!(dec.counters().frames_ok, 1);
         }
-        // The drift raised message with six crossings is the longest.
-        assert_eq!(longest, 105);
+        // The drift raised message with nine crossings (three charts of
+        // three scores) is the longest: seq 5 + variant 1 + sample 10 +
+        // drivers 1 + scores 12 + length 1 + 9 × 10 + top 3 × 5 = 135.
+        assert_eq!(longest, 135);
+        assert_eq!(MAX_CROSSINGS, 9);
     }
 
     #[test]
@@ -731,11 +803,11 @@ mod messages {
     #[test]
     fn documented_sizes() {
         // PROTOCOL.md, "Framing".
-        assert_eq!(wire::PROTOCOL_VERSION, 1);
+        assert_eq!(wire::PROTOCOL_VERSION, 2);
         assert_eq!(MAX_HOST_MESSAGE, 258);
         assert_eq!(MAX_HOST_FRAME, 265);
-        assert_eq!(MAX_DEVICE_MESSAGE, 128);
-        assert_eq!(MAX_DEVICE_FRAME, 134);
+        assert_eq!(MAX_DEVICE_MESSAGE, 144);
+        assert_eq!(MAX_DEVICE_FRAME, 150);
         assert_eq!(MAX_CHUNK, 128);
         assert_eq!(wire::FIRMWARE_LEN, 16);
     }

@@ -10,8 +10,8 @@ use plumb_fuzz::ops::{FileKind, Input, Op};
 use plumb_fuzz::{builtin_model, file_of, other_model};
 use plumb_model::file::{Label, ModelFile};
 use plumb_model::wire::{
-    encode_frame_vec, Ack, DeviceFrame, DeviceMsg, DriftCleared, HostMsg, Level, LinkCounters,
-    ScoreReport, ScoreTriple, State, Status,
+    encode_frame_vec, Ack, Crossing, DeviceFrame, DeviceMsg, DriftCleared, DriftRaised, HostMsg,
+    Level, LinkCounters, ScoreKind, ScoreReport, ScoreTriple, Share, State, Statistic, Status,
 };
 use std::path::{Path, PathBuf};
 
@@ -108,6 +108,47 @@ fn main() {
         DeviceFrame {
             seq: 3,
             msg: DeviceMsg::DriftCleared(DriftCleared { sample: 40 }),
+        },
+        // Every chart of SPE and the per-sample limit of the NLL.
+        DeviceFrame {
+            seq: 4,
+            msg: DeviceMsg::DriftRaised(DriftRaised {
+                sample: 41,
+                drivers: 0b101,
+                scores: ScoreTriple {
+                    spe: 12.5,
+                    t2: 1.5,
+                    nll: 9.0,
+                },
+                crossed: [
+                    (ScoreKind::Spe, Statistic::Ewma, 2.5, 1.5),
+                    (ScoreKind::Spe, Statistic::Cusum, 6.0, 4.0),
+                    (ScoreKind::Spe, Statistic::Sample, 12.5, 10.0),
+                    (ScoreKind::Nll, Statistic::Sample, 9.0, 8.0),
+                ]
+                .into_iter()
+                .map(|(score, statistic, value, limit)| Crossing {
+                    score,
+                    statistic,
+                    value,
+                    limit,
+                })
+                .collect(),
+                top: [
+                    Share {
+                        feature: 2,
+                        value: 6.0,
+                    },
+                    Share {
+                        feature: 0,
+                        value: 1.0,
+                    },
+                    Share {
+                        feature: 255,
+                        value: 0.0,
+                    },
+                ],
+            }),
         },
     ];
     let mut bytes = vec![9, 5];

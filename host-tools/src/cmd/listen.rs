@@ -8,7 +8,8 @@ use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
 use crate::link::{Link, LinkStats, Notice, Received};
 use crate::live;
 use clap::Args;
-use plumb_model::wire::{DeviceMsg, HostMsg};
+use plumb_model::wire::{DeviceMsg, Greeting, HostMsg};
+use std::cell::Cell;
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
@@ -39,6 +40,10 @@ or TCP connection that went away (`what=disconnected`), the attempts to reopen i
 pause growing from 0.1 s to 5 s (`what=reconnecting`) and its return (`what=reconnected`;
 a greeting is then asked for, so a restart or a gap shows). --no-reconnect ends listening
 when the port goes away instead.
+
+The board's greeting names its protocol version: listen stops with an error (exit code 2)
+when it is one this host does not know, at the start or in any later greeting (a board
+restarted on other firmware).
 
 Runs until the device closes the link (a spawned program ends, or the port goes away with
 --no-reconnect), --for elapses, or Ctrl-C. Exit code 1 if a drift flag was raised while
@@ -148,8 +153,22 @@ pub fn run(args: ListenArgs) -> Result<u8> {
         };
         let mut note = |n: &Notice| fan.borrow_mut().notice(n);
         let mut tick = |s: &LinkStats| watch.iter_mut().for_each(|w| w(s));
-        let res = listen(&args, &mut link, &stop, &mut sink, &mut note, &mut tick);
-        let fin = connect::finish(&mut link, &mut *fan.borrow_mut(), format, false);
+        let foreign = Cell::new(false);
+        let res = listen(
+            &args, &mut link, &stop, &foreign, &mut sink, &mut note, &mut tick,
+        );
+        // Frames still arriving from a board of another protocol version
+        // are not shown: this host cannot tell what they mean.
+        let fin = if foreign.get() {
+            connect::finish(
+                &mut link,
+                &mut Unread(&mut *fan.borrow_mut()),
+                format,
+                false,
+            )
+        } else {
+            connect::finish(&mut link, &mut *fan.borrow_mut(), format, false)
+        };
         res.and(fin)
     };
     if let Some(r) = recorder.as_mut() {
@@ -163,6 +182,29 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     }
     result?;
     Ok(if drift { EXIT_DRIFT } else { EXIT_CLEAN })
+}
+
+/// A sink that drops frames and passes on the rest.
+struct Unread<'a>(&'a mut dyn EventSink);
+
+impl EventSink for Unread<'_> {
+    fn frame(&mut self, _r: &Received) {}
+    fn notice(&mut self, n: &Notice) {
+        self.0.notice(n);
+    }
+    fn finish(&mut self, stats: &LinkStats) {
+        self.0.finish(stats);
+    }
+}
+
+/// Refuses a greeting of a protocol version this host does not know, and
+/// says so in `foreign`.
+fn check_version(g: &Greeting, foreign: &Cell<bool>) -> Result<()> {
+    let checked = device::check_protocol(g);
+    if checked.is_err() {
+        foreign.set(true);
+    }
+    checked
 }
 
 /// Hands the link's notices to `note`; after a reconnect, asks for a
@@ -181,6 +223,7 @@ fn listen(
     args: &ListenArgs,
     link: &mut Link,
     stop: &AtomicBool,
+    foreign: &Cell<bool>,
     sink: &mut dyn FnMut(&Received),
     note: &mut dyn FnMut(&Notice),
     tick: &mut dyn FnMut(&LinkStats),
@@ -191,8 +234,14 @@ fn listen(
         let mut held = Vec::new();
         let g = device::greeting(link, args.link.patience(), &mut |r| held.push(r.clone()));
         notices(link, note)?;
-        held.iter().for_each(&mut *sink);
-        device::check_protocol(&g?)?;
+        for r in &held {
+            sink(r);
+            // Nothing after a greeting of a version this host cannot read.
+            if let DeviceMsg::Greeting(h) = &r.frame.msg {
+                check_version(h, foreign)?;
+            }
+        }
+        check_version(&g?, foreign)?;
     }
     let end = args
         .duration
@@ -204,7 +253,14 @@ fn listen(
         let got = link.recv(Duration::from_millis(200))?;
         notices(link, note)?;
         match got {
-            Some(r) => sink(&r),
+            Some(r) => {
+                sink(&r);
+                // A board that restarted (or came back) on firmware of
+                // another protocol version cannot be read any further.
+                if let DeviceMsg::Greeting(g) = &r.frame.msg {
+                    check_version(g, foreign)?;
+                }
+            }
             None if link.is_closed() => break,
             None => {}
         }

@@ -11,9 +11,9 @@ use serde::{Deserialize, Serialize};
 pub const FIRMWARE_LEN: usize = 16;
 /// Most bytes of model file one upload chunk carries.
 pub const MAX_CHUNK: usize = 128;
-/// Most limit crossings a drift raised message lists (two statistics for
-/// each of three scores).
-pub const MAX_CROSSINGS: usize = 6;
+/// Most limit crossings a drift raised message lists: three charts (EWMA,
+/// CUSUM, per-sample limit) for each of three scores.
+pub const MAX_CROSSINGS: usize = 9;
 
 /// One of the two model slots of a device.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -67,14 +67,23 @@ pub enum ScoreKind {
     Nll,
 }
 
-/// One of the two streaming statistics kept per score.
+/// One of the three charts kept per score: the two streaming statistics
+/// and the per-sample limit.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub enum Statistic {
-    /// EWMA of the standardised transformed score.
+    /// EWMA of the standardised transformed score (variant 0).
     Ewma,
-    /// Upper CUSUM of the standardised transformed score.
+    /// Upper CUSUM of the standardised transformed score (variant 1).
     Cusum,
+    /// The sample's raw score against the per-sample limit
+    /// (`ScoreLimits::sample_limit`), in the score's own units (variant 2).
+    Sample,
+}
+
+impl Statistic {
+    /// Every chart, in the order a drift raised message lists them.
+    pub const ALL: [Statistic; 3] = [Statistic::Ewma, Statistic::Cusum, Statistic::Sample];
 }
 
 /// The three scores of one sample.
@@ -99,17 +108,18 @@ pub struct Level {
     pub cusum: f32,
 }
 
-/// A statistic over its limit when a flag rose.
+/// A chart over its limit when a flag rose.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub struct Crossing {
     /// Which score.
     pub score: ScoreKind,
-    /// Which statistic of it.
+    /// Which chart of it.
     pub statistic: Statistic,
-    /// Its value.
+    /// Its value: the EWMA or CUSUM of the standardised score, or for
+    /// [`Statistic::Sample`] the sample's raw score.
     pub value: f32,
-    /// The limit it exceeded.
+    /// The limit it exceeded, on the same scale as `value`.
     pub limit: f32,
 }
 
@@ -235,7 +245,8 @@ pub struct DriftRaised {
     pub drivers: u8,
     /// That sample's scores.
     pub scores: ScoreTriple,
-    /// Every statistic of a driving score that is over its limit.
+    /// Every chart of a driving score that is over its limit: SPE before
+    /// T² before NLL, and per score EWMA, CUSUM, per-sample limit.
     pub crossed: heapless::Vec<Crossing, MAX_CROSSINGS>,
     /// The three largest SPE contributions, largest first.
     pub top: [Share; 3],
