@@ -217,7 +217,8 @@ pub struct FeedConfig {
     pub reports_off_after: bool,
     /// Answers and retries. While samples stream, the wait for a report
     /// follows the measured round trip ([`ReplyTimer`]) and `reply` is only
-    /// its ceiling; the feed ends after `reply × tries` without a frame.
+    /// its ceiling; the feed ends after `reply × tries` in which the device
+    /// took no sample.
     pub patience: Patience,
 }
 
@@ -298,9 +299,11 @@ where
     // Statuses received since a silence made us ask, with no progress.
     let mut probing: Option<u32> = None;
     let mut last_heard = Instant::now();
-    // Silence longer than this ends the feed (as `tries` replies would).
+    // This long without the device taking a sample ends the feed (as `tries`
+    // unanswered requests would), whether the line is silent or busy with
+    // frames that bring no progress.
     let give_up = patience.reply * patience.tries.max(1);
-    let mut silent_since: Option<Instant> = None;
+    let mut last_progress = Instant::now();
     let mut timer = ReplyTimer::new(patience.reply);
 
     loop {
@@ -320,6 +323,15 @@ where
         if exhausted && acked == next {
             break;
         }
+        if last_progress.elapsed() > give_up {
+            return Err(Error::input(format!(
+                "{} took no sample for {:.1} s: stopped after {} of {} samples",
+                link.describe(),
+                give_up.as_secs_f64(),
+                acked,
+                sum.samples
+            )));
+        }
         let wait = timer.timeout().saturating_sub(last_heard.elapsed());
         let got = if wait.is_zero() {
             None
@@ -332,16 +344,6 @@ where
             }
             // No progress for a reply time: ask where the device stands.
             timer.expired();
-            let since = *silent_since.get_or_insert_with(Instant::now);
-            if since.elapsed() > give_up {
-                return Err(Error::input(format!(
-                    "{} stopped answering after {} of {} samples (nothing for {:.1} s)",
-                    link.describe(),
-                    acked,
-                    sum.samples,
-                    give_up.as_secs_f64()
-                )));
-            }
             link.send(&HostMsg::StatusQuery)?;
             sum.status_queries += 1;
             probing.get_or_insert(0);
@@ -353,7 +355,6 @@ where
             continue;
         }
         last_heard = Instant::now();
-        silent_since = None;
         match &r.frame.msg {
             DeviceMsg::ScoreReport(rep) => {
                 let Some(idx) = rep.sample.checked_sub(base) else {
@@ -368,6 +369,7 @@ where
                         timer.observe(sent.elapsed());
                     }
                     acked = idx + 1;
+                    last_progress = Instant::now();
                     // Progress: an answer still on its way to an earlier
                     // query describes the device before this sample and must
                     // not be read as a loss of the samples sent since.
@@ -382,6 +384,7 @@ where
                         inflight.pop_front();
                     }
                     acked = taken;
+                    last_progress = Instant::now();
                     probing = None;
                 }
                 // After a silence, a status that counts none of the samples
@@ -613,6 +616,87 @@ pub fn upload(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::link::{Chunk, Transport};
+    use plumb_model::wire::{DeviceFrame, FaultTally, Level, LinkCounters, State};
+    use std::collections::VecDeque;
+
+    /// A device that acknowledges the feed's set-up and answers every status
+    /// query, but never takes a sample: frames keep coming, progress never.
+    struct Stuck {
+        out: VecDeque<Vec<u8>>,
+        seq: u32,
+    }
+
+    impl Stuck {
+        fn reply(&mut self, msg: DeviceMsg) {
+            self.out
+                .push_back(wire::encode_frame_vec(&DeviceFrame { seq: self.seq, msg }));
+            self.seq += 1;
+        }
+    }
+
+    impl Transport for Stuck {
+        fn send(&mut self, bytes: &[u8]) -> std::io::Result<()> {
+            for frame in bytes.split(|b| *b == 0).filter(|f| !f.is_empty()) {
+                let mut scratch = [0u8; 512];
+                match wire::decode_frame::<HostMsg>(frame, &mut scratch) {
+                    Ok(HostMsg::ResetStats) => self.reply(DeviceMsg::Ack(Ack::StatsReset)),
+                    Ok(HostMsg::SetReports { on }) => {
+                        self.reply(DeviceMsg::Ack(Ack::Reports { on }))
+                    }
+                    Ok(HostMsg::StatusQuery) => self.reply(DeviceMsg::Status(Status {
+                        samples: 0,
+                        state: State::Priming,
+                        hot: 0,
+                        faults: FaultTally::default(),
+                        levels: [Level::default(); 3],
+                        link: LinkCounters::default(),
+                        last_event: None,
+                        model_id: 1,
+                    })),
+                    _ => {}
+                }
+            }
+            Ok(())
+        }
+        fn recv(&mut self, timeout: Duration) -> Chunk {
+            match self.out.pop_front() {
+                Some(b) => Chunk::Bytes(b),
+                None => {
+                    std::thread::sleep(timeout.min(Duration::from_millis(2)));
+                    Chunk::Timeout
+                }
+            }
+        }
+        fn describe(&self) -> String {
+            "stuck device".into()
+        }
+    }
+
+    /// A device that answers but takes no sample ends the feed with an
+    /// error after `reply × tries`, instead of a feed that never returns.
+    #[test]
+    fn feed_ends_when_the_device_takes_no_sample() {
+        let mut link = Link::new(Box::new(Stuck {
+            out: VecDeque::new(),
+            seq: 0,
+        }));
+        let cfg = FeedConfig {
+            patience: Patience {
+                reply: Duration::from_millis(20),
+                tries: 10,
+            },
+            ..FeedConfig::default()
+        };
+        let start = Instant::now();
+        let samples = vec![Ok(vec![1.0f32, 2.0])];
+        let err = feed(&mut link, samples, cfg, &mut |_| {}).unwrap_err();
+        let took = start.elapsed();
+        let msg = err.to_string();
+        assert!(msg.contains("took no sample for 0.2 s"), "{msg}");
+        assert!(msg.contains("stopped after 0 of 1 samples"), "{msg}");
+        assert!(took < Duration::from_secs(5), "{took:?}");
+    }
 
     fn ms(v: f64) -> Duration {
         Duration::from_secs_f64(v / 1e3)
