@@ -111,23 +111,7 @@ fn main() {
         black_box(mo);
     });
     run("parse + projection", &mut || {
-        let mut latent = Vec::new();
-        set.scan(
-            &all,
-            &stage(),
-            |c| {
-                let mut out = vec![0.0; c.rows() * m];
-                for (row, t) in c.iter_rows().zip(out.chunks_exact_mut(m)) {
-                    pca.project(row, m, t);
-                }
-                Ok(out)
-            },
-            |t, _| {
-                latent.extend_from_slice(&t);
-                Ok(())
-            },
-        )
-        .expect("scan");
+        let latent = plumb::fit::project_rows(&set, &all, &stage(), &pca, m, 0).expect("scan");
         black_box(latent);
     });
 }

@@ -413,21 +413,13 @@ pub fn fit(
     lap("pca", &mut timings);
 
     // 4. Latent scores.
-    let mut latent: Vec<f64> = Vec::with_capacity(n_train as usize * m);
-    train.scan(
+    let latent = project_rows(
+        train,
         &train_sel,
         &progress.stage("project", bytes, true),
-        |c| {
-            let mut out = vec![0.0; c.rows() * m];
-            for (row, t) in c.iter_rows().zip(out.chunks_exact_mut(m)) {
-                pca.project(row, m, t);
-            }
-            Ok(out)
-        },
-        |t, _| {
-            latent.extend_from_slice(&t);
-            Ok(())
-        },
+        &pca,
+        m,
+        n_train as usize,
     )?;
     lap("project", &mut timings);
 
@@ -756,4 +748,34 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
         return Err(Error::io(path, "write", &e));
     }
     Ok(())
+}
+
+/// The second pass over the logs: the first `m` latent scores of every
+/// selected row, `m` values per row in row order (the only per-row data a
+/// fit keeps; `rows_hint` sizes the buffer).
+pub fn project_rows(
+    set: &LogSet,
+    select: &Selection,
+    stage: &Stage,
+    pca: &Pca,
+    m: usize,
+    rows_hint: usize,
+) -> Result<Vec<f64>> {
+    let mut latent: Vec<f64> = Vec::with_capacity(rows_hint * m);
+    set.scan(
+        select,
+        stage,
+        |c| {
+            let mut out = vec![0.0; c.rows() * m];
+            for (row, t) in c.iter_rows().zip(out.chunks_exact_mut(m)) {
+                pca.project(row, m, t);
+            }
+            Ok(out)
+        },
+        |t, _| {
+            latent.extend_from_slice(&t);
+            Ok(())
+        },
+    )?;
+    Ok(latent)
 }

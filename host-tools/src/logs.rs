@@ -991,6 +991,22 @@ const POW10: [f64; 23] = [
 /// `str::parse::<f64>` gives (Clinger 1990, the fast path). Returns the
 /// value and the bytes read; `None` for anything else, which the caller
 /// parses the general way.
+/// Reads the decimal digits of `b` from `*i` on into the mantissa `w`
+/// (wrapping: the caller refuses more than 19 significant digits), counting
+/// significant digits (those after leading zeros) in `digits`.
+#[inline(always)]
+fn digit_run(b: &[u8], i: &mut usize, w: &mut u64, digits: &mut u32) {
+    while let Some(&c) = b.get(*i) {
+        let v = c.wrapping_sub(b'0');
+        if v > 9 {
+            break;
+        }
+        *w = w.wrapping_mul(10).wrapping_add(u64::from(v));
+        *digits += u32::from(*w != 0);
+        *i += 1;
+    }
+}
+
 #[inline]
 fn plain_decimal(b: &[u8]) -> Option<(f64, usize)> {
     let mut i = 0;
@@ -1008,15 +1024,7 @@ fn plain_decimal(b: &[u8]) -> Option<(f64, usize)> {
     let mut w: u64 = 0;
     let mut digits = 0u32; // significant digits (after leading zeros)
     let start = i;
-    while let Some(&c) = b.get(i) {
-        let v = c.wrapping_sub(b'0');
-        if v > 9 {
-            break;
-        }
-        w = w.wrapping_mul(10).wrapping_add(u64::from(v));
-        digits += u32::from(w != 0);
-        i += 1;
-    }
+    digit_run(b, &mut i, &mut w, &mut digits);
     if i == start {
         return None;
     }
@@ -1024,15 +1032,7 @@ fn plain_decimal(b: &[u8]) -> Option<(f64, usize)> {
     if b.get(i) == Some(&b'.') {
         i += 1;
         let frac = i;
-        while let Some(&c) = b.get(i) {
-            let v = c.wrapping_sub(b'0');
-            if v > 9 {
-                break;
-            }
-            w = w.wrapping_mul(10).wrapping_add(u64::from(v));
-            digits += u32::from(w != 0);
-            i += 1;
-        }
+        digit_run(b, &mut i, &mut w, &mut digits);
         q = -((i - frac) as i64);
     }
     if digits > 19 {
