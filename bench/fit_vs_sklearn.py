@@ -148,12 +148,16 @@ def main():
     calib = timings.get("calibrate", 0.0)
     pl_fit = pl[0] - calib
     mix = fit["mixture"]
-    pl_iter = mix["em_seconds"] / max(mix["em_iterations"], 1)
+    # The fastest single iteration, as for scikit-learn (best of three on the
+    # fitted model); the mean over the fit, initialisations included, beside.
+    pl_iter = mix["em_fastest_iteration_seconds"]
+    pl_iter_mean = mix["em_seconds"] / max(mix["em_iterations"], 1)
     print(f"\n{a.rows} rows x 32 features, CSV {size:.0f} MiB, k = 4, m = {a.components}, "
           f"{a.restarts} restarts, tol 1e-3, max_iter 100\n")
     print("| what | scikit-learn | plumb | ratio (sklearn / plumb) |")
     print("|---|---|---|---|")
-    print(f"| one EM iteration | {skb['iter']*1e3:.1f} ms | {pl_iter*1e3:.1f} ms | {skb['iter']/pl_iter:.1f}x |")
+    print(f"| one EM iteration (fastest) | {skb['iter']*1e3:.1f} ms | {pl_iter*1e3:.1f} ms | {skb['iter']/pl_iter:.1f}x |")
+    print(f"| EM time per iteration over the fit, initialisations included (plumb) | | {pl_iter_mean*1e3:.1f} ms | {skb['iter']/pl_iter_mean:.1f}x |")
     print(f"| whole fit from a binary array (sklearn) vs from CSV (plumb, without calibration) | {sk_bin[0]:.2f} s | {pl_fit:.2f} s | {sk_bin[0]/pl_fit:.1f}x |")
     print(f"| CSV end to end (pandas + sklearn vs plumb, without calibration) | {sk_csv[0]:.2f} s | {pl_fit:.2f} s | {sk_csv[0]/pl_fit:.1f}x |")
     print(f"| peak memory (binary array / CSV) | {sk_bin[1]:.0f} / {sk_csv[1]:.0f} MiB | {pl[1]:.0f} MiB | {sk_bin[1]/pl[1]:.1f}x / {sk_csv[1]/pl[1]:.1f}x |")

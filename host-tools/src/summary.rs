@@ -480,10 +480,12 @@ impl Summary {
             };
             let _ = writeln!(
                 o,
-                "  EM: {} iterations in {:.2} s ({:.1} ms per iteration); runs of k = {}: {}",
+                "  EM: {} iterations in {:.2} s ({:.1} ms per iteration with initialisations, \
+                 fastest {:.1} ms); runs of k = {}: {}",
                 mx.em_iterations,
                 mx.em_seconds,
                 1e3 * per_iter,
+                1e3 * mx.em_fastest_iteration_seconds,
                 mx.k,
                 mx.runs
                     .iter()
