@@ -10,15 +10,21 @@
 //! * The running model changes only when a shadow of the upload protocol,
 //!   fed the same bytes, saw a complete upload whose whole-file CRC matched
 //!   and whose file passes every check; it then runs that file's model.
+//! * With bit 7 of the first input byte set the device trusts only files
+//!   signed by the target's key (uploads may be sent signed, and damaged
+//!   after signing): the shadow then also needs a valid signature, and every
+//!   switch must be to a file the target signed itself (a fuzzer cannot
+//!   forge ed25519).
 //! * The drift line follows the drift state.
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use plumb_firmware::endpoint::{Endpoint, RamSlots};
+use plumb_firmware::endpoint::{Config, Endpoint, RamSlots};
 use plumb_firmware::{Detector, DriftState};
 use plumb_fuzz::ops::{FileKind, Input, Op};
 use plumb_fuzz::{builtin_model, file_of, file_unchecked, other_model, Chunker, Line, Pipe};
-use plumb_model::file::{Label, ModelFile};
+use plumb_model::file::{self, Label, ModelFile};
+use plumb_model::signature::{self, TrustedKey};
 use plumb_model::wire::{
     crc32, encode_frame_vec, Ack, DeviceFrame, DeviceFrameDecoder, DeviceMsg, HostFrameDecoder,
     HostMsg, Slot, MAX_CHUNK,
@@ -29,12 +35,44 @@ use std::sync::OnceLock;
 /// Bytes per RAM slot.
 const SLOT: usize = 2048;
 
+/// Seed of the key a trusting device accepts (fixed: the target checks the
+/// policy, not keys).
+const SEED: [u8; 32] = [9; 32];
+
+fn trusted_key() -> TrustedKey {
+    TrustedKey::new(signature::public_key(&SEED))
+}
+
 struct Files {
     same: Vec<u8>,
     other: Vec<u8>,
     labelled: Vec<u8>,
     invalid: Vec<u8>,
     too_wide: Vec<u8>,
+    /// The five above signed with [`SEED`], in `FileKind` order.
+    signed: [Vec<u8>; 5],
+}
+
+impl Files {
+    fn get(&self, kind: FileKind, signed: bool) -> &[u8] {
+        let i = match kind {
+            FileKind::Same => 0,
+            FileKind::Other => 1,
+            FileKind::Labelled => 2,
+            FileKind::Invalid => 3,
+            FileKind::TooWide => 4,
+        };
+        if signed {
+            return &self.signed[i];
+        }
+        [
+            &self.same,
+            &self.other,
+            &self.labelled,
+            &self.invalid,
+            &self.too_wide,
+        ][i]
+    }
 }
 
 fn files() -> &'static Files {
@@ -60,12 +98,27 @@ fn files() -> &'static Files {
         invalid.scale[1] = 0.0;
         let mut wide = plumb_fuzz::support::example_model(65, 1, 1, 3);
         wide.meta.id = 0x0B0B_0004;
+        let (same, other, invalid, too_wide) = (
+            file_of(&builtin_model()),
+            file_of(&other_model(0x0B0B_0001)),
+            file_unchecked(&invalid),
+            file_of(&wide),
+        );
+        let sign = |f: &[u8]| signature::sign(f, &SEED).expect("a framed file signs");
+        let signed = [
+            sign(&same),
+            sign(&other),
+            sign(&labelled),
+            sign(&invalid),
+            sign(&too_wide),
+        ];
         Files {
-            same: file_of(&builtin_model()),
-            other: file_of(&other_model(0x0B0B_0001)),
+            same,
+            other,
             labelled,
-            invalid: file_unchecked(&invalid),
-            too_wide: file_of(&wide),
+            invalid,
+            too_wide,
+            signed,
         }
     })
 }
@@ -133,15 +186,9 @@ fn stream(ops: &[Op]) -> Vec<u8> {
                 wrong_crc,
                 chunk,
                 no_commit,
+                signed,
             } => {
-                let f = files();
-                let mut bytes = match file {
-                    FileKind::Same => f.same.clone(),
-                    FileKind::Other => f.other.clone(),
-                    FileKind::Labelled => f.labelled.clone(),
-                    FileKind::Invalid => f.invalid.clone(),
-                    FileKind::TooWide => f.too_wide.clone(),
-                };
+                let mut bytes = files().get(*file, *signed).to_vec();
                 let crc = crc32(&bytes) ^ u32::from(*wrong_crc);
                 if let Some((at, xor)) = flip {
                     let i = usize::from(*at) % bytes.len();
@@ -173,6 +220,8 @@ fn stream(ops: &[Op]) -> Vec<u8> {
 /// The upload protocol as PROTOCOL.md states it, on the host messages the
 /// device received.
 struct Shadow {
+    /// The device trusts only [`trusted_key`].
+    trusted: bool,
     rx: HostFrameDecoder,
     upload: Option<(u32, u32, Vec<u8>)>,
     model_id: u32,
@@ -215,7 +264,19 @@ impl Shadow {
                 let complete = matches!(&self.upload, Some((t, _, g)) if *t as usize == g.len());
                 if complete {
                     let (_, crc, file) = self.upload.take().expect("checked");
-                    if crc32(&file) == crc {
+                    let signed_ok = || {
+                        let ok = file::split(&file)
+                            .is_ok_and(|s| signature::verify(&s, &trusted_key()).is_ok());
+                        if ok {
+                            // Only the target holds the key.
+                            assert!(
+                                files().signed.iter().any(|f| *f == file),
+                                "a file the target never signed verifies"
+                            );
+                        }
+                        ok
+                    };
+                    if crc32(&file) == crc && (!self.trusted || signed_ok()) {
                         if let Ok(det) = Detector::from_file(&file) {
                             self.model_id = det.model().meta.id;
                             self.active = Some(self.active.map_or(Slot::A, Slot::other));
@@ -235,6 +296,13 @@ fuzz_target!(|data: &[u8]| {
     let first_id = builtin.model().meta.id;
     let mut ep: Endpoint<RamSlots<SLOT>, Line> =
         Endpoint::new(builtin, RamSlots::new(), Line::default());
+    let trusted = input.trusted();
+    if trusted {
+        ep.set_config(Config {
+            trusted_key: Some(trusted_key()),
+            ..Config::DEFAULT
+        });
+    }
     let bytes = stream(&input.ops);
     let mut pipe = Pipe {
         to_device: VecDeque::from(bytes.clone()),
@@ -242,6 +310,7 @@ fuzz_target!(|data: &[u8]| {
         chunker: Chunker::new(u64::from(input.read_seed), usize::from(input.max_read)),
     };
     let mut shadow = Shadow {
+        trusted,
         rx: HostFrameDecoder::new(),
         upload: None,
         model_id: first_id,

@@ -83,13 +83,16 @@ pub enum Op {
         chunk: u8,
         /// Stop before the commit.
         no_commit: bool,
+        /// Send the file signed with the target's key (before any damage).
+        signed: bool,
     },
 }
 
 /// A whole endpoint run.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Input {
-    /// Seed of the read sizes.
+    /// Seed of the read sizes; with bit 7 set the device runs only models
+    /// signed by the target's key ([`Input::trusted`]).
     pub read_seed: u8,
     /// Largest read (0 is taken as 1).
     pub max_read: u8,
@@ -126,6 +129,11 @@ impl Reader<'_> {
 const OPS: u8 = 14;
 
 impl Input {
+    /// Whether the device of this run trusts only signed models.
+    pub fn trusted(&self) -> bool {
+        self.read_seed & 0x80 != 0
+    }
+
     /// Reads operations until the bytes run out.
     pub fn parse(data: &[u8]) -> Input {
         let mut r = Reader(data);
@@ -170,6 +178,7 @@ impl Input {
                         wrong_crc: flags & 16 != 0,
                         chunk: r.u8(),
                         no_commit: flags & 32 != 0,
+                        signed: flags & 64 != 0,
                     }
                 }
             };
@@ -236,12 +245,14 @@ impl Input {
                     wrong_crc,
                     chunk,
                     no_commit,
+                    signed,
                 } => {
                     let kind = FileKind::ALL.iter().position(|k| k == file).unwrap_or(0) as u8;
                     let flags = kind
                         | if flip.is_some() { 8 } else { 0 }
                         | if *wrong_crc { 16 } else { 0 }
-                        | if *no_commit { 32 } else { 0 };
+                        | if *no_commit { 32 } else { 0 }
+                        | if *signed { 64 } else { 0 };
                     let (at, xor) = flip.unwrap_or((0, 0));
                     out.push(13);
                     out.push(flags);

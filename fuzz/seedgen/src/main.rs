@@ -198,6 +198,7 @@ fn main() {
                         wrong_crc: false,
                         chunk: 127,
                         no_commit: false,
+                        signed: false,
                     },
                     Op::Near([1, 2, 3, 4]),
                     Op::GreetingQuery,
@@ -216,6 +217,7 @@ fn main() {
                         wrong_crc: false,
                         chunk: 63,
                         no_commit: false,
+                        signed: false,
                     },
                     Op::Begin { total: 10, crc: 0 },
                     Op::Chunk {
@@ -228,6 +230,41 @@ fn main() {
                     Op::Zero,
                     Op::Raw(vec![0x55; 20]),
                     Op::Zero,
+                ],
+            },
+        ),
+        (
+            "upload_trusted.bin",
+            Input {
+                // Bit 7: the device trusts only the target's key.
+                read_seed: 0x84,
+                max_read: 33,
+                ops: vec![
+                    Op::Upload {
+                        file: FileKind::Other,
+                        flip: None,
+                        wrong_crc: false,
+                        chunk: 100,
+                        no_commit: false,
+                        signed: false,
+                    },
+                    Op::Upload {
+                        file: FileKind::Labelled,
+                        flip: None,
+                        wrong_crc: false,
+                        chunk: 127,
+                        no_commit: false,
+                        signed: true,
+                    },
+                    Op::Upload {
+                        file: FileKind::Other,
+                        flip: Some((120, 0x01)),
+                        wrong_crc: false,
+                        chunk: 90,
+                        no_commit: false,
+                        signed: true,
+                    },
+                    Op::Near([3, -2, 1, 0]),
                 ],
             },
         ),
