@@ -15,18 +15,25 @@ use plumb::pca::{Moments, Pca};
 use plumb::progress::Progress;
 use std::hint::black_box;
 use std::path::PathBuf;
-use std::time::Instant;
 
-/// CPU seconds of this process so far (user + system, all threads), from
-/// `/proc/self/stat` (Linux; 0 elsewhere).
-fn cpu_seconds() -> f64 {
-    let Ok(stat) = std::fs::read_to_string("/proc/self/stat") else {
-        return 0.0;
-    };
-    let rest = &stat[stat.rfind(')').map_or(0, |p| p + 2)..];
-    let f: Vec<&str> = rest.split_whitespace().collect();
-    let ticks: f64 = f[11].parse::<f64>().unwrap_or(0.0) + f[12].parse::<f64>().unwrap_or(0.0);
-    ticks / 100.0
+mod support;
+use support::best_of;
+
+/// Moments of every row of `set`, as pass 1 computes them.
+fn moments(set: &LogSet, all: &Selection, stage: &plumb::progress::Stage) -> Moments {
+    let d = set.features();
+    let mut mo = Moments::new(d);
+    set.scan(
+        all,
+        stage,
+        |c| Ok(Moments::from_rows(&c.values, d)),
+        |m, _| {
+            mo.merge(&m);
+            Ok(())
+        },
+    )
+    .expect("scan");
+    mo
 }
 
 fn main() {
@@ -50,33 +57,13 @@ fn main() {
     let all = Selection::all(1);
     let progress = Progress::hidden();
     let stage = || progress.stage("bench", set.total_bytes(), true);
-    let pca = {
-        let mut mo = Moments::new(d);
-        set.scan(
-            &all,
-            &stage(),
-            |c| Ok(Moments::from_rows(&c.values, d)),
-            |m, _| {
-                mo.merge(&m);
-                Ok(())
-            },
-        )
-        .expect("scan");
-        Pca::from_moments(&mo).expect("pca")
-    };
+    let pca = Pca::from_moments(&moments(&set, &all, &stage())).expect("pca");
     let m = 8.min(d - 1);
     println!("{path}: {mib:.0} MiB, {d} features, {threads} threads");
     println!("| pass | MiB/s (best of 3) | CPU s per pass |");
     println!("|---|---|---|");
     let run = |name: &str, f: &mut dyn FnMut()| {
-        let mut best = f64::INFINITY;
-        let cpu0 = cpu_seconds();
-        for _ in 0..3 {
-            let t = Instant::now();
-            f();
-            best = best.min(t.elapsed().as_secs_f64());
-        }
-        let cpu = (cpu_seconds() - cpu0) / 3.0;
+        let (best, cpu) = best_of(3, f);
         println!("| {name} | {:.0} | {cpu:.2} |", mib / best);
     };
     run("count lines", &mut || {
@@ -97,18 +84,7 @@ fn main() {
         black_box(rows);
     });
     run("parse + moments", &mut || {
-        let mut mo = Moments::new(d);
-        set.scan(
-            &all,
-            &stage(),
-            |c| Ok(Moments::from_rows(&c.values, d)),
-            |x, _| {
-                mo.merge(&x);
-                Ok(())
-            },
-        )
-        .expect("scan");
-        black_box(mo);
+        black_box(moments(&set, &all, &stage()));
     });
     run("parse + projection", &mut || {
         let latent = plumb::fit::project_rows(&set, &all, &stage(), &pca, m, 0).expect("scan");
