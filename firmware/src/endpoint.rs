@@ -56,9 +56,13 @@
 //! with [`Endpoint::start`]; [`Endpoint::boot`] holds the places by value
 //! and returns the endpoint by value, for hosts and tests.
 
+mod flash;
 mod slots;
 
-pub use slots::{newest_valid, slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, RECORD_LEN};
+pub use flash::{Flash, FlashLayout, FlashSlots};
+pub use slots::{
+    newest_valid, slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, FILE_OFFSET, RECORD_LEN,
+};
 
 use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
 use core::borrow::BorrowMut;

@@ -203,8 +203,8 @@ fn sample(x: &[f32]) -> HostMsg {
     }
 }
 
-struct Rig<const R: usize = 32> {
-    ep: Endpoint<RamSlots<SLOT>, Line, R>,
+struct Rig<const R: usize = 32, S: ModelSlots = RamSlots<SLOT>> {
+    ep: Endpoint<S, Line, R>,
     pipe: Pipe,
     line: Line,
     rx: DeviceFrameDecoder,
@@ -212,6 +212,19 @@ struct Rig<const R: usize = 32> {
 
 impl<const R: usize> Rig<R> {
     fn boot_with(slots: RamSlots<SLOT>, max_read: usize) -> Self {
+        Self::boot_on(slots, max_read)
+    }
+
+    /// Boots on model 1 in slot A, generation 1.
+    fn new() -> Self {
+        let mut slots = RamSlots::new();
+        slots.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
+        Self::boot_with(slots, 64)
+    }
+}
+
+impl<const R: usize, S: ModelSlots> Rig<R, S> {
+    fn boot_on(slots: S, max_read: usize) -> Self {
         let line = Line::default();
         let ep = Endpoint::boot(slots, line.clone(), None).expect("a valid slot");
         Rig {
@@ -220,13 +233,6 @@ impl<const R: usize> Rig<R> {
             line,
             rx: DeviceFrameDecoder::new(),
         }
-    }
-
-    /// Boots on model 1 in slot A, generation 1.
-    fn new() -> Self {
-        let mut slots = RamSlots::new();
-        slots.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
-        Self::boot_with(slots, 64)
     }
 
     fn send_raw(&mut self, bytes: &[u8]) -> Vec<DeviceFrame> {
@@ -1516,5 +1522,195 @@ mod signed_models {
         slots.store(Slot::B, &file_of(&model(2, 0.0)), 2).unwrap();
         let ep = Endpoint::<_, _>::boot(slots, Line::default(), None).unwrap();
         assert_eq!(ep.detector().model().meta.id, 2);
+    }
+}
+
+// ------------------------------------------------- model slots in NOR flash
+
+mod flash_slots {
+    use super::*;
+    use plumb_firmware::endpoint::{Flash, FlashLayout, FlashSlots, FILE_OFFSET, RECORD_LEN};
+
+    /// Bytes per region in these tests (one erase unit).
+    const REGION: usize = 4096;
+    const LAYOUT: FlashLayout = FlashLayout {
+        regions: [0, REGION],
+        region_len: REGION,
+    };
+    /// Bytes one step of an erase clears.
+    const ERASE_STEP: usize = 64;
+
+    /// NOR flash that can lose power: erase sets bytes to `0xFF`,
+    /// programming ANDs bytes in (it can only clear bits). Every programmed
+    /// byte and every erase step of [`ERASE_STEP`] bytes costs one unit of
+    /// `budget`; when it runs out the operation stops where it is and every
+    /// later one fails, until the test restores power.
+    #[derive(Clone)]
+    struct SimFlash {
+        mem: Vec<u8>,
+        budget: Option<usize>,
+        steps: usize,
+    }
+
+    impl SimFlash {
+        fn new() -> Self {
+            SimFlash {
+                mem: vec![0xFF; 2 * REGION],
+                budget: None,
+                steps: 0,
+            }
+        }
+
+        fn step(&mut self) -> Result<(), SlotError> {
+            match &mut self.budget {
+                Some(0) => return Err(SlotError::Device),
+                Some(b) => *b -= 1,
+                None => {}
+            }
+            self.steps += 1;
+            Ok(())
+        }
+    }
+
+    impl Flash for SimFlash {
+        fn memory(&self) -> &[u8] {
+            &self.mem
+        }
+
+        fn erase(&mut self, slot: Slot) -> Result<(), SlotError> {
+            let base = LAYOUT.regions[slot.index()];
+            // From the end of the region back, so the record at its start
+            // is the last thing to go: the order least kind to the slots.
+            for i in (0..REGION / ERASE_STEP).rev() {
+                self.step()?;
+                let at = base + i * ERASE_STEP;
+                self.mem[at..at + ERASE_STEP].fill(0xFF);
+            }
+            Ok(())
+        }
+
+        fn program(&mut self, offset: usize, bytes: &[u8]) -> Result<(), SlotError> {
+            for (i, b) in bytes.iter().enumerate() {
+                self.step()?;
+                self.mem[offset + i] &= b;
+            }
+            Ok(())
+        }
+    }
+
+    fn store(slots: &mut FlashSlots<SimFlash>, slot: Slot, file: &[u8], generation: u32) {
+        slots.erase(slot).unwrap();
+        slots.write(slot, 0, file).unwrap();
+        let record = SlotRecord {
+            generation,
+            len: file.len() as u32,
+            crc: wire::crc32(file),
+        };
+        slots.commit(slot, record).unwrap();
+    }
+
+    /// The running slot and model id.
+    type Running = (Option<Slot>, u32);
+
+    fn running(ep: &Endpoint<FlashSlots<SimFlash>, Line>) -> Running {
+        (ep.active_slot(), ep.detector().model().meta.id)
+    }
+
+    #[test]
+    fn layout_bounds_and_read_back() {
+        let mut slots = FlashSlots::new(SimFlash::new(), LAYOUT);
+        assert_eq!(slots.capacity() as usize, REGION - FILE_OFFSET);
+        // Erased flash holds no record.
+        assert_eq!(slots.record(Slot::A), None);
+        assert_eq!(slots.read(Slot::B).len(), REGION - FILE_OFFSET);
+        let cap = slots.capacity();
+        assert_eq!(slots.write(Slot::A, cap - 1, &[1]), Ok(()));
+        assert_eq!(
+            slots.write(Slot::A, cap - 1, &[1, 2]),
+            Err(SlotError::OutOfBounds)
+        );
+        assert_eq!(
+            slots.write(Slot::A, u32::MAX, &[1]),
+            Err(SlotError::OutOfBounds)
+        );
+        // Slot B's bytes live in the second region, after its record area.
+        slots.write(Slot::B, 0, &[0x12, 0x34]).unwrap();
+        let at = REGION + FILE_OFFSET;
+        assert_eq!(&slots.flash().mem[at..at + 2], &[0x12, 0x34]);
+        // Programming cannot set bits: writing over written bytes without
+        // an erase reads back wrong and is refused.
+        assert_eq!(slots.write(Slot::B, 0, &[0xFF]), Err(SlotError::Device));
+        let record = SlotRecord {
+            generation: 7,
+            len: 2,
+            crc: 9,
+        };
+        slots.commit(Slot::B, record).unwrap();
+        assert_eq!(slots.record(Slot::B), Some(record));
+        assert_eq!(
+            &slots.flash().mem[REGION..REGION + RECORD_LEN],
+            &record.to_bytes()
+        );
+        slots.erase(Slot::B).unwrap();
+        assert_eq!(slots.record(Slot::B), None);
+        assert_eq!(slots.record(Slot::A), None);
+    }
+
+    /// Power fails after `cut` steps of an upload of model 9 (or never);
+    /// returns what ran right after the upload, what boots once power is
+    /// back, and the steps the upload took.
+    fn upload_with_cut(start: &SimFlash, cut: Option<usize>) -> (Running, Running, usize) {
+        let mut flash = start.clone();
+        flash.steps = 0;
+        // Boot only reads, so the budget is all the upload's.
+        flash.budget = cut;
+        let mut rig: Rig<32, FlashSlots<SimFlash>> =
+            Rig::boot_on(FlashSlots::new(flash, LAYOUT), 64);
+        let before = running(&rig.ep);
+        let file = file_of(&model(9, 0.3));
+        let answers = rig.upload(&file, wire::crc32(&file));
+        let after = running(&rig.ep);
+        if switched(&answers).is_none() {
+            assert_eq!(after, before, "a failed upload keeps the running model");
+            assert!(refusal(&answers).is_some(), "{answers:?}");
+        }
+        // Power back, reboot.
+        let (_, slots, _) = rig.ep.release();
+        let mut flash = slots.release();
+        let steps = flash.steps;
+        flash.budget = None;
+        let ep = Endpoint::<_, Line>::boot(FlashSlots::new(flash, LAYOUT), Line::default(), None)
+            .expect("a whole model boots after any cut");
+        (after, running(&ep), steps)
+    }
+
+    #[test]
+    fn power_cut_at_every_step_of_an_upload_boots_a_whole_model() {
+        let one = file_of(&model(1, 0.0));
+        let two = file_of(&model(2, 0.1));
+        // Model 1 in A; and model 1 in A (older) with model 2 running in B,
+        // so the upload erases a region that holds a valid record.
+        let mut first = FlashSlots::new(SimFlash::new(), LAYOUT);
+        store(&mut first, Slot::A, &one, 1);
+        let mut second = FlashSlots::new(first.flash().clone(), LAYOUT);
+        store(&mut second, Slot::B, &two, 2);
+        for (start, old, target) in [
+            (first.release(), (Some(Slot::A), 1), Slot::B),
+            (second.release(), (Some(Slot::B), 2), Slot::A),
+        ] {
+            let (after, booted, total) = upload_with_cut(&start, None);
+            assert_eq!(after, (Some(target), 9));
+            assert_eq!(booted, (Some(target), 9));
+            // Erase steps, file bytes, record bytes: each is a place to cut.
+            assert_eq!(total, REGION / ERASE_STEP + one.len() + RECORD_LEN);
+            for cut in 0..total {
+                let (after, booted, _) = upload_with_cut(&start, Some(cut));
+                assert_eq!(after, old, "cut after {cut} of {total} steps");
+                assert_eq!(booted, old, "boot after a cut at {cut} of {total}");
+            }
+            // The record's last byte completes the upload.
+            let (_, booted, _) = upload_with_cut(&start, Some(total));
+            assert_eq!(booted, (Some(target), 9));
+        }
     }
 }

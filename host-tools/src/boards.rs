@@ -9,12 +9,13 @@
 //! `tests/tests/boards.rs` checks it).
 
 use crate::error::{Error, Result};
-use plumb_firmware::endpoint::{SlotRecord, RECORD_LEN};
+use plumb_firmware::endpoint::{SlotRecord, FILE_OFFSET, RECORD_LEN};
 use plumb_model::wire::{crc32, Slot};
 use std::fmt::Write;
 
-/// Offset of the model file in a slot region (the record is at 0).
-pub const DATA_OFFSET: u32 = 0x100;
+/// Offset of the model file in a slot region (the record is at 0): the
+/// firmware's [`FILE_OFFSET`].
+pub const DATA_OFFSET: u32 = FILE_OFFSET as u32;
 
 /// A board's slot layout.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -33,6 +33,12 @@ pub struct SlotRecord {
 /// Length of [`SlotRecord::to_bytes`].
 pub const RECORD_LEN: usize = 16;
 
+/// Offset of the model file in a slot region of a board's memory map: the
+/// region starts with the record ([`SlotRecord::to_bytes`]), the file
+/// follows here; bytes in between stay erased. [`FlashSlots`](super::FlashSlots),
+/// the emulator board's preload and the host's `plumb image` share it.
+pub const FILE_OFFSET: usize = 0x100;
+
 impl SlotRecord {
     /// A fixed 16-byte layout for storages that keep the record beside the
     /// slot: generation, length and file CRC as `u32` little-endian, then the

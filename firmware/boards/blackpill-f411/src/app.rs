@@ -20,7 +20,7 @@ use plumb_firmware::plumb_model::signature::TrustedKey;
 include!(concat!(env!("OUT_DIR"), "/trusted_key.rs"));
 
 use crate::drift_line::DriftLine;
-use crate::slots::FlashSlots;
+use crate::slots::BoardSlots;
 use crate::Board;
 
 /// The model file compiled into the image.
@@ -31,7 +31,7 @@ const FIRMWARE: &str = concat!("f411 ", env!("CARGO_PKG_VERSION"));
 
 /// The endpoint of this board; its places (detectors, resend ring) are lent
 /// from a static.
-type Ep = Endpoint<FlashSlots, DriftLine, DEFAULT_RETAINED, &'static mut Places>;
+type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RETAINED, &'static mut Places>;
 
 /// Builds the endpoint in a static and boots it there: the places
 /// (`Places::EMPTY`, zero and uninitialised bytes only) go into a static of
@@ -40,7 +40,7 @@ type Ep = Endpoint<FlashSlots, DriftLine, DEFAULT_RETAINED, &'static mut Places>
 /// board; on the emulated mps2-an386 the same steps need under 2 KiB of
 /// stack (BENCHMARKS.md).
 #[inline(never)]
-fn boot(slots: FlashSlots, drift: DriftLine) -> Option<&'static mut Ep> {
+fn boot(slots: BoardSlots, drift: DriftLine) -> Option<&'static mut Ep> {
     let config = Config {
         firmware: FIRMWARE,
         status_every: DEFAULT_STATUS_EVERY,

@@ -43,7 +43,7 @@ pub struct Board {
     /// DWT cycle counter.
     pub cycles: cycles::Cycles,
     /// Model slots in flash sectors 6 and 7.
-    pub slots: slots::FlashSlots,
+    pub slots: slots::BoardSlots,
 }
 
 #[entry]
@@ -78,7 +78,7 @@ fn main() -> ! {
 
     let cycles = cycles::Cycles::start(cp.DCB, cp.DWT);
 
-    let slots = slots::FlashSlots::new(LockedFlash::new(dp.FLASH));
+    let slots = slots::slots(LockedFlash::new(dp.FLASH));
 
     app::run(Board {
         link,

@@ -24,7 +24,7 @@
 //! `Endpoint::boot` picks the newest valid slot as on any board.
 
 use plumb_firmware::endpoint::{
-    slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, RECORD_LEN,
+    slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, FILE_OFFSET, RECORD_LEN,
 };
 use plumb_firmware::plumb_model::wire::Slot;
 
@@ -33,7 +33,7 @@ use crate::mmio;
 /// Size of one slot region in code memory.
 pub const REGION_LEN: usize = 0x2000;
 /// Offset of the model file in a region (the record is at offset 0).
-pub const DATA_OFFSET: usize = 0x100;
+pub const DATA_OFFSET: usize = FILE_OFFSET;
 /// Bytes one slot holds.
 pub const SLOT_CAPACITY: usize = REGION_LEN - DATA_OFFSET;
 /// Base addresses of the regions of slot A and slot B (see `memory.x`).
