@@ -129,7 +129,15 @@ impl<const N: usize> Default for RamSlots<N> {
 }
 
 impl<const N: usize> RamSlots<N> {
-    /// Two empty (invalid) slots.
+    /// Two empty slots, every byte zero: the same as [`RamSlots::new`] to
+    /// every reader (bytes never written are unspecified), and all zero, so
+    /// a `static` of it lives in `.bss` and is never built on the stack.
+    pub const EMPTY: Self = RamSlots {
+        data: [[0; N]; 2],
+        records: [None; 2],
+    };
+
+    /// Two empty (invalid) slots, bytes `0xFF` as in erased flash.
     pub const fn new() -> Self {
         RamSlots {
             data: [[0xFF; N]; 2],

@@ -1,13 +1,15 @@
 //! The only module of this crate that contains `unsafe` code.
 //!
 //! Everything that touches memory-mapped registers or memory that Rust does
-//! not own (the unused part of the stack), and the one `static mut` (the
-//! endpoint's detector places), goes through the small safe API below. Each
-//! unsafe block states why it is sound for this board.
+//! not own (the unused part of the stack), and the two `static mut`s (the
+//! endpoint's detector places and the RAM model slots), goes through the
+//! small safe API below. Each unsafe block states why it is sound for this
+//! board.
 
+use crate::slots::SLOT_CAPACITY;
 use core::ptr;
 use core::sync::atomic::{AtomicBool, Ordering};
-use plumb_firmware::endpoint::Places;
+use plumb_firmware::endpoint::{Places, RamSlots};
 
 /// The endpoint's two detector places and resend ring (about 19 KiB).
 /// `Places::EMPTY` is zero and uninitialised bytes only, so this lives in
@@ -16,6 +18,15 @@ static mut PLACES: Places = Places::EMPTY;
 
 /// Set by the first [`endpoint_places`] call.
 static PLACES_TAKEN: AtomicBool = AtomicBool::new(false);
+
+/// The two RAM model slots (about 16 KiB), all zero: in `.bss` like
+/// [`PLACES`]. A `cortex_m::singleton!` would build the value on the stack
+/// first and copy it in, which the compiler elides at `opt-level = 3` but
+/// not at `"s"` (a 17 KiB stack frame in `main`).
+static mut SLOTS: RamSlots<SLOT_CAPACITY> = RamSlots::EMPTY;
+
+/// Set by the first [`slot_storage`] call.
+static SLOTS_TAKEN: AtomicBool = AtomicBool::new(false);
 
 /// The endpoint's places, lent for the program's lifetime: `Some` once,
 /// `None` on every later call.
@@ -29,6 +40,18 @@ pub fn endpoint_places() -> Option<&'static mut Places> {
     // it. `addr_of_mut!` takes the address without an intermediate
     // reference.
     Some(unsafe { &mut *ptr::addr_of_mut!(PLACES) })
+}
+
+/// The RAM model slots, lent for the program's lifetime: `Some` once,
+/// `None` on every later call.
+pub fn slot_storage() -> Option<&'static mut RamSlots<SLOT_CAPACITY>> {
+    if SLOTS_TAKEN.swap(true, Ordering::AcqRel) {
+        return None;
+    }
+    // SAFETY: as in `endpoint_places`: the swap lets one call past, the
+    // static is private to this module and named nowhere else, and no
+    // interrupt handler uses it.
+    Some(unsafe { &mut *ptr::addr_of_mut!(SLOTS) })
 }
 
 /// Base address of UART0 on the mps2-an386 machine (a CMSDK APB UART).

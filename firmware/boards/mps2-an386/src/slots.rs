@@ -57,8 +57,7 @@ pub enum Preload {
 impl BoardSlots {
     /// Takes the static RAM slots (once; `None` after that).
     pub fn take() -> Option<Self> {
-        let slots = cortex_m::singleton!(: RamSlots<SLOT_CAPACITY> = RamSlots::new())?;
-        Some(BoardSlots(slots))
+        Some(BoardSlots(mmio::slot_storage()?))
     }
 
     /// Copies every intact region into its RAM slot.
