@@ -68,8 +68,19 @@ mps2_elf="$here/mps2-an386/target/$target/release/plumb-board-mps2-echo"
 build blackpill-f411 plumb-board-f411
 f411_elf=$elf
 
+# The real board with signature checks too (the emulator board is built and
+# run that way by tests/tests/qemu.rs); a throwaway public key is enough.
+log "build blackpill-f411 (release, --features trusted-key)"
+key_dir=$(mktemp -d)
+printf 'plumb-ed25519-public %s\n' "$(printf 'ab%.0s' $(seq 32))" >"$key_dir/check.pub"
+(cd "$here/blackpill-f411" && PLUMB_TRUSTED_KEY="$key_dir/check.pub" cargo build --release \
+    --features trusted-key --target-dir "$here/blackpill-f411/target/trusted-key")
+rm -rf "$key_dir"
+f411_trusted_elf="$here/blackpill-f411/target/trusted-key/$target/release/plumb-board-f411"
+[[ -f "$f411_trusted_elf" ]] || fail "no ELF at $f411_trusted_elf"
+
 log "image sizes (text = flash code + rodata, data = flash + RAM, bss = RAM)"
-arm-none-eabi-size "$mps2_endpoint_elf" "$mps2_elf" "$f411_elf"
+arm-none-eabi-size "$mps2_endpoint_elf" "$mps2_elf" "$f411_elf" "$f411_trusted_elf"
 
 # ---------------------------------------------------------------- emulator
 work=$(mktemp -d)

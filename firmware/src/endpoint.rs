@@ -35,7 +35,7 @@
 //!   detector's own checks pass and the slot's record is written; anything
 //!   else leaves the running model and its statistics untouched and is
 //!   answered with a refusal code;
-//! * with [`Config::trusted_key`] set, an upload (and a slot at boot, see
+//! * with the `signatures` feature and `Config::trusted_key` set, an upload (and a slot at boot, see
 //!   [`Endpoint::boot_with`]) must also carry a valid ed25519 signature by
 //!   that key (`shared-model/FORMAT.md`, "Signature"), checked after the
 //!   file's framing and CRC and before its payload is decoded; unsigned and
@@ -69,6 +69,7 @@ use core::borrow::BorrowMut;
 use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
 use embedded_io::{ErrorType, Read, ReadReady, Write};
 use heapless::Deque;
+#[cfg(feature = "signatures")]
 use plumb_model::signature::{self, TrustedKey};
 use plumb_model::wire::{
     self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, FaultKind, FaultTally, Greeting,
@@ -98,7 +99,10 @@ pub struct Config {
     pub status_every: u32,
     /// Run only model files signed by this key (uploads, and slots at boot
     /// through [`Endpoint::boot_with`]); `None` runs any valid file. A
-    /// model built into the image is trusted as it is.
+    /// model built into the image is trusted as it is. Only with the
+    /// `signatures` feature: without it no ed25519 code is linked (about
+    /// 16 KB of flash on a Cortex-M4F) and every valid file runs.
+    #[cfg(feature = "signatures")]
     pub trusted_key: Option<TrustedKey>,
 }
 
@@ -108,6 +112,7 @@ impl Config {
     pub const DEFAULT: Config = Config {
         firmware: env!("CARGO_PKG_VERSION"),
         status_every: DEFAULT_STATUS_EVERY,
+        #[cfg(feature = "signatures")]
         trusted_key: None,
     };
 }
@@ -121,12 +126,20 @@ impl Default for Config {
 /// Whether a model file passes `config`'s signature policy: always without
 /// a trusted key; else framing and CRC first, then the signature (the
 /// payload is not decoded here).
+#[cfg(feature = "signatures")]
 pub fn check_trust(file: &[u8], config: &Config) -> Result<(), Reason> {
     let Some(key) = config.trusted_key else {
         return Ok(());
     };
     let sections = plumb_model::file::split(file).map_err(Reason::from)?;
     signature::verify(&sections, &key).map_err(Reason::from)
+}
+
+/// Whether a model file passes `config`'s signature policy: built without
+/// the `signatures` feature there is no trusted key, so every file does.
+#[cfg(not(feature = "signatures"))]
+pub fn check_trust(_file: &[u8], _config: &Config) -> Result<(), Reason> {
+    Ok(())
 }
 
 /// Why a call could not finish its output. Input problems are never errors:

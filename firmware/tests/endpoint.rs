@@ -1368,6 +1368,7 @@ fn footprint() {
     assert!(endpoint < 2 * detector + 8 * 1024, "{endpoint}");
 }
 
+#[cfg(feature = "signatures")]
 mod signed_models {
     use super::*;
     use plumb_model::signature::{self, KeyId, TrustedKey};

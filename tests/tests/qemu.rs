@@ -71,7 +71,8 @@ fn build_board(target: &str, key: Option<&Path>) -> PathBuf {
         .env_remove("PLUMB_MODEL")
         .env_remove("PLUMB_TRUSTED_KEY");
     if let Some(k) = key {
-        cmd.env("PLUMB_TRUSTED_KEY", k);
+        cmd.env("PLUMB_TRUSTED_KEY", k)
+            .args(["--features", "trusted-key"]);
     }
     let out = cmd.output().expect("run cargo to build the board");
     assert!(

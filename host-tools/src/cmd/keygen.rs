@@ -10,7 +10,7 @@ pub const LONG_ABOUT: &str = "\
 Make a new ed25519 key pair for signing model files: the secret key goes to KEY (readable by
 its owner only; keep it off the robots) and the public key to KEY.pub. Sign models with
 `plumb sign MODEL --key KEY --out SIGNED`; build a board that runs only models signed by
-this key with PLUMB_TRUSTED_KEY=KEY.pub (see the board's README). Prints the key id (the
+this key with PLUMB_TRUSTED_KEY=KEY.pub and --features trusted-key (see the board's README). Prints the key id (the
 first 8 bytes of SHA-512 of the public key, as `plumb inspect` and board refusals show it).
 Existing files are not overwritten unless --force.";
 
@@ -38,7 +38,8 @@ pub fn run(args: KeygenArgs) -> Result<u8> {
         println!("key id {}", key.id());
         println!("secret key {} (keep it private)", args.out.display());
         println!(
-            "public key {} (build a board with PLUMB_TRUSTED_KEY={})",
+            "public key {} (build a board with PLUMB_TRUSTED_KEY={} \
+             and --features trusted-key)",
             public.display(),
             public.display()
         );

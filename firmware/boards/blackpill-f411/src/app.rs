@@ -3,7 +3,8 @@
 //! 1. `Endpoint::idle_in` on static places, then `Endpoint::start` in
 //!    place: the newest valid flash slot, else the model compiled into the
 //!    image (`PLUMB_MODEL` at build time, see `build.rs`); built with
-//!    `PLUMB_TRUSTED_KEY`, slots and uploads must be signed by that key.
+//!    the `trusted-key` feature and `PLUMB_TRUSTED_KEY`, slots and uploads
+//!    must be signed by that key.
 //! 2. A greeting on the link, then the wire protocol
 //!    (`shared-model/PROTOCOL.md`) forever; the drift line follows the
 //!    drift state.
@@ -14,9 +15,12 @@
 use plumb_firmware::endpoint::{
     BootError, Config, Endpoint, Places, DEFAULT_RETAINED, DEFAULT_STATUS_EVERY,
 };
+#[cfg(feature = "trusted-key")]
 use plumb_firmware::plumb_model::signature::TrustedKey;
 
-// `TRUSTED_KEY`: the public key of `PLUMB_TRUSTED_KEY` at build time, if any.
+// `TRUSTED_KEY`: the public key of `PLUMB_TRUSTED_KEY` at build time (the
+// build script requires it with the `trusted-key` feature).
+#[cfg(feature = "trusted-key")]
 include!(concat!(env!("OUT_DIR"), "/trusted_key.rs"));
 
 use crate::drift_line::DriftLine;
@@ -44,7 +48,8 @@ fn boot(slots: BoardSlots, drift: DriftLine) -> Option<&'static mut Ep> {
     let config = Config {
         firmware: FIRMWARE,
         status_every: DEFAULT_STATUS_EVERY,
-        trusted_key: TRUSTED_KEY.map(TrustedKey::new),
+        #[cfg(feature = "trusted-key")]
+        trusted_key: Some(TrustedKey::new(TRUSTED_KEY)),
     };
     let places = cortex_m::singleton!(: Places = Places::EMPTY)?;
     let ep = cortex_m::singleton!(: Ep = Endpoint::idle_in(places, slots, drift))?;

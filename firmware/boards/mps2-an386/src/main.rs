@@ -30,9 +30,12 @@ use plumb_board_mps2::slots::BoardSlots;
 use plumb_board_mps2::text::write_field;
 use plumb_board_mps2::{endpoint_places, semihost, Board};
 use plumb_firmware::endpoint::{Config, Endpoint, Places, DEFAULT_RETAINED, DEFAULT_STATUS_EVERY};
+#[cfg(feature = "trusted-key")]
 use plumb_firmware::plumb_model::signature::TrustedKey;
 
-// `TRUSTED_KEY`: the public key of `PLUMB_TRUSTED_KEY` at build time, if any.
+// `TRUSTED_KEY`: the public key of `PLUMB_TRUSTED_KEY` at build time (the
+// build script requires it with the `trusted-key` feature).
+#[cfg(feature = "trusted-key")]
 include!(concat!(env!("OUT_DIR"), "/trusted_key.rs"));
 
 /// The model file compiled into the image (chosen by `PLUMB_MODEL` when
@@ -115,7 +118,8 @@ fn boot(slots: BoardSlots, pin: DriftLine) -> Option<&'static mut Ep> {
     let config = Config {
         firmware: FIRMWARE,
         status_every: DEFAULT_STATUS_EVERY,
-        trusted_key: TRUSTED_KEY.map(TrustedKey::new),
+        #[cfg(feature = "trusted-key")]
+        trusted_key: Some(TrustedKey::new(TRUSTED_KEY)),
     };
     let places = endpoint_places()?;
     let ep = cortex_m::singleton!(: Ep = Endpoint::idle_in(places, slots, pin))?;
