@@ -439,12 +439,14 @@ impl Detector {
         for (((u, lim), which), value) in us.iter_mut().zip(limits).zip(Score::ALL).zip(values) {
             *u = standardise(which, value, self.derived.nll_floor(), lim);
         }
-        let in_range = us.iter().zip(&self.tracks).all(|(u, track)| {
-            let mut ewma = track.ewma;
-            ewma.push(*u);
-            ewma.value().is_finite()
-        });
-        if !in_range {
+        // Each EWMA's next value, computed once and kept only if all three
+        // are finite.
+        let mut ewmas = [Ewma::new(0.0, 0.0); 3];
+        for ((next, track), u) in ewmas.iter_mut().zip(&self.tracks).zip(us) {
+            *next = track.ewma;
+            next.push(u);
+        }
+        if !ewmas.iter().all(|e| e.value().is_finite()) {
             return self.faulted(index, Fault::Overflow);
         }
         self.valid += 1;
@@ -453,7 +455,12 @@ impl Detector {
         if roll {
             self.window_len = 0;
         }
-        for (track, (value, u)) in self.tracks.iter_mut().zip(values.into_iter().zip(us)) {
+        for ((track, ewma), (value, u)) in self
+            .tracks
+            .iter_mut()
+            .zip(ewmas)
+            .zip(values.into_iter().zip(us))
+        {
             track.since_reset.push(value);
             track.window.push(value);
             if roll {
@@ -464,7 +471,7 @@ impl Detector {
             if u > track.sample_u {
                 track.over_sample_limit = track.over_sample_limit.saturating_add(1);
             }
-            track.ewma.push(u);
+            track.ewma = ewma;
             track.cusum.push(u);
         }
         let hot = self.hot_set();
