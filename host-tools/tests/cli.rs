@@ -143,6 +143,15 @@ fn skip_bad_rows_counts_them() {
     assert_eq!(v["fit"]["rows"]["train_skipped"], 1);
     assert_eq!(v["fit"]["rows"]["holdout_skipped"], 1);
     assert_eq!(v["fit"]["rows"]["train"], 799);
+    // EM never stops at its first iteration (the change from no bound is
+    // infinite), so a run has a fastest iteration, within the EM time.
+    let mx = &v["fit"]["mixture"];
+    let fastest = mx["em_fastest_iteration_seconds"].as_f64().unwrap();
+    assert!(
+        fastest > 0.0 && fastest <= mx["em_seconds"].as_f64().unwrap(),
+        "{mx}"
+    );
+    assert!(mx["em_iterations"].as_u64().unwrap() >= 2, "{mx}");
 }
 
 #[test]
