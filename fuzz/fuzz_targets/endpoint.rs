@@ -10,6 +10,9 @@
 //! * The running model changes only when a shadow of the upload protocol,
 //!   fed the same bytes, saw a complete upload whose whole-file CRC matched
 //!   and whose file passes every check; it then runs that file's model.
+//! * With bit 6 of the first input byte set the slots are `FlashSlots` on a
+//!   simulated NOR flash (erase to `0xFF`, programming only clears bits)
+//!   instead of `RamSlots`; every check above holds the same.
 //! * With bit 7 of the first input byte set the device trusts only files
 //!   signed by the target's key (uploads may be sent signed, and damaged
 //!   after signing): the shadow then also needs a valid signature, and every
@@ -19,10 +22,12 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use plumb_firmware::endpoint::{Config, Endpoint, RamSlots};
+use plumb_firmware::endpoint::{Config, Endpoint, FlashSlots, ModelSlots, RamSlots, FILE_OFFSET};
 use plumb_firmware::{Detector, DriftState};
 use plumb_fuzz::ops::{FileKind, Input, Op};
-use plumb_fuzz::{builtin_model, file_of, file_unchecked, other_model, Chunker, Line, Pipe};
+use plumb_fuzz::{
+    builtin_model, file_of, file_unchecked, other_model, Chunker, Line, Pipe, SimNor,
+};
 use plumb_model::file::{self, Label, ModelFile};
 use plumb_model::signature::{self, TrustedKey};
 use plumb_model::wire::{
@@ -292,10 +297,21 @@ impl Shadow {
 
 fuzz_target!(|data: &[u8]| {
     let input = Input::parse(data);
+    if input.read_seed & 0x40 != 0 {
+        let flash = SimNor::new(SLOT + FILE_OFFSET);
+        let layout = flash.layout();
+        let slots = FlashSlots::new(flash, layout);
+        assert_eq!(slots.capacity() as usize, SLOT);
+        run(&input, slots);
+    } else {
+        run(&input, RamSlots::<SLOT>::new());
+    }
+});
+
+fn run<S: ModelSlots>(input: &Input, slots: S) {
     let builtin = builtin_detector().clone();
     let first_id = builtin.model().meta.id;
-    let mut ep: Endpoint<RamSlots<SLOT>, Line> =
-        Endpoint::new(builtin, RamSlots::new(), Line::default());
+    let mut ep: Endpoint<S, Line> = Endpoint::new(builtin, slots, Line::default());
     let trusted = input.trusted();
     if trusted {
         ep.set_config(Config {
@@ -365,4 +381,4 @@ fuzz_target!(|data: &[u8]| {
         }
     }
     assert!(pipe.to_device.is_empty());
-});
+}

@@ -137,3 +137,65 @@ impl embedded_hal::digital::OutputPin for Line {
         Ok(())
     }
 }
+
+/// NOR flash in memory for `plumb_firmware::endpoint::FlashSlots`: erase
+/// sets a region to `0xFF`, programming ANDs bytes in (it can only clear
+/// bits), reads are the bytes as they are.
+#[derive(Debug, Clone)]
+pub struct SimNor {
+    /// The whole flash.
+    pub mem: Vec<u8>,
+    /// Offsets of slot A's and slot B's regions.
+    pub regions: [usize; 2],
+    /// Bytes per region.
+    pub region_len: usize,
+}
+
+impl SimNor {
+    /// Two erased regions of `region_len` bytes, back to back.
+    pub fn new(region_len: usize) -> Self {
+        SimNor {
+            mem: vec![0xFF; 2 * region_len],
+            regions: [0, region_len],
+            region_len,
+        }
+    }
+
+    /// The layout of its two regions.
+    pub fn layout(&self) -> plumb_firmware::endpoint::FlashLayout {
+        plumb_firmware::endpoint::FlashLayout {
+            regions: self.regions,
+            region_len: self.region_len,
+        }
+    }
+}
+
+impl plumb_firmware::endpoint::Flash for SimNor {
+    fn memory(&self) -> &[u8] {
+        &self.mem
+    }
+
+    fn erase(
+        &mut self,
+        slot: plumb_model::wire::Slot,
+    ) -> Result<(), plumb_firmware::endpoint::SlotError> {
+        let at = self.regions[slot.index()];
+        self.mem[at..at + self.region_len].fill(0xFF);
+        Ok(())
+    }
+
+    fn program(
+        &mut self,
+        offset: usize,
+        bytes: &[u8],
+    ) -> Result<(), plumb_firmware::endpoint::SlotError> {
+        let dst = self
+            .mem
+            .get_mut(offset..offset + bytes.len())
+            .ok_or(plumb_firmware::endpoint::SlotError::OutOfBounds)?;
+        for (d, b) in dst.iter_mut().zip(bytes) {
+            *d &= b;
+        }
+        Ok(())
+    }
+}

@@ -234,6 +234,42 @@ fn main() {
             },
         ),
         (
+            "upload_flash.bin",
+            Input {
+                // Bit 6: the slots are FlashSlots on a simulated NOR flash.
+                read_seed: 0x45,
+                max_read: 29,
+                ops: vec![
+                    Op::Upload {
+                        file: FileKind::Other,
+                        flip: None,
+                        wrong_crc: false,
+                        chunk: 127,
+                        no_commit: false,
+                        signed: false,
+                    },
+                    Op::Near([1, -1, 2, 0]),
+                    Op::Upload {
+                        file: FileKind::Labelled,
+                        flip: None,
+                        wrong_crc: false,
+                        chunk: 60,
+                        no_commit: false,
+                        signed: false,
+                    },
+                    Op::Upload {
+                        file: FileKind::Same,
+                        flip: None,
+                        wrong_crc: false,
+                        chunk: 90,
+                        no_commit: true,
+                        signed: false,
+                    },
+                    Op::GreetingQuery,
+                ],
+            },
+        ),
+        (
             "upload_trusted.bin",
             Input {
                 // Bit 7: the device trusts only the target's key.
