@@ -104,6 +104,32 @@ fn serve_as(
     seq
 }
 
+/// Runs `plumb listen --tcp ADDR --for 4 --reply-ms 300 --plain` plus
+/// `extra`; returns the exit code, standard output and standard error.
+fn run_listen(addr: &std::net::SocketAddr, extra: &[&str]) -> (Option<i32>, String, String) {
+    let addr = addr.to_string();
+    let mut args = vec![
+        "listen",
+        "--tcp",
+        &addr,
+        "--for",
+        "4",
+        "--reply-ms",
+        "300",
+        "--plain",
+    ];
+    args.extend_from_slice(extra);
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args(&args)
+        .output()
+        .expect("run plumb listen");
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
 #[test]
 fn listen_survives_noise_an_unplugged_port_and_a_restart() {
     let l = TcpListener::bind("127.0.0.1:0").unwrap();
@@ -130,26 +156,8 @@ fn listen_survives_noise_an_unplugged_port_and_a_restart() {
         );
         seq
     });
-    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args([
-            "listen",
-            "--tcp",
-            &addr.to_string(),
-            "--for",
-            "4",
-            "--reply-ms",
-            "300",
-            "--plain",
-        ])
-        .output()
-        .expect("run plumb listen");
-    let text = String::from_utf8_lossy(&out.stdout).into_owned();
-    let err = String::from_utf8_lossy(&out.stderr).into_owned();
-    assert_eq!(
-        out.status.code(),
-        Some(1),
-        "drift was raised\n{text}\n{err}"
-    );
+    let (code, text, err) = run_listen(&addr, &[]);
+    assert_eq!(code, Some(1), "drift was raised\n{text}\n{err}");
     let lines: Vec<&str> = text.lines().collect();
     let first = |p: &str| {
         lines
@@ -194,26 +202,9 @@ fn listen_to(hello: DeviceMsg, after: Vec<DeviceMsg>) -> (Option<i32>, String, S
         let (c, _) = l.accept().unwrap();
         serve_as(c, 0, hello, after, Instant::now() + Duration::from_secs(6));
     });
-    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args([
-            "listen",
-            "--tcp",
-            &addr.to_string(),
-            "--for",
-            "4",
-            "--reply-ms",
-            "300",
-            "--plain",
-            "--no-reconnect",
-        ])
-        .output()
-        .expect("run plumb listen");
+    let out = run_listen(&addr, &["--no-reconnect"]);
     device.join().unwrap();
-    (
-        out.status.code(),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
+    out
 }
 
 #[test]
@@ -256,24 +247,9 @@ fn listen_stops_when_a_later_greeting_speaks_another_version() {
         c.set_read_timeout(Some(Duration::from_secs(6))).unwrap();
         while matches!(c.read(&mut buf), Ok(n) if n > 0) {}
     });
-    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
-        .args([
-            "listen",
-            "--tcp",
-            &addr.to_string(),
-            "--for",
-            "4",
-            "--reply-ms",
-            "300",
-            "--plain",
-            "--no-reconnect",
-        ])
-        .output()
-        .expect("run plumb listen");
-    let text = String::from_utf8_lossy(&out.stdout).into_owned();
-    let err = String::from_utf8_lossy(&out.stderr).into_owned();
+    let (code, text, err) = run_listen(&addr, &["--no-reconnect"]);
     device.join().unwrap();
-    assert_eq!(out.status.code(), Some(2), "{text}\n{err}");
+    assert_eq!(code, Some(2), "{text}\n{err}");
     assert!(text.contains("raised seq=1 sample=10"), "{text}");
     assert!(
         text.contains("protocol=3"),
