@@ -268,6 +268,13 @@ def star(names, truth):
     return "/".join(n + ("★" if n in truth else "") for n in names)
 
 
+
+def table_header():
+    """The two header lines of a results table."""
+    return ["| scheme | limit | calibration alarms | evaluation alarms | "
+            + " | ".join(f"`{s}`" for s in SCENARIOS) + " |",
+            "|---" * (4 + len(SCENARIOS)) + "|"]
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--plumb", default=os.path.join(ROOT, "target", "release", "plumb"),
@@ -419,9 +426,7 @@ def main():
              "it; ★ = a feature the scenario changes (demo-logs/truth.csv). Alarm counts: "
              "number (per 10⁵ samples).")
     L.append("")
-    L.append("| scheme | limit | calibration alarms | evaluation alarms | "
-             + " | ".join(f"`{s}`" for s in SCENARIOS) + " |")
-    L.append("|---" * (4 + len(SCENARIOS)) + "|")
+    L.extend(table_header())
     for res in results:
         c = res["chart"]
         L.append(f"| per-feature {c.name} | {c.describe(res['h'])} | "
@@ -443,9 +448,7 @@ def main():
              f"fitted with `--false-alarm-rate {RATE / 2:g}`; a scenario's delay is the earlier "
              "of the two, evaluation alarms are the sum.")
     L.append("")
-    L.append("| scheme | limit | calibration alarms | evaluation alarms | "
-             + " | ".join(f"`{s}`" for s in SCENARIOS) + " |")
-    L.append("|---" * (4 + len(SCENARIOS)) + "|")
+    L.extend(table_header())
     for res in halves:
         c = res["chart"]
         L.append(f"| per-feature {c.name}, half budget | {c.describe(res['h'])} | "
