@@ -264,6 +264,24 @@ impl<const R: usize> Places<R> {
         second: Detector::EMPTY,
         retained: Deque::new(),
     };
+
+    /// The second place when `second`, else the first.
+    fn place(&self, second: bool) -> &Detector {
+        if second {
+            &self.second
+        } else {
+            &self.first
+        }
+    }
+
+    /// [`Places::place`], mutable.
+    fn place_mut(&mut self, second: bool) -> &mut Detector {
+        if second {
+            &mut self.second
+        } else {
+            &mut self.first
+        }
+    }
 }
 
 /// The device side of the link. `S` stores the model slots, `P` drives the
@@ -389,12 +407,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
             if check_trust(bytes, &self.config).is_err() {
                 continue;
             }
-            let places = self.places.borrow_mut();
-            let staging = if self.second_runs {
-                &mut places.first
-            } else {
-                &mut places.second
-            };
+            let staging = self.places.borrow_mut().place_mut(!self.second_runs);
             if staging.load(bytes).is_ok() {
                 // A pin failure is retried after the next sample.
                 let _ = self.switch(Some(slot), rec.generation);
@@ -411,30 +424,15 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
 
     /// The running place.
     fn running(&self) -> &Detector {
-        let places = self.places.borrow();
-        if self.second_runs {
-            &places.second
-        } else {
-            &places.first
-        }
+        self.places.borrow().place(self.second_runs)
     }
 
     fn running_mut(&mut self) -> &mut Detector {
-        let places = self.places.borrow_mut();
-        if self.second_runs {
-            &mut places.second
-        } else {
-            &mut places.first
-        }
+        self.places.borrow_mut().place_mut(self.second_runs)
     }
 
     fn staging_mut(&mut self) -> &mut Detector {
-        let places = self.places.borrow_mut();
-        if self.second_runs {
-            &mut places.first
-        } else {
-            &mut places.second
-        }
+        self.places.borrow_mut().place_mut(!self.second_runs)
     }
 
     fn ring(&self) -> &Deque<Retained, R> {
@@ -1000,12 +998,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         // `Detector::load` = `file::decode_into` (framing, CRC, capacity,
         // validation) + the detector's own checks, written into the staging
         // place; on error that place is left empty, never run.
-        let places = self.places.borrow_mut();
-        let staging = if self.second_runs {
-            &mut places.first
-        } else {
-            &mut places.second
-        };
+        let staging = self.places.borrow_mut().place_mut(!self.second_runs);
         staging.load(file).map_err(Reason::from)?;
         let generation = [Slot::A, Slot::B]
             .iter()
