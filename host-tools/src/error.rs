@@ -11,14 +11,17 @@ pub const EXIT_DRIFT: u8 = 1;
 /// Exit code: bad input or usage.
 pub const EXIT_BAD_INPUT: u8 = 2;
 
-/// Where an error happened: a file, optionally a 1-based line, optionally a
-/// 1-based column (field number) with the column's name.
+/// Where an error happened: a file, optionally a 1-based line (of a text
+/// log) or a 0-based row (of an array log), optionally a 1-based column
+/// (field number) with the column's name.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Location {
     /// The file.
     pub path: PathBuf,
     /// 1-based line number.
     pub line: Option<u64>,
+    /// 0-based row index of an array log (NumPy's own index).
+    pub row: Option<u64>,
     /// 1-based field number.
     pub column: Option<usize>,
     /// Name of the column (feature or time), when known.
@@ -31,6 +34,7 @@ impl Location {
         Location {
             path: path.to_path_buf(),
             line: None,
+            row: None,
             column: None,
             name: None,
         }
@@ -54,6 +58,17 @@ impl Location {
         }
     }
 
+    /// A value of an array log: 0-based row, 1-based column and the column's
+    /// name.
+    pub fn row_cell(path: &Path, row: u64, column: usize, name: &str) -> Self {
+        Location {
+            row: Some(row),
+            column: Some(column),
+            name: Some(name.to_string()),
+            ..Location::file(path)
+        }
+    }
+
     /// Names the column without a field number.
     pub fn named(mut self, name: &str) -> Self {
         self.name = Some(name.to_string());
@@ -69,6 +84,13 @@ impl fmt::Display for Location {
             if let Some(col) = self.column {
                 write!(f, ":{col}")?;
             }
+        } else if let Some(row) = self.row {
+            write!(f, ": row {row}")?;
+            if let Some(col) = self.column {
+                write!(f, ", column {col}")?;
+            }
+        } else if let Some(col) = self.column {
+            write!(f, ": column {col}")?;
         }
         match self.name.as_deref() {
             Some("") => f.write_str(" (unnamed column)"),
@@ -149,6 +171,10 @@ mod tests {
         assert_eq!(
             Location::line(p, 1).named("x").to_string(),
             "logs/a.csv:1 (x)"
+        );
+        assert_eq!(
+            Location::row_cell(Path::new("logs/b.npy"), 0, 3, "vib").to_string(),
+            "logs/b.npy: row 0, column 3 (vib)"
         );
         assert_eq!(e.code, EXIT_BAD_INPUT);
     }

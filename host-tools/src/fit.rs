@@ -268,15 +268,16 @@ pub fn fit(
     }
     let d = train.features();
     let first = &train.files()[0].path;
+    let names_at = train.files()[0].header_location();
     if d < 2 {
         return Err(Error::at(
-            Location::line(first, 1),
+            names_at,
             "expected at least 2 feature columns (one feature leaves no residual to monitor)",
         ));
     }
     if d > usize::from(u16::MAX) {
         return Err(Error::at(
-            Location::line(first, 1),
+            train.files()[0].header_location(),
             "too many feature columns",
         ));
     }
@@ -366,12 +367,7 @@ pub fn fit(
         PcaError::Constant { feature, value } => {
             let file = &train.files()[0];
             Error::at(
-                Location::cell(
-                    &file.path,
-                    1,
-                    file.feature_column(feature),
-                    &train.labels()[feature].name,
-                ),
+                file.feature_location(feature, &train.labels()[feature].name),
                 format!(
                     "column is constant over the training rows (always {value}); \
                      a feature that never varies cannot be standardised"
@@ -639,14 +635,15 @@ pub fn check_schema(train: &LogSet, labels: &[Label], base: &Path) -> Result<()>
     }
     let file = &train.files()[0];
     let have = train.labels();
-    let at = |j: usize| Location::cell(&file.path, 1, file.feature_column(j), &have[j].name);
+    let at = |j: usize| file.feature_location(j, &have[j].name);
     let base = base.display();
     for (j, l) in labels.iter().enumerate() {
         if !have.iter().any(|h| h.name == l.name) {
             return Err(Error::at(
-                Location::line(&file.path, 1).named(&l.name),
+                file.header_location().named(&l.name),
                 format!(
-                    "expected a column named {:?} (feature {} of the base model {base}),                      found none",
+                    "expected a column named {:?} (feature {} of the base model {base}), \
+                     found none",
                     l.name,
                     j + 1
                 ),

@@ -6,7 +6,8 @@
 //!
 //! | module | role |
 //! |---|---|
-//! | [`logs`] | streaming CSV log reader (fit, replay) |
+//! | [`logs`] | streaming log reader, CSV and NumPy `.npy` arrays (fit, replay) |
+//! | [`npy`] | the header of a NumPy `.npy` array file |
 //! | [`pca`] | moments with pairwise merging, standardisation, PCA |
 //! | [`gmm`] | diagonal Gaussian mixture by EM, k-means++ start, BIC |
 //! | [`arl`] | run lengths of CUSUM and EWMA charts (Markov chain), limit search |
@@ -46,6 +47,7 @@ pub mod keys;
 pub mod link;
 pub mod live;
 pub mod logs;
+pub mod npy;
 pub mod pca;
 pub mod progress;
 pub mod replay;

@@ -1,4 +1,5 @@
-//! Reading robot logs: CSV files with a header row of feature names.
+//! Reading robot logs: CSV files with a header row of feature names, or
+//! NumPy `.npy` arrays of the same columns.
 //!
 //! # The log convention
 //!
@@ -15,6 +16,24 @@
 //! * Columns are matched by name across files: the first file sets the order
 //!   ([`LogSet::open`]), or a model's labels do ([`LogSet::open_for_labels`]).
 //!
+//! # Array logs
+//!
+//! A file whose name ends in `.npy` is a NumPy array ([`crate::npy`]) of
+//! little-endian `f8` or `f4` values in C order, read without any text
+//! parsing:
+//!
+//! * a 2-D array `(rows, columns)` takes its column names from a header
+//!   file beside it with the extension `.header` (`run.npy` → `run.header`):
+//!   one line, exactly as a CSV log's header, units and time column
+//!   included;
+//! * a 1-D structured array whose fields are all `f8` or all `f4` carries
+//!   its column names (`name[unit]`) as field names.
+//!
+//! NaN and infinite values are dropouts as in a CSV log; errors name the
+//! 0-based row (NumPy's index) and the 1-based column. A file whose size
+//! does not match its shape (truncated, or with bytes after the values) is
+//! refused before any row is read.
+//!
 //! # Streaming
 //!
 //! Files are read in blocks (4 MiB by default) cut at line ends; each block is
@@ -25,9 +44,11 @@
 //! Memory is a few blocks, whatever the number of rows.
 //!
 //! Every error names `path:line:column (name)`: 1-based line, 1-based field
-//! number, and the column's name.
+//! number, and the column's name (array logs: `path: row R, column C
+//! (name)`).
 
 use crate::error::{Error, Location, Result};
+use crate::npy::{self, ArrayHeader, Element};
 use crate::progress::Stage;
 use plumb_model::file::Label;
 use std::collections::BTreeMap;
@@ -89,7 +110,7 @@ pub fn split_name_unit(cell: &str) -> (&str, &str) {
 }
 
 /// Expands inputs: a file stays as given, a directory gives all its `*.csv`
-/// files (not recursive), sorted by name.
+/// and `*.npy` files (not recursive), sorted by name.
 pub fn expand_paths(inputs: &[PathBuf]) -> Result<Vec<PathBuf>> {
     let mut out = Vec::new();
     for input in inputs {
@@ -99,13 +120,16 @@ pub fn expand_paths(inputs: &[PathBuf]) -> Result<Vec<PathBuf>> {
                 .map_err(|e| Error::io(input, "list directory", &e))?
                 .filter_map(|entry| entry.ok().map(|e| e.path()))
                 .filter(|p| {
-                    p.is_file() && p.extension().is_some_and(|x| x.eq_ignore_ascii_case("csv"))
+                    p.is_file()
+                        && p.extension().is_some_and(|x| {
+                            x.eq_ignore_ascii_case("csv") || x.eq_ignore_ascii_case("npy")
+                        })
                 })
                 .collect();
             if found.is_empty() {
                 return Err(Error::at(
                     Location::file(input),
-                    "directory holds no *.csv logs",
+                    "directory holds no *.csv or *.npy logs",
                 ));
             }
             found.sort();
@@ -203,12 +227,63 @@ pub struct LogFile {
     targets: Vec<Target>,
     /// Field index of each feature, in label order.
     feature_fields: Vec<usize>,
+    /// Where the column names were read.
+    names_at: NamesAt,
+    /// Shape and element type of an array log (`None`: a CSV log).
+    array: Option<ArrayHeader>,
+}
+
+/// Where a file's column names come from.
+#[derive(Debug, Clone, PartialEq, Eq)]
+enum NamesAt {
+    /// Line 1 of this text file (the log itself, or an array's header file).
+    Line1(PathBuf),
+    /// The field names of a structured array.
+    Fields(PathBuf),
+}
+
+impl NamesAt {
+    /// Where the names are, as a whole.
+    fn whole(&self) -> Location {
+        match self {
+            NamesAt::Line1(p) => Location::line(p, 1),
+            NamesAt::Fields(p) => Location::file(p),
+        }
+    }
+
+    /// Where field `f` (0-based) is named.
+    fn cell(&self, f: usize, name: &str) -> Location {
+        match self {
+            NamesAt::Line1(p) => Location::cell(p, 1, f + 1, name),
+            NamesAt::Fields(p) => Location {
+                column: Some(f + 1),
+                name: Some(name.to_string()),
+                ..Location::file(p)
+            },
+        }
+    }
 }
 
 impl LogFile {
     /// Fields per line.
     pub fn fields(&self) -> usize {
         self.names.len()
+    }
+
+    /// Where the column names of this file are.
+    pub fn header_location(&self) -> Location {
+        self.names_at.whole()
+    }
+
+    /// Where feature `j`'s column is named.
+    pub fn feature_location(&self, j: usize, name: &str) -> Location {
+        self.names_at.cell(self.feature_fields[j], name)
+    }
+
+    /// Rows of an array log (`None` for a CSV log, whose lines must be
+    /// counted).
+    pub fn array_rows(&self) -> Option<u64> {
+        self.array.as_ref().map(|a| a.rows)
     }
 
     /// 1-based field number of feature `j` in this file.
@@ -254,7 +329,8 @@ pub struct Chunk {
     pub values: Vec<f64>,
     /// Time of each row (empty when there is no time column).
     pub times: Vec<f64>,
-    /// 1-based line number of each row.
+    /// 1-based line number of each row (array logs: the 0-based row + 2,
+    /// the line the row would have in a CSV log).
     pub lines: Vec<u64>,
     /// Rows left out because of empty or non-finite cells.
     pub skipped: u64,
@@ -320,9 +396,100 @@ struct RawHeader {
     cells: Vec<String>,
     data_offset: u64,
     bytes: u64,
+    names_at: NamesAt,
+    array: Option<ArrayHeader>,
+}
+
+/// Whether `path` names an array log (`.npy`).
+pub fn is_array_log(path: &Path) -> bool {
+    path.extension()
+        .is_some_and(|x| x.eq_ignore_ascii_case("npy"))
 }
 
 fn read_header(path: &Path) -> Result<RawHeader> {
+    if is_array_log(path) {
+        read_array_header(path)
+    } else {
+        read_text_header(path)
+    }
+}
+
+/// The header of an array log: shape and element type from the file, names
+/// from its fields or its header file; the size checked against the shape.
+fn read_array_header(path: &Path) -> Result<RawHeader> {
+    use std::io::{Seek, SeekFrom};
+    let io = |e: std::io::Error| Error::io(path, "read", &e);
+    let bad = |e: npy::HeaderError| Error::at(Location::file(path), e.0);
+    let mut f = File::open(path).map_err(io)?;
+    let bytes = f.metadata().map_err(io)?.len();
+    let mut start = [0u8; 12];
+    let n = read_full(&mut f, &mut start).map_err(io)?;
+    let (pre, len) = npy::prefix(&start[..n]).map_err(bad)?;
+    let mut text = vec![0u8; len];
+    f.seek(SeekFrom::Start(pre as u64)).map_err(io)?;
+    if read_full(&mut f, &mut text).map_err(io)? < len {
+        return Err(bad(npy::HeaderError(
+            "file ends inside the .npy header".into(),
+        )));
+    }
+    let data_offset = (pre + len) as u64;
+    let h = npy::parse_header(&text, data_offset).map_err(bad)?;
+    let expected = h
+        .rows
+        .checked_mul(h.row_bytes())
+        .and_then(|b| b.checked_add(data_offset));
+    if expected != Some(bytes) {
+        return Err(Error::at(
+            Location::file(path),
+            format!(
+                "expected {} bytes ({} rows of {} bytes after a {data_offset}-byte header), \
+                 found {bytes}: the file is cut short or has bytes after its values",
+                expected.map_or_else(|| "more than 2^64".to_string(), |b| b.to_string()),
+                h.rows,
+                h.row_bytes(),
+            ),
+        ));
+    }
+    let (cells, names_at) = match &h.names {
+        Some(names) => (names.clone(), NamesAt::Fields(path.to_path_buf())),
+        None => {
+            let side = path.with_extension("header");
+            if !side.is_file() {
+                return Err(Error::at(
+                    Location::file(path),
+                    format!(
+                        "a 2-D array log takes its column names from a header file beside \
+                         it: expected {}, one line of names as in a CSV log's header",
+                        side.display()
+                    ),
+                ));
+            }
+            let raw = read_text_header(&side)?;
+            if raw.cells.len() != h.columns {
+                return Err(Error::at(
+                    Location::line(&side, 1),
+                    format!(
+                        "expected {} column names for the {} columns of {}, found {}",
+                        h.columns,
+                        h.columns,
+                        path.display(),
+                        raw.cells.len()
+                    ),
+                ));
+            }
+            (raw.cells, NamesAt::Line1(side))
+        }
+    };
+    Ok(RawHeader {
+        cells,
+        data_offset,
+        bytes,
+        names_at,
+        array: Some(h),
+    })
+}
+
+fn read_text_header(path: &Path) -> Result<RawHeader> {
     let mut f = File::open(path).map_err(|e| Error::io(path, "read", &e))?;
     let bytes = f.metadata().map_err(|e| Error::io(path, "read", &e))?.len();
     let mut buf = Vec::new();
@@ -369,6 +536,8 @@ fn read_header(path: &Path) -> Result<RawHeader> {
         cells: split_header_line(text),
         data_offset,
         bytes,
+        names_at: NamesAt::Line1(path.to_path_buf()),
+        array: None,
     })
 }
 
@@ -390,13 +559,13 @@ fn parse_header(path: &Path, opts: &ReadOptions) -> Result<Header> {
         let (name, unit) = split_name_unit(cell);
         if name.is_empty() {
             return Err(Error::at(
-                Location::cell(path, 1, f + 1, ""),
+                raw.names_at.cell(f, ""),
                 format!("expected a column name, found {:?}", cell.trim()),
             ));
         }
         if let Some(first) = seen.insert(name.to_string(), f) {
             return Err(Error::at(
-                Location::cell(path, 1, f + 1, name),
+                raw.names_at.cell(f, name),
                 format!("duplicate column name (first at column {})", first + 1),
             ));
         }
@@ -410,7 +579,7 @@ fn parse_header(path: &Path, opts: &ReadOptions) -> Result<Header> {
             Some(&f) => Some(f),
             None => {
                 return Err(Error::at(
-                    Location::line(path, 1).named(t),
+                    raw.names_at.whole().named(t),
                     format!(
                         "no time column {t:?} in the header (name it with --time-column NAME, \
                          or say --time-column none)"
@@ -447,7 +616,7 @@ impl LogSet {
             .collect();
         if labels.is_empty() {
             return Err(Error::at(
-                Location::line(first, 1),
+                h.raw.names_at.whole(),
                 "expected at least one feature column besides the time column",
             ));
         }
@@ -532,20 +701,20 @@ impl LogSet {
         for (j, label) in self.labels.iter().enumerate() {
             let Some(f) = h.names.iter().position(|n| *n == label.name) else {
                 return Err(Error::at(
-                    Location::line(path, 1).named(&label.name),
+                    h.raw.names_at.whole().named(&label.name),
                     format!("expected a column named {:?}, found none", label.name),
                 ));
             };
             if Some(f) == h.time {
                 return Err(Error::at(
-                    Location::cell(path, 1, f + 1, &label.name),
+                    h.raw.names_at.cell(f, &label.name),
                     "this column is the time column here but a feature elsewhere",
                 ));
             }
             let unit = &h.units[f];
             if *unit != label.unit && !(ignore_extra && unit.is_empty()) {
                 return Err(Error::at(
-                    Location::cell(path, 1, f + 1, &label.name),
+                    h.raw.names_at.cell(f, &label.name),
                     format!("expected unit {:?}, found {:?}", label.unit, unit),
                 ));
             }
@@ -559,7 +728,7 @@ impl LogSet {
                 .position(|(f, t)| *t == Target::Ignore && Some(f) != h.time)
             {
                 return Err(Error::at(
-                    Location::cell(path, 1, f + 1, &h.names[f]),
+                    h.raw.names_at.cell(f, &h.names[f]),
                     "unexpected column: not in the first log",
                 ));
             }
@@ -571,6 +740,8 @@ impl LogSet {
             names: h.names,
             targets,
             feature_fields,
+            names_at: h.raw.names_at,
+            array: h.raw.array,
         })
     }
 
@@ -629,6 +800,11 @@ impl LogSet {
         let mut out = Vec::with_capacity(self.files.len());
         let mut block = vec![0u8; self.opts.block_bytes.max(1 << 12)];
         for file in &self.files {
+            if let Some(rows) = file.array_rows() {
+                out.push(rows);
+                stage.advance(file.bytes);
+                continue;
+            }
             let mut f = open_at(file)?;
             let mut lines = 0u64;
             let mut last = b'\n';
@@ -682,6 +858,10 @@ impl LogSet {
             let range = select.0.get(fi).cloned().unwrap_or(0..0);
             if range.is_empty() {
                 stage.advance(file.bytes);
+                continue;
+            }
+            if let Some(a) = &file.array {
+                self.scan_array(fi, file, a, &range, stage, &map, &mut reduce, &mut stats)?;
                 continue;
             }
             let mut reader = open_at(file)?;
@@ -790,31 +970,174 @@ impl LogSet {
             let t = map(&chunk)?;
             Ok(Some((chunk, t)))
         };
-        let (ra, rb) = if self.opts.threads >= 2 && !b.is_empty() {
+        let parts = self.in_two(|| job(a, first_line), || job(b, b_first))?;
+        deliver(fi, parts, reduce, stats)
+    }
+
+    /// Runs two jobs, on two threads when the options allow and the second
+    /// has work; the second is not run when the first fails on one thread.
+    fn in_two<R: Send>(
+        &self,
+        first: impl FnOnce() -> Result<Option<R>>,
+        second: impl FnOnce() -> Result<Option<R>> + Send,
+    ) -> Result<[Option<R>; 2]> {
+        let (ra, rb) = if self.opts.threads >= 2 {
             std::thread::scope(|s| {
-                let hb = s.spawn(|| job(b, b_first));
-                let ra = job(a, first_line);
+                let hb = s.spawn(second);
+                let ra = first();
                 let rb = hb.join().unwrap_or_else(|_| {
                     Err(Error::input("internal error: a parser thread panicked"))
                 });
                 (ra, rb)
             })
         } else {
-            let ra = job(a, first_line);
-            let rb = if ra.is_ok() {
-                job(b, b_first)
-            } else {
-                Ok(None)
-            };
+            let ra = first();
+            let rb = if ra.is_ok() { second() } else { Ok(None) };
             (ra, rb)
         };
-        for part in [ra?, rb?].into_iter().flatten() {
-            let (chunk, t) = part;
-            stats.rows[fi] += chunk.rows() as u64;
-            stats.skipped[fi] += chunk.skipped;
-            reduce(t, &chunk)?;
+        Ok([ra?, rb?])
+    }
+
+    /// Reads the selected rows of an array log in blocks of whole rows; each
+    /// block is split into two halves at a row as a text span is (by the
+    /// block size only, whatever the thread count).
+    #[allow(clippy::too_many_arguments)]
+    fn scan_array<T: Send>(
+        &self,
+        fi: usize,
+        file: &LogFile,
+        a: &ArrayHeader,
+        range: &Range<u64>,
+        stage: &Stage,
+        map: &(impl Fn(&Chunk) -> Result<T> + Sync),
+        reduce: &mut impl FnMut(T, &Chunk) -> Result<()>,
+        stats: &mut ScanStats,
+    ) -> Result<()> {
+        use std::io::{Seek, SeekFrom};
+        let io = |e: std::io::Error| Error::io(&file.path, "read", &e);
+        let rb = a.row_bytes().max(1);
+        let (first, end) = (range.start.min(a.rows), range.end.min(a.rows));
+        let start = file.data_offset + first * rb;
+        let mut f = File::open(&file.path).map_err(io)?;
+        f.seek(SeekFrom::Start(start)).map_err(io)?;
+        stage.advance(start);
+        let block_rows = (self.opts.block_bytes.max(1 << 12) as u64 / rb).max(1);
+        let mut buf = vec![0u8; (block_rows.min(end - first) * rb) as usize];
+        let mut row = first;
+        while row < end {
+            let n = (end - row).min(block_rows);
+            let bytes = &mut buf[..(n * rb) as usize];
+            if read_full(&mut f, bytes).map_err(io)? < bytes.len() {
+                return Err(Error::at(
+                    Location::file(&file.path),
+                    format!(
+                        "the file ended before row {} of {}: was it changed while being read?",
+                        row + n - 1,
+                        a.rows
+                    ),
+                ));
+            }
+            let half = if bytes.len() >= 1 << 16 { n / 2 } else { n };
+            let (x, y) = bytes.split_at((half * rb) as usize);
+            let job = |bytes: &[u8], first_row: u64| -> Result<Option<(Chunk, T)>> {
+                if bytes.is_empty() {
+                    return Ok(None);
+                }
+                let chunk = self.convert(fi, file, a, bytes, first_row)?;
+                let t = map(&chunk)?;
+                Ok(Some((chunk, t)))
+            };
+            let parts = self.in_two(|| job(x, row), || job(y, row + half))?;
+            deliver(fi, parts, reduce, stats)?;
+            row += n;
+            stage.advance(n * rb);
         }
+        stage.advance(file.bytes.saturating_sub(file.data_offset + end * rb));
         Ok(())
+    }
+
+    /// Converts whole rows of an array log (`first_row` is the 0-based
+    /// index of the first) to features in label order, checking every value
+    /// as the text reader checks a cell.
+    fn convert(
+        &self,
+        fi: usize,
+        file: &LogFile,
+        a: &ArrayHeader,
+        bytes: &[u8],
+        first_row: u64,
+    ) -> Result<Chunk> {
+        let d = self.labels.len();
+        let rb = a.row_bytes() as usize;
+        let rows = bytes.len() / rb.max(1);
+        let time = file.targets.iter().position(|t| *t == Target::Time);
+        let mut chunk = Chunk {
+            file: fi,
+            d,
+            ..Chunk::default()
+        };
+        chunk.values.reserve(rows * d);
+        chunk.lines.reserve(rows);
+        if time.is_some() {
+            chunk.times.reserve(rows);
+        }
+        let get = |rec: &[u8], f: usize| -> f64 {
+            match a.element {
+                Element::F64 => rec
+                    .get(f * 8..f * 8 + 8)
+                    .and_then(|b| b.try_into().ok())
+                    .map_or(f64::NAN, f64::from_le_bytes),
+                Element::F32 => rec
+                    .get(f * 4..f * 4 + 4)
+                    .and_then(|b| b.try_into().ok())
+                    .map_or(f64::NAN, |b| f64::from(f32::from_le_bytes(b))),
+            }
+        };
+        for (i, rec) in bytes.chunks_exact(rb.max(1)).enumerate() {
+            let index = first_row + i as u64;
+            let start = chunk.values.len();
+            chunk
+                .values
+                .extend(file.feature_fields.iter().map(|&f| get(rec, f)));
+            let t = time.map_or(0.0, |f| get(rec, f));
+            let finite = t.is_finite() && chunk.values[start..].iter().all(|v| v.is_finite());
+            if !finite {
+                match self.opts.bad_cells {
+                    BadCells::Reject => {
+                        let f = (0..file.fields())
+                            .find(|&f| {
+                                file.targets[f] != Target::Ignore && !get(rec, f).is_finite()
+                            })
+                            .unwrap_or(0);
+                        return Err(Error::at(
+                            Location::row_cell(&file.path, index, f + 1, &file.names[f]),
+                            format!(
+                                "expected a finite number, found {} (rows with empty or \
+                                 non-finite cells can be skipped with --skip-bad-rows)",
+                                get(rec, f)
+                            ),
+                        ));
+                    }
+                    BadCells::SkipRow => {
+                        chunk.values.truncate(start);
+                        chunk.skipped += 1;
+                        continue;
+                    }
+                    BadCells::PassAsNan => {
+                        for v in &mut chunk.values[start..] {
+                            if !v.is_finite() {
+                                *v = f64::NAN;
+                            }
+                        }
+                    }
+                }
+            }
+            chunk.lines.push(index + 2);
+            if time.is_some() {
+                chunk.times.push(if t.is_finite() { t } else { f64::NAN });
+            }
+        }
+        Ok(chunk)
     }
 
     /// Parses complete lines; `first_line` is the 1-based number of the
@@ -934,6 +1257,21 @@ fn open_at(file: &LogFile) -> Result<File> {
     f.seek(SeekFrom::Start(file.data_offset))
         .map_err(|e| Error::io(&file.path, "read", &e))?;
     Ok(f)
+}
+
+/// Hands parsed parts to the caller's `reduce`, in order, and counts them.
+fn deliver<T>(
+    fi: usize,
+    parts: [Option<(Chunk, T)>; 2],
+    reduce: &mut impl FnMut(T, &Chunk) -> Result<()>,
+    stats: &mut ScanStats,
+) -> Result<()> {
+    for (chunk, t) in parts.into_iter().flatten() {
+        stats.rows[fi] += chunk.rows() as u64;
+        stats.skipped[fi] += chunk.skipped;
+        reduce(t, &chunk)?;
+    }
+    Ok(())
 }
 
 /// Reads until `buf` is full or the end of the file.

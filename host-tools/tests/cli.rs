@@ -257,7 +257,7 @@ fn unreadable_inputs() {
     fit_fails(&d, &[&missing], &[], &[&want]);
     let sub = d.path("empty_dir");
     std::fs::create_dir_all(&sub).unwrap();
-    let want = format!("{}: directory holds no *.csv logs", sub.display());
+    let want = format!("{}: directory holds no *.csv or *.npy logs", sub.display());
     fit_fails(&d, &[&sub], &[], &[&want]);
     let units = d.path("units.csv");
     let a = d.write("a.csv", &log_text(4, 1000, 1));
@@ -650,27 +650,31 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
             "missing.csv",
             "t[s],x0[A],x1[V],x2[A]",
             ":1 (x3): expected a column named \"x3\" (feature 4 of the base model",
+            "), found none",
         ),
         (
             "unit.csv",
             "t[s],x0[mA],x1[V],x2[A],x3[V]",
             ":1:2 (x0): expected unit \"A\" as in the base model",
+            "",
         ),
         (
             "order.csv",
             "t[s],x1[V],x0[A],x2[A],x3[V]",
             ":1:2 (x1): feature 1 of the base model",
+            "",
         ),
         (
             "extra.csv",
             "t[s],x0[A],x1[V],x2[A],x3[V],x9[V]",
             ":1:6 (x9): unexpected column: the base model",
+            "",
         ),
     ];
-    for (name, header, needle) in cases {
+    for (name, header, needle, tail) in cases {
         let p = edited(&d, name, 1, |_| header.to_string());
         let want = format!("{}{needle}", p.display());
-        fit_fails(&d, &[&p], &with, &[&want, &base_s]);
+        fit_fails(&d, &[&p], &with, &[&want, &base_s, tail]);
     }
     // A damaged base model.
     let bad = d.write("bad.plumb", "not a model");

@@ -206,3 +206,59 @@ fn old_faithful_diagonal_mixture_matches_published_log_likelihood() {
     assert!((mix.means[0] - 4.29107).abs() <= 1e-4 && (mix.means[1] - 79.98562).abs() <= 1e-3);
     assert!((mix.means[2] - 2.03792).abs() <= 1e-4 && (mix.means[3] - 54.49295).abs() <= 1e-3);
 }
+
+#[test]
+fn array_logs_written_by_numpy_read_as_their_csv() {
+    // NumPy writes the wine data set in every array form plumb reads (2-D f8
+    // and f4, structured f8 and f4, format version 2) and in forms it
+    // refuses; the values must come out bit for bit as the CSV of the same
+    // numbers (f4 values widened to f8; printed with 17 significant digits,
+    // which round-trip; the CSV reader is held to correct rounding in its own
+    // tests).
+    use plumb::logs::{LogSet, ReadOptions, Selection};
+    use plumb::progress::Stage;
+    let dir = std::env::temp_dir().join(format!("plumb-npy-ref-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    let r = reference("write_npy.py", &json!({ "dir": dir }));
+    let opts = ReadOptions {
+        time_column: None,
+        ..ReadOptions::default()
+    };
+    let values = |path: &str| -> plumb::error::Result<Vec<f64>> {
+        let set = LogSet::open(&[path.into()], opts.clone())?;
+        let mut v = Vec::new();
+        set.for_each(&Selection::all(1), &Stage::hidden(), |c| {
+            v.extend_from_slice(&c.values);
+            Ok(())
+        })?;
+        Ok(v)
+    };
+    let csv = values(r["csv"].as_str().unwrap()).unwrap();
+    let csv_f4 = values(r["csv_f4"].as_str().unwrap()).unwrap();
+    assert_eq!(csv.len(), 178 * 13);
+    let read = r["read"].as_object().unwrap();
+    assert_eq!(read.len(), 5);
+    for (name, path) in read {
+        let want = if name.ends_with("f4") { &csv_f4 } else { &csv };
+        let got = values(path.as_str().unwrap()).unwrap_or_else(|e| panic!("{name}: {e}"));
+        assert!(
+            got.len() == want.len()
+                && got
+                    .iter()
+                    .zip(want)
+                    .all(|(a, b)| a.to_bits() == b.to_bits()),
+            "{name}: values differ from the CSV"
+        );
+    }
+    for (name, needle) in [
+        ("fortran", "found Fortran order"),
+        ("big_endian", "found big-endian \">f8\""),
+        ("integers", "found element type \"<i8\""),
+        ("three_d", "found shape (2, 89, 13)"),
+    ] {
+        let e = values(r["refused"][name].as_str().unwrap()).expect_err(name);
+        assert!(e.to_string().contains(needle), "{name}: {e}");
+    }
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -103,7 +103,8 @@ fn parse_slacks(s: &str) -> std::result::Result<Slacks, String> {
 /// Arguments of `plumb fit`.
 #[derive(Debug, Clone, Args)]
 pub struct FitArgs {
-    /// Logs of nominal operation: CSV files, or folders (every *.csv inside, sorted by name)
+    /// Logs of nominal operation: CSV files, NumPy .npy arrays (column names in NAME.header
+    /// beside a 2-D array), or folders (every *.csv and *.npy inside, sorted by name)
     #[arg(value_name = "LOG", required = true)]
     pub logs: Vec<PathBuf>,
 

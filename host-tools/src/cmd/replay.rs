@@ -39,7 +39,7 @@ pub struct ReplayArgs {
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
-    /// Logs (CSV files, or directories of *.csv)
+    /// Logs (CSV files, .npy arrays, or directories of them)
     #[arg(value_name = "LOG", required = true)]
     pub logs: Vec<PathBuf>,
 

@@ -43,7 +43,7 @@ pub struct ReportArgs {
     #[arg(value_name = "MODEL")]
     pub model: PathBuf,
 
-    /// Logs to replay and draw (CSV files, or folders of *.csv)
+    /// Logs to replay and draw (CSV files, .npy arrays, or folders of them)
     #[arg(value_name = "LOG", required = true)]
     pub logs: Vec<PathBuf>,
 
