@@ -5,7 +5,7 @@
 #   scripts/fuzz.sh [SECONDS_PER_TARGET]      (default 60)
 #
 # Environment:
-#   FUZZ_TARGETS    targets to run, space-separated (default: all five)
+#   FUZZ_TARGETS    targets to run, space-separated (default: all six)
 #   FUZZ_RUNS       stop a target after this many executions (default 10^7)
 #   FUZZ_SANITIZER  cargo-fuzz sanitizer: none (default) or address
 #   FUZZ_JOBS       parallel fuzzing processes per target (default 1); each
@@ -21,7 +21,7 @@ set -uo pipefail
 cd "$(dirname "$0")/.."
 
 secs="${1:-60}"
-targets="${FUZZ_TARGETS:-model_decode frame_decoder detector csv_reader endpoint}"
+targets="${FUZZ_TARGETS:-model_decode frame_decoder detector csv_reader array_reader endpoint}"
 runs="${FUZZ_RUNS:-10000000}"
 sanitizer="${FUZZ_SANITIZER:-none}"
 jobs="${FUZZ_JOBS:-1}"

@@ -1,5 +1,6 @@
 //! Writes the seed corpora under `fuzz/corpus/<target>/`: a valid model
-//! file, valid frames, endpoint runs, detector inputs and a CSV snippet.
+//! file, valid frames, endpoint runs, detector inputs, a CSV snippet and
+//! small `.npy` arrays.
 //! Deterministic; run it again after a format change:
 //!
 //! ```sh
@@ -365,4 +366,49 @@ fn main() {
     let mut bytes = vec![0x0C];
     bytes.extend(csv.as_bytes());
     write(&dir, "quoted.csv", &bytes);
+
+    // array_reader: NumPy .npy files as `np.save` lays them out (version 1.0
+    // and 2.0 headers padded to 64 bytes), with a NaN and an infinity.
+    let dir = root.join("array_reader");
+    let rows: [[f64; 3]; 4] = [
+        [0.0, 1.5, -2.0],
+        [0.1, f64::NAN, 3.0],
+        [0.2, 4.0, f64::INFINITY],
+        [0.3, 5.0, 6.0],
+    ];
+    let f8: Vec<u8> = rows
+        .iter()
+        .flatten()
+        .flat_map(|v| v.to_le_bytes())
+        .collect();
+    let f4: Vec<u8> = rows
+        .iter()
+        .flatten()
+        .flat_map(|&v| (v as f32).to_le_bytes())
+        .collect();
+    write(&dir, "plain_f8.npy", &npy(1, "'<f8'", "(4, 3)", &f8));
+    write(&dir, "plain_f4.npy", &npy(1, "'<f4'", "(4, 3)", &f4));
+    let fields = "[('t[s]', '<f8'), ('a', '<f8'), ('b', '<f8')]";
+    write(&dir, "structured.npy", &npy(1, fields, "(4,)", &f8));
+    write(&dir, "version2.npy", &npy(2, "'<f8'", "(4, 3)", &f8));
+}
+
+/// An `.npy` file: magic, version `major`.0, header length, the header
+/// dictionary padded with spaces to a multiple of 64 bytes, the values.
+fn npy(major: u8, descr: &str, shape: &str, payload: &[u8]) -> Vec<u8> {
+    let prefix = if major == 1 { 10 } else { 12 };
+    let mut h = format!("{{'descr': {descr}, 'fortran_order': False, 'shape': {shape}, }}");
+    let pad = (64 - (prefix + h.len() + 1) % 64) % 64;
+    h.push_str(&" ".repeat(pad));
+    h.push('\n');
+    let mut out = b"\x93NUMPY".to_vec();
+    out.extend_from_slice(&[major, 0]);
+    if major == 1 {
+        out.extend_from_slice(&(h.len() as u16).to_le_bytes());
+    } else {
+        out.extend_from_slice(&(h.len() as u32).to_le_bytes());
+    }
+    out.extend_from_slice(h.as_bytes());
+    out.extend_from_slice(payload);
+    out
 }
