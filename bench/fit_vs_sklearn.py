@@ -8,7 +8,8 @@ generator, seeded), writes them as CSV and as a .npy array, then times:
     "covariance_eigh", n_components=M) + GaussianMixture(diag, k=4, n_init=R,
     tol=1e-3, max_iter=100);
   * the same from CSV read by pandas;
-  * `plumb fit` from the CSV (--components M --mixture 4 --restarts R; its
+  * `plumb fit` from the same .npy array (column names in rows.header beside
+    it) and from the CSV (--components M --mixture 4 --restarts R; its
     calibration stage is timed separately and excluded from the ratio, since
     scikit-learn has none).
 
@@ -72,10 +73,17 @@ def generate(rows, path_csv, path_npy, seed=7):
     x = x.astype(np.float32).astype(np.float64)
     np.save(path_npy, x)
     header = ",".join(f"f{j:02d}" for j in range(d))
+    write_header(path_npy, header)
     with open(path_csv, "w") as f:
         f.write(header + "\n")
         # %.7g round-trips float32 values.
         np.savetxt(f, x, fmt="%.7g", delimiter=",")
+
+
+def write_header(path_npy, header):
+    """The column names of a 2-D array log, beside it (rows.npy -> rows.header)."""
+    with open(os.path.splitext(path_npy)[0] + ".header", "w") as f:
+        f.write(header + "\n")
 
 
 SKLEARN = textwrap.dedent(
@@ -154,6 +162,9 @@ def main():
         subprocess.run([sys.executable, __file__, "--generate-only", "--rows", str(a.rows),
                         "--keep", work], check=True)
     size = os.path.getsize(csv) / 2**20
+    if not os.path.exists(os.path.splitext(npy)[0] + ".header"):
+        with open(csv) as f:
+            write_header(npy, f.readline().strip())
 
     py = sys.executable
     sk_bin = run_measured([py, "-c", SKLEARN, npy, str(a.components), str(a.restarts),
@@ -161,12 +172,16 @@ def main():
     sk_csv = run_measured([py, "-c", SKLEARN, csv, str(a.components), str(a.restarts),
                            str(a.reps)], env=SKLEARN_ENV)
     out = os.path.join(work, "bench.plumb")
-    pls = []
-    for _ in range(a.reps):
-        pls.append(run_measured([a.plumb, "fit", csv, "--out", out, "--time-column", "none",
-                                 "--components", str(a.components), "--mixture", "4",
-                                 "--restarts", str(a.restarts), "--tol", "1e-3",
-                                 "--max-iter", "100", "--json", "--quiet"]))
+
+    def plumb_runs(src):
+        return [run_measured([a.plumb, "fit", src, "--out", out, "--time-column", "none",
+                              "--components", str(a.components), "--mixture", "4",
+                              "--restarts", str(a.restarts), "--tol", "1e-3",
+                              "--max-iter", "100", "--json", "--quiet"])
+                for _ in range(a.reps)]
+
+    pls_npy = plumb_runs(npy)
+    pls = plumb_runs(csv)
     skb, skc = json.loads(sk_bin[2]), json.loads(sk_csv[2])
 
     def fit_seconds(p):
@@ -175,6 +190,10 @@ def main():
         return p[0] - calib
 
     pl = min(pls, key=fit_seconds)
+    pn = min(pls_npy, key=fit_seconds)
+    pn_fit, pn_cold = fit_seconds(pn), fit_seconds(pls_npy[0])
+    pn_timings = {t["stage"]: t["seconds"] for t in json.loads(pn[2])["fit"]["timings"]}
+    pn_ll = json.loads(pn[2])["fit"]["mixture"]["mean_ll"]
     rep = json.loads(pl[2])
     fit = rep["fit"]
     timings = {t["stage"]: t["seconds"] for t in fit["timings"]}
@@ -194,17 +213,20 @@ def main():
     print("|---|---|---|---|")
     print(f"| one EM iteration (fastest) | {skb['iter']*1e3:.1f} ms | {pl_iter*1e3:.1f} ms | {skb['iter']/pl_iter:.1f}x |")
     print(f"| EM time per iteration over the fit, initialisations included (plumb) | | {pl_iter_mean*1e3:.1f} ms | {skb['iter']/pl_iter_mean:.1f}x |")
-    print(f"| whole fit from a binary array (sklearn) vs from CSV (plumb, without calibration) | {bw['whole']:.2f} s | {pl_fit:.2f} s | {bw['whole']/pl_fit:.1f}x |")
-    print(f"| the same, first runs | {bc['whole']:.2f} s | {pl_cold:.2f} s | {bc['whole']/pl_cold:.1f}x |")
+    print(f"| whole fit from the binary array (.npy, both; plumb without calibration) | {bw['whole']:.2f} s | {pn_fit:.2f} s | {bw['whole']/pn_fit:.1f}x |")
+    print(f"| the same, first runs | {bc['whole']:.2f} s | {pn_cold:.2f} s | {bc['whole']/pn_cold:.1f}x |")
+    print(f"| whole fit, scikit-learn from the binary array, plumb from CSV | {bw['whole']:.2f} s | {pl_fit:.2f} s | {bw['whole']/pl_fit:.1f}x |")
     print(f"| CSV end to end (pandas + sklearn vs plumb, without calibration) | {cw['whole']:.2f} s | {pl_fit:.2f} s | {cw['whole']/pl_fit:.1f}x |")
-    print(f"| peak memory (binary array / CSV) | {sk_bin[1]:.0f} / {sk_csv[1]:.0f} MiB | {pl[1]:.0f} MiB | {sk_bin[1]/pl[1]:.1f}x / {sk_csv[1]/pl[1]:.1f}x |")
-    print(f"| final mean log-likelihood (latent scores) | {skb['mean_ll']:.5f} | {mix['mean_ll']:.5f} | {mix['mean_ll']-skb['mean_ll']:+.5f} (plumb − sklearn) |")
+    print(f"| peak memory (binary array / CSV) | {sk_bin[1]:.0f} / {sk_csv[1]:.0f} MiB | {pn[1]:.0f} / {pl[1]:.0f} MiB | {sk_bin[1]/pn[1]:.1f}x / {sk_csv[1]/pl[1]:.1f}x |")
+    print(f"| final mean log-likelihood (latent scores; binary array / CSV) | {skb['mean_ll']:.5f} / {skc['mean_ll']:.5f} | {pn_ll:.5f} / {mix['mean_ll']:.5f} | {pn_ll-skb['mean_ll']:+.5f} / {mix['mean_ll']-skc['mean_ll']:+.5f} (plumb − sklearn) |")
     print(f"\nscikit-learn, best run: read {bw['read']:.2f} s (npy) / {cw['read']:.2f} s (pandas), "
           f"scaler + PCA {bw['pca']:.2f} s, GMM {bw['gmm']:.2f} s ({skb['n_iter']} iterations in "
           f"the best init); first run: read {bc['read']:.2f} s, scaler + PCA {bc['pca']:.2f} s, "
           f"GMM {bc['gmm']:.2f} s")
-    print(f"plumb: total {pl[0]:.2f} s, calibration {calib:.2f} s (excluded above), stages "
+    print(f"plumb from CSV: total {pl[0]:.2f} s, calibration {calib:.2f} s (excluded above), stages "
           + ", ".join(f"{k} {v:.2f} s" for k, v in timings.items()))
+    print(f"plumb from .npy: total {pn[0]:.2f} s, stages "
+          + ", ".join(f"{k} {v:.2f} s" for k, v in pn_timings.items()))
 
 
 if __name__ == "__main__":
