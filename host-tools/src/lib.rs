@@ -24,6 +24,7 @@
 //! | [`boards`] | boards' model-slot memory maps and flashable slot images (Intel HEX, binary) |
 //! | [`cli`], [`cmd`] | the command line |
 //! | [`error`] | the error type: message, location, exit code |
+//! | [`out`] | results on standard output; a closed pipe ends the process quietly |
 //!
 //! plumbline is an advisory monitor, not a safety function: defer to the
 //! machine's own safety system, local codes and licensed practice.
@@ -48,6 +49,7 @@ pub mod link;
 pub mod live;
 pub mod logs;
 pub mod npy;
+pub mod out;
 pub mod pca;
 pub mod progress;
 pub mod replay;

@@ -686,3 +686,24 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
         &["not a usable model file", &bad_s],
     );
 }
+
+#[test]
+fn a_closed_pipe_ends_output_quietly() {
+    // `plumb inspect model | head -1`: the reader goes away. The read end is
+    // closed before plumb starts, so its first write fails whatever the
+    // timing; plumb must end with 141 (128 + SIGPIPE, as a Unix tool killed
+    // by that signal) and no panic message.
+    let model =
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../firmware/boards/mps2-an386/default.plumb");
+    let (reader, writer) = std::io::pipe().unwrap();
+    drop(reader);
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .arg("inspect")
+        .arg(&model)
+        .stdout(writer)
+        .stderr(std::process::Stdio::piped())
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(141), "{}", stderr(&o));
+    assert!(o.stderr.is_empty(), "{}", stderr(&o));
+}

@@ -372,12 +372,12 @@ pub fn run(args: DemoArgs) -> Result<u8> {
         scenarios,
     };
     if args.output.json {
-        println!(
+        crate::outln!(
             "{}",
             serde_json::to_string_pretty(&result).expect("serialisable")
         );
     } else if !args.output.quiet {
-        print!("{}", text(&result));
+        crate::out!("{}", text(&result));
     }
     Ok(EXIT_CLEAN)
 }

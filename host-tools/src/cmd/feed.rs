@@ -369,7 +369,7 @@ pub fn run(args: FeedArgs) -> Result<u8> {
         tally.raised, tally.cleared, tally.faults
     );
     if args.json {
-        println!(
+        crate::outln!(
             "{}",
             serde_json::json!({"event": "fed", "samples": sum.samples, "taken": sum.taken,
                 "frames_sent": sum.frames_sent, "resent": sum.resent, "reports_missing": sum.reports_missing,
@@ -377,7 +377,7 @@ pub fn run(args: FeedArgs) -> Result<u8> {
                 "faults": tally.faults})
         );
     } else {
-        println!("{summary}");
+        crate::outln!("{summary}");
     }
     if sum.taken != sum.samples {
         eprintln!(

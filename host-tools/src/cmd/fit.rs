@@ -381,10 +381,10 @@ pub fn run(args: FitArgs) -> Result<u8> {
         summary = summary.with_changes(changes);
     }
     if args.output.json {
-        println!("{}", summary.to_json());
+        crate::outln!("{}", summary.to_json());
     } else if !args.output.quiet {
-        print!("{}", summary.to_text());
-        println!("\nwrote {} ({} bytes)", args.out.display(), bytes.len());
+        crate::out!("{}", summary.to_text());
+        crate::outln!("\nwrote {} ({} bytes)", args.out.display(), bytes.len());
     }
     Ok(EXIT_CLEAN)
 }

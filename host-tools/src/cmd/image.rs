@@ -104,7 +104,7 @@ pub fn run(args: ImageArgs) -> Result<u8> {
         ImageFormat::Bin => image.to_bin(),
     };
     std::fs::write(&args.out, &data).map_err(|e| Error::io(&args.out, "write", &e))?;
-    println!(
+    crate::outln!(
         "wrote {} ({} image, {} bytes): board {} slot {} at {:#010x} (record) and {:#010x} (file, {} bytes), generation {}",
         args.out.display(),
         match format {
@@ -122,6 +122,6 @@ pub fn run(args: ImageArgs) -> Result<u8> {
         bytes.len(),
         args.generation
     );
-    println!("load it with: {}", board.how);
+    crate::outln!("load it with: {}", board.how);
     Ok(EXIT_CLEAN)
 }

@@ -63,13 +63,13 @@ pub fn run(args: InspectArgs) -> Result<u8> {
         if let Some(o) = v.as_object_mut() {
             o.insert("signature".into(), signature_json(info, check.as_ref()));
         }
-        println!(
+        crate::outln!(
             "{}",
             serde_json::to_string_pretty(&v).map_err(|e| Error::input(e.to_string()))?
         );
     } else if !args.output.quiet {
-        print!("{}", summary.to_text());
-        println!("{}", signature_text(info, check.as_ref()));
+        crate::out!("{}", summary.to_text());
+        crate::outln!("{}", signature_text(info, check.as_ref()));
     }
     match check {
         Some((p, Err(e))) => Err(Error::at(

@@ -35,9 +35,9 @@ pub fn run(args: KeygenArgs) -> Result<u8> {
     let key = SigningKey::generate()?;
     let public = keys::write_pair(&key, &args.out, args.force)?;
     if !args.quiet {
-        println!("key id {}", key.id());
-        println!("secret key {} (keep it private)", args.out.display());
-        println!(
+        crate::outln!("key id {}", key.id());
+        crate::outln!("secret key {} (keep it private)", args.out.display());
+        crate::outln!(
             "public key {} (build a board with PLUMB_TRUSTED_KEY={} \
              and --features trusted-key)",
             public.display(),

@@ -186,9 +186,9 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
         w.flush().map_err(|e| Error::io(&p, "write", &e))?;
     }
     if args.output.json {
-        println!("{}", serde_json::json!({ "logs": reps }));
+        crate::outln!("{}", serde_json::json!({ "logs": reps }));
     } else if !args.output.quiet {
-        print!("{}", text(&reps));
+        crate::out!("{}", text(&reps));
     }
     Ok(if reps.iter().any(|r| !r.flags.is_empty()) {
         EXIT_DRIFT
@@ -445,7 +445,7 @@ fn run_compare(args: ReplayArgs) -> Result<u8> {
         id: format!("{:08x}", new_file.model.meta.id),
     };
     if args.output.json {
-        println!(
+        crate::outln!(
             "{}",
             serde_json::json!({
                 "old": old,
@@ -455,7 +455,7 @@ fn run_compare(args: ReplayArgs) -> Result<u8> {
             })
         );
     } else if !args.output.quiet {
-        print!("{}", compare_text(&old, &new, &logs));
+        crate::out!("{}", compare_text(&old, &new, &logs));
     }
     Ok(
         if logs.iter().any(|l| !l.old.is_empty() || !l.new.is_empty()) {

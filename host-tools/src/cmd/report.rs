@@ -87,13 +87,13 @@ pub fn run(args: ReportArgs) -> Result<u8> {
     )?;
     let bytes = std::fs::metadata(&args.out).map(|m| m.len()).unwrap_or(0);
     if args.output.json {
-        println!(
+        crate::outln!(
             "{}",
             serde_json::json!({ "report": args.out, "bytes": bytes, "logs": reps })
         );
     } else if !args.output.quiet {
-        print!("{}", crate::cmd::replay::text(&reps));
-        println!(
+        crate::out!("{}", crate::cmd::replay::text(&reps));
+        crate::outln!(
             "report written to {} ({:.0} kB)",
             args.out.display(),
             bytes as f64 / 1e3

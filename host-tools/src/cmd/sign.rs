@@ -52,7 +52,7 @@ pub fn run(args: SignArgs) -> Result<u8> {
     }
     crate::fit::write_atomic(&args.out, &signed)?;
     if !args.quiet {
-        println!(
+        crate::outln!(
             "signed {} with key id {} -> {} ({} bytes)",
             args.model.display(),
             key.id(),

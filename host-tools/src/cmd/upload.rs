@@ -129,13 +129,13 @@ pub fn run(args: UploadArgs) -> Result<u8> {
             generation,
         } => {
             if args.json {
-                println!(
+                crate::outln!(
                     "{}",
                     serde_json::json!({"event": "switched", "slot": slot_name(slot), "model": model_id,
                         "generation": generation, "bytes": bytes.len()})
                 );
             } else {
-                println!(
+                crate::outln!(
                     "switched slot={} model={model_id:#010x} generation={generation} bytes={}",
                     slot_name(slot),
                     bytes.len()
@@ -150,13 +150,13 @@ pub fn run(args: UploadArgs) -> Result<u8> {
                 plumb_model::wire::Request::UploadCommit => "upload-commit",
             };
             if args.json {
-                println!(
+                crate::outln!(
                     "{}",
                     serde_json::json!({"event": "refused", "request": req, "code": reason.code(),
                         "reason": reason.to_string()})
                 );
             } else {
-                println!(
+                crate::outln!(
                     "refused request={req} code={} reason={:?}",
                     reason.code(),
                     reason.to_string()
