@@ -51,7 +51,11 @@ const CRC_NIBBLES: [u32; 16] = {
         let mut c = i as u32;
         let mut bit = 0;
         while bit < 4 {
-            c = if c & 1 != 0 { (c >> 1) ^ 0xEDB8_8320 } else { c >> 1 };
+            c = if c & 1 != 0 {
+                (c >> 1) ^ 0xEDB8_8320
+            } else {
+                c >> 1
+            };
             bit += 1;
         }
         table[i] = c;
