@@ -18,6 +18,7 @@ pub mod cobs;
 mod frame;
 mod message;
 mod reason;
+mod ser;
 
 #[cfg(feature = "alloc")]
 pub use frame::encode_frame_vec;

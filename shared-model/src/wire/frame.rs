@@ -2,6 +2,7 @@
 //! caller's buffer and a stream decoder with a fixed buffer.
 
 use super::cobs::{self, Step};
+use super::ser;
 use super::{crc32, LinkCounters, CRC_LEN};
 use core::fmt;
 use serde::{de::DeserializeOwned, Serialize};
@@ -36,16 +37,17 @@ impl core::error::Error for EncodeError {}
 pub fn encode_frame<M: Serialize + ?Sized>(msg: &M, out: &mut [u8]) -> Result<usize, EncodeError> {
     let start = cobs::in_place_offset(out.len());
     let room = out.get_mut(start..).ok_or(EncodeError::BufferTooSmall)?;
-    let n = postcard::to_slice(msg, room)
-        .map_err(|_| EncodeError::BufferTooSmall)?
-        .len();
+    let n = ser::to_slice(msg, room).map_err(|_| EncodeError::BufferTooSmall)?;
     if out.len() < max_frame_len(n) {
         return Err(EncodeError::BufferTooSmall);
     }
     // `out.len() − start ≥ n + CRC_LEN` whenever `out` holds the longest
     // frame of `n` bytes, so the CRC fits behind the message.
     let body = n + CRC_LEN;
-    let crc = crc32(out.get(start..start + n).ok_or(EncodeError::BufferTooSmall)?);
+    let message = out
+        .get(start..start + n)
+        .ok_or(EncodeError::BufferTooSmall)?;
+    let crc = crc32(message);
     out.get_mut(start + n..start + body)
         .ok_or(EncodeError::BufferTooSmall)?
         .copy_from_slice(&crc.to_le_bytes());
