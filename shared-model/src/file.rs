@@ -78,38 +78,25 @@ pub struct Sections<'a> {
     pub signature: Option<SignatureBlock<'a>>,
 }
 
-fn le16(b: &[u8], at: usize) -> u16 {
-    u16::from_le_bytes([b[at], b[at + 1]])
-}
-
-fn le32(b: &[u8], at: usize) -> u32 {
-    u32::from_le_bytes([b[at], b[at + 1], b[at + 2], b[at + 3]])
-}
-
 /// Checks magic, version, flags, lengths and CRC; returns the sections. A
-/// signed file's signature is located, not verified.
+/// signed file's signature is located, not verified. Every byte is read
+/// through a checked slice or a fixed-size header, so no input can panic.
 pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
     let got = bytes.len() as u32;
-    if bytes.len() < 4 {
-        return Err(ModelError::Truncated {
-            needed: HEADER_LEN as u32,
-            got,
-        });
-    }
-    if bytes[..4] != MAGIC {
+    let short = ModelError::Truncated {
+        needed: HEADER_LEN as u32,
+        got,
+    };
+    if *bytes.first_chunk::<4>().ok_or(short)? != MAGIC {
         return Err(ModelError::BadMagic);
     }
-    if bytes.len() < HEADER_LEN {
-        return Err(ModelError::Truncated {
-            needed: HEADER_LEN as u32,
-            got,
-        });
-    }
-    let version = le16(bytes, 4);
+    let [_, _, _, _, v0, v1, f0, f1, p0, p1, p2, p3, l0, l1, l2, l3] =
+        *bytes.first_chunk::<HEADER_LEN>().ok_or(short)?;
+    let version = u16::from_le_bytes([v0, v1]);
     if version != FORMAT_VERSION {
         return Err(ModelError::UnknownVersion { found: version });
     }
-    let flags = le16(bytes, 6);
+    let flags = u16::from_le_bytes([f0, f1]);
     if flags & !KNOWN_FLAGS != 0 {
         return Err(ModelError::UnknownFlags { found: flags });
     }
@@ -118,32 +105,34 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
     } else {
         0
     };
-    let payload_len = le32(bytes, 8) as u64;
-    let labels_len = le32(bytes, 12) as u64;
+    let payload_len = u32::from_le_bytes([p0, p1, p2, p3]) as u64;
+    let labels_len = u32::from_le_bytes([l0, l1, l2, l3]) as u64;
     let total = HEADER_LEN as u64 + payload_len + labels_len + block_len + CRC_LEN as u64;
+    let truncated = ModelError::Truncated {
+        needed: total.min(u32::MAX as u64) as u32,
+        got,
+    };
     if (bytes.len() as u64) < total {
-        return Err(ModelError::Truncated {
-            needed: total.min(u32::MAX as u64) as u32,
-            got,
-        });
+        return Err(truncated);
     }
     if (bytes.len() as u64) > total {
         return Err(ModelError::TrailingBytes {
             extra: (bytes.len() as u64 - total) as u32,
         });
     }
-    let body_end = bytes.len() - CRC_LEN;
-    let stored = le32(bytes, body_end);
-    let computed = crc32(&bytes[..body_end]);
+    // The length is now exactly `total`, so none of these can fail.
+    let (body, stored) = bytes.split_last_chunk::<CRC_LEN>().ok_or(truncated)?;
+    let stored = u32::from_le_bytes(*stored);
+    let computed = crc32(body);
     if stored != computed {
         return Err(ModelError::BadCrc { stored, computed });
     }
     let payload_end = HEADER_LEN + payload_len as usize;
-    let labels_end = body_end - block_len as usize;
+    let labels_end = body.len() - block_len as usize;
     Ok(Sections {
         version,
-        payload: &bytes[HEADER_LEN..payload_end],
-        labels: &bytes[payload_end..labels_end],
+        payload: bytes.get(HEADER_LEN..payload_end).ok_or(truncated)?,
+        labels: bytes.get(payload_end..labels_end).ok_or(truncated)?,
         signature: if block_len > 0 {
             SignatureBlock::at(bytes, labels_end)
         } else {
