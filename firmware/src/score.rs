@@ -179,7 +179,16 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
     let m = usize::from(model.dims.components);
     let k = usize::from(model.dims.mixture);
     // d = 0 only without a model (`Model::EMPTY`): nothing can be scored.
-    if x.len() != d || d == 0 || m == 0 || k == 0 {
+    // A validated model is within the capacities; saying so here lets the
+    // compiler drop the bounds checks (and their panics) of the slices below.
+    if x.len() != d
+        || d == 0
+        || m == 0
+        || k == 0
+        || d > MAX_FEATURES
+        || m > MAX_COMPONENTS
+        || k > MAX_MIXTURE
+    {
         return Err(Fault::WrongLength {
             got: x.len().min(u16::MAX as usize) as u16,
         });

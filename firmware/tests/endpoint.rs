@@ -1456,7 +1456,7 @@ mod signed_models {
         // signature can tell.
         bytes[file::HEADER_LEN] ^= 0x01;
         let end = bytes.len() - 4;
-        let crc = file::CRC.checksum(&bytes[..end]);
+        let crc = file::crc32(&bytes[..end]);
         bytes[end..].copy_from_slice(&crc.to_le_bytes());
         refused_when_trusting(bytes, Reason::BadSignature);
     }

@@ -78,7 +78,7 @@ fn check_signed(file: &[u8], damage: Option<(usize, u8)>) -> Vec<u8> {
     let body_end = bad.len() - file::CRC_LEN;
     let at = at % body_end;
     bad[at] ^= xor.max(1);
-    let crc = file::CRC.checksum(&bad[..body_end]);
+    let crc = file::crc32(&bad[..body_end]);
     bad[body_end..].copy_from_slice(&crc.to_le_bytes());
     let trust = check_trust(&bad, &config);
     assert!(trust.is_err(), "a damaged signed file was trusted");

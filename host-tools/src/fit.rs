@@ -729,7 +729,7 @@ pub fn model_id(file: &ModelFile) -> Result<u32> {
         .map_err(|e| Error::input(format!("the fitted model does not encode: {e}")))?;
     let sections = plumb_model::file::split(&bytes)
         .map_err(|e| Error::input(format!("the fitted model does not frame: {e}")))?;
-    Ok(plumb_model::file::CRC.checksum(sections.payload))
+    Ok(plumb_model::file::crc32(sections.payload))
 }
 
 /// Writes `bytes` to `path` atomically: a temporary file in the same folder,

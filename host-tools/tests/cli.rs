@@ -453,7 +453,7 @@ fn model_id_is_the_crc_of_the_payload_with_id_zero() {
     file.model.meta.id = 0;
     let zeroed = file.to_bytes().unwrap();
     let payload = plumb_model::file::split(&zeroed).unwrap().payload;
-    assert_eq!(plumb_model::file::CRC.checksum(payload), id);
+    assert_eq!(plumb_model::file::crc32(payload), id);
     // The schema fingerprint ties the model to the log columns.
     let want =
         plumb_model::schema::fingerprint([("x0", "A"), ("x1", "V"), ("x2", "A"), ("x3", "V")]);

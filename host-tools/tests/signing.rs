@@ -122,7 +122,7 @@ fn keygen_sign_inspect() {
     let mut tampered = sbytes.clone();
     tampered[20] ^= 0x01;
     let end = tampered.len() - 4;
-    let crc = plumb_model::file::CRC.checksum(&tampered[..end]);
+    let crc = plumb_model::file::crc32(&tampered[..end]);
     tampered[end..].copy_from_slice(&crc.to_le_bytes());
     let t = dir.path("tampered.plumb");
     std::fs::write(&t, &tampered).unwrap();

@@ -26,9 +26,43 @@ pub const FORMAT_VERSION: u16 = 1;
 pub const HEADER_LEN: usize = 16;
 /// CRC trailer length in bytes.
 pub const CRC_LEN: usize = 4;
-/// The CRC used by model files (and by wire frames): CRC-32/ISO-HDLC, the
-/// CRC of zlib and Ethernet (check value 0xCBF43926 for "123456789").
-pub const CRC: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+/// The CRC of model files (and of wire frames): CRC-32/ISO-HDLC, the CRC of
+/// zlib and Ethernet (reflected polynomial 0xEDB88320, initial value and
+/// final XOR 0xFFFFFFFF; check value 0xCBF43926 for "123456789").
+///
+/// Four bits at a time from a 16-entry table: 64 bytes of flash where a
+/// table for whole bytes takes 1 KiB, for two lookups per byte.
+pub fn crc32(bytes: &[u8]) -> u32 {
+    let mut crc = !0u32;
+    for &b in bytes {
+        crc ^= u32::from(b);
+        crc = (crc >> 4) ^ CRC_NIBBLES[(crc & 0xF) as usize];
+        crc = (crc >> 4) ^ CRC_NIBBLES[(crc & 0xF) as usize];
+    }
+    !crc
+}
+
+/// `CRC_NIBBLES[i]`: the CRC register after shifting the four bits of `i`
+/// through the reflected polynomial.
+const CRC_NIBBLES: [u32; 16] = {
+    let mut table = [0u32; 16];
+    let mut i = 0;
+    while i < 16 {
+        let mut c = i as u32;
+        let mut bit = 0;
+        while bit < 4 {
+            c = if c & 1 != 0 {
+                (c >> 1) ^ 0xEDB8_8320
+            } else {
+                c >> 1
+            };
+            bit += 1;
+        }
+        table[i] = c;
+        i += 1;
+    }
+    table
+};
 
 /// The parts of a model file after the framing was checked.
 #[derive(Debug, Clone, Copy)]
@@ -44,38 +78,25 @@ pub struct Sections<'a> {
     pub signature: Option<SignatureBlock<'a>>,
 }
 
-fn le16(b: &[u8], at: usize) -> u16 {
-    u16::from_le_bytes([b[at], b[at + 1]])
-}
-
-fn le32(b: &[u8], at: usize) -> u32 {
-    u32::from_le_bytes([b[at], b[at + 1], b[at + 2], b[at + 3]])
-}
-
 /// Checks magic, version, flags, lengths and CRC; returns the sections. A
-/// signed file's signature is located, not verified.
+/// signed file's signature is located, not verified. Every byte is read
+/// through a checked slice or a fixed-size header, so no input can panic.
 pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
     let got = bytes.len() as u32;
-    if bytes.len() < 4 {
-        return Err(ModelError::Truncated {
-            needed: HEADER_LEN as u32,
-            got,
-        });
-    }
-    if bytes[..4] != MAGIC {
+    let short = ModelError::Truncated {
+        needed: HEADER_LEN as u32,
+        got,
+    };
+    if *bytes.first_chunk::<4>().ok_or(short)? != MAGIC {
         return Err(ModelError::BadMagic);
     }
-    if bytes.len() < HEADER_LEN {
-        return Err(ModelError::Truncated {
-            needed: HEADER_LEN as u32,
-            got,
-        });
-    }
-    let version = le16(bytes, 4);
+    let [_, _, _, _, v0, v1, f0, f1, p0, p1, p2, p3, l0, l1, l2, l3] =
+        *bytes.first_chunk::<HEADER_LEN>().ok_or(short)?;
+    let version = u16::from_le_bytes([v0, v1]);
     if version != FORMAT_VERSION {
         return Err(ModelError::UnknownVersion { found: version });
     }
-    let flags = le16(bytes, 6);
+    let flags = u16::from_le_bytes([f0, f1]);
     if flags & !KNOWN_FLAGS != 0 {
         return Err(ModelError::UnknownFlags { found: flags });
     }
@@ -84,32 +105,34 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
     } else {
         0
     };
-    let payload_len = le32(bytes, 8) as u64;
-    let labels_len = le32(bytes, 12) as u64;
+    let payload_len = u32::from_le_bytes([p0, p1, p2, p3]) as u64;
+    let labels_len = u32::from_le_bytes([l0, l1, l2, l3]) as u64;
     let total = HEADER_LEN as u64 + payload_len + labels_len + block_len + CRC_LEN as u64;
+    let truncated = ModelError::Truncated {
+        needed: total.min(u32::MAX as u64) as u32,
+        got,
+    };
     if (bytes.len() as u64) < total {
-        return Err(ModelError::Truncated {
-            needed: total.min(u32::MAX as u64) as u32,
-            got,
-        });
+        return Err(truncated);
     }
     if (bytes.len() as u64) > total {
         return Err(ModelError::TrailingBytes {
             extra: (bytes.len() as u64 - total) as u32,
         });
     }
-    let body_end = bytes.len() - CRC_LEN;
-    let stored = le32(bytes, body_end);
-    let computed = CRC.checksum(&bytes[..body_end]);
+    // The length is now exactly `total`, so none of these can fail.
+    let (body, stored) = bytes.split_last_chunk::<CRC_LEN>().ok_or(truncated)?;
+    let stored = u32::from_le_bytes(*stored);
+    let computed = crc32(body);
     if stored != computed {
         return Err(ModelError::BadCrc { stored, computed });
     }
     let payload_end = HEADER_LEN + payload_len as usize;
-    let labels_end = body_end - block_len as usize;
+    let labels_end = body.len() - block_len as usize;
     Ok(Sections {
         version,
-        payload: &bytes[HEADER_LEN..payload_end],
-        labels: &bytes[payload_end..labels_end],
+        payload: bytes.get(HEADER_LEN..payload_end).ok_or(truncated)?,
+        labels: bytes.get(payload_end..labels_end).ok_or(truncated)?,
         signature: if block_len > 0 {
             SignatureBlock::at(bytes, labels_end)
         } else {
@@ -211,7 +234,7 @@ pub fn frame_into(payload: &[u8], labels: &[u8], out: &mut [u8]) -> Result<usize
     out[HEADER_LEN..p_end].copy_from_slice(payload);
     out[p_end..p_end + labels.len()].copy_from_slice(labels);
     let body_end = p_end + labels.len();
-    let crc = CRC.checksum(&out[..body_end]);
+    let crc = crc32(&out[..body_end]);
     out[body_end..total].copy_from_slice(&crc.to_le_bytes());
     Ok(total)
 }
@@ -232,7 +255,7 @@ pub fn encode_into(model: &Model, out: &mut [u8]) -> Result<usize, ModelError> {
     out[8..12].copy_from_slice(&(payload_len as u32).to_le_bytes());
     out[12..16].copy_from_slice(&0u32.to_le_bytes());
     let body_end = HEADER_LEN + payload_len;
-    let crc = CRC.checksum(&out[..body_end]);
+    let crc = crc32(&out[..body_end]);
     out[body_end..body_end + CRC_LEN].copy_from_slice(&crc.to_le_bytes());
     Ok(body_end + CRC_LEN)
 }

@@ -188,7 +188,7 @@ pub fn verify(sections: &Sections<'_>, key: &TrustedKey) -> Result<(), Signature
 mod signing {
     use super::*;
     use crate::error::ModelError;
-    use crate::file::{split, CRC, CRC_LEN, HEADER_LEN};
+    use crate::file::{crc32, split, CRC_LEN, HEADER_LEN};
     use alloc::vec::Vec;
 
     /// The public key of the ed25519 key pair whose 32-byte seed (RFC 8032's
@@ -217,7 +217,7 @@ mod signing {
     }
 
     fn close(mut out: Vec<u8>) -> Vec<u8> {
-        let crc = CRC.checksum(&out);
+        let crc = crc32(&out);
         out.extend_from_slice(&crc.to_le_bytes());
         debug_assert!(out.len() >= HEADER_LEN + CRC_LEN);
         out

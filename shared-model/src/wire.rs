@@ -6,7 +6,7 @@
 //!   [`DeviceMsg`]).
 //! * A **frame** is `COBS(message ‖ CRC-32 little-endian of message)`
 //!   followed by one `0x00` delimiter. The CRC is CRC-32/ISO-HDLC
-//!   ([`crate::file::CRC`]), the same as the model file's.
+//!   ([`crc32`]), the same as the model file's.
 //! * [`encode_frame`] writes a frame into a caller's buffer;
 //!   [`FrameDecoder`] turns a byte stream back into messages, counting every
 //!   kind of damage it drops.
@@ -18,6 +18,7 @@ pub mod cobs;
 mod frame;
 mod message;
 mod reason;
+mod ser;
 
 #[cfg(feature = "alloc")]
 pub use frame::encode_frame_vec;
@@ -77,10 +78,9 @@ pub type HostFrameDecoder = FrameDecoder<{ MAX_HOST_MESSAGE + CRC_LEN }>;
 /// Stream decoder a host uses for device frames.
 pub type DeviceFrameDecoder = FrameDecoder<{ MAX_DEVICE_MESSAGE + CRC_LEN }>;
 
-/// CRC-32/ISO-HDLC of `bytes` (frames and whole-file upload checks).
-pub fn crc32(bytes: &[u8]) -> u32 {
-    crate::file::CRC.checksum(bytes)
-}
+/// CRC-32/ISO-HDLC of `bytes` (frames and whole-file upload checks): the
+/// model file's CRC.
+pub use crate::file::crc32;
 
 /// Serial-number order on wrapping `u32` sequence numbers: whether `seq`
 /// is `from` or comes after it, i.e. `seq − from (mod 2³²) < 2³¹`.

@@ -3,7 +3,7 @@
 
 mod support;
 
-use plumb_model::file::{self, Label, ModelFile, CRC, HEADER_LEN, MAGIC};
+use plumb_model::file::{self, crc32, Label, ModelFile, HEADER_LEN, MAGIC};
 use plumb_model::{Capacity, Dim, Dims, Field, Model, ModelError, ModelMeta, ModelOwned};
 use proptest::prelude::*;
 use support::example_model;
@@ -19,7 +19,7 @@ fn frame(model: &ModelOwned) -> Vec<u8> {
 
 fn fix_crc(bytes: &mut [u8]) {
     let end = bytes.len() - 4;
-    let crc = CRC.checksum(&bytes[..end]);
+    let crc = crc32(&bytes[..end]);
     bytes[end..].copy_from_slice(&crc.to_le_bytes());
 }
 
@@ -60,7 +60,19 @@ fn tiny() -> ModelOwned {
 fn crc_is_crc32_iso_hdlc() {
     // Check value of CRC-32/ISO-HDLC for "123456789": 0xCBF43926
     // (Greg Cook's CRC catalogue; also zlib's crc32).
-    assert_eq!(CRC.checksum(b"123456789"), 0xcbf4_3926);
+    assert_eq!(crc32(b"123456789"), 0xcbf4_3926);
+}
+
+proptest! {
+    /// The crate's CRC (four bits at a time) agrees with an independent
+    /// one, the `crc` crate's byte-table CRC-32/ISO-HDLC, on any bytes.
+    #[test]
+    fn crc_agrees_with_an_independent_implementation(
+        bytes in proptest::collection::vec(any::<u8>(), 0..600)
+    ) {
+        let reference = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+        prop_assert_eq!(crc32(&bytes), reference.checksum(&bytes));
+    }
 }
 
 #[test]
@@ -117,7 +129,7 @@ fn tiny_model_exact_bytes() {
     assert_eq!(&bytes[HEADER_LEN..HEADER_LEN + payload_len], &expect[..]);
     // And the whole file, pinned: any change to the layout shows up here.
     let crc = u32::from_le_bytes(bytes[bytes.len() - 4..].try_into().unwrap());
-    assert_eq!(crc, CRC.checksum(&bytes[..bytes.len() - 4]));
+    assert_eq!(crc, crc32(&bytes[..bytes.len() - 4]));
     assert_eq!(payload_len, 159);
     assert_eq!(crc, 0x33fb_ccd7, "pinned CRC of the tiny model file");
 }
@@ -621,12 +633,12 @@ mod signed {
         let end = signed.len() - 4;
         assert_eq!(
             u32::from_le_bytes(signed[end..].try_into().unwrap()),
-            CRC.checksum(&signed[..end])
+            crc32(&signed[..end])
         );
         // RFC 8032 signatures are deterministic: the whole file is pinned.
         assert_eq!(signature::sign(&plain, &seed()).unwrap(), signed);
         assert_eq!(
-            CRC.checksum(&signed),
+            crc32(&signed),
             0x2144_df1c,
             "pinned CRC of the signed tiny model file"
         );

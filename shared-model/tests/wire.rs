@@ -755,6 +755,47 @@ mod messages {
         assert_eq!(MAX_CROSSINGS, 9);
     }
 
+    /// The frame encoder has its own serializer (`wire/ser.rs`); its bytes
+    /// are postcard's: every message variant, with sequence numbers of each
+    /// varint length, against `postcard::to_allocvec` framed by hand.
+    #[test]
+    fn frames_carry_postcards_bytes() {
+        for seq in [0, 127, 128, 16_383, 16_384, 2_097_152, u32::MAX] {
+            for msg in every_device_msg() {
+                let frame = DeviceFrame { seq, msg };
+                let reference = framed(&postcard::to_allocvec(&frame).unwrap());
+                assert_eq!(encode_frame_vec(&frame), reference, "{frame:?}");
+            }
+        }
+        for msg in every_host_msg() {
+            let reference = framed(&postcard::to_allocvec(&msg).unwrap());
+            assert_eq!(encode_frame_vec(&msg), reference, "{msg:?}");
+        }
+    }
+
+    proptest! {
+        /// The same for any values of every kind serde has (but 128-bit
+        /// integers, which the encoder refuses).
+        #[test]
+        fn any_values_encode_as_postcard_does(
+            unsigned in any::<(u8, u16, u32, u64, usize, bool)>(),
+            signed in any::<(i8, i16, i32, i64, f32, f64)>(),
+            text in ("\\PC{0,40}", any::<char>()),
+            nested in (
+                any::<Option<u32>>(),
+                proptest::collection::vec(any::<u16>(), 0..80),
+                proptest::collection::vec(any::<u8>(), 0..300),
+                any::<((), Option<()>)>(),
+            ),
+        ) {
+            let value = (unsigned, signed, text, nested);
+            let mut out = vec![0u8; 2048];
+            let n = encode_frame(&value, &mut out).unwrap();
+            let reference = framed(&postcard::to_allocvec(&value).unwrap());
+            prop_assert_eq!(&out[..n], &reference[..]);
+        }
+    }
+
     #[test]
     fn reason_codes_are_distinct_and_map_back() {
         let reasons = every_reason();

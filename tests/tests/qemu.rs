@@ -924,7 +924,7 @@ fn a_board_with_a_trusted_key_runs_only_signed_models() {
     let mut tampered = signed.clone();
     tampered[plumb_model::file::HEADER_LEN + 1] ^= 0x01;
     let end = tampered.len() - 4;
-    let crc = plumb_model::file::CRC.checksum(&tampered[..end]);
+    let crc = plumb_model::file::crc32(&tampered[..end]);
     tampered[end..].copy_from_slice(&crc.to_le_bytes());
 
     let samples = read_rows(&file, &drift_log("new_floor.csv"), 3000..3200);

@@ -2,6 +2,7 @@
 //! caller's buffer and a stream decoder with a fixed buffer.
 
 use super::cobs::{self, Step};
+use super::ser;
 use super::{crc32, LinkCounters, CRC_LEN};
 use core::fmt;
 use serde::{de::DeserializeOwned, Serialize};
@@ -29,23 +30,28 @@ impl fmt::Display for EncodeError {
 impl core::error::Error for EncodeError {}
 
 /// Writes `msg` as one complete frame (delimiter included) into `out`;
-/// returns the frame length. No allocation: the message is serialised into
-/// `out`, moved right by the COBS overhead, and stuffed in place.
+/// returns the frame length. No allocation and no copy: the message is
+/// serialised [`cobs::in_place_offset`]`(out.len())` bytes into `out`, far
+/// enough for any body that fits `out`, its CRC appended, and the whole
+/// stuffed in place towards the front.
 pub fn encode_frame<M: Serialize + ?Sized>(msg: &M, out: &mut [u8]) -> Result<usize, EncodeError> {
-    let n = postcard::to_slice(msg, out)
-        .map_err(|_| EncodeError::BufferTooSmall)?
-        .len();
-    let body = n + CRC_LEN;
-    let shift = cobs::in_place_offset(body);
+    let start = cobs::in_place_offset(out.len());
+    let room = out.get_mut(start..).ok_or(EncodeError::BufferTooSmall)?;
+    let n = ser::to_slice(msg, room).map_err(|_| EncodeError::BufferTooSmall)?;
     if out.len() < max_frame_len(n) {
         return Err(EncodeError::BufferTooSmall);
     }
-    let crc = crc32(out.get(..n).ok_or(EncodeError::BufferTooSmall)?);
-    out.copy_within(0..n, shift);
-    out.get_mut(shift + n..shift + body)
+    // `out.len() − start ≥ n + CRC_LEN` whenever `out` holds the longest
+    // frame of `n` bytes, so the CRC fits behind the message.
+    let body = n + CRC_LEN;
+    let message = out
+        .get(start..start + n)
+        .ok_or(EncodeError::BufferTooSmall)?;
+    let crc = crc32(message);
+    out.get_mut(start + n..start + body)
         .ok_or(EncodeError::BufferTooSmall)?
         .copy_from_slice(&crc.to_le_bytes());
-    let len = cobs::encode_in_place(out, shift, body).map_err(|_| EncodeError::BufferTooSmall)?;
+    let len = cobs::encode_in_place(out, start, body).map_err(|_| EncodeError::BufferTooSmall)?;
     *out.get_mut(len).ok_or(EncodeError::BufferTooSmall)? = 0;
     Ok(len + 1)
 }

@@ -105,6 +105,10 @@ impl Write for Link {
         self.uart.write(buf)
     }
 
+    fn write_all(&mut self, buf: &[u8]) -> Result<(), Self::Error> {
+        self.uart.write_all(buf)
+    }
+
     fn flush(&mut self) -> Result<(), Self::Error> {
         self.uart.flush()
     }

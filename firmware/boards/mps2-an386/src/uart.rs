@@ -198,6 +198,16 @@ impl embedded_io::Write for Uart0 {
         Ok(n)
     }
 
+    /// Blocking: queues every byte. (The provided method loops on `write`
+    /// and panics if it returns 0, which this UART never does; the panic
+    /// would link the formatting machinery.)
+    fn write_all(&mut self, buf: &[u8]) -> Result<(), Self::Error> {
+        for &byte in buf {
+            self.write_byte(byte);
+        }
+        Ok(())
+    }
+
     /// Waits until the holding register has been handed to the shifter.
     /// The CMSDK UART exposes no "shifter empty" flag, so the last byte may
     /// still be on the wire when this returns.
