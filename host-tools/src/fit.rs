@@ -762,6 +762,17 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     Ok(())
 }
 
+crate::simd::kernel! {
+/// The first `m` latent scores of every row of a chunk.
+fn project_chunk(pca: &Pca, c: &crate::logs::Chunk, m: usize) -> Vec<f64> {
+    let mut out = vec![0.0; c.rows() * m];
+    for (row, t) in c.iter_rows().zip(out.chunks_exact_mut(m)) {
+        pca.project(row, m, t);
+    }
+    out
+}
+}
+
 /// The second pass over the logs: the first `m` latent scores of every
 /// selected row, `m` values per row in row order (the only per-row data a
 /// fit keeps; `rows_hint` sizes the buffer).
@@ -777,13 +788,7 @@ pub fn project_rows(
     set.scan(
         select,
         stage,
-        |c| {
-            let mut out = vec![0.0; c.rows() * m];
-            for (row, t) in c.iter_rows().zip(out.chunks_exact_mut(m)) {
-                pca.project(row, m, t);
-            }
-            Ok(out)
-        },
+        |c| Ok(project_chunk(pca, c, m)),
         |t, _| {
             latent.extend_from_slice(&t);
             Ok(())

@@ -10,6 +10,7 @@
 //! | [`npy`] | the header of a NumPy `.npy` array file |
 //! | [`pca`] | moments with pairwise merging, standardisation, PCA |
 //! | [`gmm`] | diagonal Gaussian mixture by EM, k-means++ start, BIC |
+//! | [`simd`] | the numeric kernels compiled for AVX2 when the processor has it (same bits) |
 //! | [`arl`] | run lengths of CUSUM and EWMA charts (Markov chain), limit search |
 //! | [`calibrate`] | limits from held-out rows through the device detector |
 //! | [`fit`] | the fit pipeline, model id, atomic output |
@@ -28,7 +29,9 @@
 //!
 //! plumbline is an advisory monitor, not a safety function: defer to the
 //! machine's own safety system, local codes and licensed practice.
-#![forbid(unsafe_code)]
+// One exception, in `simd`: calling code compiled for AVX2 after checking
+// that the processor has it.
+#![deny(unsafe_code)]
 // Numeric kernels index several parallel arrays; indices read clearer there.
 #![allow(clippy::needless_range_loop)]
 // `!(x > 0.0)` is used on purpose: it also rejects NaN.
@@ -55,4 +58,5 @@ pub mod progress;
 pub mod replay;
 pub mod report;
 pub mod rng;
+pub mod simd;
 pub mod summary;

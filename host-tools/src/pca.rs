@@ -45,38 +45,48 @@ impl Moments {
         self.mean.len()
     }
 
-    /// Moments of a block of row-major rows, two-pass within the block.
+    /// Moments of a block of row-major rows, two-pass within the block
+    /// (compiled for AVX2 where the processor has it: same bits, see
+    /// [`crate::simd`]).
     pub fn from_rows(rows: &[f64], d: usize) -> Self {
-        let mut m = Moments::new(d);
-        if d == 0 || rows.is_empty() {
-            return m;
-        }
-        let n = rows.len() / d;
-        m.n = n as u64;
-        for row in rows.chunks_exact(d) {
-            for (a, x) in m.mean.iter_mut().zip(row) {
-                *a += x;
-            }
-        }
-        for a in m.mean.iter_mut() {
-            *a /= n as f64;
-        }
-        let mut c = vec![0.0; d];
-        for row in rows.chunks_exact(d) {
-            for ((ci, x), mu) in c.iter_mut().zip(row).zip(&m.mean) {
-                *ci = x - mu;
-            }
-            for i in 0..d {
-                let ci = c[i];
-                let out = &mut m.comoment[i * d + i..(i + 1) * d];
-                for (o, cj) in out.iter_mut().zip(&c[i..]) {
-                    *o += ci * cj;
-                }
-            }
-        }
-        m
+        moments_of_rows(rows, d)
     }
+}
 
+crate::simd::kernel! {
+fn moments_of_rows(rows: &[f64], d: usize) -> Moments {
+    let mut m = Moments::new(d);
+    if d == 0 || rows.is_empty() {
+        return m;
+    }
+    let n = rows.len() / d;
+    m.n = n as u64;
+    for row in rows.chunks_exact(d) {
+        for (a, x) in m.mean.iter_mut().zip(row) {
+            *a += x;
+        }
+    }
+    for a in m.mean.iter_mut() {
+        *a /= n as f64;
+    }
+    let mut c = vec![0.0; d];
+    for row in rows.chunks_exact(d) {
+        for ((ci, x), mu) in c.iter_mut().zip(row).zip(&m.mean) {
+            *ci = x - mu;
+        }
+        for i in 0..d {
+            let ci = c[i];
+            let out = &mut m.comoment[i * d + i..(i + 1) * d];
+            for (o, cj) in out.iter_mut().zip(&c[i..]) {
+                *o += ci * cj;
+            }
+        }
+    }
+    m
+}
+}
+
+impl Moments {
     /// Merges `other` into `self` (Chan, Golub & LeVeque 1979):
     /// `δ = mean_b − mean_a`, `mean = mean_a + δ n_b / n`,
     /// `M = M_a + M_b + δ δᵀ n_a n_b / n`.
@@ -284,6 +294,7 @@ impl Pca {
     }
 
     /// Projects one row onto the first `m` components: `t = Pᵀ (x − μ) / s`.
+    #[inline(always)]
     pub fn project(&self, x: &[f64], m: usize, t: &mut [f64]) {
         let d = self.d();
         t[..m].iter_mut().for_each(|v| *v = 0.0);

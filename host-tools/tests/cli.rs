@@ -707,3 +707,28 @@ fn a_closed_pipe_ends_output_quietly() {
     assert_eq!(o.status.code(), Some(141), "{}", stderr(&o));
     assert!(o.stderr.is_empty(), "{}", stderr(&o));
 }
+
+#[test]
+fn fit_is_the_same_with_and_without_avx2() {
+    // The numeric kernels run compiled for AVX2 where the processor has it
+    // (plumb::simd); PLUMB_SIMD=baseline keeps the baseline build. Same
+    // operations in the same order: the model files must be the same bytes.
+    // 9,000 rows of 12 features: many 128-row tiles and a partial one.
+    let d = Scratch::new("simd");
+    let a = d.write("a.csv", &log_text(12, 9000, 5));
+    let mut files = Vec::new();
+    for mode in ["baseline", "native"] {
+        let out = d.path(&format!("{mode}.plumb"));
+        let o = std::process::Command::new(env!("CARGO_BIN_EXE_plumb"))
+            .args(["fit", s(&a), "--out", s(&out), "--mixture", "3", "--quiet"])
+            .env("PLUMB_SIMD", mode)
+            .output()
+            .unwrap();
+        assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+        files.push(std::fs::read(&out).unwrap());
+    }
+    if !plumb::simd::avx2() {
+        eprintln!("this processor has no AVX2: both runs took the baseline path");
+    }
+    assert!(files[0] == files[1], "AVX2 and baseline fits differ");
+}
