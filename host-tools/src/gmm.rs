@@ -334,23 +334,22 @@ fn tile_sum(r: &[f64; TILE]) -> f64 {
     fold(a)
 }
 
-/// `Σ r x` and `Σ r x²` over a tile.
+/// `Σ r x` and `Σ r x²` over a tile, each in [`LANES`] interleaved partial
+/// sums. Two passes over the tile (the product `r x` computed again in the
+/// second, the same value) give the compiler two plain vector reductions;
+/// one pass interleaving both spilled its sixteen accumulators.
 #[inline(always)]
 fn tile_sums2(r: &[f64; TILE], x: &[f64; TILE]) -> (f64, f64) {
     let mut a = [0.0; LANES];
+    for (rc, xc) in r.chunks_exact(LANES).zip(x.chunks_exact(LANES)) {
+        for l in 0..LANES {
+            a[l] += rc[l] * xc[l];
+        }
+    }
     let mut b = [0.0; LANES];
-    for i0 in (0..TILE).step_by(LANES) {
-        let rc: &[f64; LANES] = r[i0..i0 + LANES].try_into().expect("lanes");
-        let xc: &[f64; LANES] = x[i0..i0 + LANES].try_into().expect("lanes");
-        let mut rx = [0.0; LANES];
+    for (rc, xc) in r.chunks_exact(LANES).zip(x.chunks_exact(LANES)) {
         for l in 0..LANES {
-            rx[l] = rc[l] * xc[l];
-        }
-        for l in 0..LANES {
-            a[l] += rx[l];
-        }
-        for l in 0..LANES {
-            b[l] += rx[l] * xc[l];
+            b[l] += rc[l] * xc[l] * xc[l];
         }
     }
     (fold(a), fold(b))
