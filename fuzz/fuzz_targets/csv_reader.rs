@@ -15,91 +15,15 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use plumb::error::Error;
-use plumb::logs::{BadCells, LogSet, ReadOptions, Selection};
-use plumb::progress::Stage;
+use plumb::logs::{BadCells, LogSet, ReadOptions};
+use plumb_fuzz::logs::{exercise, located, scratch_dir, Kind};
 use plumb_model::file::Label;
-use std::path::{Path, PathBuf};
-use std::sync::OnceLock;
-
-fn scratch() -> &'static Path {
-    static PATH: OnceLock<PathBuf> = OnceLock::new();
-    PATH.get_or_init(|| {
-        let dir = if Path::new("/dev/shm").is_dir() {
-            PathBuf::from("/dev/shm")
-        } else {
-            std::env::temp_dir()
-        };
-        dir.join(format!("plumb-fuzz-csv-{}.csv", std::process::id()))
-    })
-}
-
-fn located(e: &Error, path: &Path) {
-    let loc = e
-        .location
-        .as_ref()
-        .unwrap_or_else(|| panic!("error without a location: {e}"));
-    assert_eq!(loc.path, path, "error names another file: {e}");
-}
-
-fn scan(set: &LogSet, sel: &Selection, path: &Path, bad: BadCells) -> Option<Vec<u64>> {
-    let d = set.features();
-    let mut lines = Vec::new();
-    let r = set.for_each(sel, &Stage::hidden(), |c| {
-        assert_eq!(c.d, d);
-        assert_eq!(c.values.len(), c.rows() * d);
-        assert!(c.times.is_empty() || c.times.len() == c.rows());
-        if bad != BadCells::PassAsNan {
-            assert!(c.values.iter().all(|v| v.is_finite()));
-        }
-        lines.extend_from_slice(&c.lines);
-        Ok(())
-    });
-    match r {
-        Ok(stats) => {
-            assert_eq!(stats.total_rows(), lines.len() as u64);
-            assert!(lines.windows(2).all(|w| w[0] < w[1]), "lines out of order");
-            assert!(
-                lines.iter().all(|&l| l >= 2),
-                "a data row on the header line"
-            );
-            Some(lines)
-        }
-        Err(e) => {
-            located(&e, path);
-            let loc = e.location.as_ref().expect("checked");
-            assert!(
-                loc.line.is_some_and(|l| l >= 2),
-                "row error without a line: {e}"
-            );
-            None
-        }
-    }
-}
-
-fn exercise(set: &LogSet, path: &Path, bad: BadCells) {
-    let Some(all) = scan(set, &Selection::all(1), path, bad) else {
-        return;
-    };
-    let counts = match set.count_lines(&Stage::hidden()) {
-        Ok(c) => c,
-        Err(e) => return located(&e, path),
-    };
-    assert_eq!(counts.len(), 1);
-    let (head, tail) = Selection::split_tail(&counts, 0.3);
-    let h = scan(set, &head, path, bad).expect("the whole file read");
-    let t = scan(set, &tail, path, bad).expect("the whole file read");
-    let t2 = scan(set, &tail, path, bad).expect("the whole file read");
-    assert_eq!(t, t2, "a resumed scan differs");
-    let joined: Vec<u64> = h.into_iter().chain(t).collect();
-    assert_eq!(joined, all, "head + tail differ from the whole");
-}
 
 fuzz_target!(|data: &[u8]| {
     let Some((&mode, text)) = data.split_first() else {
         return;
     };
-    let path = scratch();
+    let path = &scratch_dir().join("log.csv");
     if mode & 0x20 == 0 {
         std::fs::write(path, text).expect("scratch file");
     } else {
@@ -131,7 +55,9 @@ fuzz_target!(|data: &[u8]| {
     };
 
     match LogSet::open(&paths, opts.clone()) {
-        Ok(set) => exercise(&set, path, bad),
+        Ok(set) => {
+            exercise(&set, path, bad, Kind::Text);
+        }
         Err(e) => located(&e, path),
     }
 
@@ -160,7 +86,9 @@ fuzz_target!(|data: &[u8]| {
         }],
     };
     match LogSet::open_for_labels(&paths, &labels, opts) {
-        Ok(set) => exercise(&set, path, bad),
+        Ok(set) => {
+            exercise(&set, path, bad, Kind::Text);
+        }
         Err(e) => located(&e, path),
     }
 });

@@ -1,9 +1,11 @@
 //! Pieces the fuzz targets share: the small valid models of the workspace
-//! tests, model files, an in-memory serial link, a drift line, and a
-//! deterministic chunker that turns a seed into read sizes.
+//! tests, model files, an in-memory serial link, a drift line, a
+//! deterministic chunker that turns a seed into read sizes, and the checks of
+//! the two log-reader targets ([`logs`]).
 
 #![forbid(unsafe_code)]
 
+pub mod logs;
 pub mod ops;
 
 #[path = "../../shared-model/tests/support/mod.rs"]
