@@ -276,57 +276,32 @@ impl<'a> ser::Serializer for &mut Writer<'a> {
     }
 }
 
-impl ser::SerializeSeq for &mut Writer<'_> {
-    type Ok = ();
-    type Error = Unwritable;
+/// The compound serializers whose parts are written one after another with
+/// nothing between them (postcard writes no separators): `$method` for each
+/// part, nothing at the end.
+macro_rules! in_order {
+    ($($trait:ident :: $method:ident),* $(,)?) => {$(
+        impl ser::$trait for &mut Writer<'_> {
+            type Ok = ();
+            type Error = Unwritable;
 
-    fn serialize_element<T: Serialize + ?Sized>(&mut self, value: &T) -> Result<()> {
-        value.serialize(&mut **self)
-    }
+            fn $method<T: Serialize + ?Sized>(&mut self, value: &T) -> Result<()> {
+                value.serialize(&mut **self)
+            }
 
-    fn end(self) -> Result<()> {
-        Ok(())
-    }
+            fn end(self) -> Result<()> {
+                Ok(())
+            }
+        }
+    )*};
 }
 
-impl ser::SerializeTuple for &mut Writer<'_> {
-    type Ok = ();
-    type Error = Unwritable;
-
-    fn serialize_element<T: Serialize + ?Sized>(&mut self, value: &T) -> Result<()> {
-        value.serialize(&mut **self)
-    }
-
-    fn end(self) -> Result<()> {
-        Ok(())
-    }
-}
-
-impl ser::SerializeTupleStruct for &mut Writer<'_> {
-    type Ok = ();
-    type Error = Unwritable;
-
-    fn serialize_field<T: Serialize + ?Sized>(&mut self, value: &T) -> Result<()> {
-        value.serialize(&mut **self)
-    }
-
-    fn end(self) -> Result<()> {
-        Ok(())
-    }
-}
-
-impl ser::SerializeTupleVariant for &mut Writer<'_> {
-    type Ok = ();
-    type Error = Unwritable;
-
-    fn serialize_field<T: Serialize + ?Sized>(&mut self, value: &T) -> Result<()> {
-        value.serialize(&mut **self)
-    }
-
-    fn end(self) -> Result<()> {
-        Ok(())
-    }
-}
+in_order!(
+    SerializeSeq::serialize_element,
+    SerializeTuple::serialize_element,
+    SerializeTupleStruct::serialize_field,
+    SerializeTupleVariant::serialize_field,
+);
 
 impl ser::SerializeMap for &mut Writer<'_> {
     type Ok = ();
