@@ -641,6 +641,12 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         self.send(out, DeviceMsg::Refused(Refusal { request, reason }));
     }
 
+    // Out of line: inlined into `feed` and `poll`, the handlers and
+    // `Detector::update` share the serving loop's registers with the frame
+    // decoder, and the spills and reloads around them cost about 0.5 KB of
+    // flash on a Cortex-M (BENCHMARKS.md, "Smaller code"); one call per host
+    // message is all this costs at run time.
+    #[inline(never)]
     fn handle<W: Write>(&mut self, msg: &HostMsg, out: &mut Out<'_, W>) {
         match msg {
             HostMsg::Sample { features } => self.on_sample(features, out),

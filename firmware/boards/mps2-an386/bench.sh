@@ -10,7 +10,8 @@
 #    (1 instruction = 1 ns of virtual time; SysTick at 25 MHz: 1 tick = 40
 #    instructions), for synthetic models (d, m, k) = (32, 8, 4), (64, 16, 8)
 #    and the built-in model; deterministic, whatever the host.
-# 2. arm-none-eabi-size of the endpoint image (text = flash, bss = RAM).
+# 2. arm-none-eabi-size of the endpoint image (text = flash, bss = RAM), and
+#    the endpoint's code: text minus the built-in model file.
 # 3. Stack high-water mark by painting, with the real endpoint running:
 #    `plumb feed` of a drift log, and `plumb upload` of a model (the upload is
 #    decoded into the staging detector place, then switched to).
@@ -41,6 +42,14 @@ done
 echo
 echo "== image sizes (text = flash, bss = RAM; data = 0)"
 arm-none-eabi-size "$elf_dir/plumb-board-mps2" "$elf_dir/plumb-board-mps2-echo" "$elf_dir/plumb-board-mps2-bench"
+# The endpoint's text includes the built-in model file (include_bytes! in
+# .rodata): data, not code. The file is $PLUMB_MODEL when set (relative to
+# this folder, as in build.rs), else default.plumb.
+builtin=${PLUMB_MODEL:-default.plumb}
+[[ $builtin == /* ]] || builtin="$here/$builtin"
+text=$(arm-none-eabi-size "$elf_dir/plumb-board-mps2" | awk 'NR == 2 { print $1 }')
+model_bytes=$(stat -c %s "$builtin")
+echo "endpoint code (text minus the built-in model of $model_bytes bytes): $((text - model_bytes)) bytes (goal: at most 24,576)"
 
 echo
 echo "== stack high-water mark with the real endpoint (painting)"

@@ -24,6 +24,14 @@ fn main() {
     fs::copy("memory.x", out.join("memory.x")).expect("copy memory.x into OUT_DIR");
     println!("cargo:rustc-link-search={}", out.display());
     println!("cargo:rerun-if-changed=memory.x");
+    // cortex-m-rt's `device` feature: its `link.x` includes `device.x`, where
+    // a device crate would name its interrupt handlers. The board's one
+    // interrupt vector is `mmio::__INTERRUPTS`, so nothing is named here.
+    fs::write(
+        out.join("device.x"),
+        "/* plumb-board-mps2: no device handlers (src/mmio.rs, __INTERRUPTS) */\n",
+    )
+    .expect("write device.x into OUT_DIR");
     println!("cargo:rerun-if-changed=build.rs");
 
     println!("cargo:rustc-link-arg-bins=--nmagic");

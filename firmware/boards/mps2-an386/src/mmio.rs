@@ -258,6 +258,25 @@ pub(crate) fn unpend_uart0_rx() {
     cortex_m::peripheral::NVIC::unpend(Uart0RxIrq);
 }
 
+/// Device interrupt lines in the vector table: only UART0 RX (line 0, the
+/// one line the program unmasks). cortex-m-rt's `device` feature leaves this
+/// table to the board; without it the crate emits all 240 lines of an
+/// ARMv7-M part (960 bytes of flash). The NVIC only takes enabled lines, so
+/// no entry past the table is ever fetched.
+// SAFETY: `__INTERRUPTS` is the name and section cortex-m-rt's `link.x`
+// places right after the 16 exception vectors (`EXTERN(__INTERRUPTS)`,
+// `.vector_table.interrupts`); no other object in the program has either.
+// Its one entry is `DefaultHandler` below, whose symbol the `exception`
+// attribute exports with the `extern "C"` signature declared here.
+#[unsafe(link_section = ".vector_table.interrupts")]
+#[unsafe(no_mangle)]
+pub static __INTERRUPTS: [unsafe extern "C" fn(); 1] = {
+    extern "C" {
+        fn DefaultHandler();
+    }
+    [DefaultHandler]
+};
+
 /// Any device interrupt. Only UART0's receive line is unmasked, and it is
 /// normally only pending while interrupts are masked (see
 /// `uart::Uart0::sleep_until_rx`); if it is ever taken, clearing the UART's

@@ -62,25 +62,30 @@ impl BoardSlots {
 
     /// Copies every intact region into its RAM slot.
     pub fn preload(&mut self) -> [Preload; 2] {
-        [Slot::A, Slot::B].map(|slot| {
-            let region = mmio::code_region(REGIONS[slot.index()], REGION_LEN);
-            let Some(record) = region.get(..RECORD_LEN).and_then(SlotRecord::from_bytes) else {
-                return Preload::Empty;
-            };
-            let Some(file) = usize::try_from(record.len)
-                .ok()
-                .and_then(|len| region.get(DATA_OFFSET..DATA_OFFSET.checked_add(len)?))
-            else {
-                return Preload::Damaged;
-            };
-            if plumb_firmware::plumb_model::wire::crc32(file) != record.crc {
-                return Preload::Damaged;
-            }
-            match self.0.store(slot, file, record.generation) {
-                Ok(()) if slot_file(&*self.0, slot).is_some() => Preload::Loaded(record.generation),
-                _ => Preload::Damaged,
-            }
-        })
+        [self.preload_slot(Slot::A), self.preload_slot(Slot::B)]
+    }
+
+    /// Copies one region into its RAM slot if it is intact. Out of line, so
+    /// the image holds it once, not once per slot.
+    #[inline(never)]
+    fn preload_slot(&mut self, slot: Slot) -> Preload {
+        let region = mmio::code_region(REGIONS[slot.index()], REGION_LEN);
+        let Some(record) = region.get(..RECORD_LEN).and_then(SlotRecord::from_bytes) else {
+            return Preload::Empty;
+        };
+        let Some(file) = usize::try_from(record.len)
+            .ok()
+            .and_then(|len| region.get(DATA_OFFSET..DATA_OFFSET.checked_add(len)?))
+        else {
+            return Preload::Damaged;
+        };
+        if plumb_firmware::plumb_model::wire::crc32(file) != record.crc {
+            return Preload::Damaged;
+        }
+        match self.0.store(slot, file, record.generation) {
+            Ok(()) if slot_file(&*self.0, slot).is_some() => Preload::Loaded(record.generation),
+            _ => Preload::Damaged,
+        }
     }
 }
 
