@@ -21,13 +21,13 @@
 use crate::calibrate::{self, CalibConfig, CalibReport, RowSource};
 use crate::error::{Error, Location, Result};
 use crate::gmm::{self, EmOptions, RunInfo};
-use crate::logs::{LogSet, Selection};
+use crate::logs::{LogSet, Selection, Spill};
 use crate::pca::{Keep, Moments, Pca, PcaError};
 use crate::progress::{Progress, Stage};
 use plumb_model::file::{Label, ModelFile};
 use plumb_model::{Capacity, Dims, ModelMeta, ModelOwned};
 use serde::Serialize;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 /// Most time steps kept to take the median sample period.
@@ -81,6 +81,10 @@ pub struct FitConfig {
     pub device_check: bool,
     /// Threads (1 or 2).
     pub threads: usize,
+    /// Folder for a binary copy of the training rows, so the projection
+    /// pass reads it instead of parsing CSV logs again (8 bytes per value,
+    /// removed at the end); `None` parses them twice.
+    pub spill: Option<PathBuf>,
 }
 
 impl Default for FitConfig {
@@ -97,6 +101,7 @@ impl Default for FitConfig {
             calib: CalibConfig::default(),
             device_check: true,
             threads: 2,
+            spill: Some(std::env::temp_dir()),
         }
     }
 }
@@ -327,16 +332,44 @@ pub fn fit(
     };
     lap("count", &mut timings);
 
-    // 2. Moments and time steps.
+    // 2. Moments and time steps; CSV rows also go to the spill file.
+    let mut spill = match &cfg.spill {
+        Some(dir) if train.files().iter().any(|f| f.array_rows().is_none()) => {
+            match Spill::create(dir, d) {
+                Ok(s) => Some(s),
+                Err(e) => {
+                    warnings.push(format!("no spill file ({e}): the logs are parsed twice"));
+                    None
+                }
+            }
+        }
+        _ => None,
+    };
+    let spilling = spill.is_some();
     let mut moments = Moments::new(d);
     let mut steps: Vec<f64> = Vec::new();
     let mut last: Option<(usize, f64)> = None;
     let stats = train.scan(
         &train_sel,
         &progress.stage("moments", bytes, true),
-        |c| Ok(Moments::from_rows(&c.values, d)),
-        |m, c| {
+        |c| {
+            let bytes = if spilling {
+                Spill::encode(&c.values)
+            } else {
+                Vec::new()
+            };
+            Ok((Moments::from_rows(&c.values, d), bytes))
+        },
+        |(m, bytes), c| {
             moments.merge(&m);
+            if let Some(s) = spill.as_mut() {
+                if let Err(e) = s.push(&bytes) {
+                    warnings.push(format!(
+                        "spill file dropped ({e}): the logs are parsed twice"
+                    ));
+                    spill = None;
+                }
+            }
             for &t in &c.times {
                 if let Some((f, prev)) = last {
                     if f == c.file && steps.len() < PERIOD_STEPS {
@@ -412,15 +445,39 @@ pub fn fit(
     }
     lap("pca", &mut timings);
 
-    // 4. Latent scores.
-    let latent = project_rows(
-        train,
-        &train_sel,
-        &progress.stage("project", bytes, true),
-        &pca,
-        m,
-        n_train as usize,
-    )?;
+    // 4. Latent scores, from the spill file when there is one.
+    let spilled = match spill.as_mut() {
+        Some(s) if s.rows() == n_train => match s.finish(train.labels(), train.options()) {
+            Ok(set) => Some(set),
+            Err(e) => {
+                warnings.push(format!(
+                    "spill file dropped ({e}): the logs are parsed twice"
+                ));
+                None
+            }
+        },
+        _ => None,
+    };
+    let latent = match &spilled {
+        Some(set) => project_rows(
+            set,
+            &Selection::all(1),
+            &progress.stage("project", set.total_bytes(), true),
+            &pca,
+            m,
+            n_train as usize,
+        )?,
+        None => project_rows(
+            train,
+            &train_sel,
+            &progress.stage("project", bytes, true),
+            &pca,
+            m,
+            n_train as usize,
+        )?,
+    };
+    drop(spilled);
+    drop(spill);
     lap("project", &mut timings);
 
     // 5. Mixture.

@@ -1251,6 +1251,143 @@ impl LogSet {
     }
 }
 
+/// A binary copy of the rows of a scan, written as they are read, so a
+/// second pass reads it instead of parsing the logs again: a NumPy `.npy`
+/// file of `<f8` values in label order in a folder of the caller's choice
+/// (8 bytes per value). The file is removed when the `Spill` is dropped.
+#[derive(Debug)]
+pub struct Spill {
+    path: PathBuf,
+    out: Option<std::io::BufWriter<File>>,
+    d: usize,
+    rows: u64,
+}
+
+impl Spill {
+    /// Bytes before the values: the `.npy` header, written last.
+    const HEADER: u64 = 128;
+
+    /// Creates an empty spill file for rows of `d` values in `dir`.
+    pub fn create(dir: &Path, d: usize) -> Result<Spill> {
+        let stamp = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map_or(0, |t| t.as_nanos());
+        let path = dir.join(format!("plumb-spill-{}-{stamp}.npy", std::process::id()));
+        let file = std::fs::OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&path)
+            .map_err(|e| Error::io(&path, "create", &e))?;
+        let mut spill = Spill {
+            path,
+            out: Some(std::io::BufWriter::with_capacity(1 << 20, file)),
+            d,
+            rows: 0,
+        };
+        spill.write(&[0; Self::HEADER as usize])?;
+        Ok(spill)
+    }
+
+    /// The bytes of `values` as the spill stores them (little-endian
+    /// `f64`); meant for the parser threads.
+    pub fn encode(values: &[f64]) -> Vec<u8> {
+        let mut out = Vec::with_capacity(values.len() * 8);
+        for v in values {
+            out.extend_from_slice(&v.to_le_bytes());
+        }
+        out
+    }
+
+    /// Appends rows given as [`Spill::encode`] bytes.
+    pub fn push(&mut self, bytes: &[u8]) -> Result<()> {
+        self.write(bytes)?;
+        self.rows += (bytes.len() / (8 * self.d.max(1))) as u64;
+        Ok(())
+    }
+
+    fn write(&mut self, bytes: &[u8]) -> Result<()> {
+        use std::io::Write;
+        let out = self
+            .out
+            .as_mut()
+            .ok_or_else(|| Error::input("internal error: the spill file is closed"))?;
+        out.write_all(bytes)
+            .map_err(|e| Error::io(&self.path, "write", &e))
+    }
+
+    /// Rows written so far.
+    pub fn rows(&self) -> u64 {
+        self.rows
+    }
+
+    /// Writes the header and opens the spill as a log set of `labels` (one
+    /// column each, no time column), read with `opts`' threads and block
+    /// size.
+    pub fn finish(&mut self, labels: &[Label], opts: &ReadOptions) -> Result<LogSet> {
+        use std::io::{Seek, SeekFrom, Write};
+        let io = |e: std::io::Error| Error::io(&self.path, "write", &e);
+        let mut file = self
+            .out
+            .take()
+            .ok_or_else(|| Error::input("internal error: the spill file is closed"))?
+            .into_inner()
+            .map_err(|e| io(e.into_error()))?;
+        let mut h = format!(
+            "{{'descr': '<f8', 'fortran_order': False, 'shape': ({}, {}), }}",
+            self.rows, self.d
+        );
+        let room = Self::HEADER as usize - 10 - 1;
+        if h.len() > room || labels.len() != self.d {
+            return Err(Error::input("internal error: spill header"));
+        }
+        h.push_str(&" ".repeat(room - h.len()));
+        h.push('\n');
+        let mut head = npy::MAGIC.to_vec();
+        head.extend_from_slice(&[1, 0]);
+        head.extend_from_slice(&(h.len() as u16).to_le_bytes());
+        head.extend_from_slice(h.as_bytes());
+        file.seek(SeekFrom::Start(0)).map_err(io)?;
+        file.write_all(&head).map_err(io)?;
+        file.flush().map_err(io)?;
+        let array = ArrayHeader {
+            element: Element::F64,
+            rows: self.rows,
+            columns: self.d,
+            names: None,
+            data_offset: Self::HEADER,
+        };
+        Ok(LogSet {
+            files: vec![LogFile {
+                path: self.path.clone(),
+                bytes: Self::HEADER + self.rows * array.row_bytes(),
+                data_offset: Self::HEADER,
+                names: labels.iter().map(|l| l.name.clone()).collect(),
+                targets: (0..self.d).map(Target::Feature).collect(),
+                feature_fields: (0..self.d).collect(),
+                names_at: NamesAt::Fields(self.path.clone()),
+                array: Some(array),
+            }],
+            labels: labels.to_vec(),
+            time_unit: String::new(),
+            opts: ReadOptions {
+                time_column: None,
+                units: BTreeMap::new(),
+                bad_cells: BadCells::Reject,
+                threads: opts.threads,
+                block_bytes: opts.block_bytes,
+            },
+            hints: Hints::default(),
+        })
+    }
+}
+
+impl Drop for Spill {
+    fn drop(&mut self) {
+        self.out = None;
+        let _ = std::fs::remove_file(&self.path);
+    }
+}
+
 fn open_at(file: &LogFile) -> Result<File> {
     use std::io::{Seek, SeekFrom};
     let mut f = File::open(&file.path).map_err(|e| Error::io(&file.path, "read", &e))?;

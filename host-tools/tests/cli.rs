@@ -732,3 +732,40 @@ fn fit_is_the_same_with_and_without_avx2() {
     }
     assert!(files[0] == files[1], "AVX2 and baseline fits differ");
 }
+
+#[test]
+fn spill_file_spares_a_parse_and_changes_nothing() {
+    // The training rows of CSV logs go to a binary spill file in pass 1 and
+    // the projection reads it back: the model must be the very bytes of a
+    // fit that parses the logs twice, and the spill file must be gone.
+    let d = Scratch::new("spill");
+    let a = d.write("a.csv", &log_text(6, 4000, 8));
+    let b = d.write("b.csv", &log_text(6, 3000, 9));
+    let spill = d.path("spill");
+    std::fs::create_dir(&spill).unwrap();
+    let fit = |out: &str, extra: &[&str]| {
+        let out = d.path(out);
+        let mut args = vec!["fit", s(&a), s(&b), "--out", s(&out), "--quiet", "--json"];
+        args.extend_from_slice(extra);
+        let o = plumb(&args);
+        assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+        let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        (
+            std::fs::read(&out).unwrap(),
+            v["fit"]["warnings"].to_string(),
+        )
+    };
+    let (twice, _) = fit("twice.plumb", &["--no-spill"]);
+    let (once, warnings) = fit("once.plumb", &["--spill-dir", s(&spill)]);
+    assert!(once == twice, "the spill changed the model");
+    assert!(!warnings.contains("spill"), "{warnings}");
+    assert_eq!(
+        std::fs::read_dir(&spill).unwrap().count(),
+        0,
+        "spill file left behind"
+    );
+    // A spill folder that cannot be written: a warning, and the fit goes on.
+    let (fallback, warnings) = fit("fallback.plumb", &["--spill-dir", s(&d.path("missing"))]);
+    assert!(fallback == twice);
+    assert!(warnings.contains("no spill file"), "{warnings}");
+}

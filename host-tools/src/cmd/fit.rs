@@ -54,6 +54,12 @@ rows are held in memory, about 8·m bytes per training row (m = components kept)
 their quantiles, monitored values for the limit search). Measured: 36 000 training rows
 and 1 million held-out rows × 24 features, peak 46 MB.
 
+Disk: CSV logs are parsed once. The training rows go to a binary spill file (8 bytes per
+value, e.g. 1 million rows × 32 features ≈ 256 MB) in --spill-dir (default: the system's
+temporary folder), which the projection pass reads instead of parsing again; it is removed
+when the fit ends. --no-spill parses the logs twice and writes nothing; a spill folder that
+cannot be written falls back to that with a warning. The model is the same bytes either way.
+
 Refit (--base OLD.plumb): the logs must have exactly the base model's feature columns
 (names, order and units; the first mismatch is refused, naming the log and the column);
 the model is fitted anew with the options given here (nothing is carried over from the
@@ -290,6 +296,16 @@ pub struct FitArgs {
     #[arg(long)]
     pub no_device_check: bool,
 
+    /// Folder for a binary copy of the training rows, read by the projection pass instead of
+    /// parsing CSV logs a second time (8 bytes per value, removed at the end) [default: the
+    /// system's temporary folder]
+    #[arg(long, value_name = "DIR")]
+    pub spill_dir: Option<PathBuf>,
+
+    /// Parse CSV logs twice instead of keeping a binary copy of the training rows on disk
+    #[arg(long, conflicts_with = "spill_dir")]
+    pub no_spill: bool,
+
     #[command(flatten)]
     pub output: OutputArgs,
 }
@@ -324,6 +340,11 @@ impl FitArgs {
             },
             device_check: !self.no_device_check,
             threads: usize::from(self.read.threads),
+            spill: match (&self.spill_dir, self.no_spill) {
+                (_, true) => None,
+                (Some(dir), false) => Some(dir.clone()),
+                (None, false) => Some(std::env::temp_dir()),
+            },
         }
     }
 }
