@@ -320,36 +320,26 @@ impl ser::SerializeMap for &mut Writer<'_> {
     }
 }
 
-impl ser::SerializeStruct for &mut Writer<'_> {
-    type Ok = ();
-    type Error = Unwritable;
+/// The struct serializers: fields by position, names not written.
+macro_rules! named_in_order {
+    ($($trait:ident),* $(,)?) => {$(
+        impl ser::$trait for &mut Writer<'_> {
+            type Ok = ();
+            type Error = Unwritable;
 
-    fn serialize_field<T: Serialize + ?Sized>(
-        &mut self,
-        _key: &'static str,
-        value: &T,
-    ) -> Result<()> {
-        value.serialize(&mut **self)
-    }
+            fn serialize_field<T: Serialize + ?Sized>(
+                &mut self,
+                _key: &'static str,
+                value: &T,
+            ) -> Result<()> {
+                value.serialize(&mut **self)
+            }
 
-    fn end(self) -> Result<()> {
-        Ok(())
-    }
+            fn end(self) -> Result<()> {
+                Ok(())
+            }
+        }
+    )*};
 }
 
-impl ser::SerializeStructVariant for &mut Writer<'_> {
-    type Ok = ();
-    type Error = Unwritable;
-
-    fn serialize_field<T: Serialize + ?Sized>(
-        &mut self,
-        _key: &'static str,
-        value: &T,
-    ) -> Result<()> {
-        value.serialize(&mut **self)
-    }
-
-    fn end(self) -> Result<()> {
-        Ok(())
-    }
-}
+named_in_order!(SerializeStruct, SerializeStructVariant);
