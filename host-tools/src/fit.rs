@@ -273,10 +273,9 @@ pub fn fit(
     }
     let d = train.features();
     let first = &train.files()[0].path;
-    let names_at = train.files()[0].header_location();
     if d < 2 {
         return Err(Error::at(
-            names_at,
+            train.files()[0].header_location(),
             "expected at least 2 feature columns (one feature leaves no residual to monitor)",
         ));
     }
