@@ -78,7 +78,10 @@ for t in $targets; do
     # Slow units (a unit over 10 s of wall clock, e.g. while the fuzzer was
     # paused) are written out too but are not failures.
     crash=$(sed -n 's/.*Test unit written to \(.*\)$/\1/p' "$log" | grep -v '/slow-unit-' | tail -1)
-    if [ "$status" -ne 0 ] || [ -n "$crash" ]; then
+    if [ -z "$crash" ] && grep -q 'libFuzzer: run interrupted' "$log"; then
+        # Stopped from outside (Ctrl-C, SIGINT): no finding, not the whole budget.
+        summary+=("$(printf '%-14s %12s execs %7s s %8s/s  interrupted' "$t" "$execs" "$elapsed" "$rate")")
+    elif [ "$status" -ne 0 ] || [ -n "$crash" ]; then
         failed=1
         grep -m1 -A4 "panicked at" "$log" || tail -20 "$log"
         summary+=("$(printf '%-14s %12s execs %7s s %8s/s  CRASH %s' "$t" "$execs" "$elapsed" "$rate" "${crash:-see $log}")")
