@@ -10,6 +10,9 @@
 #   FUZZ_SANITIZER  cargo-fuzz sanitizer: none (default) or address
 #   FUZZ_JOBS       parallel fuzzing processes per target (default 1); each
 #                   runs FUZZ_RUNS / FUZZ_JOBS executions on the shared corpus
+#   FUZZ_TRACE_CMP  1 (default) or 0: 0 builds without libFuzzer's comparison
+#                   tracing (faster per input, less guidance
+#                   past comparisons; for long runs on a grown corpus)
 #
 # Needs the nightly toolchain and cargo-fuzz (`cargo install cargo-fuzz`).
 # New corpus entries go to fuzz/corpus-work/<target> (not committed); the
@@ -25,6 +28,8 @@ targets="${FUZZ_TARGETS:-model_decode frame_decoder detector csv_reader array_re
 runs="${FUZZ_RUNS:-10000000}"
 sanitizer="${FUZZ_SANITIZER:-none}"
 jobs="${FUZZ_JOBS:-1}"
+build_flags=()
+[ "${FUZZ_TRACE_CMP:-1}" = 0 ] && build_flags+=(--no-trace-compares)
 
 if ! cargo +nightly fuzz --version >/dev/null 2>&1; then
     echo "cargo-fuzz is missing: cargo install cargo-fuzz" >&2
@@ -33,7 +38,7 @@ fi
 
 # Build once, then run the binaries: `cargo fuzz run` would rebuild whatever
 # changed in the tree between two targets.
-cargo +nightly fuzz build -s "$sanitizer" || exit 2
+cargo +nightly fuzz build -s "$sanitizer" "${build_flags[@]}" || exit 2
 host="$(rustc +nightly -vV | sed -n 's/^host: //p')"
 bin="fuzz/target/$host/release"
 
@@ -90,6 +95,7 @@ for t in $targets; do
     fi
 done
 
-printf '\n== summary (sanitizer: %s, corpus: %s)\n' "$sanitizer" "fuzz/corpus-work"
+printf '\n== summary (sanitizer: %s, comparison tracing: %s, corpus: %s)\n' "$sanitizer" \
+    "$([ ${#build_flags[@]} -eq 0 ] && echo on || echo off)" "fuzz/corpus-work"
 printf '%s\n' "${summary[@]}"
 exit "$failed"

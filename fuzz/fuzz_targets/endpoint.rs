@@ -44,8 +44,11 @@ const SLOT: usize = 2048;
 /// policy, not keys).
 const SEED: [u8; 32] = [9; 32];
 
+/// Derived once: deriving a public key is a scalar multiplication, as dear as
+/// a signature check, and every trusting run and signed commit needs it.
 fn trusted_key() -> TrustedKey {
-    TrustedKey::new(signature::public_key(&SEED))
+    static KEY: OnceLock<TrustedKey> = OnceLock::new();
+    *KEY.get_or_init(|| TrustedKey::new(signature::public_key(&SEED)))
 }
 
 struct Files {
