@@ -822,9 +822,7 @@ crate::simd::kernel! {
 /// The first `m` latent scores of every row of a chunk.
 fn project_chunk(pca: &Pca, c: &crate::logs::Chunk, m: usize) -> Vec<f64> {
     let mut out = vec![0.0; c.rows() * m];
-    for (row, t) in c.iter_rows().zip(out.chunks_exact_mut(m)) {
-        pca.project(row, m, t);
-    }
+    pca.project_rows(&c.values[..c.rows() * c.d], m, &mut out);
     out
 }
 }
