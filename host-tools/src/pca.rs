@@ -379,8 +379,9 @@ impl Pca {
                 if je - j0 == TJ {
                     let mut acc = [[0.0; TJ]; R];
                     for i in 0..d {
-                        let p: &[f64; TJ] =
-                            self.loadings[i * d + j0..i * d + je].try_into().expect("TJ scores");
+                        let p: &[f64; TJ] = self.loadings[i * d + j0..i * d + je]
+                            .try_into()
+                            .expect("TJ scores");
                         for (r, acc_r) in acc.iter_mut().enumerate() {
                             let zi = z[r * d + i];
                             for b in 0..TJ {
