@@ -383,6 +383,9 @@ fn block_stats(block: &[f64], rows: usize, mix: &Mixture, norm: &[f64], prec: &[
     let mut st = Stats::new(k, m);
     let mut lp = vec![0.0; k * TILE];
     for (t, xs) in block.chunks_exact(m * TILE).enumerate() {
+        if let Some(ahead) = block.get((t + 1) * m * TILE..(t + 2) * m * TILE) {
+            crate::simd::prefetch(ahead);
+        }
         let rows = rows.saturating_sub(t * TILE).min(TILE);
         let mut best = [f64::NEG_INFINITY; TILE];
         for c in 0..k {
