@@ -541,22 +541,20 @@ mod tests {
         m
     }
 
+    fn bits(v: &[f64]) -> Vec<u64> {
+        v.iter().map(|x| x.to_bits()).collect()
+    }
+
     #[test]
     fn tiled_moments_are_the_row_by_row_bits() {
-        let mut s = 99u64;
-        let mut next = || {
-            s = s
-                .wrapping_mul(6364136223846793005)
-                .wrapping_add(1442695040888963407);
-            (s >> 11) as f64 / (1u64 << 53) as f64 * 10.0 - 3.0
-        };
+        let mut rng = crate::rng::Rng::new(99, 0);
+        let mut next = || rng.uniform() * 10.0 - 3.0;
         // Widths around the 4 × 8 tile, row counts around the 128-row runs.
         for d in [1, 3, 4, 7, 8, 9, 12, 13, 16, 32, 37] {
             for n in [1, 2, 5, 127, 128, 129, 300] {
                 let rows: Vec<f64> = (0..n * d).map(|_| next()).collect();
                 let (tiled, plain) = (Moments::from_rows(&rows, d), moments_row_by_row(&rows, d));
                 assert_eq!(tiled.n, plain.n);
-                let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
                 assert_eq!(bits(&tiled.mean), bits(&plain.mean), "d {d} n {n}");
                 assert_eq!(bits(&tiled.comoment), bits(&plain.comoment), "d {d} n {n}");
             }
@@ -565,13 +563,8 @@ mod tests {
 
     #[test]
     fn projecting_many_rows_is_projecting_each() {
-        let mut s = 7u64;
-        let mut next = || {
-            s = s
-                .wrapping_mul(6364136223846793005)
-                .wrapping_add(1442695040888963407);
-            (s >> 11) as f64 / (1u64 << 53) as f64 * 4.0 - 1.0
-        };
+        let mut rng = crate::rng::Rng::new(7, 0);
+        let mut next = || rng.uniform() * 4.0 - 1.0;
         for d in [2, 5, 8, 13, 32] {
             let fit_rows: Vec<f64> = (0..50 * d).map(|_| next()).collect();
             let pca = fit(&fit_rows, d).expect("PCA");
@@ -584,7 +577,6 @@ mod tests {
                     for (row, t) in x.chunks_exact(d).zip(each.chunks_exact_mut(m)) {
                         pca.project(row, m, t);
                     }
-                    let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
                     assert_eq!(bits(&many), bits(&each), "d {d} m {m} n {n}");
                 }
             }
