@@ -156,9 +156,28 @@ impl Stats {
     }
 }
 
-/// Runs `f` on every block of `data` (blocks of `block` values; even blocks on
-/// one thread, odd on the other) with its index, and returns the results in
-/// block order.
+/// `f(0), …, f(n − 1)` in order, computed on two threads when `threads`
+/// allows (even indices on one, odd on the other).
+fn per_item<T: Send>(n: usize, threads: usize, f: impl Fn(usize) -> T + Sync) -> Vec<T> {
+    if threads < 2 || n < 2 {
+        return (0..n).map(f).collect();
+    }
+    let (even, odd) = std::thread::scope(|s| {
+        let h = s.spawn(|| (1..n).step_by(2).map(&f).collect::<Vec<_>>());
+        let even: Vec<T> = (0..n).step_by(2).map(&f).collect();
+        (even, h.join().expect("worker thread panicked"))
+    });
+    let mut out = Vec::with_capacity(n);
+    let mut odd = odd.into_iter();
+    for e in even {
+        out.push(e);
+        out.extend(odd.next());
+    }
+    out
+}
+
+/// Runs `f` on every block of `data` (blocks of `block` values) with its
+/// index, through [`per_item`], and returns the results in block order.
 fn per_block<T: Send>(
     data: &[f64],
     block: usize,
@@ -166,41 +185,7 @@ fn per_block<T: Send>(
     f: impl Fn(usize, &[f64]) -> T + Sync,
 ) -> Vec<T> {
     let blocks: Vec<&[f64]> = data.chunks(block.max(1)).collect();
-    if threads < 2 || blocks.len() < 2 {
-        return blocks
-            .into_iter()
-            .enumerate()
-            .map(|(i, b)| f(i, b))
-            .collect();
-    }
-    let (even, odd) = std::thread::scope(|s| {
-        let h = s.spawn(|| {
-            blocks
-                .iter()
-                .enumerate()
-                .skip(1)
-                .step_by(2)
-                .map(|(i, b)| f(i, b))
-                .collect::<Vec<_>>()
-        });
-        let even: Vec<T> = blocks
-            .iter()
-            .enumerate()
-            .step_by(2)
-            .map(|(i, b)| f(i, b))
-            .collect();
-        let odd = h.join().expect("EM worker thread panicked");
-        (even, odd)
-    });
-    let mut out = Vec::with_capacity(blocks.len());
-    let mut odd = odd.into_iter();
-    for e in even {
-        out.push(e);
-        if let Some(o) = odd.next() {
-            out.push(o);
-        }
-    }
-    out
+    per_item(blocks.len(), threads, |i| f(i, blocks[i]))
 }
 
 /// Rows per tile of [`block_stats`]: a tile's scores are transposed to one
@@ -627,9 +612,14 @@ pub fn fit_tiled(
     let n = data.n;
     let mut best: Option<EmResult> = None;
     let mut runs = Vec::new();
-    for r in 0..opts.restarts.max(1) {
-        let mut rng = Rng::new(opts.seed, r as u64);
-        let init = initialise_tiled(data, opts.k, &mut rng, &opts.em);
+    // Each restart starts from its own random stream, so the starts can be
+    // drawn side by side (they run on one thread each) before EM, which
+    // uses every thread, runs them one after another.
+    let restarts = opts.restarts.max(1);
+    let inits = per_item(restarts, opts.em.threads, |r| {
+        initialise_tiled(data, opts.k, &mut Rng::new(opts.seed, r as u64), &opts.em)
+    });
+    for (r, init) in inits.into_iter().enumerate() {
         let res = em_with_hook(data, init, &opts.em, &mut |it, ll| hook(r, it, ll));
         runs.push(RunInfo {
             lower_bound: res.lower_bound,
