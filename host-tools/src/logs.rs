@@ -1081,6 +1081,35 @@ impl LogSet {
         if time.is_some() {
             chunk.times.reserve(rows);
         }
+        // The common layout first: `<f8` values with the features side by
+        // side in label order and no time column, copied a row at a time
+        // (the loop below takes every other layout, and any block with a
+        // value that is not finite, to name or skip its row).
+        let from = file.feature_fields.first().copied().unwrap_or(0);
+        let side_by_side = matches!(a.element, Element::F64)
+            && time.is_none()
+            && (from + d) * 8 <= rb
+            && file
+                .feature_fields
+                .iter()
+                .enumerate()
+                .all(|(i, &f)| f == from + i);
+        if side_by_side {
+            for rec in bytes.chunks_exact(rb.max(1)) {
+                chunk.values.extend(
+                    rec[from * 8..(from + d) * 8]
+                        .chunks_exact(8)
+                        .map(|b| f64::from_le_bytes(b.try_into().expect("8 bytes"))),
+                );
+            }
+            if chunk.values.iter().fold(true, |ok, v| ok & v.is_finite()) {
+                chunk
+                    .lines
+                    .extend((first_row..first_row + rows as u64).map(|r| r + 2));
+                return Ok(chunk);
+            }
+            chunk.values.clear();
+        }
         let get = |rec: &[u8], f: usize| -> f64 {
             match a.element {
                 Element::F64 => rec

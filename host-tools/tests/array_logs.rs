@@ -95,6 +95,28 @@ fn an_array_reads_as_its_csv() {
         let got = read_all(&set, &Selection::all(1)).unwrap();
         assert_eq!(got, from_csv, "threads {threads}, block {block}");
     }
+    // Without a time column every column is a feature: the layout the
+    // array reader copies a block at a time.
+    let no_time = |threads, block_bytes| ReadOptions {
+        time_column: None,
+        threads,
+        block_bytes,
+        ..ReadOptions::default()
+    };
+    let csv_all = read_all(
+        &open(std::slice::from_ref(&csv), no_time(2, 1 << 22)).unwrap(),
+        &Selection::all(1),
+    )
+    .unwrap();
+    assert_eq!(csv_all.0.len(), 5000 * 7);
+    for (threads, block) in [(1, 4096), (2, 65_536)] {
+        let set = open(std::slice::from_ref(&npy), no_time(threads, block)).unwrap();
+        let got = read_all(&set, &Selection::all(1)).unwrap();
+        assert_eq!(
+            got, csv_all,
+            "no time column: threads {threads}, block {block}"
+        );
+    }
     // A CSV log and an array log with the same columns in one set.
     let both = open(&[csv, npy.clone()], ReadOptions::default()).unwrap();
     assert_eq!(
@@ -196,6 +218,27 @@ fn bad_arrays_are_refused_with_where_and_what() {
     };
     let set = open(std::slice::from_ref(&p), pass).unwrap();
     assert!(read_all(&set, &Selection::all(1)).unwrap().0[2].is_nan());
+    // The same without a time column: every column a feature, the layout
+    // the reader copies a block at a time before it looks at single rows.
+    let no_time = |bad_cells| ReadOptions {
+        time_column: None,
+        bad_cells,
+        ..ReadOptions::default()
+    };
+    let e = err(std::slice::from_ref(&p), no_time(BadCells::Reject));
+    assert!(
+        e.contains(&format!(
+            "{}: row 1, column 2 (a): expected a finite number, found NaN",
+            name(&p)
+        )),
+        "{e}"
+    );
+    let set = open(std::slice::from_ref(&p), no_time(BadCells::SkipRow)).unwrap();
+    let (v, l, _, skipped) = read_all(&set, &Selection::all(1)).unwrap();
+    assert_eq!(
+        (v, l, skipped),
+        (vec![0.0, 1.0, 2.0, 0.2, 4.0, 5.0], vec![2, 4], 1)
+    );
 
     // No header file beside a 2-D array.
     std::fs::remove_file(d.path("nan.header")).unwrap();
