@@ -252,6 +252,12 @@ impl Tiled {
     }
 }
 
+/// fdlibm's split of ln 2: the high part has 32 trailing zero bits, so its
+/// product with an integer of up to 32 bits is exact.
+const LN2_HI: f64 = 6.931_471_803_691_238e-1;
+/// `ln 2 − LN2_HI`.
+const LN2_LO: f64 = 1.908_214_929_270_587_7e-10;
+
 /// `e^x` for `x ≤ 0` (or NaN), written so that a loop over it vectorises:
 /// `x = k ln 2 + r` with `k` the nearest integer to `x / ln 2` and
 /// `|r| ≤ ½ ln 2 + ε`, ln 2 split in two (Cody & Waite) so `k ln 2` is exact;
@@ -264,9 +270,6 @@ impl Tiled {
 #[inline(always)]
 pub fn exp_nonpositive(x: f64) -> f64 {
     const LOG2E: f64 = std::f64::consts::LOG2_E;
-    // fdlibm's split of ln 2: the high part has 32 trailing zero bits.
-    const LN2_HI: f64 = 6.931_471_803_691_238e-1;
-    const LN2_LO: f64 = 1.908_214_929_270_587_7e-10;
     // 1.5 · 2⁵²: adding it rounds to an integer held in the low mantissa bits.
     const SHIFT: f64 = 6_755_399_441_055_744.0;
     const C: [f64; 14] = [
@@ -313,8 +316,6 @@ pub fn exp_nonpositive(x: f64) -> f64 {
 /// correctly rounded value (tested); `ln_at_least_one(1.0)` is exactly 0.
 #[inline(always)]
 pub fn ln_at_least_one(x: f64) -> f64 {
-    const LN2_HI: f64 = 6.931_471_803_691_238_164_90e-1;
-    const LN2_LO: f64 = 1.908_214_929_270_587_700_02e-10;
     // 2 / (2j + 1) for j = 10 down to 1.
     const C: [f64; 10] = [
         2.0 / 21.0,
