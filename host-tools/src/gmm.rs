@@ -250,6 +250,14 @@ impl Tiled {
             *o = self.data[base + j * TILE];
         }
     }
+
+    /// Asks row `i` into the cache ([`crate::simd::prefetch`]).
+    pub fn prefetch_row(&self, i: usize) {
+        let base = (i / TILE) * TILE * self.m + i % TILE;
+        for j in 0..self.m {
+            crate::simd::prefetch(&self.data[base + j * TILE..base + j * TILE + 1]);
+        }
+    }
 }
 
 /// fdlibm's split of ln 2: the high part has 32 trailing zero bits, so its
@@ -720,14 +728,28 @@ fn sq_dist(a: &[f64], b: &[f64]) -> f64 {
 /// k-means++ seeding, Lloyd iterations and a hard-assignment M step on a
 /// subsample.
 pub fn initialise(data: &[f64], m: usize, k: usize, rng: &mut Rng, em: &EmOptions) -> Mixture {
-    initialise_with(data.len() / m, m, k, rng, em, |i, out| {
-        out.copy_from_slice(&data[i * m..(i + 1) * m]);
-    })
+    initialise_with(
+        data.len() / m,
+        m,
+        k,
+        rng,
+        em,
+        |i, out| out.copy_from_slice(&data[i * m..(i + 1) * m]),
+        |i| crate::simd::prefetch(&data[i * m..(i + 1) * m]),
+    )
 }
 
 /// [`initialise`] on [`Tiled`] rows (the same subsample and result).
 pub fn initialise_tiled(data: &Tiled, k: usize, rng: &mut Rng, em: &EmOptions) -> Mixture {
-    initialise_with(data.n, data.m, k, rng, em, |i, out| data.row_into(i, out))
+    initialise_with(
+        data.n,
+        data.m,
+        k,
+        rng,
+        em,
+        |i, out| data.row_into(i, out),
+        |i| data.prefetch_row(i),
+    )
 }
 
 fn initialise_with(
@@ -737,15 +759,26 @@ fn initialise_with(
     rng: &mut Rng,
     em: &EmOptions,
     row: impl Fn(usize, &mut [f64]),
+    touch: impl Fn(usize),
 ) -> Mixture {
-    // Stratified random subsample: one row from each of `s` equal strata.
+    // Stratified random subsample: one row from each of `s` equal strata,
+    // the rows drawn first so each can be asked into the cache (`touch`) a
+    // few rows before it is copied.
+    const AHEAD: usize = 16;
     let s = n.min(INIT_SAMPLE);
+    let picks: Vec<usize> = (0..s)
+        .map(|i| {
+            let lo = i * n / s;
+            let hi = ((i + 1) * n / s).max(lo + 1);
+            lo + (rng.below((hi - lo) as u64) as usize)
+        })
+        .collect();
     let mut sample = vec![0.0; s * m];
     for (i, out) in sample.chunks_exact_mut(m).enumerate() {
-        let lo = i * n / s;
-        let hi = ((i + 1) * n / s).max(lo + 1);
-        let idx = lo + (rng.below((hi - lo) as u64) as usize);
-        row(idx, out);
+        if let Some(&ahead) = picks.get(i + AHEAD) {
+            touch(ahead);
+        }
+        row(picks[i], out);
     }
     let centres = kmeans_pp(&sample, m, k, rng);
     let labels = lloyd(&sample, m, centres, LLOYD_ITER);
