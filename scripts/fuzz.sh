@@ -11,8 +11,8 @@
 #   FUZZ_JOBS       parallel fuzzing processes per target (default 1); each
 #                   runs FUZZ_RUNS / FUZZ_JOBS executions on the shared corpus
 #   FUZZ_TRACE_CMP  1 (default) or 0: 0 builds without libFuzzer's comparison
-#                   tracing (faster per input, less guidance
-#                   past comparisons; for long runs on a grown corpus)
+#                   tracing (faster per input, less guidance past
+#                   comparisons; for long runs on a grown corpus)
 #
 # Needs the nightly toolchain and cargo-fuzz (`cargo install cargo-fuzz`).
 # New corpus entries go to fuzz/corpus-work/<target> (not committed); the
