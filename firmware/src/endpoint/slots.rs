@@ -35,8 +35,8 @@ pub const RECORD_LEN: usize = 16;
 
 /// Offset of the model file in a slot region of a board's memory map: the
 /// region starts with the record ([`SlotRecord::to_bytes`]), the file
-/// follows here; bytes in between stay erased. [`FlashSlots`](super::FlashSlots),
-/// the emulator board's preload and the host's `plumb image` share it.
+/// follows here; bytes in between stay erased. [`FlashSlots`](super::FlashSlots)
+/// (on every board with slots) and the host's `plumb image` share it.
 pub const FILE_OFFSET: usize = 0x100;
 
 impl SlotRecord {
@@ -146,7 +146,7 @@ impl<const N: usize> RamSlots<N> {
     }
 
     /// Erases `slot`, writes `file` and commits it with `generation`, as a
-    /// completed upload would (for preloading at boot and in tests).
+    /// completed upload would (for tests and host-side endpoints).
     pub fn store(&mut self, slot: Slot, file: &[u8], generation: u32) -> Result<(), SlotError> {
         self.erase(slot)?;
         self.write(slot, 0, file)?;

@@ -9,8 +9,8 @@
 //!
 //! Modules: [`uart`] (CMSDK APB UART), [`link`] (UART0 as the detector link,
 //! with idle sleep and the end-of-run marker), [`drift_line`] (FPGAIO LED 0
-//! as an `embedded-hal` output pin), [`slots`] (model slots in RAM, preloaded
-//! from two code-memory regions), [`ticks`] (SysTick), [`stack`] (painting),
+//! as an `embedded-hal` output pin), [`slots`] (the two model slots in code
+//! memory, the emulated board's flash), [`ticks`] (SysTick), [`stack`] (painting),
 //! [`semihost`] (ending the run), and [`endpoint_places`] (the endpoint's
 //! detector places and resend ring, a static in `.bss`). All `unsafe` code
 //! is in `mmio`.

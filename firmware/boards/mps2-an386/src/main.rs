@@ -2,8 +2,7 @@
 //! mps2-an386 (Cortex-M4F).
 //!
 //! 1. Reset: paint the stack, claim UART0, SysTick, the drift line (FPGAIO
-//!    LED 0) and the two RAM model slots; preload the slots from code memory
-//!    (`slots`).
+//!    LED 0) and the two model slots in code memory (`slots`).
 //! 2. `Endpoint::idle_in` on the static places, then `Endpoint::start` in
 //!    place: run the newest valid slot, else the model compiled into the
 //!    image (`PLUMB_MODEL` at build time, see `build.rs`). Built with
@@ -26,7 +25,7 @@ use cortex_m_rt::entry;
 use embedded_io::Write;
 use plumb_board_mps2::drift_line::DriftLine;
 use plumb_board_mps2::link::Link;
-use plumb_board_mps2::slots::BoardSlots;
+use plumb_board_mps2::slots::{self, BoardSlots};
 use plumb_board_mps2::text::write_field;
 use plumb_board_mps2::{endpoint_places, semihost, Board};
 use plumb_firmware::endpoint::{Config, Endpoint, Places, DEFAULT_RETAINED, DEFAULT_STATUS_EVERY};
@@ -49,10 +48,9 @@ const FIRMWARE: &str = concat!("mps2 ", env!("CARGO_PKG_VERSION"));
 fn main() -> ! {
     let Board { uart, stack, .. } = Board::take();
     let mut link = Link::new(uart);
-    let (Some(pin), Some(mut slots)) = (DriftLine::take(), BoardSlots::take()) else {
+    let (Some(pin), Some(slots)) = (DriftLine::take(), slots::take()) else {
         semihost::exit_failure()
     };
-    slots.preload();
 
     let Some(ep) = boot(slots, pin) else {
         let _ = link.write_all(b"plumb-board-mps2 boot failed\n");

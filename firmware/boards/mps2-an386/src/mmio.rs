@@ -1,15 +1,14 @@
 //! The only module of this crate that contains `unsafe` code.
 //!
 //! Everything that touches memory-mapped registers or memory that Rust does
-//! not own (the unused part of the stack), and the two `static mut`s (the
-//! endpoint's detector places and the RAM model slots), goes through the
-//! small safe API below. Each unsafe block states why it is sound for this
-//! board.
+//! not own (the unused part of the stack, the model-slot regions of code
+//! memory), and the one `static mut` (the endpoint's detector places), goes
+//! through the small safe API below. Each unsafe block states why it is
+//! sound for this board.
 
-use crate::slots::SLOT_CAPACITY;
 use core::ptr;
 use core::sync::atomic::{AtomicBool, Ordering};
-use plumb_firmware::endpoint::{Places, RamSlots};
+use plumb_firmware::endpoint::Places;
 
 /// The endpoint's two detector places and resend ring (about 19 KiB).
 /// `Places::EMPTY` is zero and uninitialised bytes only, so this lives in
@@ -19,14 +18,8 @@ static mut PLACES: Places = Places::EMPTY;
 /// Set by the first [`endpoint_places`] call.
 static PLACES_TAKEN: AtomicBool = AtomicBool::new(false);
 
-/// The two RAM model slots (about 16 KiB), all zero: in `.bss` like
-/// [`PLACES`]. A `cortex_m::singleton!` would build the value on the stack
-/// first and copy it in, which the compiler elides at `opt-level = 3` but
-/// not at `"s"` (a 17 KiB stack frame in `main`).
-static mut SLOTS: RamSlots<SLOT_CAPACITY> = RamSlots::EMPTY;
-
-/// Set by the first [`slot_storage`] call.
-static SLOTS_TAKEN: AtomicBool = AtomicBool::new(false);
+/// Set by the first [`SlotMemory::take`] call.
+static SLOT_MEMORY_TAKEN: AtomicBool = AtomicBool::new(false);
 
 /// The endpoint's places, lent for the program's lifetime: `Some` once,
 /// `None` on every later call.
@@ -42,16 +35,72 @@ pub fn endpoint_places() -> Option<&'static mut Places> {
     Some(unsafe { &mut *ptr::addr_of_mut!(PLACES) })
 }
 
-/// The RAM model slots, lent for the program's lifetime: `Some` once,
-/// `None` on every later call.
-pub fn slot_storage() -> Option<&'static mut RamSlots<SLOT_CAPACITY>> {
-    if SLOTS_TAKEN.swap(true, Ordering::AcqRel) {
-        return None;
+/// Start of the two model-slot regions in code memory (`SLOT_A`, then
+/// `SLOT_B` right after it, in `memory.x`).
+pub const SLOT_MEMORY_BASE: usize = 0x0004_0000;
+/// Bytes of both regions together.
+pub const SLOT_MEMORY_LEN: usize = 0x4000;
+
+/// The model-slot regions of code memory, owned: the emulated board's
+/// flash for models. Code memory on the MPS2 (and in QEMU) is SSRAM the
+/// core can write, so [`SlotMemory::erase`] and [`SlotMemory::program`]
+/// are plain stores that behave as NOR flash does: erased bytes read
+/// `0xFF`, programming only clears bits.
+pub struct SlotMemory(());
+
+impl SlotMemory {
+    /// The regions: `Some` once, `None` on every later call.
+    pub fn take() -> Option<Self> {
+        if SLOT_MEMORY_TAKEN.swap(true, Ordering::AcqRel) {
+            return None;
+        }
+        Some(SlotMemory(()))
     }
-    // SAFETY: as in `endpoint_places`: the swap lets one call past, the
-    // static is private to this module and named nowhere else, and no
-    // interrupt handler uses it.
-    Some(unsafe { &mut *ptr::addr_of_mut!(SLOTS) })
+
+    /// Both regions as bytes.
+    pub fn bytes(&self) -> &[u8] {
+        // SAFETY: `SLOT_A` and `SLOT_B` of `memory.x`: always-mapped code
+        // memory, non-null, that the linker places nothing in. Only this
+        // handle writes it (one exists: `take` lets one call past), and only
+        // through `&mut self`, so no write happens while this slice, which
+        // borrows `self`, lives.
+        unsafe { core::slice::from_raw_parts(SLOT_MEMORY_BASE as *const u8, SLOT_MEMORY_LEN) }
+    }
+
+    /// Sets `len` bytes from `offset` to `0xFF`; `false` (nothing written)
+    /// when the range is not inside the regions.
+    pub fn erase(&mut self, offset: usize, len: usize) -> bool {
+        if !Self::inside(offset, len) {
+            return false;
+        }
+        for i in offset..offset + len {
+            // SAFETY: `i` is inside the regions (checked above), which this
+            // handle owns (see `bytes`); `&mut self` rules out a live slice.
+            unsafe { ptr::write_volatile((SLOT_MEMORY_BASE + i) as *mut u8, 0xFF) };
+        }
+        true
+    }
+
+    /// Clears in the bytes from `offset` the bits that are clear in `data`
+    /// (a NOR program); `false` (nothing written) when the range is not
+    /// inside the regions.
+    pub fn program(&mut self, offset: usize, data: &[u8]) -> bool {
+        if !Self::inside(offset, data.len()) {
+            return false;
+        }
+        for (i, b) in data.iter().enumerate() {
+            let addr = (SLOT_MEMORY_BASE + offset + i) as *mut u8;
+            // SAFETY: as in `erase`: inside the owned regions, no live slice.
+            unsafe { ptr::write_volatile(addr, ptr::read_volatile(addr) & b) };
+        }
+        true
+    }
+
+    fn inside(offset: usize, len: usize) -> bool {
+        offset
+            .checked_add(len)
+            .is_some_and(|end| end <= SLOT_MEMORY_LEN)
+    }
 }
 
 /// Base address of UART0 on the mps2-an386 machine (a CMSDK APB UART).
@@ -217,18 +266,6 @@ pub(crate) fn set_fpgaio_led0(value: u32) {
     // alias any Rust object. Only `drift_line::DriftLine` (one instance,
     // claimed through an atomic flag) writes it.
     unsafe { ptr::write_volatile(addr, value) }
-}
-
-/// A region of code memory reserved in `memory.x` (never written by the
-/// program), as a byte slice. `base` and `len` are constants of
-/// `slots::REGIONS`.
-pub(crate) fn code_region(base: usize, len: usize) -> &'static [u8] {
-    // SAFETY: the callers pass only the two slot regions of `memory.x`
-    // (`SLOT_A`, `SLOT_B`): always-mapped code memory, 4-byte aligned,
-    // non-null, that the linker places nothing in and the program never
-    // writes (only QEMU's loader fills it before reset), so an immutable
-    // `'static` slice over it is sound.
-    unsafe { core::slice::from_raw_parts(base as *const u8, len) }
 }
 
 /// Interrupt number of UART0's receive interrupt on the mps2-an386 image.
