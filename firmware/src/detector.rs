@@ -488,6 +488,7 @@ impl Detector {
     }
 
     /// Counts a faulted sample; no statistic moves.
+    #[inline(always)]
     fn faulted(&mut self, index: u64, fault: Fault) -> Outcome {
         self.faults.count(fault);
         Outcome {

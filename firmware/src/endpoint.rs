@@ -20,7 +20,9 @@
 //! the resend ring and the upload state machine are specified in
 //! `shared-model/PROTOCOL.md`. Briefly:
 //!
-//! * a sample goes through [`Detector::update`]; a drift raised or cleared
+//! * a sample meant for the device's next index goes through
+//!   [`Detector::update`] (any other is dropped and answered with
+//!   [`Ack::NotTaken`], so a host may send a sample again safely); a drift raised or cleared
 //!   message follows a state change, a sensor fault message the start of a
 //!   fault (repeats are only counted), a score report every sample while
 //!   reports are on, and a status message every
@@ -187,7 +189,8 @@ pub struct Polled {
     pub bytes: usize,
     /// Host messages handled.
     pub messages: u32,
-    /// Of which samples.
+    /// Samples taken (a sample at another index than the device's next is
+    /// dropped, see [`HostMsg::Sample`]).
     pub samples: u32,
     /// Frames sent.
     pub sent: u32,
@@ -588,10 +591,9 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
             match self.rx.take_message::<HostMsg>() {
                 Some(Ok(msg)) => {
                     polled.messages += 1;
-                    if matches!(msg, HostMsg::Sample { .. }) {
+                    if self.handle(&msg, &mut out) {
                         polled.samples += 1;
                     }
-                    self.handle(&msg, &mut out);
                 }
                 // Counted by the decoder; the host sees the counters.
                 Some(Err(_)) => {}
@@ -647,9 +649,23 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
     // flash on a Cortex-M (BENCHMARKS.md, "Smaller code"); one call per host
     // message is all this costs at run time.
     #[inline(never)]
-    fn handle<W: Write>(&mut self, msg: &HostMsg, out: &mut Out<'_, W>) {
+    /// Answers one host message; `true` when it was a sample the detector
+    /// took.
+    fn handle<W: Write>(&mut self, msg: &HostMsg, out: &mut Out<'_, W>) -> bool {
         match msg {
-            HostMsg::Sample { features } => self.on_sample(features, out),
+            // Only the device's next sample is taken; any other (sent again,
+            // or behind a lost one) is dropped and answered with where the
+            // device stands, so the host knows what to send.
+            HostMsg::Sample { at, features } => {
+                let next = self.running().samples();
+                // Indices travel modulo 2³² (`HostMsg::Sample`).
+                if *at == next as u32 {
+                    self.on_sample(features, out);
+                    return true;
+                }
+                let ack = Ack::NotTaken { at: *at, next };
+                self.send(out, DeviceMsg::Ack(ack));
+            }
             HostMsg::StatusQuery => {
                 let s = self.status();
                 self.send(out, DeviceMsg::Status(s));
@@ -671,6 +687,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
             }
             HostMsg::GreetingQuery => self.send_greeting(out),
         }
+        false
     }
 
     fn send_greeting<W: Write>(&mut self, out: &mut Out<'_, W>) {

@@ -197,8 +197,10 @@ impl Lcg {
     }
 }
 
-fn sample(x: &[f32]) -> HostMsg {
+/// A sample meant to be the device's sample `at` (sent modulo 2³²).
+fn sample_at(at: u64, x: &[f32]) -> HostMsg {
     HostMsg::Sample {
+        at: at as u32,
         features: heapless::Vec::from_slice(x).expect("≤ MAX_FEATURES"),
     }
 }
@@ -242,6 +244,12 @@ impl<const R: usize, S: ModelSlots> Rig<R, S> {
 
     fn send(&mut self, msg: &HostMsg) -> Vec<DeviceFrame> {
         self.send_raw(&wire::encode_frame_vec(msg))
+    }
+
+    /// Sends `x` as the device's next sample.
+    fn sample(&mut self, x: &[f32]) -> Vec<DeviceFrame> {
+        let at = self.ep.detector().samples();
+        self.send(&sample_at(at, x))
     }
 
     fn run(&mut self) -> Vec<DeviceFrame> {
@@ -321,7 +329,7 @@ fn assert_scores_match(rig: &mut Rig, reference: &mut Detector, xs: &[Vec<f32>])
         DeviceMsg::Ack(Ack::Reports { on: true })
     );
     for x in xs {
-        let got = reports(&rig.send(&sample(x)));
+        let got = reports(&rig.sample(x));
         assert_eq!(got.len(), 1);
         let r = got[0];
         let want = reference.update(x);
@@ -447,7 +455,7 @@ mod greeting_and_boot {
         // Before a start: no model, every sample a fault, no panic.
         assert!(!ep.detector().is_loaded());
         let mut io = Pipe::new(64);
-        ep.feed(&wire::encode_frame_vec(&sample(&[0.0; 4])), &mut io)
+        ep.feed(&wire::encode_frame_vec(&sample_at(0, &[0.0; 4])), &mut io)
             .unwrap();
         assert_eq!(ep.detector().faults().wrong_length, 1);
 
@@ -516,12 +524,52 @@ mod scoring {
     use super::*;
 
     #[test]
+    fn only_the_next_sample_is_taken_and_any_other_is_answered_as_not_taken() {
+        // PROTOCOL.md, "Which samples are taken": a sample sent again (its
+        // report was lost, say) or sent behind a lost one changes nothing.
+        let mut rig: Rig = Rig::new();
+        let mut g = Lcg(3);
+        rig.ask(&HostMsg::SetReports { on: true });
+        let x = g.nominal();
+        let first = reports(&rig.send(&sample_at(0, &x)));
+        assert_eq!(first.len(), 1);
+        assert_eq!(first[0].sample, 0);
+        let mut reference = rig.ep.detector().clone();
+        for stray in [0, 2, 7, u32::MAX] {
+            let answer = rig.send(&sample_at(u64::from(stray), &g.drifted()));
+            assert_eq!(answer.len(), 1, "{answer:?}");
+            assert_eq!(
+                answer[0].msg,
+                DeviceMsg::Ack(Ack::NotTaken { at: stray, next: 1 })
+            );
+        }
+        assert_eq!(rig.ep.detector().samples(), 1);
+        // The statistics did not move: the next sample scores as it would have.
+        let y = g.nominal();
+        let got = reports(&rig.send(&sample_at(1, &y)));
+        let want = reference.update(&y);
+        assert_eq!(got.len(), 1);
+        assert_eq!(got[0].sample, 1);
+        let (a, b) = (got[0].scores.unwrap(), want.scores.unwrap());
+        assert_eq!(a.spe.to_bits(), b.spe.to_bits());
+        assert_eq!(a.nll.to_bits(), b.nll.to_bits());
+        // `Polled::samples` counts taken samples only.
+        let mut io = Pipe::new(64);
+        let two = [sample_at(2, &y), sample_at(2, &y), sample_at(9, &y)]
+            .iter()
+            .flat_map(wire::encode_frame_vec)
+            .collect::<Vec<u8>>();
+        let polled = rig.ep.feed(&two, &mut io).unwrap();
+        assert_eq!((polled.messages, polled.samples), (3, 1));
+    }
+
+    #[test]
     fn drift_raises_the_flag_and_the_line_then_clears_both() {
         let mut rig: Rig = Rig::new();
         let mut g = Lcg(7);
         let mut events = Vec::new();
         for _ in 0..100 {
-            events.extend(rig.send(&sample(&g.nominal())));
+            events.extend(rig.sample(&g.nominal()));
         }
         assert_eq!(rig.ep.detector().state(), DriftState::Watching);
         assert!(!rig.line.0.get());
@@ -529,7 +577,7 @@ mod scoring {
 
         let mut raised = None;
         for _ in 0..20 {
-            for f in rig.send(&sample(&g.drifted())) {
+            for f in rig.sample(&g.drifted()) {
                 if let DeviceMsg::DriftRaised(r) = f.msg {
                     raised = Some(r);
                 }
@@ -552,7 +600,7 @@ mod scoring {
 
         let mut cleared = None;
         for _ in 0..200 {
-            for f in rig.send(&sample(&g.nominal())) {
+            for f in rig.sample(&g.nominal()) {
                 if let DeviceMsg::DriftCleared(c) = f.msg {
                     cleared = Some(c);
                 }
@@ -593,12 +641,12 @@ mod scoring {
         for _ in 0..40 {
             let x = g.nominal();
             reference.update(&x);
-            let got = rig.send(&sample(&x));
+            let got = rig.sample(&x);
             assert!(got.iter().all(|f| !f.msg.is_retained()), "{got:?}");
         }
         assert_eq!(rig.ep.detector().state(), DriftState::Watching);
         reference.update(spike);
-        let got = rig.send(&sample(spike));
+        let got = rig.sample(spike);
         assert_eq!(got.len(), 1, "{got:?}");
         let DeviceMsg::DriftRaised(r) = &got[0].msg else {
             panic!("expected a drift raised message: {got:?}")
@@ -699,7 +747,7 @@ mod scoring {
             rig.ask(&HostMsg::SetReports { on: false }),
             DeviceMsg::Ack(Ack::Reports { on: false })
         );
-        let frames = rig.send(&sample(&[0.0; 4]));
+        let frames = rig.sample(&[0.0; 4]);
         assert!(reports(&frames).is_empty());
     }
 
@@ -707,15 +755,15 @@ mod scoring {
     fn faults_are_reported_when_they_start_and_counted_always() {
         let mut rig: Rig = Rig::new();
         let nan = [f32::NAN, 0.0, 0.0, 0.0];
-        let first = rig.send(&sample(&nan));
+        let first = rig.sample(&nan);
         assert!(matches!(
             first[0].msg,
             DeviceMsg::SensorFault(s) if s.fault == FaultKind::NonFinite { feature: 0 } && s.sample == 0
         ));
         // The same fault again: counted, not reported.
-        assert!(rig.send(&sample(&nan)).is_empty());
+        assert!(rig.sample(&nan).is_empty());
         // A different fault is a new start.
-        let other = rig.send(&sample(&[0.0; 2]));
+        let other = rig.sample(&[0.0; 2]);
         assert!(matches!(
             other[0].msg,
             DeviceMsg::SensorFault(s) if s.fault == FaultKind::WrongLength { got: 2 }
@@ -740,7 +788,7 @@ mod scoring {
         let mut g = Lcg(3);
         let mut statuses = Vec::new();
         for _ in 0..35 {
-            for f in rig.send(&sample(&g.nominal())) {
+            for f in rig.sample(&g.nominal()) {
                 if let DeviceMsg::Status(s) = f.msg {
                     statuses.push(s.samples);
                 }
@@ -1168,11 +1216,7 @@ mod resend {
         xs.extend((0..20).map(|_| g.drifted()));
         xs.extend((0..200).map(|_| g.nominal()));
         for x in xs {
-            out.extend(
-                rig.send(&sample(&x))
-                    .into_iter()
-                    .filter(|f| f.msg.is_retained()),
-            );
+            out.extend(rig.sample(&x).into_iter().filter(|f| f.msg.is_retained()));
         }
         out
     }
@@ -1211,9 +1255,9 @@ mod resend {
         let mut seqs = Vec::new();
         for i in 0..7 {
             // Alternating faulted and clean samples: every fault is a start.
-            let faulted = rig.send(&sample(&[f32::NAN, 0.0, i as f32 * 0.01, 0.0]));
+            let faulted = rig.sample(&[f32::NAN, 0.0, i as f32 * 0.01, 0.0]);
             seqs.push(faulted[0].seq);
-            rig.send(&sample(&[0.0; 4]));
+            rig.sample(&[0.0; 4]);
         }
         assert_eq!(rig.ep.retained(), (4, 3));
         let again = rig.send(&HostMsg::ResendFrom { seq: 0 });
@@ -1237,7 +1281,7 @@ mod hostile_input {
     fn valid_requests() -> Vec<HostMsg> {
         let bytes = file_of(&model(2, 0.25));
         vec![
-            sample(&[0.1, 0.2, 0.3, 0.4]),
+            sample_at(0, &[0.1, 0.2, 0.3, 0.4]),
             HostMsg::ResetStats,
             HostMsg::SetReports { on: true },
             HostMsg::UploadBegin {
@@ -1258,7 +1302,7 @@ mod hostile_input {
         let mut rig: Rig = Rig::new();
         let mut g = Lcg(1);
         for _ in 0..30 {
-            rig.send(&sample(&g.nominal()));
+            rig.sample(&g.nominal());
         }
         let before = rig.ep.status();
         let ok_before = rig.ep.link_counters().frames_ok;
@@ -1316,7 +1360,7 @@ mod hostile_input {
             let mut stream = Vec::new();
             let reqs = [
                 HostMsg::SetReports { on: true },
-                sample(&[0.1, 0.2, 0.3, 0.4]),
+                sample_at(0, &[0.1, 0.2, 0.3, 0.4]),
                 HostMsg::StatusQuery,
             ];
             for (req, junk) in reqs.iter().zip(&noise) {

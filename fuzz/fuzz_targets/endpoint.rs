@@ -150,6 +150,10 @@ fn stream(ops: &[Op]) -> Vec<u8> {
     let builtin = builtin_detector().model();
     let mut out = Vec::new();
     let mut corrupt = None;
+    // The index each sample is sent at: the device's count if every earlier
+    // sample arrived and no model switched since the last reset; otherwise
+    // the device drops the sample and answers with a status (both paths).
+    let mut at = 0u64;
     for op in ops {
         let msg = match op {
             Op::Raw(bytes) => {
@@ -164,20 +168,31 @@ fn stream(ops: &[Op]) -> Vec<u8> {
                 corrupt = Some((*at, *xor));
                 continue;
             }
-            Op::Sample(v) => HostMsg::Sample {
-                features: v.iter().copied().take(64).collect(),
-            },
-            Op::Near(t) => HostMsg::Sample {
-                features: t
-                    .iter()
-                    .zip(builtin.mean.iter().zip(&builtin.scale))
-                    .map(|(t, (mu, s))| mu + f32::from(*t) * 0.1 * s)
-                    .collect(),
-            },
+            Op::Sample(v) => {
+                at += 1;
+                HostMsg::Sample {
+                    at: (at - 1) as u32,
+                    features: v.iter().copied().take(64).collect(),
+                }
+            }
+            Op::Near(t) => {
+                at += 1;
+                HostMsg::Sample {
+                    at: (at - 1) as u32,
+                    features: t
+                        .iter()
+                        .zip(builtin.mean.iter().zip(&builtin.scale))
+                        .map(|(t, (mu, s))| mu + f32::from(*t) * 0.1 * s)
+                        .collect(),
+                }
+            }
             Op::StatusQuery => HostMsg::StatusQuery,
             Op::ResendFrom(seq) => HostMsg::ResendFrom { seq: *seq },
             Op::SetReports(on) => HostMsg::SetReports { on: *on },
-            Op::ResetStats => HostMsg::ResetStats,
+            Op::ResetStats => {
+                at = 0;
+                HostMsg::ResetStats
+            }
             Op::GreetingQuery => HostMsg::GreetingQuery,
             Op::Begin { total, crc } => HostMsg::UploadBegin {
                 total: u32::from(*total),

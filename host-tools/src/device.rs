@@ -204,11 +204,10 @@ pub fn check_protocol(g: &Greeting) -> Result<()> {
 /// Settings of [`feed`].
 #[derive(Debug, Clone, Copy)]
 pub struct FeedConfig {
-    /// Samples in flight before waiting for the device's reports. With 1
-    /// (the default) a sample lost on the link is detected and sent again,
-    /// so the device sees exactly the host's sequence; with more, a loss
-    /// can only be counted (the samples after it were already taken in its
-    /// place).
+    /// Samples in flight before waiting for the device's reports (default
+    /// 1). Whatever the window, the device takes each sample once and in
+    /// order (each carries its index): after a loss it drops those behind
+    /// it until the feed sends again from the lost one.
     pub window: usize,
     /// Restart the device's statistics first (warm-up, sample index 0), so
     /// the run is comparable with a replay of the same log.
@@ -242,14 +241,13 @@ pub struct FeedSummary {
     pub samples: u64,
     /// Sample frames sent, resends included.
     pub frames_sent: u64,
-    /// Samples sent again because the device had not taken them.
+    /// Sample frames sent again (a sample or its report was lost, or the
+    /// device dropped samples behind a lost one).
     pub resent: u64,
     /// Samples the device took, by its own count.
     pub taken: u64,
     /// Score reports that never arrived (the sample was taken).
     pub reports_missing: u64,
-    /// Status queries sent to find out where the device stood.
-    pub status_queries: u64,
 }
 
 /// Streams `samples` (features in model order) to the device, pacing on its
@@ -292,12 +290,16 @@ where
     let mut source = samples.into_iter();
     let mut exhausted = false;
     // Samples [acked, next) are in flight, oldest first, with the time each
-    // was sent if it was sent once (a round-trip measurement).
+    // was sent if it was sent once (a round-trip measurement, Karn's rule).
+    // Each carries its device index (`base` + its host index), so the device
+    // takes it once and in order however often it is sent
+    // (PROTOCOL.md, "Which samples are taken").
     let mut inflight: std::collections::VecDeque<(Vec<f32>, Option<Instant>)> = Default::default();
     let mut acked = 0u64;
     let mut next = 0u64;
-    // Statuses received since a silence made us ask, with no progress.
-    let mut probing: Option<u32> = None;
+    // Whether the samples in flight were sent again since the last progress:
+    // another sign of a gap then only repeats what the resend answers.
+    let mut resent_since_progress = false;
     let mut last_heard = Instant::now();
     // This long without the device taking a sample ends the feed (as `tries`
     // unanswered requests would), whether the line is silent or busy with
@@ -311,7 +313,7 @@ where
             match source.next() {
                 Some(x) => {
                     let x = x?;
-                    send_sample(link, &x)?;
+                    send_sample(link, base + next, &x)?;
                     sum.frames_sent += 1;
                     inflight.push_back((x, Some(Instant::now())));
                     next += 1;
@@ -342,11 +344,12 @@ where
             if link.is_closed() {
                 return Err(closed(link));
             }
-            // No progress for a reply time: ask where the device stands.
+            // Nothing for a reply time: the oldest sample or its report was
+            // lost. Sending again is safe either way: a sample the device
+            // already took is answered with a status that says so.
             timer.expired();
-            link.send(&HostMsg::StatusQuery)?;
-            sum.status_queries += 1;
-            probing.get_or_insert(0);
+            resend(link, &mut inflight, base + acked, &mut sum)?;
+            resent_since_progress = true;
             last_heard = Instant::now();
             continue;
         };
@@ -355,66 +358,43 @@ where
             continue;
         }
         last_heard = Instant::now();
-        match &r.frame.msg {
-            DeviceMsg::ScoreReport(rep) => {
-                let Some(idx) = rep.sample.checked_sub(base) else {
-                    continue;
-                };
-                if idx >= acked && idx < next {
-                    sum.reports_missing += idx - acked;
-                    for _ in acked..idx {
-                        inflight.pop_front();
-                    }
-                    if let Some((_, Some(sent))) = inflight.pop_front() {
-                        timer.observe(sent.elapsed());
-                    }
-                    acked = idx + 1;
-                    last_progress = Instant::now();
-                    // Progress: an answer still on its way to an earlier
-                    // query describes the device before this sample and must
-                    // not be read as a loss of the samples sent since.
-                    probing = None;
+        // How many of the host's samples the device has taken, if the frame
+        // says; and whether it dropped a sample sent ahead of its next one,
+        // i.e. one behind a lost sample.
+        let (taken, gap) = match &r.frame.msg {
+            DeviceMsg::ScoreReport(rep) => match rep.sample.checked_sub(base) {
+                Some(idx) if idx >= acked && idx < next => (Some(idx + 1), false),
+                _ => (None, false),
+            },
+            DeviceMsg::Status(st) => (Some(st.samples.saturating_sub(base)), false),
+            DeviceMsg::Ack(Ack::NotTaken { at, next: want }) => {
+                // Indices travel modulo 2³²: ahead means less than 2³¹ ahead.
+                let ahead = at.wrapping_sub(*want as u32) as i32 > 0;
+                (Some(want.saturating_sub(base)), ahead)
+            }
+            _ => (None, false),
+        };
+        if let Some(taken) = taken.filter(|t| *t > acked && *t <= next) {
+            let reported = matches!(r.frame.msg, DeviceMsg::ScoreReport(_));
+            sum.reports_missing += taken - acked - u64::from(reported);
+            for _ in acked..taken - 1 {
+                inflight.pop_front();
+            }
+            if let Some((_, Some(sent))) = inflight.pop_front() {
+                if reported {
+                    timer.observe(sent.elapsed());
                 }
             }
-            DeviceMsg::Status(st) => {
-                let taken = st.samples.saturating_sub(base);
-                if taken > acked && taken <= next {
-                    sum.reports_missing += taken - acked;
-                    for _ in acked..taken {
-                        inflight.pop_front();
-                    }
-                    acked = taken;
-                    last_progress = Instant::now();
-                    probing = None;
-                }
-                // After a silence, a status that counts none of the samples
-                // in flight says they were lost, if it is the answer to our
-                // query: the device answers after everything it received
-                // before the query. But one status may be a periodic one sent
-                // before the query arrived (after the last report, late), so
-                // the loss is taken as proven only by the second such status
-                // in a row, and the first one prompts a second query. A
-                // sample sent twice would be taken twice.
-                if let Some(n) = probing.as_mut() {
-                    if taken == acked && acked < next {
-                        *n += 1;
-                        if *n >= 2 {
-                            probing = None;
-                            for (x, sent) in inflight.iter_mut() {
-                                *sent = None;
-                                send_sample(link, x)?;
-                                sum.frames_sent += 1;
-                                sum.resent += 1;
-                            }
-                        } else {
-                            link.send(&HostMsg::StatusQuery)?;
-                            sum.status_queries += 1;
-                            last_heard = Instant::now();
-                        }
-                    }
-                }
-            }
-            _ => {}
+            acked = taken;
+            last_progress = Instant::now();
+            resent_since_progress = false;
+        }
+        // The device dropped a sample because the one before it never
+        // arrived: send again from the oldest not taken, once per progress
+        // (the rest of the window behind the loss brings the same answer).
+        if gap && acked < next && !resent_since_progress {
+            resend(link, &mut inflight, base + acked, &mut sum)?;
+            resent_since_progress = true;
         }
     }
     // A closing status: its sequence number shows any gap at the end, and
@@ -438,7 +418,25 @@ where
     Ok(sum)
 }
 
-fn send_sample(link: &mut Link, x: &[f32]) -> Result<()> {
+/// Sends every sample in flight again, the oldest as the device's sample
+/// `at`; each counts as resent and loses its round-trip measurement.
+fn resend(
+    link: &mut Link,
+    inflight: &mut std::collections::VecDeque<(Vec<f32>, Option<Instant>)>,
+    at: u64,
+    sum: &mut FeedSummary,
+) -> Result<()> {
+    for (i, (x, sent)) in inflight.iter_mut().enumerate() {
+        *sent = None;
+        send_sample(link, at + i as u64, x)?;
+        sum.frames_sent += 1;
+        sum.resent += 1;
+    }
+    Ok(())
+}
+
+/// Sends `x` as the device's sample `at` (modulo 2³² on the wire).
+fn send_sample(link: &mut Link, at: u64, x: &[f32]) -> Result<()> {
     let features: heapless::Vec<f32, { plumb_model::MAX_FEATURES }> = heapless::Vec::from_slice(x)
         .map_err(|_| {
             Error::input(format!(
@@ -447,7 +445,10 @@ fn send_sample(link: &mut Link, x: &[f32]) -> Result<()> {
                 plumb_model::MAX_FEATURES
             ))
         })?;
-    link.send(&HostMsg::Sample { features })
+    link.send(&HostMsg::Sample {
+        at: at as u32,
+        features,
+    })
 }
 
 /// How an upload ended.

@@ -444,6 +444,7 @@ fn ack_text(a: &Ack) -> String {
             )
         }
         Ack::ChunkTaken { next } => format!("what=chunk-taken next={next}"),
+        Ack::NotTaken { at, next } => format!("what=sample-not-taken at={at} next={next}"),
         Ack::ModelSwitched {
             slot,
             model_id,

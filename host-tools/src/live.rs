@@ -663,6 +663,9 @@ impl LiveState {
                         )
                     }
                     Ack::ChunkTaken { next } => format!("upload: {next} bytes taken"),
+                    Ack::NotTaken { at: sent, next } => {
+                        format!("sample {sent} not taken: the board takes {next} next")
+                    }
                     Ack::ModelSwitched {
                         slot,
                         model_id,
@@ -676,13 +679,14 @@ impl LiveState {
                         )
                     }
                 };
-                // Chunk acknowledgements come by the hundred: keep one.
-                if matches!(a, Ack::ChunkTaken { .. })
-                    && self
-                        .notes
-                        .back()
-                        .is_some_and(|(_, t)| t.starts_with("upload: "))
-                {
+                // Chunk acknowledgements come by the hundred, samples not
+                // taken by the dozen on a lossy feed: keep the last of a run.
+                let run = match a {
+                    Ack::ChunkTaken { .. } => Some("upload: "),
+                    Ack::NotTaken { .. } => Some("sample "),
+                    _ => None,
+                };
+                if run.is_some_and(|p| self.notes.back().is_some_and(|(_, t)| t.starts_with(p))) {
                     self.notes.pop_back();
                 }
                 self.note(at, text);

@@ -214,10 +214,11 @@ fn listen_refuses_a_device_of_another_protocol_version() {
     // prints none of what follows.
     let (code, text, err) = listen_to(greeting_of(1), vec![raised(10)]);
     assert_eq!(code, Some(2), "{text}\n{err}");
-    assert!(
-        err.contains("the device speaks protocol version 1; this host knows version 2"),
-        "{err}"
+    let want = format!(
+        "the device speaks protocol version 1; this host knows version {}",
+        wire::PROTOCOL_VERSION
     );
+    assert!(err.contains(&want), "{err}");
     assert!(!text.contains("raised "), "{text}");
     // The same script speaking this host's version is listened to.
     let (code, text, err) = listen_to(greeting(), vec![raised(10)]);
@@ -228,9 +229,10 @@ fn listen_refuses_a_device_of_another_protocol_version() {
 #[test]
 fn listen_stops_when_a_later_greeting_speaks_another_version() {
     // The board restarts on other firmware mid-session: its new greeting
-    // (numbered from 0 again) announces version 3. What came before is
-    // printed; then listen stops with an error naming the version.
-    let mut late = greeting_of(3);
+    // (numbered from 0 again) announces a version after this host's. What
+    // came before is printed; then listen stops with an error naming it.
+    let newer = wire::PROTOCOL_VERSION + 1;
+    let mut late = greeting_of(newer);
     if let DeviceMsg::Greeting(g) = &mut late {
         g.firmware = heapless::String::try_from("script 2").unwrap();
     }
@@ -252,11 +254,12 @@ fn listen_stops_when_a_later_greeting_speaks_another_version() {
     assert_eq!(code, Some(2), "{text}\n{err}");
     assert!(text.contains("raised seq=1 sample=10"), "{text}");
     assert!(
-        text.contains("protocol=3"),
+        text.contains(&format!("protocol={newer}")),
         "the late greeting is shown: {text}"
     );
-    assert!(
-        err.contains("the device speaks protocol version 3; this host knows version 2"),
-        "{err}"
+    let want = format!(
+        "the device speaks protocol version {newer}; this host knows version {}",
+        wire::PROTOCOL_VERSION
     );
+    assert!(err.contains(&want), "{err}");
 }

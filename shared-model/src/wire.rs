@@ -30,7 +30,7 @@ use crate::MAX_FEATURES;
 
 /// Version of this protocol, sent in every [`Greeting`]. Bumped by any change
 /// that an older peer would misread (see `PROTOCOL.md`, "Stability").
-pub const PROTOCOL_VERSION: u16 = 2;
+pub const PROTOCOL_VERSION: u16 = 3;
 
 /// Bytes of CRC after each message.
 pub const CRC_LEN: usize = 4;
@@ -56,10 +56,10 @@ const fn max(a: usize, b: usize) -> usize {
 }
 
 /// Longest postcard encoding of a [`HostMsg`]: a full sample (variant,
-/// length, `MAX_FEATURES` × 4 bytes) or a full chunk (variant, offset,
-/// length, `MAX_CHUNK` bytes), whichever is longer.
+/// index, length, `MAX_FEATURES` × 4 bytes) or a full chunk (variant,
+/// offset, length, `MAX_CHUNK` bytes), whichever is longer.
 pub const MAX_HOST_MESSAGE: usize = max(
-    1 + varint_len(MAX_FEATURES as u64) + 4 * MAX_FEATURES,
+    1 + varint_len(u32::MAX as u64) + varint_len(MAX_FEATURES as u64) + 4 * MAX_FEATURES,
     1 + varint_len(u32::MAX as u64) + varint_len(MAX_CHUNK as u64) + MAX_CHUNK,
 );
 

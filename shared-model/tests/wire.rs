@@ -261,12 +261,12 @@ mod exact_bytes {
 
     #[test]
     fn sample_with_zero_bytes() {
-        // variant 0, length 2, 1.0 = 00 00 80 3f, -2.5 = 00 00 20 c0.
+        // variant 0, at 5, length 2, 1.0 = 00 00 80 3f, -2.5 = 00 00 20 c0.
         let features = heapless::Vec::from_slice(&[1.0f32, -2.5]).unwrap();
         check(
-            HostMsg::Sample { features },
-            "00 02 00 00 80 3f 00 00 20 c0",
-            "01 02 02 01 03 80 3f 01 07 20 c0 6d 9d 5d fe 00",
+            HostMsg::Sample { at: 5, features },
+            "00 05 02 00 00 80 3f 00 00 20 c0",
+            "01 03 05 02 01 03 80 3f 01 07 20 c0 b3 8f 79 90 00",
         );
     }
 
@@ -368,6 +368,19 @@ mod exact_bytes {
             },
             "01 06 03 80 01",
             "0a 01 06 03 80 01 f5 97 eb 90 00",
+        );
+    }
+
+    #[test]
+    fn sample_not_taken() {
+        // seq 3, variant 6, Ack variant 5 (NotTaken), at 7, next 5.
+        check(
+            DeviceFrame {
+                seq: 3,
+                msg: DeviceMsg::Ack(Ack::NotTaken { at: 7, next: 5 }),
+            },
+            "03 06 05 07 05",
+            "0a 03 06 05 07 05 b2 72 09 9d 00",
         );
     }
 
@@ -486,10 +499,15 @@ fn every_host_msg() -> Vec<HostMsg> {
     let chunk: heapless::Vec<u8, MAX_CHUNK> = (0..MAX_CHUNK).map(|i| i as u8).collect();
     vec![
         HostMsg::Sample {
+            at: 0,
             features: heapless::Vec::from_slice(&[0.0, f32::NAN, f32::INFINITY, -0.0]).unwrap(),
         },
-        HostMsg::Sample { features: full },
         HostMsg::Sample {
+            at: u32::MAX,
+            features: full,
+        },
+        HostMsg::Sample {
+            at: 1 << 30,
             features: heapless::Vec::new(),
         },
         HostMsg::StatusQuery,
@@ -601,6 +619,10 @@ fn every_device_msg() -> Vec<DeviceMsg> {
             total: u32::MAX,
         }),
         DeviceMsg::Ack(Ack::ChunkTaken { next: u32::MAX }),
+        DeviceMsg::Ack(Ack::NotTaken {
+            at: u32::MAX,
+            next: u64::MAX,
+        }),
         DeviceMsg::Ack(Ack::ModelSwitched {
             slot: Slot::B,
             model_id: u32::MAX,
@@ -730,7 +752,7 @@ mod messages {
         }
         // The constant is exact: a full sample is the longest host message.
         assert_eq!(longest, MAX_HOST_MESSAGE);
-        assert_eq!(MAX_HOST_MESSAGE, 1 + 1 + 4 * MAX_FEATURES);
+        assert_eq!(MAX_HOST_MESSAGE, 1 + 5 + 1 + 4 * MAX_FEATURES);
     }
 
     #[test]
@@ -844,9 +866,9 @@ mod messages {
     #[test]
     fn documented_sizes() {
         // PROTOCOL.md, "Framing".
-        assert_eq!(wire::PROTOCOL_VERSION, 2);
-        assert_eq!(MAX_HOST_MESSAGE, 258);
-        assert_eq!(MAX_HOST_FRAME, 265);
+        assert_eq!(wire::PROTOCOL_VERSION, 3);
+        assert_eq!(MAX_HOST_MESSAGE, 263);
+        assert_eq!(MAX_HOST_FRAME, 270);
         assert_eq!(MAX_DEVICE_MESSAGE, 144);
         assert_eq!(MAX_DEVICE_FRAME, 150);
         assert_eq!(MAX_CHUNK, 128);

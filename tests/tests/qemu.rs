@@ -477,10 +477,16 @@ fn board_agrees_with_the_host_bit_for_bit() {
     ] {
         let samples = read_rows(&file, &drift_log(log), rows.clone());
         let (frames, sum) = feed(&mut board, &samples, 2000);
+        // Each sample taken once, in order: the board's count, and below its
+        // reports bit for bit. A reply that comes later than the measured
+        // round trip allows (a busy machine) makes the feed send a sample
+        // again, which the board drops (PROTOCOL.md, "Which samples are
+        // taken"), so `resent` is only printed.
         assert_eq!(
-            (sum.samples, sum.taken, sum.resent),
-            (samples.len() as u64, samples.len() as u64, 0)
+            (sum.samples, sum.taken),
+            (samples.len() as u64, samples.len() as u64)
         );
+        eprintln!("{log}: {} samples resent on a clean link", sum.resent);
         let want = expected(&model, &samples);
         let got = observed(&frames, sum.base, samples.len());
         let diff = report_mismatches(&want, &got);
@@ -1534,6 +1540,8 @@ fn soak_samples(model: &ModelFile, n: usize) -> Vec<Vec<f32>> {
 #[derive(Debug, Default)]
 struct FaultRun {
     samples: usize,
+    /// Samples in flight.
+    window: usize,
     seconds: f64,
     /// Samples the board took, by its own count (must equal `samples`).
     board_samples: u64,
@@ -1579,7 +1587,7 @@ impl FaultRun {
             format!("{:.0}/{:.0}", s[s.len() / 2], s[s.len() - 1])
         };
         format!(
-            "rate={} samples={} seconds={:.1} board_samples={} resent={} \
+            "rate={} window={} samples={} seconds={:.1} board_samples={} resent={} \
              accepted_corrupt_host={} report_mismatches={} board_undecodable={} \
              reports_arrived={} events_expected={} events_lost={} events_recovered={} link_lost={} \
              host_ok={} host_crc={} host_framing={} host_overflow={} host_undecodable={} \
@@ -1588,6 +1596,7 @@ impl FaultRun {
              recovery_frame_ms_median/max={} recovery_sample_ms_median/max={} \
              taken_in_storm={} storm_recovery_ms={}",
             plan.rate,
+            self.window,
             self.samples,
             self.seconds,
             self.board_samples,
@@ -1623,9 +1632,15 @@ impl FaultRun {
     }
 }
 
-/// Streams `samples` through the board over a [`Faulty`] link (window 1,
-/// reports on, every lost sample sent again after a status) and measures.
-fn run_faulty(plan: FaultPlan, samples: &[Vec<f32>], reply_ms: u64, seed: u64) -> FaultRun {
+/// Streams `samples` through the board over a [`Faulty`] link (`window`
+/// samples in flight, reports on, a lost sample sent again) and measures.
+fn run_faulty(
+    plan: FaultPlan,
+    samples: &[Vec<f32>],
+    window: usize,
+    reply_ms: u64,
+    seed: u64,
+) -> FaultRun {
     let model = default_model();
     let want = expected(&model, samples);
     let log: SharedLog = Default::default();
@@ -1639,6 +1654,7 @@ fn run_faulty(plan: FaultPlan, samples: &[Vec<f32>], reply_ms: u64, seed: u64) -
     let start = Instant::now();
     let mut run = FaultRun {
         samples: samples.len(),
+        window,
         events_expected: want.events.len(),
         ..FaultRun::default()
     };
@@ -1672,7 +1688,7 @@ fn run_faulty(plan: FaultPlan, samples: &[Vec<f32>], reply_ms: u64, seed: u64) -
         arrivals.push((Instant::now(), report));
     };
     let cfg = FeedConfig {
-        window: 1,
+        window,
         reset: true,
         reports_off_after: true,
         patience: Patience {
@@ -1759,7 +1775,7 @@ fn one_percent_faults_and_unplugs_lose_no_event() {
         cut_len: (Duration::from_millis(150), Duration::from_millis(600)),
         drop_events_once: true,
     };
-    let run = run_faulty(plan, &samples, 40, 0x50a6);
+    let run = run_faulty(plan, &samples, 1, 40, 0x50a6);
     eprintln!("faults: {}", run.line(&plan));
     assert_eq!(run.accepted_corrupt_host, 0, "a damaged frame was accepted");
     assert_eq!(run.report_mismatches, 0, "the board took a damaged message");
@@ -1780,8 +1796,8 @@ fn one_percent_faults_and_unplugs_lose_no_event() {
 /// (`scripts/soak.sh`; ignored in CI). Settings from the environment:
 /// `PLUMB_SOAK_RATE` (0.01), `PLUMB_SOAK_SAMPLES` (2000),
 /// `PLUMB_SOAK_STORM_S` (faults stop after this many seconds; unset:
-/// never), `PLUMB_SOAK_CUT_EVERY_S` (10; 0: no unplugs), `PLUMB_SOAK_REPLY_MS`
-/// (80), `PLUMB_SOAK_SEED`, `PLUMB_SOAK_OUT` (a file the result line is
+/// never), `PLUMB_SOAK_CUT_EVERY_S` (10; 0: no unplugs), `PLUMB_SOAK_WINDOW`
+/// (samples in flight, 1), `PLUMB_SOAK_REPLY_MS` (80), `PLUMB_SOAK_SEED`, `PLUMB_SOAK_OUT` (a file the result line is
 /// appended to).
 #[test]
 #[ignore = "long; run by scripts/soak.sh"]
@@ -1809,6 +1825,7 @@ fn soak_faults_on_the_link() {
     let run = run_faulty(
         plan,
         &samples,
+        env("PLUMB_SOAK_WINDOW", 1.0) as usize,
         env("PLUMB_SOAK_REPLY_MS", 80.0) as u64,
         env("PLUMB_SOAK_SEED", 1.0) as u64,
     );

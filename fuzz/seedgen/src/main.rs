@@ -59,6 +59,7 @@ fn main() {
     let host = [
         HostMsg::StatusQuery,
         HostMsg::Sample {
+            at: 0,
             features: heapless::Vec::from_slice(&[1.0, -2.5, 0.0, 3.25]).expect("fits"),
         },
         HostMsg::UploadBegin {

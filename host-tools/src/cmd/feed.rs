@@ -25,9 +25,10 @@ as sensor faults), and print what the board says: drift raised and cleared, faul
 The board's statistics are reset first (--keep-stats to continue where it was), so a run
 is comparable with `plumb replay` of the same log. Flow control: the board is asked to send
 a score report for every sample, and feed waits for it before sending the next (--window N
-keeps N samples in flight: faster on a clean link, but a sample lost on the way can then
-only be counted, not sent again in its place). A sample the board did not take is sent again;
-events lost on the way are asked for again (see `plumb listen --help`).
+keeps N samples in flight: faster on a clean link). Every sample carries its index, and the
+board takes a sample only at its next index, so a sample lost on the way (or whose report
+was lost) is simply sent again: the board takes each sample once and in order, whatever the
+window. Events lost on the way are asked for again (see `plumb listen --help`).
 
 --reports prints the score reports and --trace writes them as CSV with the exact f32 bit
 patterns; --record-samples writes the samples sent as a log `plumb fit` reads.
@@ -364,8 +365,8 @@ pub fn run(args: FeedArgs) -> Result<u8> {
         }
     }
     let summary = format!(
-        "fed samples={} taken={} frames_sent={} resent={} reports_missing={} status_queries={} raised={} cleared={} faults={}",
-        sum.samples, sum.taken, sum.frames_sent, sum.resent, sum.reports_missing, sum.status_queries,
+        "fed samples={} taken={} frames_sent={} resent={} reports_missing={} raised={} cleared={} faults={}",
+        sum.samples, sum.taken, sum.frames_sent, sum.resent, sum.reports_missing,
         tally.raised, tally.cleared, tally.faults
     );
     if args.json {
@@ -373,7 +374,7 @@ pub fn run(args: FeedArgs) -> Result<u8> {
             "{}",
             serde_json::json!({"event": "fed", "samples": sum.samples, "taken": sum.taken,
                 "frames_sent": sum.frames_sent, "resent": sum.resent, "reports_missing": sum.reports_missing,
-                "status_queries": sum.status_queries, "raised": tally.raised, "cleared": tally.cleared,
+                "raised": tally.raised, "cleared": tally.cleared,
                 "faults": tally.faults})
         );
     } else {

@@ -315,6 +315,15 @@ pub enum Ack {
         /// Generation written beside the slot.
         generation: u32,
     },
+    /// A [`HostMsg::Sample`] meant for another index than the device's next
+    /// was dropped: sent again after it was taken (`at < next`), or sent
+    /// behind a sample that never arrived (`at > next`).
+    NotTaken {
+        /// The index the sample was sent at (modulo 2³², as sent).
+        at: u32,
+        /// The index the device takes next ([`Status::samples`]).
+        next: u64,
+    },
 }
 
 /// The host request a refusal answers.
@@ -404,8 +413,14 @@ pub struct DeviceFrame {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub enum HostMsg {
-    /// 0: one sample, features in model order.
+    /// 0: one sample, features in model order. The device takes it only
+    /// as its sample `at` (its count of samples since the last statistics
+    /// reset, [`Status::samples`], modulo 2³² as sequence numbers wrap);
+    /// any other sample is dropped and answered with [`Ack::NotTaken`], so
+    /// a host may send a sample again without its being taken twice.
     Sample {
+        /// The index the sample is meant to have on the device, modulo 2³².
+        at: u32,
         /// The features.
         features: heapless::Vec<f32, MAX_FEATURES>,
     },
