@@ -22,10 +22,10 @@
 //!
 //! * a sample meant for the device's next index goes through
 //!   [`Detector::update`] (any other is dropped and answered with
-//!   [`Ack::NotTaken`], so a host may send a sample again safely); a drift raised or cleared
-//!   message follows a state change, a sensor fault message the start of a
-//!   fault (repeats are only counted), a score report every sample while
-//!   reports are on, and a status message every
+//!   [`Ack::NotTaken`], so a host may send a sample again safely); a drift
+//!   raised or cleared message follows a state change, a sensor fault
+//!   message the start of a fault (repeats are only counted), a score report
+//!   every sample while reports are on, and a status message every
 //!   [`Config::status_every`] samples;
 //! * drift raised, drift cleared and sensor fault messages are kept in a ring
 //!   of `R` entries (default [`DEFAULT_RETAINED`]) and sent again, with
@@ -643,14 +643,15 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         self.send(out, DeviceMsg::Refused(Refusal { request, reason }));
     }
 
+    /// Answers one host message; `true` when it was a sample the detector
+    /// took.
+    //
     // Out of line: inlined into `feed` and `poll`, the handlers and
     // `Detector::update` share the serving loop's registers with the frame
     // decoder, and the spills and reloads around them cost about 0.5 KB of
     // flash on a Cortex-M (BENCHMARKS.md, "Smaller code"); one call per host
     // message is all this costs at run time.
     #[inline(never)]
-    /// Answers one host message; `true` when it was a sample the detector
-    /// took.
     fn handle<W: Write>(&mut self, msg: &HostMsg, out: &mut Out<'_, W>) -> bool {
         match msg {
             // Only the device's next sample is taken; any other (sent again,

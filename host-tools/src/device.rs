@@ -294,7 +294,7 @@ where
     // Each carries its device index (`base` + its host index), so the device
     // takes it once and in order however often it is sent
     // (PROTOCOL.md, "Which samples are taken").
-    let mut inflight: std::collections::VecDeque<(Vec<f32>, Option<Instant>)> = Default::default();
+    let mut inflight = InFlight::new();
     let mut acked = 0u64;
     let mut next = 0u64;
     // Whether the samples in flight were sent again since the last progress:
@@ -346,7 +346,7 @@ where
             }
             // Nothing for a reply time: the oldest sample or its report was
             // lost. Sending again is safe either way: a sample the device
-            // already took is answered with a status that says so.
+            // already took is answered with `Ack::NotTaken`, which says so.
             timer.expired();
             resend(link, &mut inflight, base + acked, &mut sum)?;
             resent_since_progress = true;
@@ -418,14 +418,13 @@ where
     Ok(sum)
 }
 
+/// Samples sent and not yet taken, oldest first, each with the time it was
+/// sent if it was sent only once.
+type InFlight = std::collections::VecDeque<(Vec<f32>, Option<Instant>)>;
+
 /// Sends every sample in flight again, the oldest as the device's sample
 /// `at`; each counts as resent and loses its round-trip measurement.
-fn resend(
-    link: &mut Link,
-    inflight: &mut std::collections::VecDeque<(Vec<f32>, Option<Instant>)>,
-    at: u64,
-    sum: &mut FeedSummary,
-) -> Result<()> {
+fn resend(link: &mut Link, inflight: &mut InFlight, at: u64, sum: &mut FeedSummary) -> Result<()> {
     for (i, (x, sent)) in inflight.iter_mut().enumerate() {
         *sent = None;
         send_sample(link, at + i as u64, x)?;
