@@ -15,7 +15,7 @@
 #                           the host accepted and to the first sample the board took
 #   storm_recovery_ms       after a storm (PLUMB_SOAK_STORM_S), ms to the first frame
 #
-# The emulated UART moves a few tens of kB/s and a 24-feature sample frame is
+# The emulated UART moves about 20 kB/s and a 24-feature sample frame is
 # about 104 bytes, so the sample counts are scaled to finish in minutes; the
 # count is in each line. The test itself is `soak_faults_on_the_link` in
 # tests/tests/qemu.rs (ignored in CI; a 1 % run of 200 samples,
@@ -24,11 +24,14 @@
 #   scripts/soak.sh [SAMPLES]     default 2000 per run
 #
 # Environment: PLUMB_SOAK_OUT (result file, default target/soak/soak-DATE.txt),
-# PLUMB_SOAK_SEED.
+# PLUMB_SOAK_SEED, PLUMB_SOAK_WINDOW (samples in flight, default 4: each
+# sample carries its index, so the board takes each once and in order
+# whatever the window, and a loss is noticed from the next sample's answer).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
 n=${1:-2000}
+export PLUMB_SOAK_WINDOW=${PLUMB_SOAK_WINDOW:-4}
 mkdir -p target/soak
 out=${PLUMB_SOAK_OUT:-target/soak/soak-$(date +%Y%m%d-%H%M%S).txt}
 export PLUMB_SOAK_OUT=$out
