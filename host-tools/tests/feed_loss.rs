@@ -7,6 +7,7 @@
 
 use plumb::device::{self, FeedConfig, Patience};
 use plumb::link::{Chunk, Link, Transport};
+use plumb::rng::Rng;
 use plumb_firmware::endpoint::{Endpoint, RamSlots};
 use plumb_firmware::Detector;
 use plumb_model::wire::{DeviceMsg, ScoreTriple};
@@ -51,23 +52,18 @@ impl embedded_io::Write for Sink {
 }
 
 /// The endpoint behind a link that drops each frame, either way, with
-/// probability `loss` (a seeded generator, so a run is repeatable).
+/// probability `loss` (the project's seeded generator, so a run is
+/// repeatable).
 struct Lossy {
     ep: Endpoint<RamSlots<8192>, NoPin>,
     out: VecDeque<Vec<u8>>,
     loss: f64,
-    state: u64,
+    rng: Rng,
 }
 
 impl Lossy {
     fn lose(&mut self) -> bool {
-        // SplitMix64 (Steele, Lea & Flood 2014).
-        self.state = self.state.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.state;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^= z >> 31;
-        ((z >> 11) as f64 / (1u64 << 53) as f64) < self.loss
+        self.rng.uniform() < self.loss
     }
 }
 
@@ -124,7 +120,7 @@ fn every_sample_is_taken_once_and_in_order_whatever_the_window_and_the_losses() 
             ep,
             out: VecDeque::new(),
             loss,
-            state: seed,
+            rng: Rng::new(seed, 0),
         }));
         let cfg = FeedConfig {
             window,
