@@ -237,7 +237,7 @@ pub struct Outcome {
 /// A detector is about 7 KiB. A device keeps it in one place and loads models
 /// into it ([`Detector::EMPTY`], then [`Detector::load`]); [`Detector::new`]
 /// and [`Detector::from_file`] return one by value, for hosts and tests.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Detector {
     model: Model,
     derived: Derived,
@@ -308,12 +308,34 @@ impl Detector {
     /// is [`Detector::EMPTY`]: no model ([`Detector::is_loaded`] is false),
     /// every sample a fault; nothing of a half-read file can be scored.
     pub fn load(&mut self, bytes: &[u8]) -> Result<(), ModelError> {
-        let loaded = plumb_model::file::decode_into(bytes, &Capacity::DEVICE, &mut self.model)
-            .and_then(|()| self.start());
-        if loaded.is_err() {
+        let loaded = self.decode_model(bytes);
+        if loaded.is_ok() {
+            self.reset();
+        } else {
             self.unload();
         }
         loaded
+    }
+
+    /// [`Detector::load`] without the reset: decodes and checks a model
+    /// file over this detector's model and its derived constants, in place,
+    /// and leaves every statistic and the state as they are. On error the
+    /// model is cleared ([`Detector::is_loaded`] is false) and the statistics
+    /// are still untouched.
+    ///
+    /// For a device with one detector place that decodes a candidate model
+    /// over the running one: on success it calls [`Detector::reset`]; on
+    /// refusal it decodes the file of the model that was running again, which
+    /// gives the same model and constants bit for bit, and the detector goes
+    /// on exactly as if the candidate had never been decoded.
+    pub fn decode_model(&mut self, bytes: &[u8]) -> Result<(), ModelError> {
+        let decoded = plumb_model::file::decode_into(bytes, &Capacity::DEVICE, &mut self.model)
+            .and_then(|()| self.check());
+        if decoded.is_err() {
+            self.model.clear();
+            self.derived = Derived::ZERO;
+        }
+        decoded
     }
 
     /// Drops the model: back to [`Detector::EMPTY`], in place.
@@ -330,20 +352,24 @@ impl Detector {
     }
 
     /// Checks the model in place, derives its constants and resets the
-    /// statistics. On error the model is left as it is: `load` clears it,
-    /// `new` drops it.
+    /// statistics. On error the model is left as it is: `new` drops it.
     fn start(&mut self) -> Result<(), ModelError> {
-        Capacity::DEVICE.admits(&self.model.dims)?;
-        self.model.validate()?;
-        self.derived.compute(&self.model)?;
+        self.check()?;
         self.reset();
         Ok(())
     }
 
+    /// Checks the model in place and derives its constants.
+    fn check(&mut self) -> Result<(), ModelError> {
+        Capacity::DEVICE.admits(&self.model.dims)?;
+        self.model.validate()?;
+        self.derived.compute(&self.model)
+    }
+
     /// Replaces the model. On error the running model and its statistics are
     /// untouched; on success the statistics restart with warm-up. (A second
-    /// detector is built by value: a device switches between two places
-    /// instead, as the endpoint does.)
+    /// detector is built by value: a device decodes in place instead, with
+    /// [`Detector::decode_model`], as the endpoint does.)
     pub fn install(&mut self, model: Model) -> Result<(), ModelError> {
         let fresh = Detector::new(model)?;
         *self = fresh;

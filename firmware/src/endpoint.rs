@@ -44,16 +44,20 @@
 //!   wrongly signed files are refused with their own codes.
 //!
 //! Nothing allocates and every failure is a value. The big buffers live in
-//! [`Places`]: two detector places of about 7 KiB each and the resend ring
-//! (32 × 176 bytes), about 20 KiB on `thumbv7em-none-eabihf`; the rest of an
+//! [`Places`]: one detector place of about 7 KiB and the resend ring
+//! (32 × 176 bytes), about 13 KiB on `thumbv7em-none-eabihf`; the rest of an
 //! `Endpoint` (receive buffer of 300 bytes, counters, settings) is small. Each frame is encoded in a
 //! [`MAX_DEVICE_FRAME`] (150 byte) buffer on the stack.
 //!
-//! One detector place runs; the other is the staging place. An upload (and
-//! each candidate model at boot) is decoded straight into the staging place
-//! with [`Detector::load`], and a switch only flips which place runs, so no
-//! model or detector is ever built on the stack or moved, and the running
-//! model runs until the switch. A board keeps [`Places::EMPTY`] in a static
+//! There is one detector place and no second model-sized buffer. An upload
+//! (and each candidate model at boot) is decoded straight over the running
+//! model with [`Detector::decode_model`], which leaves the statistics as they
+//! are; on success the statistics restart and the endpoint switches, and on
+//! any refusal the running model's own file (its slot, which an upload never
+//! writes, or the built-in file) is decoded again: the same bytes give the
+//! same model and constants, so the detector goes on bit for bit as if the
+//! candidate had never been decoded. No model or detector is ever built on
+//! the stack or moved. A board keeps [`Places::EMPTY`] in a static
 //! (all zero: `.bss`), lends it to [`Endpoint::idle_in`] and boots in place
 //! with [`Endpoint::start`]; [`Endpoint::boot`] holds the places by value
 //! and returns the endpoint by value, for hosts and tests.
@@ -247,44 +251,24 @@ fn send_frame<W: Write>(io: &mut W, seq: u32, msg: &DeviceMsg) -> Result<(), Err
     Ok(())
 }
 
-/// The big parts of an [`Endpoint`] (about 19 KiB with the default ring):
-/// the two detector places and the resend ring of `R` events.
+/// The big parts of an [`Endpoint`] (about 13 KiB with the default ring):
+/// the detector place and the resend ring of `R` events.
 ///
 /// [`Places::EMPTY`] is all zero or uninitialised bytes, so a static
 /// holding it costs no flash (it lands in `.bss`) and no start-up work
 /// beyond zeroing; a board lends `&'static mut Places` to
 /// [`Endpoint::idle_in`] and nothing big is ever built on the stack.
 pub struct Places<const R: usize = DEFAULT_RETAINED> {
-    first: Detector,
-    second: Detector,
+    detector: Detector,
     retained: Deque<Retained, R>,
 }
 
 impl<const R: usize> Places<R> {
-    /// Two empty detector places ([`Detector::EMPTY`]) and an empty ring.
+    /// An empty detector place ([`Detector::EMPTY`]) and an empty ring.
     pub const EMPTY: Places<R> = Places {
-        first: Detector::EMPTY,
-        second: Detector::EMPTY,
+        detector: Detector::EMPTY,
         retained: Deque::new(),
     };
-
-    /// The second place when `second`, else the first.
-    fn place(&self, second: bool) -> &Detector {
-        if second {
-            &self.second
-        } else {
-            &self.first
-        }
-    }
-
-    /// [`Places::place`], mutable.
-    fn place_mut(&mut self, second: bool) -> &mut Detector {
-        if second {
-            &mut self.second
-        } else {
-            &mut self.first
-        }
-    }
 }
 
 /// The device side of the link. `S` stores the model slots, `P` drives the
@@ -292,11 +276,11 @@ impl<const R: usize> Places<R> {
 /// [`Places`]: by value (the default) or lent (`&mut Places<R>`, for a board
 /// that keeps them in a static).
 pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED, D = Places<R>> {
-    /// The detector places and the ring. `second_runs` says which place
-    /// runs; the other is the staging place (its content means nothing
-    /// until a switch).
+    /// The detector place and the ring.
     places: D,
-    second_runs: bool,
+    /// The model file built into the image, if any: where the running model
+    /// is decoded again from when `active` is `None` (see [`load_or_keep`]).
+    builtin: Option<&'static [u8]>,
     slots: S,
     pin: P,
     /// Level last driven on the pin; `None` until driven or after an error.
@@ -329,7 +313,7 @@ impl<S, P, const R: usize, D: BorrowMut<Places<R>>> Endpoint<S, P, R, D> {
     pub const fn idle_in(places: D, slots: S, pin: P) -> Self {
         Endpoint {
             places,
-            second_runs: false,
+            builtin: None,
             slots,
             pin,
             pin_high: None,
@@ -348,24 +332,11 @@ impl<S, P, const R: usize, D: BorrowMut<Places<R>>> Endpoint<S, P, R, D> {
 }
 
 impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
-    /// Starts on a detector the board built itself (for instance from a model
-    /// compiled into the image); the greeting reports no active slot and
-    /// generation 0. The first upload goes to slot A. The detector is moved
-    /// in by value (about 7 KiB): a device uses [`Endpoint::idle`] and
-    /// [`Endpoint::start`].
-    pub fn new(detector: Detector, slots: S, pin: P) -> Self {
-        let mut ep = Self::idle(slots, pin);
-        ep.places.first = detector;
-        // A failure here is retried after the next sample.
-        let _ = ep.drive_pin();
-        ep
-    }
-
     /// Starts on the newest valid slot (highest generation whose record,
     /// CRC-32 and model file all pass), else on `builtin` (a model file in
     /// the image), else fails. Default [`Config`]: no signature needed.
     /// Returns the endpoint by value (about 19 KiB): see [`Endpoint::start`].
-    pub fn boot(slots: S, pin: P, builtin: Option<&[u8]>) -> Result<Self, BootError> {
+    pub fn boot(slots: S, pin: P, builtin: Option<&'static [u8]>) -> Result<Self, BootError> {
         Self::boot_with(slots, pin, builtin, Config::default())
     }
 
@@ -374,7 +345,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     pub fn boot_with(
         slots: S,
         pin: P,
-        builtin: Option<&[u8]>,
+        builtin: Option<&'static [u8]>,
         config: Config,
     ) -> Result<Self, BootError> {
         let mut ep = Self::idle(slots, pin);
@@ -391,10 +362,15 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
     /// key is passed over like an invalid one (the built-in model is not
     /// checked: it is part of the image).
     ///
-    /// Each candidate is decoded into the staging place and switched to only
-    /// when it passes, so a failed start leaves the running place as it was
-    /// (on an [`Endpoint::idle`] endpoint: no model).
-    pub fn start(&mut self, builtin: Option<&[u8]>, config: Config) -> Result<(), BootError> {
+    /// Each candidate is decoded into the detector place and kept only when
+    /// it passes; a failed start leaves the model that was running, if any,
+    /// running with its statistics (see [`load_or_keep`]; on an
+    /// [`Endpoint::idle`] endpoint: no model).
+    pub fn start(
+        &mut self,
+        builtin: Option<&'static [u8]>,
+        config: Config,
+    ) -> Result<(), BootError> {
         self.config = config;
         let mut order = [Slot::A, Slot::B].map(|s| (s, self.slots.record(s)));
         if let [(_, Some(a)), (_, Some(b))] = order {
@@ -410,32 +386,35 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
             if check_trust(bytes, &self.config).is_err() {
                 continue;
             }
-            let staging = self.places.borrow_mut().place_mut(!self.second_runs);
-            if staging.load(bytes).is_ok() {
+            let place = &mut self.places.borrow_mut().detector;
+            if place.decode_model(bytes).is_ok() {
+                self.builtin = builtin;
                 // A pin failure is retried after the next sample.
                 let _ = self.switch(Some(slot), rec.generation);
                 return Ok(());
             }
+            keep_running(place, &self.slots, self.active, self.builtin);
         }
         let Some(file) = builtin else {
             return Err(BootError::NoModel);
         };
-        self.staging_mut().load(file).map_err(BootError::Builtin)?;
+        let place = &mut self.places.borrow_mut().detector;
+        if let Err(e) = place.decode_model(file) {
+            keep_running(place, &self.slots, self.active, self.builtin);
+            return Err(BootError::Builtin(e));
+        }
+        self.builtin = builtin;
         let _ = self.switch(None, 0);
         Ok(())
     }
 
-    /// The running place.
+    /// The running detector.
     fn running(&self) -> &Detector {
-        self.places.borrow().place(self.second_runs)
+        &self.places.borrow().detector
     }
 
     fn running_mut(&mut self) -> &mut Detector {
-        self.places.borrow_mut().place_mut(self.second_runs)
-    }
-
-    fn staging_mut(&mut self) -> &mut Detector {
-        self.places.borrow_mut().place_mut(!self.second_runs)
+        &mut self.places.borrow_mut().detector
     }
 
     fn ring(&self) -> &Deque<Retained, R> {
@@ -446,10 +425,11 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         &mut self.places.borrow_mut().retained
     }
 
-    /// Runs the staging place (loaded by the caller) from now on: per-model
-    /// state restarts and the drift line follows the new state.
+    /// Runs the model just decoded into the place from now on: its
+    /// statistics and the per-model endpoint state restart, and the drift
+    /// line follows the new state.
     fn switch(&mut self, active: Option<Slot>, generation: u32) -> Result<(), PinErrorKind> {
-        self.second_runs = !self.second_runs;
+        self.running_mut().reset();
         self.active = active;
         self.generation = generation;
         self.last_fault = None;
@@ -1003,8 +983,9 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
     }
 
     /// Every check of a finished upload, then the slot's record; returns the
-    /// new generation. The file is decoded into the staging place; the
-    /// running place is not touched: the caller switches only on success.
+    /// new generation. The file is decoded over the running model; on any
+    /// error the running model is put back ([`keep_running`]): the caller
+    /// switches only on success.
     fn check_upload(&mut self, up: Upload) -> Result<u32, Reason> {
         self.slots.flush(up.slot).map_err(|_| Reason::Storage)?;
         let len = usize::try_from(up.total).map_err(|_| Reason::Storage)?;
@@ -1020,10 +1001,13 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         // any of the payload is decoded.
         check_trust(file, &self.config)?;
         // `Detector::load` = `file::decode_into` (framing, CRC, capacity,
-        // validation) + the detector's own checks, written into the staging
-        // place; on error that place is left empty, never run.
-        let staging = self.places.borrow_mut().place_mut(!self.second_runs);
-        staging.load(file).map_err(Reason::from)?;
+        // validation) + the detector's own checks, written over the running
+        // model; on error the running model is put back as it was.
+        let place = &mut self.places.borrow_mut().detector;
+        if let Err(e) = place.decode_model(file) {
+            keep_running(place, &self.slots, self.active, self.builtin);
+            return Err(Reason::from(e));
+        }
         let generation = [Slot::A, Slot::B]
             .iter()
             .filter_map(|s| self.slots.record(*s))
@@ -1035,10 +1019,37 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
             len: up.total,
             crc: computed,
         };
-        self.slots
-            .commit(up.slot, record)
-            .map_err(|_| Reason::Storage)?;
+        if self.slots.commit(up.slot, record).is_err() {
+            let place = &mut self.places.borrow_mut().detector;
+            keep_running(place, &self.slots, self.active, self.builtin);
+            return Err(Reason::Storage);
+        }
         Ok(generation)
+    }
+}
+
+/// After a candidate model failed in `place` (decoded over the running one
+/// with [`Detector::decode_model`], which leaves the statistics alone), puts
+/// the model that ran back: decoded again from the file it came from (the
+/// slot `active`, else the built-in file), which nothing wrote to meanwhile
+/// (an upload goes to the slot not running). The same bytes give the same
+/// model and constants, so the detector goes on bit for bit as if the
+/// candidate had never been decoded. When no model ran, or the old file no
+/// longer reads back whole (its record or CRC-32 fails), the place is left
+/// empty ([`Detector::unload`]), every sample a fault.
+#[inline(never)]
+fn keep_running<S: ModelSlots>(
+    place: &mut Detector,
+    slots: &S,
+    active: Option<Slot>,
+    builtin: Option<&[u8]>,
+) {
+    let file = match active {
+        Some(slot) => slot_file(slots, slot),
+        None => builtin,
+    };
+    if file.is_none_or(|f| place.decode_model(f).is_err()) {
+        place.unload();
     }
 }
 

@@ -70,7 +70,7 @@ pub struct Scored {
 
 /// Constants derived from a model at load time, so the per-sample path does
 /// only multiply-adds plus `k` exponentials and one logarithm.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Derived {
     inv_scale: [f32; MAX_FEATURES],
     inv_eigen: [f32; MAX_COMPONENTS],

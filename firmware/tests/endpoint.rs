@@ -145,6 +145,12 @@ fn model(id: u32, mean_shift: f32) -> ModelOwned {
     }
 }
 
+/// [`file_of`] for the life of the test process, as a built-in model file
+/// (which the endpoint keeps, to decode again).
+fn builtin_of(m: &ModelOwned) -> &'static [u8] {
+    file_of(m).leak()
+}
+
 fn file_of(m: &ModelOwned) -> Vec<u8> {
     ModelFile {
         model: m.clone(),
@@ -222,6 +228,19 @@ impl<const R: usize> Rig<R> {
         let mut slots = RamSlots::new();
         slots.store(Slot::A, &file_of(&model(1, 0.0)), 1).unwrap();
         Self::boot_with(slots, 64)
+    }
+
+    /// Boots on model 1 as the built-in file, with both slots empty.
+    fn on_builtin() -> Self {
+        let line = Line::default();
+        let builtin = builtin_of(&model(1, 0.0));
+        let ep = Endpoint::boot(RamSlots::new(), line.clone(), Some(builtin)).expect("built-in");
+        Rig {
+            ep,
+            pipe: Pipe::new(64),
+            line,
+            rx: DeviceFrameDecoder::new(),
+        }
     }
 }
 
@@ -411,10 +430,10 @@ mod greeting_and_boot {
     #[test]
     fn boot_picks_the_newest_valid_slot() {
         let one = file_of(&model(1, 0.0));
-        let two = file_of(&model(2, 0.1));
+        let two = builtin_of(&model(2, 0.1));
         let mut slots = RamSlots::<SLOT>::new();
         slots.store(Slot::A, &one, 1).unwrap();
-        slots.store(Slot::B, &two, 2).unwrap();
+        slots.store(Slot::B, two, 2).unwrap();
         let ep = Endpoint::<_, _>::boot(slots.clone(), Line::default(), None).unwrap();
         assert_eq!(ep.active_slot(), Some(Slot::B));
         assert_eq!(ep.generation(), 2);
@@ -432,7 +451,7 @@ mod greeting_and_boot {
 
         // No valid slot: the built-in model, else an error.
         let empty = RamSlots::<SLOT>::new();
-        let ep = Endpoint::<_, _>::boot(empty.clone(), Line::default(), Some(&two)).unwrap();
+        let ep = Endpoint::<_, _>::boot(empty.clone(), Line::default(), Some(two)).unwrap();
         assert_eq!(ep.active_slot(), None);
         assert_eq!(ep.generation(), 0);
         assert!(matches!(
@@ -448,7 +467,7 @@ mod greeting_and_boot {
     #[test]
     fn an_idle_endpoint_starts_in_place_like_boot() {
         let one = file_of(&model(1, 0.0));
-        let two = file_of(&model(2, 0.1));
+        let two = builtin_of(&model(2, 0.1));
         let mut slots = RamSlots::<SLOT>::new();
         slots.store(Slot::A, &one, 1).unwrap();
         let mut ep = Endpoint::<_, _>::idle(slots.clone(), Line::default());
@@ -459,13 +478,13 @@ mod greeting_and_boot {
             .unwrap();
         assert_eq!(ep.detector().faults().wrong_length, 1);
 
-        ep.start(Some(&two), Config::default()).unwrap();
+        ep.start(Some(two), Config::default()).unwrap();
         assert_eq!(ep.active_slot(), Some(Slot::A));
         assert_eq!(ep.generation(), 1);
         assert_eq!(ep.detector().model().meta.id, 1);
         // As booted by value, but for the link counters and the fault event
         // of the sample sent before the start.
-        let booted = Endpoint::<_, _>::boot(slots, Line::default(), Some(&two)).unwrap();
+        let booted = Endpoint::<_, _>::boot(slots, Line::default(), Some(two)).unwrap();
         assert_eq!(ep.detector().model(), booted.detector().model());
         let (a, b) = (ep.status(), booted.status());
         assert_eq!(
@@ -476,7 +495,7 @@ mod greeting_and_boot {
 
         // A start that finds nothing leaves the running model running.
         let mut ep = Endpoint::<_, _>::idle(RamSlots::<SLOT>::new(), Line::default());
-        ep.start(Some(&two), Config::default()).unwrap();
+        ep.start(Some(two), Config::default()).unwrap();
         assert_eq!(ep.active_slot(), None);
         assert_eq!(ep.detector().model().meta.id, 2);
         assert!(matches!(
@@ -859,26 +878,37 @@ mod upload {
     }
 
     /// Runs `attack`, expects `want` as the first refusal, and checks that
-    /// the running model and its statistics are exactly as before.
-    fn refused_and_untouched(attack: impl FnOnce(&mut Rig) -> Vec<DeviceMsg>, want: Reason) {
-        let mut rig: Rig = Rig::new();
-        let warm = mixed_samples(21, 60);
-        let mut reference = Detector::from_file(&file_of(&model(1, 0.0))).unwrap();
-        assert_scores_match(&mut rig, &mut reference, &warm);
-        let before = rig.ep.status();
+    /// the running model and its statistics are exactly as before: on model
+    /// 1 from slot A, and on model 1 built in (the two files a refused
+    /// upload that was decoded over the running model is restored from).
+    fn refused_and_untouched(attack: impl Fn(&mut Rig) -> Vec<DeviceMsg>, want: Reason) {
+        for (mut rig, slot, generation) in
+            [(Rig::new(), Some(Slot::A), 1), (Rig::on_builtin(), None, 0)]
+        {
+            let warm = mixed_samples(21, 60);
+            let mut reference = Detector::from_file(&file_of(&model(1, 0.0))).unwrap();
+            assert_scores_match(&mut rig, &mut reference, &warm);
+            let before = rig.ep.status();
+            let running = rig.ep.detector().clone();
 
-        let answers = attack(&mut rig);
-        let r = refusal(&answers).unwrap_or_else(|| panic!("no refusal in {answers:?}"));
-        assert_eq!(r.reason, want, "{answers:?}");
-        assert_eq!(switched(&answers), None);
-        assert_eq!(rig.ep.active_slot(), Some(Slot::A));
-        assert_eq!(rig.ep.generation(), 1);
-        assert_eq!(rig.ep.detector().model().meta.id, 1);
-        let after = rig.ep.status();
-        assert_eq!(after.samples, before.samples);
-        assert_eq!(after.levels, before.levels);
-        // And it keeps scoring as if nothing had happened.
-        assert_scores_match(&mut rig, &mut reference, &mixed_samples(22, 80));
+            let answers = attack(&mut rig);
+            let r = refusal(&answers).unwrap_or_else(|| panic!("no refusal in {answers:?}"));
+            assert_eq!(r.reason, want, "{answers:?}");
+            assert_eq!(switched(&answers), None);
+            assert_eq!(rig.ep.active_slot(), slot);
+            assert_eq!(rig.ep.generation(), generation);
+            assert_eq!(rig.ep.detector().model().meta.id, 1);
+            // Model, constants, statistics and state, every bit.
+            assert!(
+                *rig.ep.detector() == running,
+                "the running detector changed"
+            );
+            let after = rig.ep.status();
+            assert_eq!(after.samples, before.samples);
+            assert_eq!(after.levels, before.levels);
+            // And it keeps scoring as if nothing had happened.
+            assert_scores_match(&mut rig, &mut reference, &mixed_samples(22, 80));
+        }
     }
 
     #[test]
@@ -1031,13 +1061,13 @@ mod upload {
                     .into_iter()
                     .map(|f| f.msg)
                     .collect();
-                assert_eq!(
-                    again[1],
-                    DeviceMsg::Ack(Ack::UploadOpen {
-                        slot: Slot::B,
-                        total
-                    })
-                );
+                // The slot not running: B beside slot A, A beside the
+                // built-in model.
+                let slot = match rig.ep.active_slot() {
+                    Some(Slot::A) => Slot::B,
+                    _ => Slot::A,
+                };
+                assert_eq!(again[1], DeviceMsg::Ack(Ack::UploadOpen { slot, total }));
                 a.extend(again);
                 a
             },
@@ -1163,6 +1193,17 @@ mod upload {
         };
         let mut ep = Endpoint::<_, _>::boot(slots, Line::default(), None).unwrap();
         let mut pipe = Pipe::new(64);
+        // Some statistics first: the new model was decoded over the running
+        // one before the record failed, so they must come back.
+        for (at, x) in mixed_samples(23, 40).iter().enumerate() {
+            pipe.to_device
+                .extend(wire::encode_frame_vec(&sample_at(at as u64, x)));
+        }
+        while !pipe.to_device.is_empty() {
+            ep.poll(&mut pipe).unwrap();
+        }
+        let running = ep.detector().clone();
+        assert_eq!(ep.detector().samples(), 40);
         let bytes = file_of(&model(2, 0.25));
         let mut msgs = vec![HostMsg::UploadBegin {
             total: bytes.len() as u32,
@@ -1201,6 +1242,7 @@ mod upload {
         );
         assert_eq!(ep.detector().model().meta.id, 1);
         assert_eq!(ep.active_slot(), Some(Slot::A));
+        assert!(*ep.detector() == running, "the running detector changed");
     }
 }
 
@@ -1408,8 +1450,9 @@ fn footprint() {
         size_of::<Endpoint<NoSlots, Line, 1>>() - size_of::<Endpoint<NoSlots, Line, 0>>(),
         size_of::<wire::HostFrameDecoder>(),
     );
-    // Two detector places (running and staging), the rest under 8 KiB.
-    assert!(endpoint < 2 * detector + 8 * 1024, "{endpoint}");
+    // One detector place (a candidate model is decoded over the running
+    // one), the rest under 8 KiB.
+    assert!(endpoint < detector + 8 * 1024, "{endpoint}");
 }
 
 #[cfg(feature = "signatures")]
@@ -1533,7 +1576,7 @@ mod signed_models {
 
     #[test]
     fn boot_passes_over_slots_not_signed_by_the_key() {
-        let builtin = file_of(&model(9, 0.0));
+        let builtin = builtin_of(&model(9, 0.0));
         let boot = |a: Option<Vec<u8>>, b: Option<Vec<u8>>| {
             let mut slots: RamSlots<SLOT> = RamSlots::new();
             if let Some(f) = a {
@@ -1542,9 +1585,8 @@ mod signed_models {
             if let Some(f) = b {
                 slots.store(Slot::B, &f, 2).unwrap();
             }
-            let ep =
-                Endpoint::<_, _>::boot_with(slots, Line::default(), Some(&builtin), trusting())
-                    .unwrap();
+            let ep = Endpoint::<_, _>::boot_with(slots, Line::default(), Some(builtin), trusting())
+                .unwrap();
             assert_eq!(ep.config().trusted_key, Some(key()));
             (ep.detector().model().meta.id, ep.active_slot())
         };

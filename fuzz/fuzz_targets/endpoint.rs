@@ -1,4 +1,4 @@
-//! The serial endpoint on a valid built-in model with two RAM slots, fed a
+//! The serial endpoint booted on a valid built-in model with two slots, fed a
 //! byte stream through an in-memory `embedded-io` link with random read
 //! sizes. The stream is built from operations: raw bytes, well-formed host
 //! frames (samples, queries, upload steps, whole uploads of good and bad
@@ -140,7 +140,7 @@ fn frame(msg: &HostMsg, corrupt: &mut Option<(u16, u8)>, out: &mut Vec<u8>) {
     out.extend_from_slice(&f);
 }
 
-/// The built-in model's detector, built once and cloned per run.
+/// The built-in model's detector, built once (for its dimensions).
 fn builtin_detector() -> &'static Detector {
     static DET: OnceLock<Detector> = OnceLock::new();
     DET.get_or_init(|| Detector::new(builtin_model().to_device().expect("fits")).expect("valid"))
@@ -327,9 +327,11 @@ fuzz_target!(|data: &[u8]| {
 });
 
 fn run<S: ModelSlots>(input: &Input, slots: S) {
-    let builtin = builtin_detector().clone();
-    let first_id = builtin.model().meta.id;
-    let mut ep: Endpoint<S, Line> = Endpoint::new(builtin, slots, Line::default());
+    let first_id = builtin_detector().model().meta.id;
+    // Fresh slots: the endpoint boots on the built-in file, which it keeps to
+    // decode again when a checked upload fails over the running model.
+    let mut ep: Endpoint<S, Line> =
+        Endpoint::boot(slots, Line::default(), Some(&files().same)).expect("built-in model");
     let trusted = input.trusted();
     if trusted {
         ep.set_config(Config {

@@ -14,7 +14,8 @@
 #    the endpoint's code: text minus the built-in model file.
 # 3. Stack high-water mark by painting, with the real endpoint running:
 #    `plumb feed` of a drift log, and `plumb upload` of a model (the upload is
-#    decoded into the staging detector place, then switched to).
+#    decoded over the running model in the one detector place, then switched
+#    to).
 set -euo pipefail
 here=$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)
 root=$(cd "$here/../../.." && pwd)

@@ -33,7 +33,7 @@ static BUILTIN_MODEL: &[u8] = include_bytes!(concat!(env!("OUT_DIR"), "/builtin.
 /// Firmware version in the greeting.
 const FIRMWARE: &str = concat!("f411 ", env!("CARGO_PKG_VERSION"));
 
-/// The endpoint of this board; its places (detectors, resend ring) are lent
+/// The endpoint of this board; its places (detector, resend ring) are lent
 /// from a static.
 type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RETAINED, &'static mut Places>;
 

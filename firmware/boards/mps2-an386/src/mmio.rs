@@ -10,7 +10,7 @@ use core::ptr;
 use core::sync::atomic::{AtomicBool, Ordering};
 use plumb_firmware::endpoint::Places;
 
-/// The endpoint's two detector places and resend ring (about 19 KiB).
+/// The endpoint's detector place and resend ring (about 13 KiB).
 /// `Places::EMPTY` is zero and uninitialised bytes only, so this lives in
 /// `.bss`: zeroed at reset, never built on the stack, no flash.
 static mut PLACES: Places = Places::EMPTY;
