@@ -21,7 +21,8 @@ Steps (all float64, numpy and scipy only):
      * two-sided EWMA (Lucas & Saccucci 1990), λ = 0.1 and λ = 0.02,
        alarm when |EWMA| > L;
      * two-sided CUSUM (Page 1954), reference k = 0.5 and k = 0.25,
-       alarm when either side > h.
+       alarm when either side > h;
+     * per-sample (Shewhart 1931), alarm when |u_i| > L.
    Every chart starts at 0 at the start of each log and restarts at 0 after an
    alarm; an alarm is a crossing of the limit (no warm-up, no dwell).
 4. Limit: the smallest (bisection) for which the scheme alarms at most
@@ -171,6 +172,20 @@ class Cusum:
 
     def describe(self, h):
         return f"h = {h:.3f}"
+
+
+class PerSample:
+    """Per-sample (Shewhart) chart: statistic |u|, no memory."""
+
+    name = "per-sample |u|"
+
+    @staticmethod
+    def stat(u):
+        return np.abs(u)
+
+    @staticmethod
+    def describe(h):
+        return f"|u| > {h:.3f}"
 
 
 def alarms_in(chart, u, stat, h, cap=None):
@@ -343,7 +358,7 @@ def main():
             drift[s] = (first, early)
         return dict(chart=chart, h=h, allowed=allowed, cal=cal_al, ev=ev_al, drift=drift)
 
-    charts = [Ewma(0.1), Ewma(0.02), Cusum(0.5), Cusum(0.25)]
+    charts = [Ewma(0.1), Ewma(0.02), Cusum(0.5), Cusum(0.25), PerSample()]
     results = []
     for chart in charts:
         tc = time.perf_counter()
