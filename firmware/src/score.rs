@@ -170,6 +170,17 @@ fn insert_top(top: &mut [Contribution; TOP_FEATURES], feature: usize, value: f32
     }
 }
 
+/// The fault of a sample whose feature `at` standardised to NaN or beyond
+/// the fault limit: the first non-finite feature if there is one, else `at`.
+#[cold]
+#[inline(never)]
+fn input_fault(x: &[f32], at: usize) -> Fault {
+    match x.iter().position(|v| !v.is_finite()) {
+        Some(j) => Fault::NonFinite { feature: j as u8 },
+        None => Fault::OutOfRange { feature: at as u8 },
+    }
+}
+
 /// Scores one sample. `x` must have `d` features in model order.
 ///
 /// Operation order is fixed (sums run in index order, no fused multiply-add),
@@ -193,9 +204,6 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
             got: x.len().min(u16::MAX as usize) as u16,
         });
     }
-    if let Some(i) = x.iter().position(|v| !v.is_finite()) {
-        return Err(Fault::NonFinite { feature: i as u8 });
-    }
     let fault_z = model.monitor.fault_z;
     let mut z = [0.0f32; MAX_FEATURES];
     for (i, (((zi, xi), mu), inv)) in z
@@ -206,8 +214,12 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         .enumerate()
     {
         let v = (xi - mu) * inv;
+        // A non-finite feature makes v NaN or infinite, so it stops here
+        // too; only then is the sample scanned for one, which keeps the
+        // precedence of the fault kinds (any non-finite feature before the
+        // first out-of-range one) without a second pass over every sample.
         if v.is_nan() || v.abs() > fault_z {
-            return Err(Fault::OutOfRange { feature: i as u8 });
+            return Err(input_fault(x, i));
         }
         *zi = v;
     }

@@ -292,6 +292,16 @@ fn faults_are_counted_and_never_touch_statistics() {
             },
             Fault::OutOfRange { feature: 5 },
         ),
+        // A non-finite feature is the fault even after an out-of-range one.
+        (
+            {
+                let mut x = good.clone();
+                x[1] = 1e30;
+                x[4] = f32::INFINITY;
+                x
+            },
+            Fault::NonFinite { feature: 4 },
+        ),
     ];
     for (x, want) in &cases {
         let o = det.update(x);
@@ -304,8 +314,8 @@ fn faults_are_counted_and_never_touch_statistics() {
     assert_eq!(det.state(), before.state());
     assert_eq!(det.samples(), before.samples() + cases.len() as u64);
     let f = det.faults();
-    assert_eq!((f.wrong_length, f.non_finite, f.out_of_range), (2, 2, 1));
-    assert_eq!(f.total(), 5);
+    assert_eq!((f.wrong_length, f.non_finite, f.out_of_range), (2, 3, 1));
+    assert_eq!(f.total(), 6);
 }
 
 #[test]
