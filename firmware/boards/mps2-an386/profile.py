@@ -85,7 +85,6 @@ def main():
 
     names = demangle(sorted({s for s in tb_sym.values() if s}))
     models = ["synthetic (32, 8, 4)", "synthetic (64, 16, 8)", "built-in (24, 6, 8)"]
-    calls_per_model = 2 * (WARMUP + SAMPLES) + 0  # updates (each scores) + scorings
     for name, ex in zip(models, parts):
         per_fn = collections.Counter()
         calls = collections.Counter()
@@ -107,7 +106,6 @@ def main():
             e = calls.get(f, 0)
             per = f"{v / e:.0f}" if e else "-"
             print(f"| `{f}` | {v} | {100 * v / total:.1f} % | {e} | {per} |")
-    del calls_per_model
 
 
 if __name__ == "__main__":
