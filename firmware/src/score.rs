@@ -218,7 +218,9 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         // too; only then is the sample scanned for one, which keeps the
         // precedence of the fault kinds (any non-finite feature before the
         // first out-of-range one) without a second pass over every sample.
-        if v.is_nan() || v.abs() > fault_z {
+        // One comparison: NaN is never within any limit.
+        let within = v.abs() <= fault_z;
+        if !within {
             return Err(input_fault(x, i));
         }
         *zi = v;
