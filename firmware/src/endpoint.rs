@@ -91,6 +91,12 @@ pub const DEFAULT_RETAINED: usize = 32;
 pub const DEFAULT_STATUS_EVERY: u32 = 500;
 /// Bytes read per `read` call.
 const READ_CHUNK: usize = 64;
+/// The buffer [`Endpoint::poll`] reads into, word-aligned: it is zeroed on
+/// every call (a board calls once per byte or burst received), and an
+/// aligned buffer is cleared a word at a time rather than byte by byte.
+#[repr(align(4))]
+struct ReadChunk([u8; READ_CHUNK]);
+
 /// Bytes one [`Endpoint::poll`] handles at most before returning, so a busy
 /// link cannot keep a board's main loop from its other work.
 pub const POLL_BUDGET: usize = 1024;
@@ -517,7 +523,8 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
     where
         IO: Read + Write + ReadReady,
     {
-        let mut buf = [0u8; READ_CHUNK];
+        let mut buf = ReadChunk([0; READ_CHUNK]);
+        let buf = &mut buf.0;
         let mut total = Polled::default();
         let mut first: Option<Error<IO::Error>> = None;
         while total.bytes < POLL_BUDGET {
@@ -529,7 +536,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
                     break;
                 }
             }
-            let n = match io.read(&mut buf) {
+            let n = match io.read(buf) {
                 Ok(0) => break,
                 Ok(n) => n,
                 Err(e) => {
