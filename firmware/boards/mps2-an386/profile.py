@@ -48,14 +48,24 @@ def demangle(names):
     return {n: re.sub(r"::h[0-9a-f]{16}$", "", d) for n, d in zip(names, out)}
 
 
+# Library routines (memory moves, integer and float helpers, libm): their
+# instructions are shown per calling function, the last other function whose
+# code ran before them.
+LIBRARY = re.compile(r"^(__aeabi_|_ZN17compiler_builtins|_RNvNtCs[0-9A-Za-z]+_17compiler_builtins|"
+                     r"memcpy|memset|memmove|memcmp)")
+
+
 def read_log(stream, split_pc):
     """Block lengths, block symbols and block executions from a QEMU
-    `in_asm,exec,nochain` log; the executions are cut into a new part at each
-    execution of `split_pc`."""
+    `in_asm,exec,nochain` log. Executions are counted per (block, caller):
+    the caller is None except for blocks of a library routine, where it is
+    the last function outside the routines that ran. The executions are cut
+    into a new part at each execution of `split_pc`."""
     tb_len, tb_sym = {}, {}
     cur, sym = None, None
     parts = []
     execs = collections.Counter()
+    caller = None
     for line in stream:
         c = line[0]
         if c == "T":  # "Trace 0: 0x... [cs_base/pc/flags/cflags] symbol"
@@ -63,7 +73,12 @@ def read_log(stream, split_pc):
             if pc == split_pc:
                 execs = collections.Counter()
                 parts.append(execs)
-            execs[pc] += 1
+            own = tb_sym.get(pc) or ""
+            if LIBRARY.search(own):
+                execs[(pc, caller)] += 1
+            else:
+                caller = own
+                execs[(pc, None)] += 1
             cur = None
         elif c == "0":  # "0x000013b4:  f000 fef0  bl ..." inside an IN: block
             pc = int(line[2:10], 16)
@@ -95,12 +110,14 @@ def table(ex, tb_len, tb_sym, entry, names, per, skip=None):
     but one; functions matching `skip` are left out."""
     per_fn = collections.Counter()
     calls = collections.Counter()
-    for pc, n in ex.items():
+    for (pc, caller), n in ex.items():
         f = names.get(tb_sym.get(pc), tb_sym.get(pc) or "?")
+        if caller is not None:
+            f = f"{f}` from `{names.get(caller, caller)}"
         per_fn[f] += n * tb_len.get(pc, 0)
         if pc in entry:
             calls[f] += n
-    work = {f: v for f, v in per_fn.items() if not (skip and skip.search(f))}
+    work = {f: v for f, v in per_fn.items() if not (skip and skip.search(f.split("` from `")[-1]))}
     total = sum(work.values())
     print(f"| function | instructions | share | {per[0]} | entries | per entry |")
     print("|---|---|---|---|---|---|")
