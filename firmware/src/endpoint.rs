@@ -285,7 +285,7 @@ pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED, D = Places<R>> {
     /// The detector place and the ring.
     places: D,
     /// The model file built into the image, if any: where the running model
-    /// is decoded again from when `active` is `None` (see [`load_or_keep`]).
+    /// is decoded again from when `active` is `None` (see [`keep_running`]).
     builtin: Option<&'static [u8]>,
     slots: S,
     pin: P,
@@ -341,7 +341,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     /// Starts on the newest valid slot (highest generation whose record,
     /// CRC-32 and model file all pass), else on `builtin` (a model file in
     /// the image), else fails. Default [`Config`]: no signature needed.
-    /// Returns the endpoint by value (about 19 KiB): see [`Endpoint::start`].
+    /// Returns the endpoint by value (about 13 KiB): see [`Endpoint::start`].
     pub fn boot(slots: S, pin: P, builtin: Option<&'static [u8]>) -> Result<Self, BootError> {
         Self::boot_with(slots, pin, builtin, Config::default())
     }
@@ -370,8 +370,8 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
     ///
     /// Each candidate is decoded into the detector place and kept only when
     /// it passes; a failed start leaves the model that was running, if any,
-    /// running with its statistics (see [`load_or_keep`]; on an
-    /// [`Endpoint::idle`] endpoint: no model).
+    /// running with its statistics (decoded again from its own file: see the
+    /// module documentation; on an [`Endpoint::idle`] endpoint: no model).
     pub fn start(
         &mut self,
         builtin: Option<&'static [u8]>,
