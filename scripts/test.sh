@@ -16,6 +16,9 @@ cargo fmt --all -- --check
 step "lints"
 cargo clippy --workspace --all-targets --locked -- -D warnings
 
+step "API documentation (every intra-doc link resolves)"
+RUSTDOCFLAGS="-D warnings" cargo doc --workspace --no-deps --locked
+
 step "no_std crates alone for thumbv7em-none-eabihf (default features off)"
 cargo build --locked -p plumb-model --target thumbv7em-none-eabihf --no-default-features
 cargo build --locked -p plumb-firmware --target thumbv7em-none-eabihf --no-default-features

@@ -2,7 +2,7 @@
 //!
 //! 1. (default hold-out) count the lines of every log, so the last fraction
 //!    of each can be held out;
-//! 2. pass 1 over the training rows: mean and covariance ([`pca::Moments`],
+//! 2. pass 1 over the training rows: mean and covariance ([`crate::pca::Moments`],
 //!    per chunk on the parser threads, merged in file order);
 //! 3. PCA on the correlation matrix; keep `m` components;
 //! 4. pass 2: project the training rows to latent scores (kept in memory:

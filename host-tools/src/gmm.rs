@@ -19,7 +19,7 @@
 //!   `lower_bound_`); EM stops when it changes by less than `tol`, or after
 //!   `max_iter` iterations.
 //!
-//! The passes read the rows as [`Tiled`] data (tiles of [`TILE`] rows, one
+//! The passes read the rows as [`Tiled`] data (tiles of `TILE` rows, one
 //! array per dimension), rearranged once per fit, in place. Rows are cut into
 //! fixed blocks of [`BLOCK`] rows; blocks are shared out over the threads
 //! (even blocks to one, odd to the other) and their sums are added in block
@@ -196,7 +196,7 @@ const TILE: usize = 128;
 const LANES: usize = 8;
 
 /// Rows of `m` values stored tile by tile for the EM passes: tile `t` holds
-/// rows `t·TILE .. (t+1)·TILE`, one array of [`TILE`] values per dimension
+/// rows `t·TILE .. (t+1)·TILE`, one array of `TILE` values per dimension
 /// (`data[(t·m + j)·TILE + i]` is dimension `j` of row `t·TILE + i`), the
 /// last tile padded with zero rows. Every loop of a pass then runs over
 /// consecutive values, and the layout is made once per fit instead of once

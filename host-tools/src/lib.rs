@@ -25,7 +25,7 @@
 //! | [`boards`] | boards' model-slot memory maps and flashable slot images (Intel HEX, binary) |
 //! | [`cli`], [`cmd`] | the command line |
 //! | [`error`] | the error type: message, location, exit code |
-//! | [`out`] | results on standard output; a closed pipe ends the process quietly |
+//! | [`mod@out`] | results on standard output; a closed pipe ends the process quietly |
 //!
 //! plumbline is an advisory monitor, not a safety function: defer to the
 //! machine's own safety system, local codes and licensed practice.

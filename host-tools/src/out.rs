@@ -1,7 +1,7 @@
 //! Standard output for the subcommands' results.
 //!
 //! `println!` panics when the reader has gone away (`plumb replay … | head`
-//! closes the pipe early). [`outln!`](crate::outln) and [`out!`](crate::out)
+//! closes the pipe early). [`outln!`](crate::outln) and [`out!`](macro@crate::out)
 //! print the same text but end the process quietly instead, with status
 //! 141 (128 + SIGPIPE), the status a Unix tool killed by that signal
 //! reports. Any other write error ends it with status 2 and a message.
@@ -24,14 +24,14 @@ pub fn write(args: std::fmt::Arguments<'_>, newline: bool) {
     }
 }
 
-/// `println!` for results: see [the module](crate::out).
+/// `println!` for results: see [the module](mod@crate::out).
 #[macro_export]
 macro_rules! outln {
     () => { $crate::out::write(format_args!(""), true) };
     ($($arg:tt)*) => { $crate::out::write(format_args!($($arg)*), true) };
 }
 
-/// `print!` for results: see [the module](crate::out).
+/// `print!` for results: see [the module](mod@crate::out).
 #[macro_export]
 macro_rules! out {
     ($($arg:tt)*) => { $crate::out::write(format_args!($($arg)*), false) };

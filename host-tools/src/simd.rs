@@ -3,7 +3,7 @@
 //! The numeric kernels (EM statistics, moments, projection) are written
 //! lane by lane so that the compiler vectorises them without changing the
 //! order of any operation. Built for the x86-64 baseline they use 2-wide
-//! SSE2 vectors; a function defined with [`kernel!`] runs the very same
+//! SSE2 vectors; a function defined with `kernel!` runs the very same
 //! code compiled with AVX2 (4-wide) when the processor has it, chosen at run
 //! time. AVX2 alone does not allow fused multiply-add, and LLVM never
 //! re-associates floating-point arithmetic on its own, so every result is
@@ -11,7 +11,7 @@
 //! x86-64 machine (`fit_is_the_same_with_and_without_avx2` in
 //! `host-tools/tests/cli.rs` compares the two builds' model files).
 
-/// Whether [`kernel!`] functions take the AVX2 path: the processor has AVX2 and
+/// Whether `kernel!` functions take the AVX2 path: the processor has AVX2 and
 /// the environment variable `PLUMB_SIMD` is not `baseline` (which keeps the
 /// baseline build, to compare the two).
 pub fn avx2() -> bool {

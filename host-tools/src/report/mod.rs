@@ -14,7 +14,7 @@
 //!   scores `(t1, t2)` of training rows and of field rows, with the detector's
 //!   state at each field row.
 //!
-//! [`page`] turns that into HTML. The file is written atomically.
+//! `page` turns that into HTML. The file is written atomically.
 //!
 //! plumbline is an advisory monitor, not a safety function.
 
