@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
 # The whole test suite, as CI runs it. Installs what it needs first
-# (scripts/setup.sh), then: formatting, lints, host tests (with the scikit-learn
+# (scripts/setup.sh), then: formatting, lints, API docs, host tests (with the scikit-learn
 # and published-table cross-checks), the no_std crates built alone for the
 # Cortex-M4F target, and the boards built and run under QEMU.
 set -euo pipefail
