@@ -454,7 +454,7 @@ impl Detector {
             Err(fault) => return self.faulted(index, fault),
         };
         let s = scored.scores;
-        let mp = self.model.monitor;
+        let mp = &self.model.monitor;
         let limits = [&mp.spe, &mp.t2, &mp.nll];
         let values = [s.spe, s.t2, s.nll];
         // Standardised scores. One that overflows (a model with a tiny
