@@ -26,7 +26,10 @@
 # Environment: PLUMB_SOAK_OUT (result file, default target/soak/soak-DATE.txt),
 # PLUMB_SOAK_SEED, PLUMB_SOAK_WINDOW (samples in flight, default 4: each
 # sample carries its index, so the board takes each once and in order
-# whatever the window, and a loss is noticed from the next sample's answer).
+# whatever the window, and a loss is noticed from the next sample's answer),
+# PLUMB_SOAK_TARGET (qemu, the default, or process: the firmware's endpoint
+# run in the test process instead of the emulated board, the same code
+# without the UART, for many more samples per hour).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 

@@ -11,7 +11,9 @@
 //!   CRC, over capacity, truncated, interrupted) are refused and the old
 //!   model keeps scoring exactly as before;
 //! * with bytes dropped, flipped and inserted in both directions, no damaged
-//!   message is accepted and resends recover every drift event;
+//!   message is accepted and resends recover every drift event (on the
+//!   board, and over more samples with the firmware's endpoint run in this
+//!   process behind the same damaged link);
 //! * a slot image from `plumb image`, loaded by QEMU, is what the board boots;
 //! * a board built with `PLUMB_TRUSTED_KEY` refuses unsigned and wrongly
 //!   signed uploads with their own reasons, keeps its model, and switches to
@@ -222,6 +224,24 @@ impl Closing {
             .filter_map(|kv| kv.split_once('='))
             .map(|(k, v)| (k.to_string(), v.parse().expect("number")))
             .collect();
+        Closing { fields, host }
+    }
+
+    /// The same figures from an in-process endpoint's own counters.
+    fn of_endpoint(ep: &SharedEndpoint, host: LinkStats) -> Closing {
+        let ep = ep.lock().unwrap();
+        let c = ep.link_counters();
+        let fields = [
+            ("samples", ep.detector().samples()),
+            ("frames_ok", u64::from(c.frames_ok)),
+            ("crc_errors", u64::from(c.crc_errors)),
+            ("framing_errors", u64::from(c.framing_errors)),
+            ("overflows", u64::from(c.overflows)),
+            ("undecodable", u64::from(c.undecodable)),
+        ]
+        .into_iter()
+        .map(|(k, v)| (k.to_string(), v))
+        .collect();
         Closing { fields, host }
     }
 
@@ -1308,9 +1328,10 @@ struct FaultLog {
 type SharedLog = std::sync::Arc<std::sync::Mutex<FaultLog>>;
 
 /// A transport that damages bytes in both directions per a [`FaultPlan`]
-/// and keeps the genuine device frames for comparison.
-struct Faulty {
-    inner: ExecTransport,
+/// and keeps the genuine device frames for comparison. `T` is the board: the
+/// emulated one (QEMU) or the endpoint in this process ([`InProcess`]).
+struct Faulty<T = ExecTransport> {
+    inner: T,
     plan: FaultPlan,
     rng: Rng,
     log: SharedLog,
@@ -1328,8 +1349,8 @@ struct Faulty {
     clean: bool,
 }
 
-impl Faulty {
-    fn new(inner: ExecTransport, plan: FaultPlan, seed: u64, log: SharedLog) -> Self {
+impl<T: Transport> Faulty<T> {
+    fn new(inner: T, plan: FaultPlan, seed: u64, log: SharedLog) -> Self {
         let mut rng = Rng::new(seed, 11);
         let now = Instant::now();
         let next_cut = plan.cut_every.map(|e| now + e.mul_f64(0.5 + rng.uniform()));
@@ -1454,7 +1475,7 @@ impl Faulty {
     }
 }
 
-impl Transport for Faulty {
+impl<T: Transport> Transport for Faulty<T> {
     fn send(&mut self, bytes: &[u8]) -> std::io::Result<()> {
         let b = self.pass(0, bytes);
         if b.is_empty() {
@@ -1517,6 +1538,121 @@ impl Transport for Faulty {
     fn diagnostics(&self) -> String {
         self.inner.diagnostics()
     }
+}
+
+/// The firmware's endpoint, run in this process on the emulated board's
+/// model: the same code as on the board, without the UART and QEMU, so a
+/// run of many samples takes minutes instead of days. Shared with the test,
+/// which reads the endpoint's own counters at the end.
+type SharedEndpoint = std::sync::Arc<
+    std::sync::Mutex<
+        plumb_firmware::endpoint::Endpoint<plumb_firmware::endpoint::RamSlots<8192>, NoLine>,
+    >,
+>;
+
+/// A drift line nobody looks at.
+struct NoLine;
+
+impl embedded_hal::digital::ErrorType for NoLine {
+    type Error = core::convert::Infallible;
+}
+
+impl embedded_hal::digital::OutputPin for NoLine {
+    fn set_low(&mut self) -> Result<(), Self::Error> {
+        Ok(())
+    }
+    fn set_high(&mut self) -> Result<(), Self::Error> {
+        Ok(())
+    }
+}
+
+/// What the endpoint writes.
+#[derive(Default)]
+struct Sink(Vec<u8>);
+
+impl embedded_io::ErrorType for Sink {
+    type Error = core::convert::Infallible;
+}
+
+impl embedded_io::Write for Sink {
+    fn write(&mut self, buf: &[u8]) -> Result<usize, Self::Error> {
+        self.0.extend_from_slice(buf);
+        Ok(buf.len())
+    }
+    fn flush(&mut self) -> Result<(), Self::Error> {
+        Ok(())
+    }
+}
+
+/// The link to an in-process endpoint: bytes sent are handed to it at once,
+/// its answers wait here until read.
+struct InProcess {
+    ep: SharedEndpoint,
+    out: Vec<u8>,
+    ended: bool,
+}
+
+impl InProcess {
+    /// Boots an endpoint on `model` (as the board's built-in model).
+    fn boot(model: &[u8]) -> (InProcess, SharedEndpoint) {
+        let model: &'static [u8] = model.to_vec().leak();
+        let ep = plumb_firmware::endpoint::Endpoint::boot(
+            plumb_firmware::endpoint::RamSlots::new(),
+            NoLine,
+            Some(model),
+        )
+        .expect("the endpoint boots");
+        let ep = std::sync::Arc::new(std::sync::Mutex::new(ep));
+        let mut sink = Sink::default();
+        ep.lock().unwrap().greet(&mut sink).expect("in-memory link");
+        let t = InProcess {
+            ep: std::sync::Arc::clone(&ep),
+            out: sink.0,
+            ended: false,
+        };
+        (t, ep)
+    }
+}
+
+impl Transport for InProcess {
+    fn send(&mut self, bytes: &[u8]) -> std::io::Result<()> {
+        let mut sink = Sink(std::mem::take(&mut self.out));
+        self.ep
+            .lock()
+            .unwrap()
+            .feed(bytes, &mut sink)
+            .expect("in-memory link");
+        self.out = sink.0;
+        Ok(())
+    }
+
+    fn recv(&mut self, timeout: Duration) -> Chunk {
+        if !self.out.is_empty() {
+            return Chunk::Bytes(std::mem::take(&mut self.out));
+        }
+        if self.ended {
+            return Chunk::Closed;
+        }
+        std::thread::sleep(timeout.min(Duration::from_millis(1)));
+        Chunk::Timeout
+    }
+
+    fn end_input(&mut self) {
+        self.ended = true;
+    }
+
+    fn describe(&self) -> String {
+        "the endpoint in this process".into()
+    }
+}
+
+/// Where a fault run's samples go.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Target {
+    /// The emulated board under QEMU.
+    Qemu,
+    /// The firmware's endpoint in this process ([`InProcess`]).
+    Process,
 }
 
 /// Samples for a run: rows 2500..4000 of each drift log (where their
@@ -1632,9 +1768,11 @@ impl FaultRun {
     }
 }
 
-/// Streams `samples` through the board over a [`Faulty`] link (`window`
-/// samples in flight, reports on, a lost sample sent again) and measures.
+/// Streams `samples` through the board (`target`) over a [`Faulty`] link
+/// (`window` samples in flight, reports on, a lost sample sent again) and
+/// measures.
 fn run_faulty(
+    target: Target,
     plan: FaultPlan,
     samples: &[Vec<f32>],
     window: usize,
@@ -1645,7 +1783,21 @@ fn run_faulty(
     let want = expected(&model, samples);
     let log: SharedLog = Default::default();
     let shared = std::sync::Arc::clone(&log);
-    let mut board = Board::start_with(&[], move |t| Box::new(Faulty::new(t, plan, seed, shared)));
+    let (mut board, endpoint) = match target {
+        Target::Qemu => (
+            Board::start_with(&[], move |t| Box::new(Faulty::new(t, plan, seed, shared))),
+            None,
+        ),
+        Target::Process => {
+            let (t, ep) = InProcess::boot(&model);
+            let board = Board {
+                link: Link::new(Box::new(Faulty::new(t, plan, seed, shared))),
+                started: Instant::now(),
+                limit: RUN_LIMIT,
+            };
+            (board, Some(ep))
+        }
+    };
     board
         .link
         .set_resend_timeout(Duration::from_millis(reply_ms));
@@ -1707,7 +1859,16 @@ fn run_faulty(
     run.resent = sum.resent;
     let stats = board.link.stats();
     let mut rest = Vec::new();
-    let closing = board.finish(&mut rest);
+    let closing = match endpoint {
+        None => board.finish(&mut rest),
+        Some(ep) => {
+            board
+                .link
+                .close(Duration::from_secs(5), |r| rest.push(r.clone()))
+                .expect("close the link");
+            Closing::of_endpoint(&ep, board.link.stats())
+        }
+    };
     for r in &rest {
         sink(r);
     }
@@ -1775,7 +1936,7 @@ fn one_percent_faults_and_unplugs_lose_no_event() {
         cut_len: (Duration::from_millis(150), Duration::from_millis(600)),
         drop_events_once: true,
     };
-    let run = run_faulty(plan, &samples, 1, 40, 0x50a6);
+    let run = run_faulty(Target::Qemu, plan, &samples, 1, 40, 0x50a6);
     eprintln!("faults: {}", run.line(&plan));
     assert_eq!(run.accepted_corrupt_host, 0, "a damaged frame was accepted");
     assert_eq!(run.report_mismatches, 0, "the board took a damaged message");
@@ -1792,13 +1953,50 @@ fn one_percent_faults_and_unplugs_lose_no_event() {
     assert!(run.faults[0].iter().sum::<u64>() > 0 && run.faults[1].iter().sum::<u64>() > 0);
 }
 
+/// The same faults with the firmware's endpoint in this process instead of
+/// the emulated board, over more samples (the UART and QEMU are the slow
+/// part): 1 % of bytes damaged both ways, event frames dropped the first
+/// time, unplugs; nothing damaged accepted, every sample taken once and in
+/// order, every event recovered.
+#[test]
+fn one_percent_faults_in_process_lose_no_event() {
+    let model = default_model();
+    let file = ModelFile::from_bytes(&model).unwrap();
+    let samples = read_rows(&file, &drift_log("loose_mount.csv"), 2950..3650);
+    let plan = FaultPlan {
+        rate: 0.01,
+        clean_after: None,
+        cut_every: Some(Duration::from_secs(3)),
+        cut_len: (Duration::from_millis(150), Duration::from_millis(600)),
+        drop_events_once: true,
+    };
+    let run = run_faulty(Target::Process, plan, &samples, 4, 40, 0x1e55);
+    eprintln!("faults in process: {}", run.line(&plan));
+    assert_eq!(run.accepted_corrupt_host, 0, "a damaged frame was accepted");
+    assert_eq!(
+        run.report_mismatches, 0,
+        "the endpoint took a damaged message"
+    );
+    assert_eq!(run.board_undecodable, 0);
+    assert_eq!(run.board_samples, samples.len() as u64, "every sample once");
+    assert!(run.events_expected > 0, "the samples should hold events");
+    assert_eq!(run.events_lost, 0, "drift events lost after resends");
+    assert_eq!(run.link_lost, 0);
+    assert!(
+        run.events_dropped > 0,
+        "event frames were dropped on purpose"
+    );
+    assert!(run.faults[0].iter().sum::<u64>() > 0 && run.faults[1].iter().sum::<u64>() > 0);
+}
+
 /// The long run behind `RELIABILITY.md`, "Faults on the link"
 /// (`scripts/soak.sh`; ignored in CI). Settings from the environment:
 /// `PLUMB_SOAK_RATE` (0.01), `PLUMB_SOAK_SAMPLES` (2000),
 /// `PLUMB_SOAK_STORM_S` (faults stop after this many seconds; unset:
 /// never), `PLUMB_SOAK_CUT_EVERY_S` (10; 0: no unplugs), `PLUMB_SOAK_WINDOW`
 /// (samples in flight, 1), `PLUMB_SOAK_REPLY_MS` (80), `PLUMB_SOAK_SEED`, `PLUMB_SOAK_OUT` (a file the result line is
-/// appended to).
+/// appended to), `PLUMB_SOAK_TARGET` (`qemu`, the default, or `process`: the
+/// firmware's endpoint in this process, [`InProcess`]).
 #[test]
 #[ignore = "long; run by scripts/soak.sh"]
 fn soak_faults_on_the_link() {
@@ -1822,7 +2020,13 @@ fn soak_faults_on_the_link() {
     };
     let model = ModelFile::from_bytes(&default_model()).unwrap();
     let samples = soak_samples(&model, n);
+    let target = match std::env::var("PLUMB_SOAK_TARGET").as_deref() {
+        Ok("process") => Target::Process,
+        Ok("qemu") | Err(_) => Target::Qemu,
+        Ok(other) => panic!("PLUMB_SOAK_TARGET is qemu or process, not {other:?}"),
+    };
     let run = run_faulty(
+        target,
         plan,
         &samples,
         env("PLUMB_SOAK_WINDOW", 1.0) as usize,
