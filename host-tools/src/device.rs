@@ -33,7 +33,8 @@ impl Default for Patience {
 /// Reply timeout of a sample stream that follows the measured round trip:
 /// the smoothed round-trip time and its variation of RFC 6298 (TCP's
 /// retransmission timer), `SRTT + max(G, 4·RTTVAR)`, doubled after each
-/// timeout until the next measurement, and kept within
+/// timeout until the next measurement or the next sample the device takes
+/// ([`ReplyTimer::progressed`]), and kept within
 /// [[`MIN_REPLY`], `ceiling`]. Karn's rule: a sample sent more than once
 /// gives no measurement. Before the first measurement the timeout is the
 /// ceiling.
