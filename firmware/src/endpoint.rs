@@ -27,11 +27,12 @@
 //!   message the start of a fault (repeats are only counted), a score report
 //!   every sample while reports are on, and a status message every
 //!   [`Config::status_every`] samples;
-//! * drift raised, drift cleared and sensor fault messages are kept in a ring
-//!   of `R` entries (default [`DEFAULT_RETAINED`]) and sent again, with
-//!   their original sequence numbers, on a resend request; when the ring is
-//!   full the oldest entry is dropped and counted, and the resend summary
-//!   tells the host the oldest sequence number it can still get;
+//! * drift raised, drift cleared and sensor fault messages are kept, as the
+//!   frames sent, in a ring of `R` bytes (default [`DEFAULT_RING_BYTES`])
+//!   and sent again, byte for byte with their original sequence numbers, on
+//!   a resend request; when a new frame does not fit, the oldest ones are
+//!   dropped and counted, and the resend summary tells the host the oldest
+//!   sequence number it can still get;
 //! * an upload is written into the slot that is not running and switched to
 //!   only after its length, whole-file CRC-32, model file checks and the
 //!   detector's own checks pass and the slot's record is written; anything
@@ -44,9 +45,11 @@
 //!   wrongly signed files are refused with their own codes.
 //!
 //! Nothing allocates and every failure is a value. The big buffers live in
-//! [`Places`]: one detector place of about 7 KiB and the resend ring
-//! (32 × 176 bytes), about 13 KiB on `thumbv7em-none-eabihf`; the rest of an
-//! `Endpoint` (receive buffer of 300 bytes, counters, settings) is small. Each frame is encoded in a
+//! [`Places`]: one detector place of about 7 KiB and the resend ring (1 KiB
+//! by default: a frame costs its length plus 5 bytes, 16 bytes for a
+//! sensor fault and 60–100 for a drift raised), about 8 KiB on
+//! `thumbv7em-none-eabihf`; the rest of an `Endpoint` (receive buffer of
+//! 300 bytes, counters, settings) is small. Each frame is encoded in a
 //! [`MAX_DEVICE_FRAME`] (150 byte) buffer on the stack.
 //!
 //! There is one detector place and no second model-sized buffer. An upload
@@ -63,6 +66,7 @@
 //! and returns the endpoint by value, for hosts and tests.
 
 mod flash;
+mod ring;
 mod slots;
 
 pub use flash::{Flash, FlashLayout, FlashSlots};
@@ -70,11 +74,12 @@ pub use slots::{
     newest_valid, slot_file, ModelSlots, RamSlots, SlotError, SlotRecord, FILE_OFFSET, RECORD_LEN,
 };
 
+use ring::FrameRing;
+
 use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
 use core::borrow::BorrowMut;
 use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
 use embedded_io::{ErrorType, Read, ReadReady, Write};
-use heapless::Deque;
 #[cfg(feature = "signatures")]
 use plumb_model::signature::{self, TrustedKey};
 use plumb_model::wire::{
@@ -85,8 +90,11 @@ use plumb_model::wire::{
 };
 use plumb_model::{Capacity, ModelError, ScoreLimits};
 
-/// Retained events kept for resend unless the type says otherwise.
-pub const DEFAULT_RETAINED: usize = 32;
+/// Bytes of retained event frames kept for resend unless the type says
+/// otherwise: the last 64 sensor fault starts (16 bytes each), or the last
+/// 13 drift raised and cleared pairs with one chart over its limit (about
+/// 76 bytes a pair; 6 pairs when all nine charts are), or a mix.
+pub const DEFAULT_RING_BYTES: usize = 1024;
 /// Samples between two unasked status messages, unless configured.
 pub const DEFAULT_STATUS_EVERY: u32 = 500;
 /// Bytes read per `read` call.
@@ -206,12 +214,6 @@ pub struct Polled {
     pub sent: u32,
 }
 
-#[derive(Debug, Clone)]
-struct Retained {
-    seq: u32,
-    msg: DeviceMsg,
-}
-
 #[derive(Debug, Clone, Copy)]
 struct Upload {
     slot: Slot,
@@ -229,11 +231,18 @@ struct Out<'a, W: ErrorType> {
 
 impl<W: Write> Out<'_, W> {
     fn send(&mut self, seq: u32, msg: &DeviceMsg) {
-        match send_frame(self.io, seq, msg) {
+        let mut buf = [0u8; MAX_DEVICE_FRAME];
+        match encode(seq, msg, &mut buf) {
+            Ok(frame) => self.write(frame, &[]),
+            Err(e) => self.fail(e),
+        }
+    }
+
+    /// Writes one frame given in two pieces.
+    fn write(&mut self, head: &[u8], tail: &[u8]) {
+        match write_all(self.io, head).and_then(|()| write_all(self.io, tail)) {
             Ok(()) => self.sent = self.sent.wrapping_add(1),
-            Err(e) => {
-                self.first.get_or_insert(e);
-            }
+            Err(e) => self.fail(e),
         }
     }
 
@@ -242,11 +251,19 @@ impl<W: Write> Out<'_, W> {
     }
 }
 
-fn send_frame<W: Write>(io: &mut W, seq: u32, msg: &DeviceMsg) -> Result<(), Error<W::Error>> {
-    let mut buf = [0u8; MAX_DEVICE_FRAME];
+/// The frame of `msg` with sequence number `seq`, in `buf`.
+fn encode<'b, E>(
+    seq: u32,
+    msg: &DeviceMsg,
+    buf: &'b mut [u8; MAX_DEVICE_FRAME],
+) -> Result<&'b [u8], Error<E>> {
     // (seq, msg) encodes exactly like `DeviceFrame { seq, msg }`.
-    let n = wire::encode_frame(&(seq, msg), &mut buf).map_err(|_| Error::Encode)?;
-    let mut rest = buf.get(..n).ok_or(Error::Encode)?;
+    let n = wire::encode_frame(&(seq, msg), buf).map_err(|_| Error::Encode)?;
+    buf.get(..n).ok_or(Error::Encode)
+}
+
+fn write_all<W: Write>(io: &mut W, bytes: &[u8]) -> Result<(), Error<W::Error>> {
+    let mut rest = bytes;
     while !rest.is_empty() {
         match io.write(rest) {
             Ok(0) => return Err(Error::LinkStalled),
@@ -257,31 +274,31 @@ fn send_frame<W: Write>(io: &mut W, seq: u32, msg: &DeviceMsg) -> Result<(), Err
     Ok(())
 }
 
-/// The big parts of an [`Endpoint`] (about 13 KiB with the default ring):
-/// the detector place and the resend ring of `R` events.
+/// The big parts of an [`Endpoint`] (about 8 KiB with the default ring):
+/// the detector place and the resend ring of `R` bytes.
 ///
 /// [`Places::EMPTY`] is all zero or uninitialised bytes, so a static
 /// holding it costs no flash (it lands in `.bss`) and no start-up work
 /// beyond zeroing; a board lends `&'static mut Places` to
 /// [`Endpoint::idle_in`] and nothing big is ever built on the stack.
-pub struct Places<const R: usize = DEFAULT_RETAINED> {
+pub struct Places<const R: usize = DEFAULT_RING_BYTES> {
     detector: Detector,
-    retained: Deque<Retained, R>,
+    retained: FrameRing<R>,
 }
 
 impl<const R: usize> Places<R> {
     /// An empty detector place ([`Detector::EMPTY`]) and an empty ring.
     pub const EMPTY: Places<R> = Places {
         detector: Detector::EMPTY,
-        retained: Deque::new(),
+        retained: FrameRing::EMPTY,
     };
 }
 
 /// The device side of the link. `S` stores the model slots, `P` drives the
-/// drift line, `R` is the capacity of the resend ring, and `D` holds the
+/// drift line, `R` is the resend ring's size in bytes, and `D` holds the
 /// [`Places`]: by value (the default) or lent (`&mut Places<R>`, for a board
 /// that keeps them in a static).
-pub struct Endpoint<S, P, const R: usize = DEFAULT_RETAINED, D = Places<R>> {
+pub struct Endpoint<S, P, const R: usize = DEFAULT_RING_BYTES, D = Places<R>> {
     /// The detector place and the ring.
     places: D,
     /// The model file built into the image, if any: where the running model
@@ -423,11 +440,11 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         &mut self.places.borrow_mut().detector
     }
 
-    fn ring(&self) -> &Deque<Retained, R> {
+    fn ring(&self) -> &FrameRing<R> {
         &self.places.borrow().retained
     }
 
-    fn ring_mut(&mut self) -> &mut Deque<Retained, R> {
+    fn ring_mut(&mut self) -> &mut FrameRing<R> {
         &mut self.places.borrow_mut().retained
     }
 
@@ -606,24 +623,18 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         out.send(seq, &msg);
     }
 
-    /// Sends an event and keeps it for resend.
+    /// Sends an event and keeps its frame for resend.
     fn send_retained<W: Write>(&mut self, out: &mut Out<'_, W>, msg: DeviceMsg) {
         let seq = self.next_seq_take();
-        if self.ring().is_full() && self.ring_mut().pop_front().is_some() {
-            self.dropped = self.dropped.wrapping_add(1);
-        }
-        match self.ring_mut().push_back(Retained { seq, msg }) {
-            Ok(()) => {
-                if let Some(r) = self.ring().back() {
-                    out.send(r.seq, &r.msg);
-                }
-            }
-            // Only with a ring of capacity 0: send without keeping.
-            Err(r) => {
-                self.dropped = self.dropped.wrapping_add(1);
-                out.send(r.seq, &r.msg);
-            }
-        }
+        let mut buf = [0u8; MAX_DEVICE_FRAME];
+        let frame = match encode(seq, &msg, &mut buf) {
+            Ok(frame) => frame,
+            Err(e) => return out.fail(e),
+        };
+        // Err only with a ring smaller than the frame: sent, not kept.
+        let dropped = self.ring_mut().push(seq, frame).unwrap_or(1);
+        self.dropped = self.dropped.wrapping_add(dropped);
+        out.write(frame, &[]);
     }
 
     fn refuse<W: Write>(&mut self, out: &mut Out<'_, W>, request: Request, reason: Reason) {
@@ -871,7 +882,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
             },
             levels,
             link: self.rx.counters(),
-            last_event: self.ring().back().map(|r| r.seq),
+            last_event: self.ring().newest(),
             model_id: self.running().model().meta.id,
         }
     }
@@ -880,14 +891,14 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         let mut count: u16 = 0;
         for r in self.ring().iter() {
             if wire::seq_at_or_after(r.seq, from) {
-                out.send(r.seq, &r.msg);
+                out.write(r.head, r.tail);
                 count = count.saturating_add(1);
             }
         }
         let done = ResendDone {
             from,
             count,
-            oldest: self.ring().front().map(|r| r.seq),
+            oldest: self.ring().oldest(),
             dropped: self.dropped,
         };
         self.send(out, DeviceMsg::ResendDone(done));

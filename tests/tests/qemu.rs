@@ -780,8 +780,8 @@ fn too_many_components(model: &[u8]) -> Vec<u8> {
 fn a_noisy_link_loses_nothing_that_matters() {
     let model = default_model();
     let file = ModelFile::from_bytes(&model).unwrap();
-    let dropped = std::sync::Arc::new(std::sync::atomic::AtomicUsize::new(0));
-    let counter = std::sync::Arc::clone(&dropped);
+    let tally = std::sync::Arc::new(NoiseTally::default());
+    let counter = std::sync::Arc::clone(&tally);
     let mut board = Board::start_with(&[], move |t| Box::new(Noisy::new(t, 0x5eed, 1e-4, counter)));
     let mut events_sent = 0;
     let mut all = Vec::new();
@@ -842,15 +842,21 @@ fn a_noisy_link_loses_nothing_that_matters() {
     // that arrived (all of them, checked above) came by resends: after a
     // gap the host saw (`recovered`), or in order when a resend asked for an
     // earlier gap brought them before any later frame.
+    let relaxed = std::sync::atomic::Ordering::Relaxed;
     assert_eq!(
-        dropped.load(std::sync::atomic::Ordering::Relaxed),
+        tally.events_dropped.load(relaxed),
         events_sent,
         "every event frame was dropped once"
     );
     assert!(h.recovered >= 1, "no event came back after a gap: {h:?}");
+    // At 3 · 10⁻⁴ per byte some 25,000–35,000 board bytes meet about ten
+    // faults; which frames they hit depends on how the two directions
+    // interleave, so the test counts them rather than expecting a number.
+    let damaged = tally.frames_damaged.load(relaxed);
+    eprintln!("board frames damaged on their way to the host: {damaged}");
     assert!(
-        h.frames.crc_errors + h.frames.framing_errors > 0,
-        "noise reached the host: {h:?}"
+        damaged == 0 || h.frames.crc_errors + h.frames.framing_errors > 0,
+        "{damaged} damaged board frames, none rejected by the host: {h:?}"
     );
     assert!(
         closing.get("crc_errors") + closing.get("framing_errors") + closing.get("overflows") > 0,
@@ -1161,25 +1167,28 @@ struct Noisy {
     /// Board bytes since the last zero.
     partial: Vec<u8>,
     dropped_events: std::collections::HashSet<u32>,
-    /// How many event frames were dropped (shared with the test).
-    dropped: std::sync::Arc<std::sync::atomic::AtomicUsize>,
+    /// What was done to the board's frames (shared with the test).
+    tally: std::sync::Arc<NoiseTally>,
     clean: bool,
 }
 
+/// Board frames a [`Noisy`] link dropped (events, the first time) and
+/// damaged (any other frame changed by a fault).
+#[derive(Default)]
+struct NoiseTally {
+    events_dropped: std::sync::atomic::AtomicUsize,
+    frames_damaged: std::sync::atomic::AtomicUsize,
+}
+
 impl Noisy {
-    fn new(
-        inner: ExecTransport,
-        seed: u64,
-        rate: f64,
-        dropped: std::sync::Arc<std::sync::atomic::AtomicUsize>,
-    ) -> Self {
+    fn new(inner: ExecTransport, seed: u64, rate: f64, tally: std::sync::Arc<NoiseTally>) -> Self {
         Noisy {
             inner,
             rng: Rng::new(seed, 7),
             rate,
             partial: Vec::new(),
             dropped_events: Default::default(),
-            dropped,
+            tally,
             clean: false,
         }
     }
@@ -1213,7 +1222,8 @@ impl Noisy {
                 Some(Ok(f)) => {
                     let first = f.msg.is_retained() && self.dropped_events.insert(f.seq);
                     if first {
-                        self.dropped
+                        self.tally
+                            .events_dropped
                             .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
                     }
                     return first;
@@ -1245,7 +1255,13 @@ impl Transport for Noisy {
                     if x == 0 {
                         let frame = std::mem::take(&mut self.partial);
                         if !self.first_event(&frame) {
-                            out.extend(self.damage(&frame));
+                            let damaged = self.damage(&frame);
+                            if damaged != frame {
+                                self.tally
+                                    .frames_damaged
+                                    .fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                            }
+                            out.extend(damaged);
                         }
                     }
                 }

@@ -13,7 +13,7 @@
 //! defmt, and the loop goes on.
 
 use plumb_firmware::endpoint::{
-    BootError, Config, Endpoint, Places, DEFAULT_RETAINED, DEFAULT_STATUS_EVERY,
+    BootError, Config, Endpoint, Places, DEFAULT_RING_BYTES, DEFAULT_STATUS_EVERY,
 };
 #[cfg(feature = "trusted-key")]
 use plumb_firmware::plumb_model::signature::TrustedKey;
@@ -35,7 +35,7 @@ const FIRMWARE: &str = concat!("f411 ", env!("CARGO_PKG_VERSION"));
 
 /// The endpoint of this board; its places (detector, resend ring) are lent
 /// from a static.
-type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RETAINED, &'static mut Places>;
+type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RING_BYTES, &'static mut Places>;
 
 /// Builds the endpoint in a static and boots it there: the places
 /// (`Places::EMPTY`, zero and uninitialised bytes only) go into a static of

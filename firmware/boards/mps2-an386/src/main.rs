@@ -28,7 +28,7 @@ use plumb_board_mps2::link::Link;
 use plumb_board_mps2::slots::{self, BoardSlots};
 use plumb_board_mps2::text::write_field;
 use plumb_board_mps2::{endpoint_places, semihost, Board};
-use plumb_firmware::endpoint::{Config, Endpoint, Places, DEFAULT_RETAINED, DEFAULT_STATUS_EVERY};
+use plumb_firmware::endpoint::{Config, Endpoint, Places, DEFAULT_RING_BYTES, DEFAULT_STATUS_EVERY};
 #[cfg(feature = "trusted-key")]
 use plumb_firmware::plumb_model::signature::TrustedKey;
 
@@ -105,7 +105,7 @@ fn main() -> ! {
 
 /// The endpoint type of this board: its places (detectors and resend ring)
 /// are lent from a static.
-type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RETAINED, &'static mut Places>;
+type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RING_BYTES, &'static mut Places>;
 
 /// Builds the endpoint in a static and boots it there: the big parts are the
 /// board's static places (`.bss`, never on the stack), the rest of the
