@@ -17,39 +17,9 @@ use std::time::Duration;
 /// The model of the emulated board's image (24 features).
 const MODEL: &[u8] = include_bytes!("../../firmware/boards/mps2-an386/default.plumb");
 
-/// A drift line nobody looks at.
-struct NoPin;
-
-impl embedded_hal::digital::ErrorType for NoPin {
-    type Error = core::convert::Infallible;
-}
-
-impl embedded_hal::digital::OutputPin for NoPin {
-    fn set_low(&mut self) -> Result<(), Self::Error> {
-        Ok(())
-    }
-    fn set_high(&mut self) -> Result<(), Self::Error> {
-        Ok(())
-    }
-}
-
-/// What the endpoint writes.
-#[derive(Default)]
-struct Sink(Vec<u8>);
-
-impl embedded_io::ErrorType for Sink {
-    type Error = core::convert::Infallible;
-}
-
-impl embedded_io::Write for Sink {
-    fn write(&mut self, buf: &[u8]) -> Result<usize, Self::Error> {
-        self.0.extend_from_slice(buf);
-        Ok(buf.len())
-    }
-    fn flush(&mut self) -> Result<(), Self::Error> {
-        Ok(())
-    }
-}
+#[path = "../../firmware/tests/support/io.rs"]
+mod io;
+use io::{NoPin, Sink};
 
 /// The endpoint behind a link that drops each frame, either way, with
 /// probability `loss` (the project's seeded generator, so a run is
