@@ -1931,14 +1931,18 @@ fn run_faulty(
 
 /// 1 % of the bytes in each direction dropped, flipped, duplicated or
 /// inserted, event frames dropped the first time, and the cable unplugged
-/// mid-frame (cuts and pauses): nothing damaged is accepted on either side,
-/// the board takes exactly the host's samples, and resends recover every
-/// drift event. (`scripts/soak.sh` runs the long version.)
-#[test]
-fn one_percent_faults_and_unplugs_lose_no_event() {
+/// mid-frame (cuts and pauses) every 3 s, over rows of the `loose_mount`
+/// drift log: nothing damaged is accepted on either side, the device takes
+/// exactly the host's samples, and resends recover every drift event.
+fn one_percent_with_unplugs(
+    target: Target,
+    rows: std::ops::Range<u64>,
+    window: usize,
+    seed: u64,
+) {
     let model = default_model();
     let file = ModelFile::from_bytes(&model).unwrap();
-    let samples = read_rows(&file, &drift_log("loose_mount.csv"), 3050..3250);
+    let samples = read_rows(&file, &drift_log("loose_mount.csv"), rows);
     let plan = FaultPlan {
         rate: 0.01,
         clean_after: None,
@@ -1946,35 +1950,26 @@ fn one_percent_faults_and_unplugs_lose_no_event() {
         cut_len: (Duration::from_millis(150), Duration::from_millis(600)),
         drop_events_once: true,
     };
-    let run = run_faulty(Target::Qemu, plan, &samples, 1, 40, 0x50a6);
-    eprintln!("faults: {}", run.line(&plan));
+    let run = run_faulty(target, plan, &samples, window, 40, seed);
+    eprintln!("faults on {target:?}: {}", run.line(&plan));
     assert_eq!(run.samples, samples.len());
     run.assert_clean();
     assert!(run.cuts >= 1, "the cable was unplugged at least once");
 }
 
-/// The same faults with the firmware's endpoint in this process instead of
-/// the emulated board, over more samples (the UART and QEMU are the slow
-/// part): 1 % of bytes damaged both ways, event frames dropped the first
-/// time, unplugs; nothing damaged accepted, every sample taken once and in
-/// order, every event recovered.
+/// [`one_percent_with_unplugs`] on the emulated board, one sample in
+/// flight. (`scripts/soak.sh` runs the long version.)
+#[test]
+fn one_percent_faults_and_unplugs_lose_no_event() {
+    one_percent_with_unplugs(Target::Qemu, 3050..3250, 1, 0x50a6);
+}
+
+/// The same with the firmware's endpoint in this process instead of the
+/// emulated board (the UART and QEMU are the slow part), over more samples
+/// and four in flight.
 #[test]
 fn one_percent_faults_in_process_lose_no_event() {
-    let model = default_model();
-    let file = ModelFile::from_bytes(&model).unwrap();
-    let samples = read_rows(&file, &drift_log("loose_mount.csv"), 2950..3650);
-    let plan = FaultPlan {
-        rate: 0.01,
-        clean_after: None,
-        cut_every: Some(Duration::from_secs(3)),
-        cut_len: (Duration::from_millis(150), Duration::from_millis(600)),
-        drop_events_once: true,
-    };
-    let run = run_faulty(Target::Process, plan, &samples, 4, 40, 0x1e55);
-    eprintln!("faults in process: {}", run.line(&plan));
-    assert_eq!(run.samples, samples.len());
-    run.assert_clean();
-    assert!(run.cuts >= 1, "the cable was unplugged at least once");
+    one_percent_with_unplugs(Target::Process, 2950..3650, 4, 0x1e55);
 }
 
 /// The long run behind `RELIABILITY.md`, "Faults on the link"
