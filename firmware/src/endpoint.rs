@@ -95,6 +95,8 @@ use plumb_model::{Capacity, ModelError, ScoreLimits};
 /// 13 drift raised and cleared pairs with one chart over its limit (about
 /// 76 bytes a pair; 6 pairs when all nine charts are), or a mix.
 pub const DEFAULT_RING_BYTES: usize = 1024;
+// The ring stores a frame's length in one byte.
+const _: () = assert!(MAX_DEVICE_FRAME <= u8::MAX as usize);
 /// Samples between two unasked status messages, unless configured.
 pub const DEFAULT_STATUS_EVERY: u32 = 500;
 /// Bytes read per `read` call.
