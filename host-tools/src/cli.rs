@@ -16,16 +16,19 @@ const LONG_ABOUT: &str = "\
 plumbline watches vectors of sensor features on a robot and says when they drift away
 from the data the robot was validated on.
 
-On the host, `plumb fit` reads CSV logs of nominal operation, standardises the features,
-fits a PCA and a small diagonal Gaussian mixture on the latent scores, and calibrates
-alarm limits on held-out rows for a stated false-alarm rate. It writes a model file
-(.plumb) that the no_std firmware loads. On the device, every sample gets three scores:
+On the host, `plumb fit` reads logs of nominal operation (CSV, or NumPy `.npy` arrays),
+standardises the features, fits a PCA and a small diagonal Gaussian mixture on the latent
+scores, and calibrates alarm limits on held-out rows for a stated false-alarm rate. It
+writes a model file (.plumb) that the no_std firmware loads. On the device, every sample gets three scores:
 SPE (Q, the residual off the PCA plane), Hotelling T² (distance within it) and the
-mixture negative log-likelihood. Each score feeds an EWMA and a CUSUM chart; a state
-machine with warm-up, dwell and hold times raises and clears a drift flag.
+mixture negative log-likelihood. Each score has a per-sample limit and feeds an EWMA and
+a CUSUM chart; a state machine with warm-up, dwell and hold times raises and clears a
+drift flag.
 
 Logs: a header row of feature names, `name[unit]` or bare `name`; a time column
-(default `t`, as in `t[s]`); one row per sample; NaN or empty cells for dropouts.
+(default `t`, as in `t[s]`); one row per sample; NaN or empty cells for dropouts. An
+`.npy` array log takes its names from a `.header` file beside it (2-D arrays) or from its
+fields (structured arrays).
 
 Exit codes: 0 clean, 1 drift found (subcommands that look for drift),
 2 bad input or usage.";
