@@ -21,9 +21,9 @@ standardises the features, fits a PCA and a small diagonal Gaussian mixture on t
 scores, and calibrates alarm limits on held-out rows for a stated false-alarm rate. It
 writes a model file (.plumb) that the no_std firmware loads. On the device, every sample
 gets three scores: SPE (Q, the residual off the PCA plane), Hotelling T² (distance within
-it) and the mixture negative log-likelihood. Each score has a per-sample limit and feeds an EWMA and
-a CUSUM chart; a state machine with warm-up, dwell and hold times raises and clears a
-drift flag.
+it) and the mixture negative log-likelihood. Each score has a per-sample limit and feeds
+an EWMA and a CUSUM chart; a state machine with warm-up, dwell and hold times raises and
+clears a drift flag.
 
 Logs: a header row of feature names, `name[unit]` or bare `name`; a time column
 (default `t`, as in `t[s]`); one row per sample; NaN or empty cells for dropouts. An
