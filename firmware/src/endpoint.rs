@@ -46,8 +46,8 @@
 //!
 //! Nothing allocates and every failure is a value. The big buffers live in
 //! [`Places`]: one detector place of about 7 KiB and the resend ring (1 KiB
-//! by default: a frame costs its length plus 5 bytes, 16 bytes for a
-//! sensor fault and 60–100 for a drift raised), about 8 KiB on
+//! by default: a frame costs its length plus 5 bytes, 16–24 bytes for a
+//! sensor fault and 53–141 for a drift raised), about 8 KiB on
 //! `thumbv7em-none-eabihf`; the rest of an `Endpoint` (receive buffer of
 //! 300 bytes, counters, settings) is small. Each frame is encoded in a
 //! [`MAX_DEVICE_FRAME`] (150 byte) buffer on the stack.
