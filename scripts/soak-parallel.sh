@@ -4,7 +4,7 @@
 # segments of SAMPLES samples with a seed of its own per segment, until no
 # time is left for another segment; one result line per segment, then the
 # totals. At 1 % a board spends most of its time asleep waiting for bytes
-# (a sample costs about 0.1 s of wall-clock time and 0.02 s of CPU), so
+# (a sample costs about 0.1 s of wall-clock time and 0.01–0.02 s of CPU), so
 # boards side by side multiply the samples per hour on a small machine.
 # Each segment boots a fresh board; the totals are sums over segments.
 #
