@@ -1934,12 +1934,7 @@ fn run_faulty(
 /// mid-frame (cuts and pauses) every 3 s, over rows of the `loose_mount`
 /// drift log: nothing damaged is accepted on either side, the device takes
 /// exactly the host's samples, and resends recover every drift event.
-fn one_percent_with_unplugs(
-    target: Target,
-    rows: std::ops::Range<u64>,
-    window: usize,
-    seed: u64,
-) {
+fn one_percent_with_unplugs(target: Target, rows: std::ops::Range<u64>, window: usize, seed: u64) {
     let model = default_model();
     let file = ModelFile::from_bytes(&model).unwrap();
     let samples = read_rows(&file, &drift_log("loose_mount.csv"), rows);
