@@ -28,7 +28,9 @@ use plumb_board_mps2::link::Link;
 use plumb_board_mps2::slots::{self, BoardSlots};
 use plumb_board_mps2::text::write_field;
 use plumb_board_mps2::{endpoint_places, semihost, Board};
-use plumb_firmware::endpoint::{Config, Endpoint, Places, DEFAULT_RING_BYTES, DEFAULT_STATUS_EVERY};
+use plumb_firmware::endpoint::{
+    Config, Endpoint, Places, DEFAULT_RING_BYTES, DEFAULT_STATUS_EVERY,
+};
 #[cfg(feature = "trusted-key")]
 use plumb_firmware::plumb_model::signature::TrustedKey;
 
