@@ -82,6 +82,17 @@ def cusum(k):
 CHARTS = [Upper("per sample", lambda u: u), ewma(0.1), ewma(0.02), cusum(0.5), cusum(1.0)]
 
 
+def first_alarm(series, chart, h):
+    """(delay of the first alarm at or after the onset or None, alarms before it) on a drift log."""
+    rows = rc.alarms_in(chart, series[:, 0], chart.stat(series)[:, 0], h)
+    late = [r - rc.ONSET for r in rows if r >= rc.ONSET]
+    return (late[0] if late else None), len(rows) - len(late)
+
+
+def cell(first, early):
+    return ("none" if first is None else str(first)) + (f" ({early} before)" if early else "")
+
+
 def lag1(x):
     x = x - x.mean()
     return float(np.dot(x[1:], x[:-1]) / np.dot(x, x))
@@ -161,14 +172,7 @@ def main():
             h = rc.search_limit(chart, cal_u, cal_st, BUDGET)
             ev_alarms = rc.scheme_alarms(chart, ev_u, [chart.stat(u) for u in ev_u], h)
             per = 1e5 * len(ev_alarms) / sum(len(u) for u in ev_u)
-            cells = []
-            for s in rc.SCENARIOS:
-                u = f(drift[s])
-                rows = rc.alarms_in(chart, u[:, 0], chart.stat(u)[:, 0], h)
-                late = [r for r in rows if r >= rc.ONSET]
-                early = len(rows) - len(late)
-                cell = "none" if not late else str(late[0] - rc.ONSET)
-                cells.append(cell + (f" ({early} before)" if early else ""))
+            cells = [cell(*first_alarm(f(drift[s]), chart, h)) for s in rc.SCENARIOS]
             lines.append(f"| {label} | {chart.name} | {h:.3f} | {per:.2f} | " + " | ".join(cells) + " |")
             print(lines[-1], flush=True)
     # The scheme: three charts at a third of the budget each.
@@ -184,15 +188,12 @@ def main():
         ev_total += len(rc.scheme_alarms(chart, ev_u, [chart.stat(u) for u in ev_u], h))
         parts.append(f"{chart.name} on {'u' if f is glob else 'v'} (limit {h:.3f})")
         for s in rc.SCENARIOS:
-            u = f(drift[s])
-            rows = rc.alarms_in(chart, u[:, 0], chart.stat(u)[:, 0], h)
-            late = [r - rc.ONSET for r in rows if r >= rc.ONSET]
-            early[s] += len(rows) - len(late)
-            if late and (first[s] is None or late[0] < first[s]):
-                first[s] = late[0]
+            delay, before = first_alarm(f(drift[s]), chart, h)
+            early[s] += before
+            if delay is not None and (first[s] is None or delay < first[s]):
+                first[s] = delay
     per = 1e5 * ev_total / sum(len(g) for g, _ in ev)
-    cells = [("none" if first[s] is None else str(first[s]))
-             + (f" ({early[s]} before)" if early[s] else "") for s in rc.SCENARIOS]
+    cells = [cell(first[s], early[s]) for s in rc.SCENARIOS]
     lines += ["", "Scheme: " + "; ".join(parts) + ", at most 3 calibration alarms each.", "",
               "| scheme | evaluation alarms per 10⁵ | "
               + " | ".join(f"`{s}`" for s in rc.SCENARIOS) + " |",

@@ -15,7 +15,8 @@ pub(crate) const RECORD_HEADER: usize = 5;
 /// Frames of retained messages in `N` bytes, oldest first.
 pub(crate) struct FrameRing<const N: usize> {
     buf: [u8; N],
-    /// Index of the oldest record's first byte (`< N`, or 0 when empty).
+    /// Index of the oldest record's first byte, or of the next record's
+    /// when empty (`< N`).
     start: usize,
     /// Bytes in use (`≤ N`).
     used: usize,
@@ -95,11 +96,7 @@ impl<const N: usize> FrameRing<N> {
         let size = (RECORD_HEADER + usize::from(self.byte(0))).min(self.used);
         self.used -= size;
         self.count -= 1;
-        self.start = if self.count == 0 {
-            0
-        } else {
-            Self::wrap(self.start + size)
-        };
+        self.start = Self::wrap(self.start + size);
         if self.count == 0 {
             self.newest = None;
         }
