@@ -97,7 +97,8 @@ pub struct Track {
     pub window: Welford<f32>,
     /// Mean and variance of the raw score over the last complete window.
     pub last_window: Welford<f32>,
-    /// EWMA of the standardised transformed score.
+    /// EWMA of the standardised transformed score (for SPE, standardised
+    /// within each sample's operating mode: [`Model::spe_center_by_mode`]).
     pub ewma: Ewma,
     /// Upper CUSUM of the standardised transformed score.
     pub cusum: Cusum,
@@ -440,6 +441,22 @@ impl Detector {
         ]
     }
 
+    /// The SPE as its EWMA sees it: `(g − center_c) / spread_c`, `g` the
+    /// transformed SPE ([`Detector::transformed`]), with the centre and
+    /// spread of the sample's operating mode `c` ([`score::Scored::mode`]).
+    /// The calibration computes the same f32 expression.
+    fn spe_by_mode(&self, g: f32, mode: usize) -> f32 {
+        let m = &self.model;
+        // A validated model has both values for every component; the
+        // fallback (the global ones) only keeps this free of panics.
+        let center = m.spe_center_by_mode.get(mode).copied();
+        let spread = m.spe_spread_by_mode.get(mode).copied();
+        let (c, s) = center
+            .zip(spread)
+            .unwrap_or((m.monitor.spe.center, m.monitor.spe.spread));
+        (g - c) / s
+    }
+
     /// Scores one sample without touching any statistic (used by calibration).
     pub fn score(&self, x: &[f32]) -> Result<score::Scored, Fault> {
         score::score(&self.model, &self.derived, x)
@@ -461,16 +478,22 @@ impl Detector {
         // spread), or would carry its EWMA out of the f32 range, makes the
         // sample a score overflow before any statistic moves: a non-finite
         // EWMA would stay NaN and the flag could never clear.
+        // (As [`standardise`], with each transform computed once.)
+        let gs = self.transformed(&s);
         let mut us = [0.0f32; 3];
-        for (((u, lim), which), value) in us.iter_mut().zip(limits).zip(Score::ALL).zip(values) {
-            *u = standardise(which, value, self.derived.nll_floor(), lim);
+        for ((u, lim), g) in us.iter_mut().zip(limits).zip(gs) {
+            *u = (g - lim.center) / lim.spread;
         }
+        // The EWMAs smooth the same values, except the SPE's, which smooths
+        // the SPE standardised within the sample's operating mode.
+        let mut smoothed = us;
+        smoothed[0] = self.spe_by_mode(gs[0], scored.mode);
         // Each EWMA's next value, computed once and kept only if all three
         // are finite.
         let mut ewmas = [Ewma::new(0.0, 0.0); 3];
-        for ((next, track), u) in ewmas.iter_mut().zip(&self.tracks).zip(us) {
+        for ((next, track), x) in ewmas.iter_mut().zip(&self.tracks).zip(smoothed) {
             *next = track.ewma;
-            next.push(u);
+            next.push(x);
         }
         if !ewmas.iter().all(|e| e.value().is_finite()) {
             return self.faulted(index, Fault::Overflow);

@@ -66,6 +66,9 @@ pub struct Scored {
     pub m: usize,
     /// Latent scores `t = Pᵀ z` (first `m` valid).
     pub latent: [f32; MAX_COMPONENTS],
+    /// The most likely mixture component (the sample's operating mode): the
+    /// first of the largest `ln π_c + ln N(t; ν_c, v_c)`.
+    pub mode: usize,
 }
 
 /// Constants derived from a model at load time, so the per-sample path does
@@ -344,12 +347,14 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
     // Mixture NLL by log-sum-exp over components.
     let mut logp = [0.0f32; MAX_MIXTURE];
     let mut best = f32::NEG_INFINITY;
-    for (((lp, norm), mu), inv) in logp
+    let mut mode = 0;
+    for (c, (((lp, norm), mu), inv)) in logp
         .iter_mut()
         .zip(derived.log_norm.iter())
         .zip(model.mix_means.chunks_exact(m))
         .zip(derived.inv_var.chunks_exact(m))
         .take(k)
+        .enumerate()
     {
         let mut quad = 0.0f32;
         for ((tj, mj), ij) in t.iter().zip(mu).zip(inv) {
@@ -359,6 +364,7 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         *lp = norm - 0.5 * quad;
         if *lp > best {
             best = *lp;
+            mode = c;
         }
     }
     let mut sum = 0.0f32;
@@ -376,5 +382,6 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         top,
         m,
         latent,
+        mode,
     })
 }

@@ -114,6 +114,101 @@ fn f32_scores_match_f64_reference() {
     }
 }
 
+/// The first of the most likely mixture components by the f64 formulas,
+/// and how far ahead of the runner-up it is (log scale).
+fn reference_mode(model: &ModelOwned, x: &[f64]) -> (usize, f64) {
+    let d = model.dims.features as usize;
+    let m = model.dims.components as usize;
+    let k = model.dims.mixture as usize;
+    let z: Vec<f64> = (0..d)
+        .map(|i| (x[i] - model.mean[i] as f64) / model.scale[i] as f64)
+        .collect();
+    let t: Vec<f64> = (0..m)
+        .map(|j| {
+            (0..d)
+                .map(|i| z[i] * model.loadings[i * m + j] as f64)
+                .sum()
+        })
+        .collect();
+    let mut logs: Vec<(f64, usize)> = (0..k)
+        .map(|c| {
+            let mut a = (model.weights[c] as f64).ln();
+            for j in 0..m {
+                let v = model.mix_variances[c * m + j] as f64;
+                let e = t[j] - model.mix_means[c * m + j] as f64;
+                a -= 0.5 * ((2.0 * std::f64::consts::PI * v).ln() + e * e / v);
+            }
+            (a, c)
+        })
+        .collect();
+    logs.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)));
+    let gap = if k > 1 {
+        logs[0].0 - logs[1].0
+    } else {
+        f64::INFINITY
+    };
+    (logs[0].1, gap)
+}
+
+/// The SPE's EWMA smooths the SPE standardised within each sample's mode
+/// (`(∛SPE − centre_c) / spread_c`, c the most likely component), its CUSUM
+/// the SPE standardised with the global centre and spread: both against an
+/// f64 recursion written from those definitions (Roberts 1959 for the EWMA,
+/// Page 1954 for the CUSUM).
+#[test]
+fn spe_ewma_is_standardised_within_the_mode() {
+    let mut model = example_model(12, 3, 3, 5);
+    model.spe_center_by_mode = vec![0.2, 0.5, 0.9];
+    model.spe_spread_by_mode = vec![0.1, 0.3, 0.6];
+    let mp = model.monitor;
+    let (lambda, slack, cap) = (
+        mp.ewma_lambda as f64,
+        mp.spe.cusum_slack as f64,
+        2.0 * mp.spe.cusum_limit as f64,
+    );
+    let mut det = Detector::new(model.to_device().unwrap()).unwrap();
+    let mut rng = Rng(11);
+    let (mut ewma, mut cusum) = (0.0f64, 0.0f64);
+    let mut seen = [0usize; 3];
+    for n in 0..600 {
+        let x = draw(&model, &mut rng, [0.05, 0.3][n % 2]);
+        let xf: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+        let xr: Vec<f64> = xf.iter().map(|v| *v as f64).collect();
+        let (spe, ..) = reference(&model, &xr);
+        let (mode, gap) = reference_mode(&model, &xr);
+        let scored = det.score(&xf).expect("a sample near the model");
+        // f32 and f64 may disagree only on a near tie (none at this seed).
+        assert!(gap < 1e-3 || scored.mode == mode, "sample {n}: mode");
+        seen[mode] += 1;
+        let g = spe.cbrt();
+        let v = (g - model.spe_center_by_mode[mode] as f64) / model.spe_spread_by_mode[mode] as f64;
+        let u = (g - mp.spe.center as f64) / mp.spe.spread as f64;
+        ewma += lambda * (v - ewma);
+        cusum = (cusum + u - slack).clamp(0.0, cap);
+        let out = det.update(&xf);
+        assert!(out.scores.is_some());
+        let tr = det.track(Score::Spe);
+        // Tolerance: ∛ of an SPE with relative error ≤ 1e-4 (see
+        // f32_scores_match_f64_reference) moves by ≤ 1e-4/3 relative, i.e. by
+        // < 1e-4 here (∛SPE < 3), over a spread ≥ 0.1: ≤ 1e-3 per term, and
+        // the recursions only average (EWMA) or add up to the cap (CUSUM,
+        // bounded by the terms summed since its last zero).
+        assert!(
+            (tr.ewma.value() as f64 - ewma).abs() < 2e-3,
+            "sample {n}: EWMA {} vs {ewma}",
+            tr.ewma.value()
+        );
+        assert!(
+            (tr.cusum.value() as f64 - cusum).abs() < 2e-3 * (1.0 + cusum),
+            "sample {n}: CUSUM {} vs {cusum}",
+            tr.cusum.value()
+        );
+        assert!((tr.last_u as f64 - u).abs() < 2e-3, "sample {n}: u");
+    }
+    // Every mode took part, so every centre and spread was used.
+    assert!(seen.iter().all(|c| *c > 50), "{seen:?}");
+}
+
 #[test]
 fn top_contributions_are_the_largest_residuals() {
     let model = example_model(10, 3, 2, 3);
@@ -189,6 +284,10 @@ fn calibrated(model: &ModelOwned, rng: &mut Rng) -> ModelOwned {
         lim.cusum_limit = 8.0;
         lim.ewma_limit = 1.0;
     }
+    // Every mode as the whole: the state tests are about the states.
+    let k = cal.weights.len();
+    cal.spe_center_by_mode = vec![cal.monitor.spe.center; k];
+    cal.spe_spread_by_mode = vec![cal.monitor.spe.spread; k];
     cal
 }
 

@@ -142,6 +142,8 @@ fn model(id: u32, mean_shift: f32) -> ModelOwned {
             t2: limits(1.0, 0.5),
             nll: limits(3.0, 1.5),
         },
+        spe_center_by_mode: vec![0.2; 2],
+        spe_spread_by_mode: vec![0.1; 2],
     }
 }
 
@@ -955,6 +957,8 @@ mod upload {
         m.weights = vec![1.0];
         m.mix_means = vec![0.0];
         m.mix_variances = vec![1.0];
+        m.spe_center_by_mode = vec![0.2];
+        m.spe_spread_by_mode = vec![0.1];
         let bytes = file_of(&m);
         refused_and_untouched(
             |rig| rig.upload(&bytes, wire::crc32(&bytes)),

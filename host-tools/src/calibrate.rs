@@ -11,7 +11,14 @@
 //!    the mean and standard deviation (ddof = 1) of the transformed held-out
 //!    scores: plain moments, not robust estimates. The `u` of every scored
 //!    row is kept (f32, computed as the detector computes it) with the place
-//!    where each log starts.
+//!    where each log starts. The SPE's EWMA runs on `v`, the transformed SPE
+//!    standardised with the mean and standard deviation (ddof = 1) of the
+//!    rows of the same operating mode (most likely mixture component; the
+//!    global ones for a mode with fewer than two rows), stored per component
+//!    in the model: the nominal SPE level differs between modes.
+//!    On the demo it takes `new_floor` from 419 to 190 samples; standardising
+//!    the SPE's CUSUM the same way raised its limit (2,333 against 877
+//!    spreads) and delayed `bearing_wear` (BENCHMARKS.md, "Detection").
 //! 3. The empirical 0.999 quantile of each raw score (inverted distribution
 //!    function, R type 1: the `⌈0.999 n⌉`-th smallest value) is reported.
 //!    The stored `sample_limit` is the per-sample (Shewhart) chart's limit,
@@ -45,7 +52,8 @@
 //!    approximation for a large `h`) is shortest. Comparing the out-of-control
 //!    ARL at a reference shift is the standard way to trade `k` against `h`;
 //!    the value 2 is common practice, no source.
-//! 7. EWMA: `L` as in 5 for the given λ (limit on `u`: `L √(λ / (2 − λ))`).
+//! 7. EWMA: `L` as in 5 for the given λ (limit on `u`, or `v` for the SPE:
+//!    `L √(λ / (2 − λ))`).
 //! 8. End-to-end: the full [`plumb_firmware::Detector::update`] state
 //!    machine runs once over the held-out logs (a fresh detector per log).
 //!    Charts interact there (a flag rises when any chart is hot for
@@ -595,6 +603,18 @@ pub struct CalibSeconds {
     pub check: f64,
 }
 
+/// The transformed SPE within one operating mode (mixture component).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct ModeCalib {
+    /// Held-out rows whose most likely component this is.
+    pub rows: u64,
+    /// Mean of their transformed SPE (the global one under two rows).
+    pub center: f64,
+    /// Standard deviation (ddof = 1) of the same (the global one under two
+    /// rows).
+    pub spread: f64,
+}
+
 /// What the calibration found.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct CalibReport {
@@ -623,6 +643,9 @@ pub struct CalibReport {
     pub search_passes: u64,
     /// Per score.
     pub scores: Vec<ScoreCalib>,
+    /// Per mixture component: the transformed SPE's centre and spread among
+    /// the held-out rows it is the most likely component of.
+    pub spe_modes: Vec<ModeCalib>,
     /// Whether the end-to-end check ran through the device detector.
     pub end_to_end: bool,
     /// End-to-end runs (1: the per-chart limits passed the check).
@@ -728,7 +751,7 @@ fn host_nll_floor(model: &ModelOwned) -> f64 {
     -(top + logs.iter().map(|l| (l - top).exp()).sum::<f64>().ln())
 }
 
-fn host_scores(model: &ModelOwned, x: &[f64], fault_z: f64) -> Option<[[f32; 3]; 2]> {
+fn host_scores(model: &ModelOwned, x: &[f64], fault_z: f64) -> Option<([[f32; 3]; 2], usize)> {
     let d = usize::from(model.dims.features);
     let m = usize::from(model.dims.components);
     let k = usize::from(model.dims.mixture);
@@ -776,14 +799,26 @@ fn host_scores(model: &ModelOwned, x: &[f64], fault_z: f64) -> Option<[[f32; 3];
     };
     let nll = -lse(&lp);
     let floor = -lse(&norms);
-    Some([
-        [spe as f32, t2 as f32, nll as f32],
+    // The first of the most likely components, as the detector picks it.
+    let mode = lp
+        .iter()
+        .enumerate()
+        .fold(
+            (0, f64::NEG_INFINITY),
+            |b, (c, l)| if *l > b.1 { (c, *l) } else { b },
+        )
+        .0;
+    Some((
         [
-            spe.cbrt() as f32,
-            t2.cbrt() as f32,
-            (nll - floor).max(0.0).cbrt() as f32,
+            [spe as f32, t2 as f32, nll as f32],
+            [
+                spe.cbrt() as f32,
+                t2.cbrt() as f32,
+                (nll - floor).max(0.0).cbrt() as f32,
+            ],
         ],
-    ])
+        mode,
+    ))
 }
 
 /// Calibrates `model.monitor` in place on `rows`. The model's PCA and
@@ -801,12 +836,17 @@ pub fn calibrate(
     let clock = Instant::now();
     model.monitor = cfg.placeholder();
     let d = usize::from(model.dims.features);
+    let k = usize::from(model.dims.mixture);
+    model.spe_center_by_mode = vec![0.0; k];
+    model.spe_spread_by_mode = vec![1.0; k];
 
     // 1. Score every held-out row once: raw scores (for the quantiles) and
     // transformed scores (for the charts), with where each log starts.
     let mut raw: [Vec<f32>; 3] = [Vec::new(), Vec::new(), Vec::new()];
     let mut u: [Vec<f32>; 3] = [Vec::new(), Vec::new(), Vec::new()];
     let mut starts: Vec<usize> = Vec::new();
+    // The most likely mixture component of each scored row.
+    let mut modes: Vec<u16> = Vec::new();
     let mut moments = [Welford::<f64>::new(); 3];
     let mut faults = 0u64;
     let skipped: u64;
@@ -840,14 +880,16 @@ pub fn calibrate(
                         *o = *v as f32;
                     }
                     det.score(&x32).ok().map(|s| {
+                        let mode = s.mode;
                         let s = s.scores;
-                        [[s.spe, s.t2, s.nll], det.transformed(&s)]
+                        ([[s.spe, s.t2, s.nll], det.transformed(&s)], mode)
                     })
                 }
                 None => host_scores(model, row, cfg.fault_z),
             };
             match scores {
-                Some([s, g]) => {
+                Some(([s, g], mode)) => {
+                    modes.push(mode as u16);
                     for i in 0..3 {
                         raw[i].push(s[i]);
                         u[i].push(g[i]);
@@ -868,7 +910,38 @@ pub fn calibrate(
         )));
     }
 
-    // 2. Centre and spread; u in the detector's f32 arithmetic.
+    // 2. Centre and spread; u in the detector's f32 arithmetic. The SPE's
+    // EWMA runs on v, the transformed SPE standardised within each row's
+    // operating mode (its most likely mixture component): modes differ in
+    // how well PCA reconstructs them. A mode with fewer than two rows keeps
+    // the global centre and spread.
+    let mut by_mode = vec![Welford::<f64>::new(); k];
+    for (m, g) in modes.iter().zip(&u[0]) {
+        by_mode[usize::from(*m)].push(f64::from(*g));
+    }
+    let global = (moments[0].mean(), moments[0].sample_variance().sqrt());
+    let spe_modes: Vec<ModeCalib> = by_mode
+        .iter()
+        .map(|w| {
+            let spread = w.sample_variance().sqrt();
+            let own = w.count() >= 2 && spread > 0.0 && spread.is_finite();
+            let (center, spread) = if own { (w.mean(), spread) } else { global };
+            ModeCalib {
+                rows: w.count(),
+                center,
+                spread,
+            }
+        })
+        .collect();
+    let v: Vec<f32> = modes
+        .iter()
+        .zip(&u[0])
+        .map(|(m, g)| {
+            let mc = &spe_modes[usize::from(*m)];
+            (*g - mc.center as f32) / mc.spread as f32
+        })
+        .collect();
+    drop(modes);
     let mut centre = [0.0f64; 3];
     let mut spread = [0.0f64; 3];
     let mut quantile = [0.0f64; 3];
@@ -898,6 +971,11 @@ pub fn calibrate(
         starts: &starts,
         warmup: cfg.warmup,
         dwell: cfg.raise_dwell,
+    };
+    // What a score's EWMA smooths (v for the SPE).
+    let smoothed = |i: usize| Series {
+        u: if i == 0 { &v } else { &u[i] },
+        ..series(i)
     };
     let chart_samples = series(0).eligible();
     let (chart_budget, allowed_per_chart) = chart_allowance(cfg.false_alarm_rate, chart_samples);
@@ -937,8 +1015,8 @@ pub fn calibrate(
         .flat_map(|i| (0..=ks.len()).map(move |j| (i, j)))
         .collect();
     let found: Vec<(LimitSearch, f64)> = par_map(&jobs, cfg.threads, |&(i, j)| {
-        let s = series(i);
         if j == 0 {
+            let s = smoothed(i);
             let chart = Chart::Ewma {
                 lambda: cfg.ewma_lambda as f32,
             };
@@ -954,6 +1032,7 @@ pub fn calibrate(
                 )),
             )
         } else {
+            let s = series(i);
             let k = ks[j - 1];
             let chart = Chart::Cusum { slack: k as f32 };
             let r = smallest_limit(chart, &s, h_iid[j - 1], allowed_per_chart);
@@ -1028,6 +1107,7 @@ pub fn calibrate(
         });
     }
     drop(u);
+    drop(v);
     seconds.design = clock.elapsed().as_secs_f64();
 
     let apply = |model: &mut ModelOwned, scores: &mut [ScoreCalib]| {
@@ -1046,6 +1126,8 @@ pub fn calibrate(
         model.monitor.t2 = lim(&scores[1]);
         model.monitor.nll = lim(&scores[2]);
     };
+    model.spe_center_by_mode = spe_modes.iter().map(|m| m.center as f32).collect();
+    model.spe_spread_by_mode = spe_modes.iter().map(|m| m.spread as f32).collect();
     apply(model, &mut scores);
 
     let mut report = CalibReport {
@@ -1060,6 +1142,7 @@ pub fn calibrate(
         ewma_l_iid: l_iid,
         search_passes,
         scores: Vec::new(),
+        spe_modes,
         end_to_end: device,
         rounds: 0,
         widened: false,

@@ -617,6 +617,9 @@ pub fn fit(
         mix_means: f32s(&mix.means),
         mix_variances: f32s(&mix.variances),
         monitor: cfg.calib.placeholder(),
+        // Set by the calibration.
+        spe_center_by_mode: vec![0.0; k],
+        spe_spread_by_mode: vec![1.0; k],
     };
     let device = Capacity::DEVICE.admits(&dims).is_ok();
     let calib_stage = |label: &str, total: u64| progress.stage(label, total, true);

@@ -202,7 +202,8 @@ pub enum SignatureInfo {
 impl SignatureInfo {
     /// Reads it from a model file's bytes (framing and CRC checked).
     pub fn of(bytes: &[u8]) -> Result<SignatureInfo> {
-        let s = file::split(bytes).map_err(|e| Error::input(format!("not a model file: {e}")))?;
+        let s =
+            file::split_host(bytes).map_err(|e| Error::input(format!("not a model file: {e}")))?;
         Ok(match s.signature {
             Some(b) => SignatureInfo::Signed(b.key_id),
             None => SignatureInfo::Unsigned,
@@ -212,7 +213,7 @@ impl SignatureInfo {
 
 /// Checks a model file's signature against `key`.
 pub fn verify(bytes: &[u8], key: &TrustedKey) -> Result<std::result::Result<(), SignatureError>> {
-    let s = file::split(bytes).map_err(|e| Error::input(format!("not a model file: {e}")))?;
+    let s = file::split_host(bytes).map_err(|e| Error::input(format!("not a model file: {e}")))?;
     Ok(signature::verify(&s, key))
 }
 

@@ -82,6 +82,10 @@ pub struct MixRow {
     pub means: Vec<f32>,
     /// Variance per latent dimension.
     pub variances: Vec<f32>,
+    /// Centre of the transformed SPE in this operating mode.
+    pub spe_center: f32,
+    /// Spread of the transformed SPE in this operating mode.
+    pub spe_spread: f32,
 }
 
 /// Limits of one score.
@@ -277,6 +281,8 @@ impl Summary {
                 weight: model.weights[c],
                 means: model.mix_means[c * m..(c + 1) * m].to_vec(),
                 variances: model.mix_variances[c * m..(c + 1) * m].to_vec(),
+                spe_center: model.spe_center_by_mode[c],
+                spe_spread: model.spe_spread_by_mode[c],
             })
             .collect();
         let mp = &model.monitor;
@@ -360,6 +366,15 @@ impl Summary {
             "plumbline model {}  (schema {}, format {})",
             mi.id, mi.schema, mi.format_version
         );
+        if mi.format_version < plumb_model::file::FORMAT_VERSION {
+            let _ = writeln!(
+                o,
+                "  format {} file: read with every mode at the global SPE centre and spread (it \
+                 flags as it did); boards read format {} only: refit it (plumb fit --base)",
+                mi.format_version,
+                plumb_model::file::FORMAT_VERSION
+            );
+        }
         let _ = writeln!(
             o,
             "  {} features -> {} components -> {} mixture components",
@@ -441,9 +456,17 @@ impl Summary {
             "\nMixture (diagonal Gaussian over the {} latent scores)",
             mi.m
         );
-        let _ = writeln!(o, "  {:>4}  {:>8}", "#", "weight");
+        let _ = writeln!(
+            o,
+            "  {:>4}  {:>8}  {:>10}  {:>10}   (SPE: centre and spread of g(SPE) in this mode)",
+            "#", "weight", "SPE centre", "SPE spread"
+        );
         for c in &self.mixture {
-            let _ = writeln!(o, "  {:>4}  {:>8.4}", c.component, c.weight);
+            let _ = writeln!(
+                o,
+                "  {:>4}  {:>8.4}  {:>10.5}  {:>10.5}",
+                c.component, c.weight, c.spe_center, c.spe_spread
+            );
         }
         if let Some(fit) = &self.fit {
             let mx = &fit.mixture;
@@ -518,6 +541,11 @@ impl Summary {
                 x.ewma_limit
             );
         }
+        let _ = writeln!(
+            o,
+            "  spe EWMA: of g(SPE) standardised with the centre and spread of the sample's \
+             mode (its most likely mixture component; Mixture above)"
+        );
         match self.spe_limit_jm {
             Some(q) => {
                 let _ = writeln!(

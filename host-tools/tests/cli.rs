@@ -769,3 +769,167 @@ fn spill_file_spares_a_parse_and_changes_nothing() {
     assert!(fallback == twice);
     assert!(warnings.contains("no spill file"), "{warnings}");
 }
+
+/// `plumb fit` stores, per mixture component, the mean and standard
+/// deviation (ddof = 1) of ∛SPE over the held-out rows whose most likely
+/// component it is: recomputed here in f64 from the stored model with the
+/// formulas of FORMAT.md (standardise, project, residual, diagonal Gaussian
+/// log-densities), independent of the f32 detector.
+#[test]
+fn spe_by_mode_is_the_held_out_moments_of_each_mode() {
+    let dir = Scratch::new("modes");
+    let a = dir.write("a.csv", &log_text(5, 1500, 1));
+    let h = dir.write("h.csv", &log_text(5, 2000, 7));
+    let out = dir.path("m.plumb");
+    let o = plumb(&[
+        "fit",
+        s(&a),
+        "--holdout",
+        s(&h),
+        "--out",
+        s(&out),
+        "--mixture",
+        "3",
+        "--restarts",
+        "1",
+        "--quiet",
+        "--threads=2",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let file = plumb_model::file::ModelFile::from_bytes(&std::fs::read(&out).unwrap()).unwrap();
+    let md = &file.model;
+    let (d, m, k) = (
+        usize::from(md.dims.features),
+        usize::from(md.dims.components),
+        usize::from(md.dims.mixture),
+    );
+    let f = |v: f32| f64::from(v);
+    // (n, Σg, Σg²) per mode.
+    let mut acc = vec![(0u64, 0.0f64, 0.0f64); k];
+    for line in std::fs::read_to_string(&h).unwrap().lines().skip(1) {
+        // Column 0 is the time; the features follow in model order. The
+        // tool rounds each value to f32 before scoring.
+        let x: Vec<f64> = line
+            .split(',')
+            .skip(1)
+            .map(|c| f(c.parse::<f64>().unwrap() as f32))
+            .collect();
+        assert_eq!(x.len(), d);
+        let z: Vec<f64> = (0..d)
+            .map(|i| (x[i] - f(md.mean[i])) / f(md.scale[i]))
+            .collect();
+        let t: Vec<f64> = (0..m)
+            .map(|j| (0..d).map(|i| z[i] * f(md.loadings[i * m + j])).sum())
+            .collect();
+        let spe: f64 = (0..d)
+            .map(|i| {
+                let r = z[i]
+                    - (0..m)
+                        .map(|j| f(md.loadings[i * m + j]) * t[j])
+                        .sum::<f64>();
+                r * r
+            })
+            .sum();
+        let logp = |c: usize| -> f64 {
+            (0..m).fold(f(md.weights[c]).ln(), |a, j| {
+                let v = f(md.mix_variances[c * m + j]);
+                let e = t[j] - f(md.mix_means[c * m + j]);
+                a - 0.5 * ((2.0 * std::f64::consts::PI * v).ln() + e * e / v)
+            })
+        };
+        let mode = (0..k).fold(0, |b, c| if logp(c) > logp(b) { c } else { b });
+        let g = spe.cbrt();
+        acc[mode].0 += 1;
+        acc[mode].1 += g;
+        acc[mode].2 += g * g;
+    }
+    // Tolerance: the detector's f32 SPE is within 1e-4 · ‖z‖² of the f64 one
+    // (firmware/tests/detector.rs, f32_scores_match_f64_reference), which
+    // moves ∛SPE by at most about 1e-3 here (∛ of SPE ≥ 0.01 for these
+    // rows); a mean or standard deviation moves no more than its terms.
+    let mut own = 0;
+    for (c, &(n, s1, s2)) in acc.iter().enumerate() {
+        let (centre, spread) = (f(md.spe_center_by_mode[c]), f(md.spe_spread_by_mode[c]));
+        if n < 2 {
+            // Too few rows: the global centre and spread.
+            assert_eq!(centre, f(md.monitor.spe.center), "mode {c}");
+            assert_eq!(spread, f(md.monitor.spe.spread), "mode {c}");
+            continue;
+        }
+        own += 1;
+        let mean = s1 / n as f64;
+        let sd = ((s2 - n as f64 * mean * mean) / (n - 1) as f64).sqrt();
+        assert!(
+            (centre - mean).abs() < 1e-3,
+            "mode {c}: centre {centre} vs {mean}"
+        );
+        assert!(
+            (spread - sd).abs() < 1e-3,
+            "mode {c}: spread {spread} vs {sd}"
+        );
+    }
+    assert!(own >= 2, "at least two modes hold rows: {acc:?}");
+}
+
+/// A format 1 file (FORMAT.md, history): the host reads it, says so, and
+/// replays it exactly as the same model written in the current format with
+/// every mode at the global SPE centre and spread; `plumb upload` refuses
+/// it before sending, since boards read the current format only.
+#[test]
+fn a_format_1_model_is_read_by_the_host_and_refused_for_a_board() {
+    let dir = Scratch::new("format1");
+    let a = dir.write("a.csv", &log_text(4, 1200, 1));
+    let b = dir.write("b.csv", &log_text(4, 1200, 2));
+    let v2 = dir.path("v2.plumb");
+    let mut args = vec!["fit", s(&a), "--out", s(&v2)];
+    args.extend(FAST); // --mixture 2
+    let o = plumb(&args);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    // Downgrade: drop fields 28–29 (k = 2: two × (length byte + 2 f32)).
+    let bytes = std::fs::read(&v2).unwrap();
+    let word = |at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap()) as usize;
+    let (payload, labels) = (word(8), word(12));
+    let body = &bytes[16..16 + payload - 18];
+    let mut v1 = b"PLMD".to_vec();
+    v1.extend_from_slice(&[1, 0, 0, 0]);
+    v1.extend_from_slice(&(body.len() as u32).to_le_bytes());
+    v1.extend_from_slice(&(labels as u32).to_le_bytes());
+    v1.extend_from_slice(body);
+    v1.extend_from_slice(&bytes[16 + payload..16 + payload + labels]);
+    v1.extend_from_slice(&plumb_model::file::crc32(&v1).to_le_bytes());
+    let old = dir.path("v1.plumb");
+    std::fs::write(&old, &v1).unwrap();
+    // The same model in the current format, modes at the global values.
+    let file = plumb_model::file::ModelFile::from_bytes(&v1).unwrap();
+    let spe = file.model.monitor.spe;
+    assert_eq!(file.model.spe_center_by_mode, vec![spe.center; 2]);
+    assert_eq!(file.model.spe_spread_by_mode, vec![spe.spread; 2]);
+    let same = dir.path("same.plumb");
+    std::fs::write(&same, file.to_bytes().unwrap()).unwrap();
+
+    let o = plumb(&["inspect", s(&old)]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(text.contains("format 1)"), "{text}");
+    assert!(text.contains("boards read format 2 only"), "{text}");
+
+    // A shifted log, so the replays have flags to compare.
+    let mut rows = lines(&log_text(4, 1500, 3));
+    for r in rows.iter_mut().skip(800) {
+        let mut cells: Vec<String> = r.split(',').map(str::to_string).collect();
+        let v: f64 = cells[2].parse().unwrap();
+        cells[2] = format!("{:.5}", v + 3.0);
+        *r = cells.join(",");
+    }
+    let log = dir.write("shifted.csv", &join(&rows));
+    let replay = |m: &Path| {
+        let o = plumb(&["replay", s(m), s(&log), s(&b), "--json"]);
+        assert!(o.status.code() == Some(1), "{}", stderr(&o));
+        String::from_utf8_lossy(&o.stdout).into_owned()
+    };
+    assert_eq!(replay(&old), replay(&same));
+
+    let o = plumb(&["upload", s(&old), "--port", "/dev/null"]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("version 1"), "{}", stderr(&o));
+}

@@ -33,6 +33,8 @@ pub enum Field {
     NllLimits,
     /// The label section or the schema fingerprint.
     Labels,
+    /// The SPE's centre and spread per mixture component.
+    SpeByMode,
 }
 
 impl Field {
@@ -52,6 +54,7 @@ impl Field {
             Field::T2Limits => "T² limits",
             Field::NllLimits => "NLL limits",
             Field::Labels => "labels",
+            Field::SpeByMode => "SPE by mode",
         }
     }
 }

@@ -21,7 +21,7 @@ use crate::{Capacity, Dims, Model, ModelMeta};
 /// The four bytes every model file starts with.
 pub const MAGIC: [u8; 4] = *b"PLMD";
 /// The model format version this crate reads and writes.
-pub const FORMAT_VERSION: u16 = 1;
+pub const FORMAT_VERSION: u16 = 2;
 /// Header length in bytes.
 pub const HEADER_LEN: usize = 16;
 /// CRC trailer length in bytes.
@@ -82,6 +82,21 @@ pub struct Sections<'a> {
 /// signed file's signature is located, not verified. Every byte is read
 /// through a checked slice or a fixed-size header, so no input can panic.
 pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
+    split_versions(bytes, |v| v == FORMAT_VERSION)
+}
+
+/// Format versions the host reads ([`ModelFile::from_bytes`]; a version 1
+/// file gets the global SPE centre and spread for every mode). Devices read
+/// [`FORMAT_VERSION`] only.
+pub const HOST_VERSIONS: [u16; 2] = [1, FORMAT_VERSION];
+
+/// [`split`] for a host reader: any of [`HOST_VERSIONS`].
+pub fn split_host(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
+    split_versions(bytes, |v| HOST_VERSIONS.contains(&v))
+}
+
+/// [`split`], accepting the versions `known` says yes to.
+fn split_versions(bytes: &[u8], known: impl Fn(u16) -> bool) -> Result<Sections<'_>, ModelError> {
     let got = bytes.len() as u32;
     let short = ModelError::Truncated {
         needed: HEADER_LEN as u32,
@@ -93,7 +108,7 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
     let [_, _, _, _, v0, v1, f0, f1, p0, p1, p2, p3, l0, l1, l2, l3] =
         *bytes.first_chunk::<HEADER_LEN>().ok_or(short)?;
     let version = u16::from_le_bytes([v0, v1]);
-    if version != FORMAT_VERSION {
+    if !known(version) {
         return Err(ModelError::UnknownVersion { found: version });
     }
     let flags = u16::from_le_bytes([f0, f1]);
@@ -277,6 +292,48 @@ mod owned {
         pub unit: String,
     }
 
+    /// The payload of format version 1: the model without the SPE's centre
+    /// and spread per mode. Read by the host only.
+    #[derive(Deserialize)]
+    struct ModelV1 {
+        meta: crate::ModelMeta,
+        dims: crate::Dims,
+        mean: Vec<f32>,
+        scale: Vec<f32>,
+        loadings: Vec<f32>,
+        eigenvalues: Vec<f32>,
+        theta: [f32; 3],
+        weights: Vec<f32>,
+        mix_means: Vec<f32>,
+        mix_variances: Vec<f32>,
+        monitor: crate::MonitorParams,
+    }
+
+    impl ModelV1 {
+        /// Every mode with the global SPE centre and spread: the SPE's EWMA
+        /// then sees exactly the values a version 1 detector smoothed, so
+        /// the model flags as it did.
+        fn upgrade(self) -> ModelOwned {
+            let k = self.weights.len();
+            let spe = self.monitor.spe;
+            ModelOwned {
+                meta: self.meta,
+                dims: self.dims,
+                mean: self.mean,
+                scale: self.scale,
+                loadings: self.loadings,
+                eigenvalues: self.eigenvalues,
+                theta: self.theta,
+                weights: self.weights,
+                mix_means: self.mix_means,
+                mix_variances: self.mix_variances,
+                monitor: self.monitor,
+                spe_center_by_mode: alloc::vec![spe.center; k],
+                spe_spread_by_mode: alloc::vec![spe.spread; k],
+            }
+        }
+    }
+
     /// A model file as the host sees it: the model and its labels.
     #[derive(Debug, Clone, PartialEq)]
     pub struct ModelFile {
@@ -307,13 +364,22 @@ mod owned {
         }
 
         /// Decodes and validates a model file without device capacity limits.
+        /// A version 1 file is read too, with every mode at the global SPE
+        /// centre and spread (it then flags as it did); devices read only
+        /// [`FORMAT_VERSION`].
         pub fn from_bytes(bytes: &[u8]) -> Result<ModelFile, ModelError> {
-            let sections = split(bytes)?;
-            let (model, rest) = postcard::take_from_bytes::<ModelOwned>(sections.payload)
-                .map_err(|_| ModelError::Undecodable)?;
-            if !rest.is_empty() {
-                return Err(ModelError::Undecodable);
+            let sections = split_host(bytes)?;
+            fn whole<T: serde::de::DeserializeOwned>(b: &[u8]) -> Result<T, ModelError> {
+                match postcard::take_from_bytes::<T>(b) {
+                    Ok((v, [])) => Ok(v),
+                    _ => Err(ModelError::Undecodable),
+                }
             }
+            let model = if sections.version == 1 {
+                whole::<ModelV1>(sections.payload)?.upgrade()
+            } else {
+                whole::<ModelOwned>(sections.payload)?
+            };
             model.validate()?;
             let labels: Vec<Label> = if sections.labels.is_empty() {
                 Vec::new()

@@ -42,6 +42,8 @@ const FIELDS: &[&str] = &[
     "mix_means",
     "mix_variances",
     "monitor",
+    "spe_center_by_mode",
+    "spe_spread_by_mode",
 ];
 
 impl<'de> Visitor<'de> for ModelSeed<'_> {
@@ -66,6 +68,8 @@ impl<'de> Visitor<'de> for ModelSeed<'_> {
             mix_means,
             mix_variances,
             monitor,
+            spe_center_by_mode,
+            spe_spread_by_mode,
         } = self.0;
         let mut at = 0usize;
         field(&mut seq, &mut at, Assign(meta))?;
@@ -79,6 +83,8 @@ impl<'de> Visitor<'de> for ModelSeed<'_> {
         field(&mut seq, &mut at, Fill(mix_means))?;
         field(&mut seq, &mut at, Fill(mix_variances))?;
         field(&mut seq, &mut at, Assign(monitor))?;
+        field(&mut seq, &mut at, Fill(spe_center_by_mode))?;
+        field(&mut seq, &mut at, Fill(spe_spread_by_mode))?;
         Ok(())
     }
 }

@@ -86,7 +86,10 @@ pub struct MonitorParams {
     /// Calm means every CUSUM below `clear_fraction · h` and every EWMA below
     /// `clear_fraction · L`; in (0, 1].
     pub clear_fraction: f32,
-    /// Limits for SPE (Q).
+    /// Limits for SPE (Q). Its per-sample chart and CUSUM run on `u` with
+    /// this `center` and `spread`; its EWMA runs on the SPE standardised
+    /// within each sample's operating mode (`spe_center_by_mode`,
+    /// `spe_spread_by_mode`), and `ewma_limit` is on that scale.
     pub spe: ScoreLimits,
     /// Limits for Hotelling T².
     pub t2: ScoreLimits,
@@ -119,6 +122,10 @@ pub struct ModelView<'a> {
     pub mix_variances: &'a [f32],
     /// Monitor parameters.
     pub monitor: &'a MonitorParams,
+    /// Centre of the transformed SPE per mixture component, `k`.
+    pub spe_center_by_mode: &'a [f32],
+    /// Spread of the transformed SPE per mixture component, `k`.
+    pub spe_spread_by_mode: &'a [f32],
 }
 
 fn check_len(field: Field, slice: &[f32], expected: usize) -> Result<(), ModelError> {
@@ -244,7 +251,11 @@ impl ModelView<'_> {
         }
         check_finite(Field::MixMeans, self.mix_means)?;
         check_positive(Field::MixVariances, self.mix_variances)?;
-        self.monitor.validate()
+        self.monitor.validate()?;
+        check_len(Field::SpeByMode, self.spe_center_by_mode, k)?;
+        check_len(Field::SpeByMode, self.spe_spread_by_mode, k)?;
+        check_finite(Field::SpeByMode, self.spe_center_by_mode)?;
+        check_positive(Field::SpeByMode, self.spe_spread_by_mode)
     }
 }
 
@@ -280,6 +291,16 @@ macro_rules! model_type {
             pub mix_variances: $mixp,
             /// Streaming monitor parameters and limits.
             pub monitor: MonitorParams,
+            /// Centre of the transformed SPE (its cube root) among the
+            /// calibration samples whose most likely mixture component is
+            /// `c`, `k` values: the operating modes differ in how well PCA
+            /// reconstructs them.
+            pub spe_center_by_mode: $mix,
+            /// Spread (standard deviation, ddof = 1) of the same, `k`
+            /// values, > 0. The SPE's EWMA smooths
+            /// `(g(SPE) − center_c) / spread_c`, `c` the sample's most likely
+            /// component.
+            pub spe_spread_by_mode: $mix,
         }
 
         impl $name {
@@ -297,6 +318,8 @@ macro_rules! model_type {
                     mix_means: &self.mix_means,
                     mix_variances: &self.mix_variances,
                     monitor: &self.monitor,
+                    spe_center_by_mode: &self.spe_center_by_mode,
+                    spe_spread_by_mode: &self.spe_spread_by_mode,
                 }
             }
 
@@ -387,6 +410,8 @@ impl Model {
         mix_means: heapless::Vec::new(),
         mix_variances: heapless::Vec::new(),
         monitor: MonitorParams::ZERO,
+        spe_center_by_mode: heapless::Vec::new(),
+        spe_spread_by_mode: heapless::Vec::new(),
     };
 
     /// Returns to [`Model::EMPTY`] in place (no 6 KiB value is built).
@@ -403,6 +428,8 @@ impl Model {
             mix_means,
             mix_variances,
             monitor,
+            spe_center_by_mode,
+            spe_spread_by_mode,
         } = self;
         *meta = ModelMeta::ZERO;
         *dims = Dims::ZERO;
@@ -415,6 +442,8 @@ impl Model {
         mix_means.clear();
         mix_variances.clear();
         *monitor = MonitorParams::ZERO;
+        spe_center_by_mode.clear();
+        spe_spread_by_mode.clear();
     }
 
     /// Whether this is [`Model::EMPTY`]'s state: no features.
@@ -458,6 +487,8 @@ impl ModelOwned {
             mix_means: copy(&self.mix_means),
             mix_variances: copy(&self.mix_variances),
             monitor: self.monitor,
+            spe_center_by_mode: copy(&self.spe_center_by_mode),
+            spe_spread_by_mode: copy(&self.spe_spread_by_mode),
         })
     }
 }
@@ -477,6 +508,8 @@ impl From<&Model> for ModelOwned {
             mix_means: m.mix_means.to_vec(),
             mix_variances: m.mix_variances.to_vec(),
             monitor: m.monitor,
+            spe_center_by_mode: m.spe_center_by_mode.to_vec(),
+            spe_spread_by_mode: m.spe_spread_by_mode.to_vec(),
         }
     }
 }

@@ -53,6 +53,8 @@ fn tiny() -> ModelOwned {
         mix_means: vec![0.0],
         mix_variances: vec![1.5],
         monitor: support::monitor(),
+        spe_center_by_mode: vec![0.75],
+        spe_spread_by_mode: vec![0.25],
     }
 }
 
@@ -83,9 +85,9 @@ fn tiny_model_exact_bytes() {
     }
     .to_bytes()
     .unwrap();
-    // Header (FORMAT.md): magic, version 1, flags 0, payload length, labels length 0.
+    // Header (FORMAT.md): magic, version 2, flags 0, payload length, labels length 0.
     assert_eq!(&bytes[0..4], b"PLMD");
-    assert_eq!(&bytes[4..8], &[1, 0, 0, 0]);
+    assert_eq!(&bytes[4..8], &[2, 0, 0, 0]);
     let payload_len = u32::from_le_bytes(bytes[8..12].try_into().unwrap()) as usize;
     assert_eq!(&bytes[12..16], &[0, 0, 0, 0]);
     assert_eq!(bytes.len(), HEADER_LEN + payload_len + 4);
@@ -126,12 +128,15 @@ fn tiny_model_exact_bytes() {
     for (c, sd) in [(0.5, 0.3), (1.2, 0.4), (3.0, 1.0)] {
         f(&[100.0, c, sd, 0.5, 5.0, 0.8], false, &mut expect);
     }
+    // SPE centre and spread by mode, one component.
+    f(&[0.75], true, &mut expect);
+    f(&[0.25], true, &mut expect);
     assert_eq!(&bytes[HEADER_LEN..HEADER_LEN + payload_len], &expect[..]);
     // And the whole file, pinned: any change to the layout shows up here.
     let crc = u32::from_le_bytes(bytes[bytes.len() - 4..].try_into().unwrap());
     assert_eq!(crc, crc32(&bytes[..bytes.len() - 4]));
-    assert_eq!(payload_len, 159);
-    assert_eq!(crc, 0x33fb_ccd7, "pinned CRC of the tiny model file");
+    assert_eq!(payload_len, 169);
+    assert_eq!(crc, 0xccb4_7532, "pinned CRC of the tiny model file");
 }
 
 #[test]
@@ -198,8 +203,12 @@ fn each_framing_error_is_distinct() {
     assert_eq!(decode(&b), Err(ModelError::BadMagic));
 
     let mut b = good.clone();
-    b[4] = 2;
-    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 2 }));
+    b[4] = 3;
+    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 3 }));
+    // Version 1 (before the SPE by mode) is refused, not misread.
+    let mut b = good.clone();
+    b[4] = 1;
+    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 1 }));
 
     // Flag bit 0 is the signature's; any other set flag is unknown.
     let mut b = good.clone();
@@ -735,4 +744,42 @@ mod signed {
             prop_assert_eq!(signature::verify(&file::split(&signed).unwrap(), &trusted()), Ok(()));
         }
     }
+}
+
+/// A version 1 file (the layout before fields 28–29, as FORMAT.md's
+/// history gives it: the same header with version 1, the payload without
+/// the two trailing vectors) is read by the host with every mode at the
+/// global SPE centre and spread, so its EWMA smooths what a version 1
+/// detector smoothed; a device refuses it.
+#[test]
+fn a_version_1_file_reads_on_the_host_with_the_global_spe() {
+    let v2 = ModelFile {
+        model: tiny(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .unwrap();
+    let payload_len = u32::from_le_bytes(v2[8..12].try_into().unwrap()) as usize;
+    // k = 1: each vector is a length byte and one f32.
+    let v1_payload = &v2[HEADER_LEN..HEADER_LEN + payload_len - 10];
+    let mut v1 = Vec::new();
+    v1.extend_from_slice(&MAGIC);
+    v1.extend_from_slice(&1u16.to_le_bytes());
+    v1.extend_from_slice(&0u16.to_le_bytes());
+    v1.extend_from_slice(&(v1_payload.len() as u32).to_le_bytes());
+    v1.extend_from_slice(&0u32.to_le_bytes());
+    v1.extend_from_slice(v1_payload);
+    v1.extend_from_slice(&crc32(&v1).to_le_bytes());
+
+    let read = ModelFile::from_bytes(&v1).unwrap().model;
+    let mut want = tiny();
+    want.spe_center_by_mode = vec![want.monitor.spe.center];
+    want.spe_spread_by_mode = vec![want.monitor.spe.spread];
+    assert_eq!(read, want);
+    assert_eq!(decode(&v1), Err(ModelError::UnknownVersion { found: 1 }));
+    // A version 1 header over a version 2 payload does not decode.
+    let mut wrong = v2.clone();
+    wrong[4] = 1;
+    fix_crc(&mut wrong);
+    assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
 }

@@ -845,7 +845,11 @@ mod messages {
         for f in wire::FIELDS {
             assert_eq!(wire::field_from_code(wire::field_code(f)), Some(f));
         }
-        assert_eq!(wire::field_from_code(13), None);
+        assert_eq!(
+            wire::field_from_code(13),
+            Some(plumb_model::Field::SpeByMode)
+        );
+        assert_eq!(wire::field_from_code(14), None);
         assert_eq!(
             Reason::OutOfRange { field: 200 }.to_string(),
             "model refused (reason code 12)"

@@ -69,6 +69,8 @@ fn raw_pca_model(rows: &[f64], d: usize, m: usize) -> (ModelOwned, Vec<f64>) {
             t2: lim,
             nll: lim,
         },
+        spe_center_by_mode: vec![0.0],
+        spe_spread_by_mode: vec![1.0],
     };
     (model, values)
 }

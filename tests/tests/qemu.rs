@@ -268,8 +268,9 @@ fn default_model() -> Vec<u8> {
     std::fs::read(board_dir().join("default.plumb")).expect("read default.plumb")
 }
 
-/// A second model: the default with every CUSUM and EWMA limit halved and
-/// its own id, so it flags earlier and the greeting tells them apart.
+/// A second model: the default with every CUSUM and EWMA limit halved, the
+/// SPE's and T²'s per-sample limits halved too, and its own id, so it flags
+/// earlier and the greeting tells them apart.
 fn second_model() -> Vec<u8> {
     let mut f = ModelFile::from_bytes(&default_model()).expect("default model");
     f.model.meta.id ^= 0x5a5a_5a5a;
@@ -277,6 +278,9 @@ fn second_model() -> Vec<u8> {
     for lim in [&mut m.spe, &mut m.t2, &mut m.nll] {
         lim.cusum_limit *= 0.5;
         lim.ewma_limit *= 0.5;
+    }
+    for lim in [&mut m.spe, &mut m.t2] {
+        lim.sample_limit *= 0.5;
     }
     f.to_bytes().expect("encode the second model")
 }
@@ -770,6 +774,8 @@ fn too_many_components(model: &[u8]) -> Vec<u8> {
         let var: Vec<f32> = m.mix_variances[(k - 1) * c..k * c].to_vec();
         m.mix_means.extend(mean);
         m.mix_variances.extend(var);
+        m.spe_center_by_mode.push(m.spe_center_by_mode[k - 1]);
+        m.spe_spread_by_mode.push(m.spe_spread_by_mode[k - 1]);
     }
     m.dims.mixture = 9;
     m.meta.id ^= 0x0909_0909;

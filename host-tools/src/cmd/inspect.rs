@@ -56,7 +56,11 @@ pub fn run(args: InspectArgs) -> Result<u8> {
         }
         None => None,
     };
-    let summary = Summary::from_file(&file)?;
+    let mut summary = Summary::from_file(&file)?;
+    // What the header says (a version 1 file is read as the current one).
+    if let Ok(s) = plumb_model::file::split_host(&bytes) {
+        summary.model.format_version = s.version;
+    }
     if args.output.json {
         let mut v: serde_json::Value =
             serde_json::from_str(&summary.to_json()).map_err(|e| Error::input(e.to_string()))?;

@@ -72,7 +72,8 @@ pub enum ScoreKind {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub enum Statistic {
-    /// EWMA of the standardised transformed score (variant 0).
+    /// EWMA of the standardised transformed score (variant 0); the SPE's is
+    /// standardised within the sample's operating mode.
     Ewma,
     /// Upper CUSUM of the standardised transformed score (variant 1).
     Cusum,

@@ -106,5 +106,8 @@ pub fn example_model(d: usize, m: usize, k: usize, seed: u64) -> ModelOwned {
         mix_means,
         mix_variances,
         monitor: monitor(),
+        // Every mode as the global SPE centre and spread of `monitor()`.
+        spe_center_by_mode: vec![0.5; k],
+        spe_spread_by_mode: vec![0.3; k],
     }
 }

@@ -96,6 +96,8 @@ fn synthetic(d: usize, m: usize, k: usize) -> Option<Model> {
             t2: limits(),
             nll: limits(),
         },
+        spe_center_by_mode: heapless::Vec::new(),
+        spe_spread_by_mode: heapless::Vec::new(),
     };
     for _ in 0..d {
         model.mean.push(rng.next() * 0.1).ok()?;
@@ -110,6 +112,8 @@ fn synthetic(d: usize, m: usize, k: usize) -> Option<Model> {
     }
     for _ in 0..k {
         model.weights.push(1.0 / k as f32).ok()?;
+        model.spe_center_by_mode.push(1.0 + rng.next() * 0.1).ok()?;
+        model.spe_spread_by_mode.push(0.3 + rng.next() * 0.1).ok()?;
     }
     for _ in 0..k * m {
         model.mix_means.push(rng.next() * 0.5).ok()?;
