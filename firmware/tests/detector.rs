@@ -11,28 +11,24 @@ use plumb_model::{ModelError, ModelOwned};
 use proptest::prelude::*;
 use support::{example_model, Rng};
 
-/// f64 reference of the per-sample scores, written from the formulas in the
-/// crate docs, independent of the f32 code path.
-fn reference(model: &ModelOwned, x: &[f64]) -> (f64, f64, f64, f64) {
+/// f64 reference of a sample's standardised features `z`, latent scores
+/// `t = Pᵀz` and per-component log terms `ln π_c + ln N(t; ν_c, v_c)`,
+/// written from the formulas in the crate docs, independent of the f32 code
+/// path.
+fn reference_parts(model: &ModelOwned, x: &[f64]) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
     let d = model.dims.features as usize;
     let m = model.dims.components as usize;
     let k = model.dims.mixture as usize;
     let z: Vec<f64> = (0..d)
         .map(|i| (x[i] - model.mean[i] as f64) / model.scale[i] as f64)
         .collect();
-    let p = |i: usize, j: usize| model.loadings[i * m + j] as f64;
     let t: Vec<f64> = (0..m)
-        .map(|j| (0..d).map(|i| z[i] * p(i, j)).sum())
-        .collect();
-    let spe: f64 = (0..d)
-        .map(|i| {
-            let r = z[i] - (0..m).map(|j| p(i, j) * t[j]).sum::<f64>();
-            r * r
+        .map(|j| {
+            (0..d)
+                .map(|i| z[i] * model.loadings[i * m + j] as f64)
+                .sum()
         })
-        .sum();
-    let t2: f64 = (0..m)
-        .map(|j| t[j] * t[j] / model.eigenvalues[j] as f64)
-        .sum();
+        .collect();
     let logs: Vec<f64> = (0..k)
         .map(|c| {
             let mut a = (model.weights[c] as f64).ln();
@@ -44,6 +40,24 @@ fn reference(model: &ModelOwned, x: &[f64]) -> (f64, f64, f64, f64) {
             a
         })
         .collect();
+    (z, t, logs)
+}
+
+/// f64 reference of the per-sample scores ([`reference_parts`]).
+fn reference(model: &ModelOwned, x: &[f64]) -> (f64, f64, f64, f64) {
+    let d = model.dims.features as usize;
+    let m = model.dims.components as usize;
+    let (z, t, logs) = reference_parts(model, x);
+    let p = |i: usize, j: usize| model.loadings[i * m + j] as f64;
+    let spe: f64 = (0..d)
+        .map(|i| {
+            let r = z[i] - (0..m).map(|j| p(i, j) * t[j]).sum::<f64>();
+            r * r
+        })
+        .sum();
+    let t2: f64 = (0..m)
+        .map(|j| t[j] * t[j] / model.eigenvalues[j] as f64)
+        .sum();
     let best = logs.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
     let nll = -(best + logs.iter().map(|a| (a - best).exp()).sum::<f64>().ln());
     let znorm2 = z.iter().map(|v| v * v).sum();
@@ -117,37 +131,11 @@ fn f32_scores_match_f64_reference() {
 /// The first of the most likely mixture components by the f64 formulas,
 /// and how far ahead of the runner-up it is (log scale).
 fn reference_mode(model: &ModelOwned, x: &[f64]) -> (usize, f64) {
-    let d = model.dims.features as usize;
-    let m = model.dims.components as usize;
-    let k = model.dims.mixture as usize;
-    let z: Vec<f64> = (0..d)
-        .map(|i| (x[i] - model.mean[i] as f64) / model.scale[i] as f64)
-        .collect();
-    let t: Vec<f64> = (0..m)
-        .map(|j| {
-            (0..d)
-                .map(|i| z[i] * model.loadings[i * m + j] as f64)
-                .sum()
-        })
-        .collect();
-    let mut logs: Vec<(f64, usize)> = (0..k)
-        .map(|c| {
-            let mut a = (model.weights[c] as f64).ln();
-            for j in 0..m {
-                let v = model.mix_variances[c * m + j] as f64;
-                let e = t[j] - model.mix_means[c * m + j] as f64;
-                a -= 0.5 * ((2.0 * std::f64::consts::PI * v).ln() + e * e / v);
-            }
-            (a, c)
-        })
-        .collect();
-    logs.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)));
-    let gap = if k > 1 {
-        logs[0].0 - logs[1].0
-    } else {
-        f64::INFINITY
-    };
-    (logs[0].1, gap)
+    let (_, _, logs) = reference_parts(model, x);
+    let mut ranked: Vec<(f64, usize)> = logs.into_iter().zip(0..).collect();
+    ranked.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)));
+    let gap = ranked.get(1).map_or(f64::INFINITY, |r| ranked[0].0 - r.0);
+    (ranked[0].1, gap)
 }
 
 /// The SPE's EWMA smooths the SPE standardised within each sample's mode
