@@ -124,7 +124,8 @@ pub(crate) struct Bucket {
     pub drifting: u32,
     /// `u` of each score, per sample (faulted samples have none).
     pub raw: [Span; 3],
-    /// The detector's EWMA of `u`.
+    /// The detector's EWMA of `u` (for SPE, of the SPE standardised within
+    /// each sample's operating mode).
     pub ewma: [Span; 3],
     /// The detector's CUSUM of `u` over its limit `h`.
     pub cusum: [Span; 3],

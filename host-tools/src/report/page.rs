@@ -311,7 +311,9 @@ fn legend(o: &mut String, c: &Collected<'_>) {
         "<section id=\"reading\">\n<h2>Reading the timelines</h2>\n<p>Each score is drawn on the \
          detector's own scale, <i>u</i> = (∛score − centre)/spread (for the NLL, ∛ of its excess over \
          the model's floor); the right axis gives the raw score at the same heights. The dark line \
-         is the detector's EWMA of <i>u</i> (λ = {}); it, not the raw score, raises flags, together \
+         is the detector's EWMA of <i>u</i> (λ = {}; for SPE, of ∛SPE standardised with the centre \
+         and spread of each sample's operating mode, its most likely mixture component, so it can sit \
+         above or below the points); it, not the raw score, raises flags, together \
          with the CUSUM in the strip below (drawn as CUSUM/<i>h</i>). A flag rises after {} hot \
          samples in a row and clears after {} calm ones (every chart below {} of its limit) and at \
          least {} samples up. Long logs are reduced to one column per pixel, keeping each \
