@@ -152,8 +152,8 @@ pub fn transform(score: Score, value: f32, nll_floor: f32) -> f32 {
 }
 
 /// The monitored value of a score: `u = (g(value) − center) / spread`, with
-/// `g` the [`transform`]. The detector and the host calibration both use this
-/// function, so they agree to the bit.
+/// `g` the [`transform`]. The detector's update and the host calibration
+/// compute this same f32 expression, so they agree to the bit.
 pub fn standardise(score: Score, value: f32, nll_floor: f32, lim: &ScoreLimits) -> f32 {
     (transform(score, value, nll_floor) - lim.center) / lim.spread
 }
