@@ -618,8 +618,8 @@ pub fn fit(
         mix_variances: f32s(&mix.variances),
         monitor: cfg.calib.placeholder(),
         // Set by the calibration.
-        spe_center_by_mode: vec![0.0; k],
-        spe_spread_by_mode: vec![1.0; k],
+        spe_center_by_mode: Vec::new(),
+        spe_spread_by_mode: Vec::new(),
     };
     let device = Capacity::DEVICE.admits(&dims).is_ok();
     let calib_stage = |label: &str, total: u64| progress.stage(label, total, true);

@@ -62,10 +62,9 @@ fn slot_name(s: Slot) -> &'static str {
 /// Runs `plumb upload`.
 pub fn run(args: UploadArgs) -> Result<u8> {
     let bytes = std::fs::read(&args.model).map_err(|e| Error::io(&args.model, "read", &e))?;
-    // A file only the host reads (an older format) would be refused by
-    // the board: say so here.
-    let board_reads = plumb_model::file::split(&bytes).map(|_| ());
-    let names = match ModelFile::from_bytes(&bytes).and_then(|f| board_reads.map(|()| f)) {
+    // The board's framing check first: a file only the host reads (an older
+    // format) would be refused by the board, so say so here.
+    let names = match plumb_model::file::split(&bytes).and_then(|_| ModelFile::from_bytes(&bytes)) {
         Ok(f) => Names::from_labels(&f.labels),
         Err(e) if args.unchecked => {
             eprintln!("plumb: note: sending a file the host refuses ({e})");
