@@ -126,8 +126,8 @@ pub fn text(reps: &[LogReplay]) -> String {
         ));
         for (i, f) in r.flags.iter().enumerate() {
             let cleared = match f.cleared_at {
-                Some(c) => fmt_at(c, f.cleared_t),
-                None => "still raised".to_string(),
+                Some(c) => format!("cleared at {}", fmt_at(c, f.cleared_t)),
+                None => "still raised at the end of the log".to_string(),
             };
             let top: Vec<String> = f
                 .top_features
@@ -135,7 +135,7 @@ pub fn text(reps: &[LogReplay]) -> String {
                 .map(|c| format!("{} {:.3}", c.name, c.value))
                 .collect();
             s.push_str(&format!(
-                "  flag {}: raised at {} by {}; cleared {}; top residuals: {}\n",
+                "  flag {}: raised at {} by {}; {}; top residuals: {}\n",
                 i + 1,
                 fmt_at(f.raised_at, f.raised_t),
                 f.scores.join("+"),
@@ -497,6 +497,26 @@ mod tests {
             over_sample_limit: [0; 3],
             period_s: None,
         }
+    }
+
+    #[test]
+    fn the_table_says_when_each_flag_cleared_or_that_it_did_not() {
+        let mut f = flag(40, Some(90), &["spe"]);
+        f.raised_t = Some(4.0);
+        f.cleared_t = Some(9.0);
+        let text = text(&[rep(vec![f, flag(95, None, &["t2", "nll"])])]);
+        assert!(
+            text.contains("flag 1: raised at 40 (4.0 s) by spe; cleared at 90 (9.0 s); "),
+            "{text}"
+        );
+        assert!(
+            text.contains("flag 2: raised at 95 by t2+nll; still raised at the end of the log; "),
+            "{text}"
+        );
+        assert!(
+            text.ends_with("1 of 1 logs raised a drift flag\n"),
+            "{text}"
+        );
     }
 
     #[test]
