@@ -58,16 +58,7 @@ def main():
     args = ap.parse_args()
     t0 = time.perf_counter()
 
-    names, train, _ = rc.read_folder(os.path.join(rc.LOGS, "train"))
-    train = np.vstack(train)
-    _, cal_x, _ = rc.read_folder(os.path.join(rc.LOGS, "generated", "calibration"))
-    _, ev_x, _ = rc.read_folder(os.path.join(rc.LOGS, "generated", "evaluation"))
-    drift_x = {}
-    for s in rc.SCENARIOS:
-        n, x = rc.read_log(os.path.join(rc.LOGS, "drift", s + ".csv"))
-        if n != names:
-            sys.exit(f"{s}: columns differ from training")
-        drift_x[s] = x
+    names, train, cal_x, ev_x, drift_x = rc.read_study_logs()
     energy = [i for i, n in enumerate(names) if n.startswith(ENERGY)]
     floor = 1e-6 * np.median(train[:, energy], axis=0)
 

@@ -104,8 +104,7 @@ def main():
     args = ap.parse_args()
     t0 = time.perf_counter()
 
-    names, train, _ = rc.read_folder(os.path.join(rc.LOGS, "train"))
-    train = np.vstack(train)
+    _, train, cal_x, ev_x, drift_x = rc.read_study_logs()
     model = rc.Residuals(train)
     m = model.m
     # Latent scores: the first m eigenvectors (Residuals keeps only the projector).
@@ -121,17 +120,10 @@ def main():
         g = np.cbrt(np.einsum("ij,ij->i", r, r))
         return g, gmm.predict(z @ p)
 
-    _, cal_x, _ = rc.read_folder(os.path.join(rc.LOGS, "generated", "calibration"))
-    _, ev_x, _ = rc.read_folder(os.path.join(rc.LOGS, "generated", "evaluation"))
     cal = [scores(x) for x in cal_x]
     ev = [scores(x) for x in ev_x]
-    drift = {}
-    for s in rc.SCENARIOS:
-        n, x = rc.read_log(os.path.join(rc.LOGS, "drift", s + ".csv"))
-        if n != names:
-            sys.exit(f"{s}: columns differ from training")
-        drift[s] = scores(x)
-    del cal_x, ev_x
+    drift = {s: scores(x) for s, x in drift_x.items()}
+    del cal_x, ev_x, drift_x
 
     g_all = np.concatenate([g for g, _ in cal])
     c_all = np.concatenate([c for _, c in cal])

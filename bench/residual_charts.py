@@ -98,6 +98,22 @@ def read_folder(folder):
     return names, logs, paths
 
 
+def read_study_logs():
+    """The logs every study reads: feature names, the training rows stacked,
+    the calibration and evaluation logs (lists of arrays) and each drift
+    scenario's log by name; exits when a drift log's columns differ."""
+    names, train, _ = read_folder(os.path.join(LOGS, "train"))
+    _, cal, _ = read_folder(os.path.join(LOGS, "generated", "calibration"))
+    _, ev, _ = read_folder(os.path.join(LOGS, "generated", "evaluation"))
+    drift = {}
+    for s in SCENARIOS:
+        n, x = read_log(os.path.join(LOGS, "drift", s + ".csv"))
+        if n != names:
+            sys.exit(f"{s}: columns differ from training")
+        drift[s] = x
+    return names, np.vstack(train), cal, ev, drift
+
+
 def truth_features():
     """Scenario → set of features it changes (demo-logs/truth.csv); for labelling only."""
     out = {}
