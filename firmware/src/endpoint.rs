@@ -26,7 +26,11 @@
 //!   raised or cleared message follows a state change, a sensor fault
 //!   message the start of a fault (repeats are only counted), a score report
 //!   every sample while reports are on, and a status message every
-//!   [`Config::status_every`] samples;
+//!   [`Config::status_every`] samples; a board's own feature pipeline hands
+//!   its samples to [`Endpoint::sample`], which takes them the same way;
+//! * while echoes are on ([`HostMsg::SetEcho`]) every sample taken is first
+//!   sent back as it was taken (`DeviceMsg::Features`, 31 features a
+//!   message), so a host can record what the board saw and refit from it;
 //! * drift raised, drift cleared and sensor fault messages are kept, as the
 //!   frames sent, in a ring of `R` bytes (default [`DEFAULT_RING_BYTES`])
 //!   and sent again, byte for byte with their original sequence numbers, on
@@ -83,12 +87,12 @@ use embedded_io::{ErrorType, Read, ReadReady, Write};
 #[cfg(feature = "signatures")]
 use plumb_model::signature::{self, TrustedKey};
 use plumb_model::wire::{
-    self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, FaultKind, FaultTally, Greeting,
-    HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal, Request, ResendDone,
-    ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State, Statistic, Status,
-    MAX_DEVICE_FRAME,
+    self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, EchoValues, FaultKind, FaultTally,
+    FeatureEcho, Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal,
+    Request, ResendDone, ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State,
+    Statistic, Status, ECHO_CHUNK, MAX_DEVICE_FRAME,
 };
-use plumb_model::{Capacity, ModelError, ScoreLimits};
+use plumb_model::{Capacity, ModelError, ScoreLimits, MAX_FEATURES};
 
 /// Bytes of retained event frames kept for resend unless the type says
 /// otherwise: the last 64 sensor fault starts (16 bytes each), or the last
@@ -314,6 +318,7 @@ pub struct Endpoint<S, P, const R: usize = DEFAULT_RING_BYTES, D = Places<R>> {
     seq: u32,
     dropped: u32,
     reports: bool,
+    echo: bool,
     config: Config,
     since_status: u32,
     last_fault: Option<Fault>,
@@ -346,6 +351,7 @@ impl<S, P, const R: usize, D: BorrowMut<Places<R>>> Endpoint<S, P, R, D> {
             seq: 0,
             dropped: 0,
             reports: false,
+            echo: false,
             config: Config::DEFAULT,
             since_status: 0,
             last_fault: None,
@@ -507,6 +513,11 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         self.reports
     }
 
+    /// Whether feature echoes are on ([`HostMsg::SetEcho`]).
+    pub fn echo(&self) -> bool {
+        self.echo
+    }
+
     /// The slot storage.
     pub fn slots(&self) -> &S {
         &self.slots
@@ -614,6 +625,30 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         out.first.map_or(Ok(polled), Err)
     }
 
+    /// Takes a sample the device produced itself (its own feature pipeline,
+    /// in model order) as its next sample, exactly as a
+    /// [`HostMsg::Sample`] sent at the device's next index is taken: the
+    /// detector updates, and the echo, score report, events and status that
+    /// follow are written to `io`. Samples from the host and from the
+    /// device share one index, so a board takes its samples from one
+    /// source.
+    pub fn sample<W: Write>(
+        &mut self,
+        features: &[f32],
+        io: &mut W,
+    ) -> Result<(), Error<W::Error>> {
+        let mut out = Out {
+            io,
+            first: None,
+            sent: 0,
+        };
+        self.on_sample(features, &mut out);
+        if out.sent > 0 {
+            let _ = out.io.flush().map_err(|e| out.fail(Error::Link(e)));
+        }
+        out.first.map_or(Ok(()), Err)
+    }
+
     fn next_seq_take(&mut self) -> u32 {
         let s = self.seq;
         self.seq = self.seq.wrapping_add(1);
@@ -687,18 +722,24 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
                 self.send(out, DeviceMsg::Ack(Ack::StatsReset));
             }
             HostMsg::GreetingQuery => self.send_greeting(out),
+            HostMsg::SetEcho { on } => {
+                self.echo = *on;
+                self.send(out, DeviceMsg::Ack(Ack::Echo { on: *on }));
+            }
         }
         false
     }
 
     fn send_greeting<W: Write>(&mut self, out: &mut Out<'_, W>) {
         let model = self.running().model();
-        let mut firmware = heapless::String::new();
-        for c in self.config.firmware.chars() {
-            if firmware.push(c).is_err() {
-                break;
-            }
+        // The longest prefix that fits, cut at a character boundary.
+        let text = self.config.firmware;
+        let mut end = text.len().min(wire::FIRMWARE_LEN);
+        while !text.is_char_boundary(end) {
+            end -= 1;
         }
+        let mut firmware = heapless::String::new();
+        let _ = firmware.push_str(text.get(..end).unwrap_or(""));
         let g = Greeting {
             protocol: wire::PROTOCOL_VERSION,
             firmware,
@@ -742,6 +783,20 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
     }
 
     fn on_sample<W: Write>(&mut self, x: &[f32], out: &mut Out<'_, W>) {
+        if self.echo {
+            let sample = self.running().samples();
+            // At most MAX_FEATURES features are echoed (a longer slice is a
+            // wrong-length fault anyway), so `first` fits a byte.
+            let parts = x.chunks(ECHO_CHUNK).take(MAX_FEATURES.div_ceil(ECHO_CHUNK));
+            for (i, part) in parts.enumerate() {
+                let echo = FeatureEcho {
+                    sample,
+                    first: (i * ECHO_CHUNK) as u8,
+                    values: EchoValues::new(part),
+                };
+                self.send(out, DeviceMsg::Features(echo));
+            }
+        }
         let o = self.running_mut().update(x);
         if self.reports {
             let report = ScoreReport {

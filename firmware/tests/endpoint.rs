@@ -1871,3 +1871,139 @@ mod flash_slots {
         }
     }
 }
+
+mod echo {
+    use super::*;
+    use plumb_model::wire::FeatureEcho;
+
+    fn echoes(frames: &[DeviceFrame]) -> Vec<FeatureEcho> {
+        frames
+            .iter()
+            .filter_map(|f| match &f.msg {
+                DeviceMsg::Features(e) => Some(e.clone()),
+                _ => None,
+            })
+            .collect()
+    }
+
+    fn bits(x: &[f32]) -> Vec<u32> {
+        x.iter().map(|v| v.to_bits()).collect()
+    }
+
+    /// Off by default; once on, every sample the detector takes is echoed
+    /// before anything it causes, bit for bit (a NaN's payload and −0.0
+    /// too) with its index; a sample not taken is not echoed; off again,
+    /// nothing.
+    #[test]
+    fn each_taken_sample_is_echoed_bit_for_bit() {
+        let mut rig: Rig = Rig::new();
+        let mut g = Lcg(11);
+        assert!(!rig.ep.echo());
+        assert!(echoes(&rig.sample(&g.nominal())).is_empty());
+        assert_eq!(
+            rig.ask(&HostMsg::SetEcho { on: true }),
+            DeviceMsg::Ack(Ack::Echo { on: true })
+        );
+        assert!(rig.ep.echo());
+        rig.ask(&HostMsg::SetReports { on: true });
+        let mut samples = mixed_samples(3, 60);
+        samples[7] = vec![-0.0, f32::from_bits(0x7fc0_1234), f32::MIN_POSITIVE, 1e30];
+        for x in &samples {
+            let at = rig.ep.detector().samples();
+            let frames = rig.sample(x);
+            let DeviceMsg::Features(e) = &frames[0].msg else {
+                panic!("echo first: {frames:?}")
+            };
+            assert_eq!((e.sample, e.first), (at, 0));
+            assert_eq!(bits(&e.values.iter().collect::<Vec<_>>()), bits(x));
+            assert_eq!(echoes(&frames).len(), 1, "{frames:?}");
+            // The report of the same sample follows, numbered next.
+            let r = reports(&frames);
+            assert_eq!(r.len(), 1);
+            assert_eq!(r[0].sample, at);
+            assert_eq!(frames[1].seq, frames[0].seq.wrapping_add(1));
+        }
+        // Sent again after it was taken: not taken, not echoed.
+        let at = rig.ep.detector().samples();
+        let again = rig.send(&sample_at(at - 1, &samples[0]));
+        assert!(echoes(&again).is_empty(), "{again:?}");
+        assert_eq!(
+            rig.ask(&HostMsg::SetEcho { on: false }),
+            DeviceMsg::Ack(Ack::Echo { on: false })
+        );
+        assert!(echoes(&rig.sample(&g.nominal())).is_empty());
+    }
+
+    /// A sample of more than `ECHO_CHUNK` features goes out in parts of 31:
+    /// 64 features (a wrong-length fault for this 4-feature model, echoed
+    /// all the same: it is what the device took) as 31 + 31 + 2.
+    #[test]
+    fn long_samples_are_echoed_in_parts() {
+        let mut rig: Rig = Rig::new();
+        rig.ask(&HostMsg::SetEcho { on: true });
+        let x: Vec<f32> = (0..64).map(|i| i as f32 * 0.25 - 3.0).collect();
+        let frames = rig.sample(&x);
+        let parts = echoes(&frames);
+        let shape: Vec<(u64, u8, usize)> = parts
+            .iter()
+            .map(|e| (e.sample, e.first, e.values.len()))
+            .collect();
+        assert_eq!(shape, [(0, 0, 31), (0, 31, 31), (0, 62, 2)]);
+        let joined: Vec<f32> = parts.iter().flat_map(|e| e.values.iter()).collect();
+        assert_eq!(bits(&joined), bits(&x));
+        assert!(frames.iter().any(|f| matches!(
+            f.msg,
+            DeviceMsg::SensorFault(wire::SensorFault {
+                fault: FaultKind::WrongLength { got: 64 },
+                ..
+            })
+        )));
+    }
+
+    /// `Endpoint::sample` (a board's own feature pipeline) says exactly
+    /// what the same samples sent over the link make it say: the same
+    /// frames, byte for byte, events and echoes included.
+    #[test]
+    fn local_samples_speak_as_linked_ones() {
+        let samples = mixed_samples(5, 200);
+        let mut linked: Rig = Rig::new();
+        let mut local: Rig = Rig::new();
+        for rig in [&mut linked, &mut local] {
+            rig.ask(&HostMsg::SetEcho { on: true });
+            rig.ask(&HostMsg::SetReports { on: true });
+        }
+        let mut a = Vec::new();
+        let mut b = Vec::new();
+        for x in &samples {
+            a.extend(linked.sample(x));
+            local.ep.sample(x, &mut local.pipe).unwrap();
+            b.extend(local.run());
+        }
+        assert_eq!(a, b);
+        assert!(a.iter().any(|f| matches!(f.msg, DeviceMsg::DriftRaised(_))));
+        assert_eq!(echoes(&a).len(), samples.len());
+        assert_eq!(linked.ep.detector(), local.ep.detector());
+    }
+
+    /// The greeting carries the longest prefix of the firmware text that
+    /// fits `FIRMWARE_LEN` bytes, cut at a character boundary.
+    #[test]
+    fn greeting_cuts_a_long_firmware_text_at_a_character() {
+        for (text, want) in [
+            ("0123456789abcdeü-rc1", "0123456789abcde"),
+            ("0123456789abcdef-rc1", "0123456789abcdef"),
+            ("1.2.3", "1.2.3"),
+        ] {
+            let mut rig: Rig = Rig::new();
+            let config = Config {
+                firmware: text,
+                ..rig.ep.config()
+            };
+            rig.ep.set_config(config);
+            let DeviceMsg::Greeting(g) = rig.ask(&HostMsg::GreetingQuery) else {
+                panic!()
+            };
+            assert_eq!(g.firmware.as_str(), want);
+        }
+    }
+}

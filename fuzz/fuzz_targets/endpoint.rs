@@ -189,6 +189,7 @@ fn stream(ops: &[Op]) -> Vec<u8> {
             Op::StatusQuery => HostMsg::StatusQuery,
             Op::ResendFrom(seq) => HostMsg::ResendFrom { seq: *seq },
             Op::SetReports(on) => HostMsg::SetReports { on: *on },
+            Op::SetEcho(on) => HostMsg::SetEcho { on: *on },
             Op::ResetStats => {
                 at = 0;
                 HostMsg::ResetStats

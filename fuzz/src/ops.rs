@@ -51,6 +51,8 @@ pub enum Op {
     ResendFrom(u32),
     /// Reports on or off.
     SetReports(bool),
+    /// Feature echoes on or off.
+    SetEcho(bool),
     /// Statistics reset.
     ResetStats,
     /// Greeting query.
@@ -155,7 +157,12 @@ impl Input {
                 4 => Op::Near([r.u8(), r.u8(), r.u8(), r.u8()].map(|b| b as i8)),
                 5 => Op::StatusQuery,
                 6 => Op::ResendFrom(r.u32()),
-                7 => Op::SetReports(r.u8() & 1 == 1),
+                // Bit 1 picks the feature echo switch (older inputs have
+                // 0 or 1 here and keep their meaning).
+                7 => match r.u8() {
+                    b if b & 2 != 0 => Op::SetEcho(b & 1 == 1),
+                    b => Op::SetReports(b & 1 == 1),
+                },
                 8 => Op::ResetStats,
                 9 => Op::GreetingQuery,
                 10 => Op::Begin {
@@ -225,6 +232,7 @@ impl Input {
                     out.extend(s.to_le_bytes());
                 }
                 Op::SetReports(on) => out.extend([7, u8::from(*on)]),
+                Op::SetEcho(on) => out.extend([7, 2 | u8::from(*on)]),
                 Op::ResetStats => out.push(8),
                 Op::GreetingQuery => out.push(9),
                 Op::Begin { total, crc } => {

@@ -167,6 +167,7 @@ pub fn request_name(msg: &HostMsg) -> &'static str {
         HostMsg::UploadCommit => "an upload commit",
         HostMsg::ResetStats => "a statistics reset",
         HostMsg::GreetingQuery => "a greeting query",
+        HostMsg::SetEcho { .. } => "a feature-echo switch",
     }
 }
 

@@ -17,6 +17,7 @@
 //! | `fault` | a sensor fault began | `seq sample kind feature` |
 //! | `status` | health | `seq samples state hot faults levels link last_event model` |
 //! | `score` | per-sample report | `seq sample state spe t2 nll` (or `faulted`) |
+//! | `features` | a sample's features echoed (or part of them) | `seq sample first values` (comma-separated) |
 //! | `ack` | a request done | `seq what ...` |
 //! | `refused` | a request refused | `seq request code reason` |
 //! | `resend` | end of a resend | `seq from count oldest dropped` |
@@ -84,7 +85,7 @@ pub struct LinePrinter<W: Write> {
     out: W,
     format: LineFormat,
     names: Names,
-    /// Print per-sample score reports (they can be many).
+    /// Print per-sample score reports and feature echoes (they can be many).
     pub scores: bool,
 }
 
@@ -102,7 +103,12 @@ impl<W: Write> LinePrinter<W> {
 
 impl<W: Write> EventSink for LinePrinter<W> {
     fn frame(&mut self, r: &Received) {
-        if !self.scores && matches!(r.frame.msg, DeviceMsg::ScoreReport(_)) {
+        if !self.scores
+            && matches!(
+                r.frame.msg,
+                DeviceMsg::ScoreReport(_) | DeviceMsg::Features(_)
+            )
+        {
             return;
         }
         let line = match self.format {
@@ -412,6 +418,15 @@ pub fn text_line(r: &Received, names: &Names) -> String {
                 state_name(rep.state)
             ),
         },
+        DeviceMsg::Features(e) => {
+            let values: Vec<String> = e.values.iter().map(|v| v.to_string()).collect();
+            format!(
+                "features seq={seq} sample={} first={} values={}",
+                e.sample,
+                e.first,
+                values.join(",")
+            )
+        }
         DeviceMsg::Ack(a) => format!("ack seq={seq} {}", ack_text(a)),
         DeviceMsg::Refused(r) => format!(
             "refused seq={seq} request={} code={} reason={:?}",
@@ -445,6 +460,7 @@ fn ack_text(a: &Ack) -> String {
         }
         Ack::ChunkTaken { next } => format!("what=chunk-taken next={next}"),
         Ack::NotTaken { at, next } => format!("what=sample-not-taken at={at} next={next}"),
+        Ack::Echo { on } => format!("what=echo on={}", u8::from(*on)),
         Ack::ModelSwitched {
             slot,
             model_id,
@@ -501,6 +517,10 @@ pub fn json_line(r: &Received, names: &Names) -> Value {
         DeviceMsg::ScoreReport(rep) => json!({
             "event": "score", "seq": seq, "sample": rep.sample, "state": state_name(rep.state),
             "scores": rep.scores.as_ref().map(scores_json),
+        }),
+        DeviceMsg::Features(e) => json!({
+            "event": "features", "seq": seq, "sample": e.sample, "first": e.first,
+            "values": e.values.iter().collect::<Vec<f32>>(),
         }),
         DeviceMsg::Ack(a) => json!({"event": "ack", "seq": seq, "detail": ack_text(a)}),
         DeviceMsg::Refused(r) => json!({
@@ -611,7 +631,8 @@ impl<W: Write> Recorder<W> {
 
 impl<W: Write> EventSink for Recorder<W> {
     fn frame(&mut self, r: &Received) {
-        if self.error.is_some() {
+        // Feature echoes are samples, not events (`SampleRecorder`).
+        if self.error.is_some() || matches!(r.frame.msg, DeviceMsg::Features(_)) {
             return;
         }
         if let Err(e) = self.row(r) {
@@ -620,6 +641,118 @@ impl<W: Write> EventSink for Recorder<W> {
     }
 
     fn finish(&mut self, _stats: &LinkStats) {
+        if let Err(e) = self.out.flush() {
+            self.error.get_or_insert(e);
+        }
+    }
+}
+
+/// Writes the samples a device echoes ([`DeviceMsg::Features`]) as a log
+/// `plumb fit` reads: a header `t[s],<feature>[<unit>],...` (the model's
+/// labels), then one row per sample whose every feature arrived: its time,
+/// the device's sample index times the model's sample period (a gap in the
+/// times is a gap in the samples; with no period in the model, the seconds
+/// since recording began), and its features as the shortest decimals that
+/// read back to the same `f32`. A sample with a part missing (a frame lost
+/// on the link: echoes are not kept for resend) is left out and counted.
+pub struct SampleRecorder<W: Write> {
+    out: W,
+    features: usize,
+    period_us: u32,
+    start: std::time::Instant,
+    /// The sample being put together: its index and its values so far.
+    pending: Option<(u64, Vec<Option<f32>>)>,
+    /// Rows written.
+    pub rows: u64,
+    /// Samples left out because a part never arrived.
+    pub incomplete: u64,
+    /// Echo parts that do not fit the model (past its last feature).
+    pub misfits: u64,
+    error: Option<std::io::Error>,
+}
+
+impl<W: Write> SampleRecorder<W> {
+    /// Starts a recording of samples of a model with `labels` and a sample
+    /// period of `period_us` microseconds (0: unknown); writes the header.
+    pub fn new(mut out: W, labels: &[Label], period_us: u32) -> std::io::Result<Self> {
+        let mut cols = vec!["t[s]".to_string()];
+        cols.extend(labels.iter().map(|l| {
+            if l.unit.is_empty() {
+                l.name.clone()
+            } else {
+                format!("{}[{}]", l.name, l.unit)
+            }
+        }));
+        writeln!(out, "{}", cols.join(","))?;
+        Ok(SampleRecorder {
+            out,
+            features: labels.len(),
+            period_us,
+            start: std::time::Instant::now(),
+            pending: None,
+            rows: 0,
+            incomplete: 0,
+            misfits: 0,
+            error: None,
+        })
+    }
+
+    /// The first write error, if any.
+    pub fn take_error(&mut self) -> Option<std::io::Error> {
+        self.error.take()
+    }
+
+    fn part(&mut self, sample: u64, first: usize, values: impl Iterator<Item = f32>) {
+        if self.pending.as_ref().is_some_and(|(s, _)| *s != sample) {
+            // A new sample before the last was whole: a part was lost.
+            self.pending = None;
+            self.incomplete += 1;
+        }
+        let d = self.features;
+        let (_, row) = self.pending.get_or_insert_with(|| (sample, vec![None; d]));
+        for (j, v) in values.enumerate() {
+            match row.get_mut(first + j) {
+                Some(slot) => *slot = Some(v),
+                None => {
+                    self.misfits += 1;
+                    return;
+                }
+            }
+        }
+        if row.iter().all(Option::is_some) {
+            let mut line = if self.period_us > 0 {
+                // In whole microseconds: exact.
+                let us = u128::from(sample) * u128::from(self.period_us);
+                format!("{}.{:06}", us / 1_000_000, us % 1_000_000)
+            } else {
+                format!("{:.3}", self.start.elapsed().as_secs_f64())
+            };
+            for v in row.iter().flatten() {
+                line.push(',');
+                line.push_str(&v.to_string());
+            }
+            self.pending = None;
+            match writeln!(self.out, "{line}") {
+                Ok(()) => self.rows += 1,
+                Err(e) => {
+                    self.error.get_or_insert(e);
+                }
+            }
+        }
+    }
+}
+
+impl<W: Write> EventSink for SampleRecorder<W> {
+    fn frame(&mut self, r: &Received) {
+        if let DeviceMsg::Features(e) = &r.frame.msg {
+            self.part(e.sample, usize::from(e.first), e.values.iter());
+        }
+    }
+
+    fn finish(&mut self, _stats: &LinkStats) {
+        if self.pending.take().is_some() {
+            self.incomplete += 1;
+        }
         if let Err(e) = self.out.flush() {
             self.error.get_or_insert(e);
         }

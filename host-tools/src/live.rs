@@ -638,6 +638,7 @@ impl LiveState {
                     self.faults.pop_front();
                 }
             }
+            DeviceMsg::Features(e) => self.see_sample(e.sample),
             DeviceMsg::ScoreReport(rep) => {
                 self.reports += 1;
                 self.state = Some(rep.state);
@@ -665,6 +666,9 @@ impl LiveState {
                     Ack::ChunkTaken { next } => format!("upload: {next} bytes taken"),
                     Ack::NotTaken { at: sent, next } => {
                         format!("sample {sent} not taken: the board takes {next} next")
+                    }
+                    Ack::Echo { on } => {
+                        format!("feature echoes {}", if *on { "on" } else { "off" })
                     }
                     Ack::ModelSwitched {
                         slot,

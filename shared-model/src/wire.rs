@@ -63,9 +63,9 @@ pub const MAX_HOST_MESSAGE: usize = max(
     1 + varint_len(u32::MAX as u64) + varint_len(MAX_CHUNK as u64) + MAX_CHUNK,
 );
 
-/// Bound on the postcard encoding of a [`DeviceFrame`] (the longest, a drift
-/// raised message with nine crossings, takes 135 bytes; tests check every
-/// variant at its worst).
+/// Bound on the postcard encoding of a [`DeviceFrame`] (the longest, a
+/// feature echo of [`ECHO_CHUNK`] values, takes 142 bytes, and a drift raised
+/// message with nine crossings 135; tests check every variant at its worst).
 pub const MAX_DEVICE_MESSAGE: usize = 144;
 
 /// Longest host → device frame, delimiter included.

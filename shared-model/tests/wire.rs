@@ -4,11 +4,11 @@
 use plumb_model::signature::KeyId;
 use plumb_model::wire::{
     self, cobs, decode_frame, encode_frame, Ack, Crossing, DeviceFrame, DeviceFrameDecoder,
-    DeviceMsg, DriftCleared, DriftRaised, FaultKind, FaultTally, FrameDecoder, FrameError,
-    Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal, Request, ResendDone,
-    ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State, Statistic, Status,
-    MAX_CHUNK, MAX_CROSSINGS, MAX_DEVICE_FRAME, MAX_DEVICE_MESSAGE, MAX_HOST_FRAME,
-    MAX_HOST_MESSAGE,
+    DeviceMsg, DriftCleared, DriftRaised, EchoValues, FaultKind, FaultTally, FeatureEcho,
+    FrameDecoder, FrameError, Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason,
+    Refusal, Request, ResendDone, ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot,
+    State, Statistic, Status, ECHO_CHUNK, MAX_CHUNK, MAX_CROSSINGS, MAX_DEVICE_FRAME,
+    MAX_DEVICE_MESSAGE, MAX_HOST_FRAME, MAX_HOST_MESSAGE,
 };
 use plumb_model::{Capacity, Dim, Dims, Field, ModelError, MAX_FEATURES};
 use proptest::prelude::*;
@@ -474,6 +474,48 @@ mod exact_bytes {
             "07 05 05 f0 a2 04 01 01 01 02 3f 01 01 02 40 01 08 a0 bf 02 b4 4a da c7 00",
         );
     }
+
+    #[test]
+    fn set_echo() {
+        // variant 9, true = 01; CRC-32 of [09 01] = 0xE71C9920.
+        check(
+            HostMsg::SetEcho { on: true },
+            "09 01",
+            "07 09 01 20 99 1c e7 00",
+        );
+    }
+
+    #[test]
+    fn echo_ack() {
+        // seq 3, variant 6 (Ack), Ack variant 6 (Echo), false = 00.
+        check(
+            DeviceFrame {
+                seq: 3,
+                msg: DeviceMsg::Ack(Ack::Echo { on: false }),
+            },
+            "03 06 06 00",
+            "04 03 06 06 05 c6 ab 26 61 00",
+        );
+    }
+
+    #[test]
+    fn feature_echo() {
+        // seq 12 = 0c, variant 9, sample 300 = ac 02, first 31 = 1f, the
+        // values as a byte string: length 8, then 1.0 = 00 00 80 3f and
+        // -2.5 = 00 00 20 c0.
+        check(
+            DeviceFrame {
+                seq: 12,
+                msg: DeviceMsg::Features(FeatureEcho {
+                    sample: 300,
+                    first: 31,
+                    values: EchoValues::new(&[1.0, -2.5]),
+                }),
+            },
+            "0c 09 ac 02 1f 08 00 00 80 3f 00 00 20 c0",
+            "07 0c 09 ac 02 1f 08 01 03 80 3f 01 07 20 c0 ba 07 17 07 00",
+        );
+    }
 }
 
 fn top3() -> [Share; 3] {
@@ -529,6 +571,8 @@ fn every_host_msg() -> Vec<HostMsg> {
         HostMsg::UploadCommit,
         HostMsg::ResetStats,
         HostMsg::GreetingQuery,
+        HostMsg::SetEcho { on: true },
+        HostMsg::SetEcho { on: false },
     ]
 }
 
@@ -633,6 +677,17 @@ fn every_device_msg() -> Vec<DeviceMsg> {
             count: u16::MAX,
             oldest: Some(u32::MAX),
             dropped: u32::MAX,
+        }),
+        DeviceMsg::Ack(Ack::Echo { on: true }),
+        DeviceMsg::Features(FeatureEcho {
+            sample: u64::MAX,
+            first: u8::MAX,
+            values: EchoValues::new(&[f32::MIN_POSITIVE; ECHO_CHUNK + 5]),
+        }),
+        DeviceMsg::Features(FeatureEcho {
+            sample: 0,
+            first: 0,
+            values: EchoValues::new(&[]),
         }),
     ];
     for fault in [
@@ -770,10 +825,13 @@ mod messages {
             assert_eq!(got, vec![Ok(frame.clone())]);
             assert_eq!(dec.counters().frames_ok, 1);
         }
-        // The drift raised message with nine crossings (three charts of
-        // three scores) is the longest: seq 5 + variant 1 + sample 10 +
-        // drivers 1 + scores 12 + length 1 + 9 × 10 + top 3 × 5 = 135.
-        assert_eq!(longest, 135);
+        // A feature echo of ECHO_CHUNK values is the longest: seq 5 +
+        // variant 1 + sample 10 + first 1 + length 1 + 31 × 4 = 142 (the
+        // drift raised message with nine crossings, three charts of three
+        // scores, takes seq 5 + variant 1 + sample 10 + drivers 1 + scores
+        // 12 + length 1 + 9 × 10 + top 3 × 5 = 135).
+        assert_eq!(longest, 142);
+        assert_eq!(ECHO_CHUNK, 31);
         assert_eq!(MAX_CROSSINGS, 9);
     }
 
@@ -911,6 +969,30 @@ mod messages {
             decode_all::<DeviceFrame, _>(&mut dec, &framed(&greeting)),
             vec![Err(FrameError::Undecodable)]
         );
+        // A feature echo whose byte string is not whole `f32`s, or longer
+        // than ECHO_CHUNK of them, is refused.
+        for raw in [
+            vec![0u8, 9, 0, 0, 3, 1, 2, 3],
+            [vec![0u8, 9, 0, 0, 128], vec![0x3f; 128]].concat(),
+        ] {
+            let mut dec = FrameDecoder::<600>::new();
+            assert_eq!(
+                decode_all::<DeviceFrame, _>(&mut dec, &framed(&raw)),
+                vec![Err(FrameError::Undecodable)]
+            );
+        }
+        // ECHO_CHUNK of them pass.
+        let good = [vec![0u8, 9, 0, 0, 124], vec![0x3f; 124]].concat();
+        let mut dec = FrameDecoder::<600>::new();
+        let got = decode_all::<DeviceFrame, _>(&mut dec, &framed(&good));
+        let Ok(DeviceFrame {
+            msg: DeviceMsg::Features(echo),
+            ..
+        }) = &got[0]
+        else {
+            panic!("{got:?}")
+        };
+        assert_eq!(echo.values.len(), ECHO_CHUNK);
         // Trailing bytes after a complete message are refused too.
         let mut dec = FrameDecoder::<600>::new();
         assert_eq!(

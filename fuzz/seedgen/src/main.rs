@@ -179,7 +179,7 @@ fn main() {
     let mut near: Vec<Op> = (0..30)
         .map(|i| Op::Near([(i % 7) as i8, -3, 2, (i % 3) as i8]))
         .collect();
-    let mut run = vec![Op::SetReports(true), Op::GreetingQuery];
+    let mut run = vec![Op::SetReports(true), Op::SetEcho(true), Op::GreetingQuery];
     run.append(&mut near);
     run.extend([
         Op::Sample(vec![f32::NAN, 0.0, 0.0, 0.0]),

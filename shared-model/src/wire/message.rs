@@ -325,6 +325,11 @@ pub enum Ack {
         /// The index the device takes next ([`Status::samples`]).
         next: u64,
     },
+    /// Feature echoes ([`DeviceMsg::Features`]) are now on or off.
+    Echo {
+        /// New setting.
+        on: bool,
+    },
 }
 
 /// The host request a refusal answers.
@@ -364,6 +369,90 @@ pub struct ResendDone {
     pub dropped: u32,
 }
 
+/// Most features in one [`FeatureEcho`]: a sample of more features is echoed
+/// in several messages. 31 is the most that keeps a device frame within
+/// [`MAX_DEVICE_MESSAGE`]: seq 5 + variant 1 + sample 10 + first 1 +
+/// length 1 + 31 × 4 = 142 bytes.
+pub const ECHO_CHUNK: usize = 31;
+
+/// Up to [`ECHO_CHUNK`] features as one byte string on the wire (a varint
+/// byte count, then each feature as 4 bytes of `f32` little-endian): the
+/// device writes them with one copy instead of a value at a time.
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct EchoValues(heapless::Vec<u8, { 4 * ECHO_CHUNK }>);
+
+impl EchoValues {
+    /// The first [`ECHO_CHUNK`] features of `x` (all of them if fewer).
+    pub fn new(x: &[f32]) -> Self {
+        let mut bytes = heapless::Vec::new();
+        for v in x.iter().take(ECHO_CHUNK) {
+            // Cannot fail: at most ECHO_CHUNK × 4 bytes.
+            let _ = bytes.extend_from_slice(&v.to_le_bytes());
+        }
+        EchoValues(bytes)
+    }
+
+    /// Number of features.
+    pub fn len(&self) -> usize {
+        self.0.len() / 4
+    }
+
+    /// Whether there is no feature.
+    pub fn is_empty(&self) -> bool {
+        self.0.is_empty()
+    }
+
+    /// The features, bit for bit as the device had them.
+    pub fn iter(&self) -> impl Iterator<Item = f32> + '_ {
+        self.0
+            .chunks_exact(4)
+            .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+    }
+}
+
+impl Serialize for EchoValues {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_bytes(&self.0)
+    }
+}
+
+impl<'de> Deserialize<'de> for EchoValues {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct Bytes;
+        impl serde::de::Visitor<'_> for Bytes {
+            type Value = EchoValues;
+            fn expecting(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+                write!(f, "at most {} features of 4 bytes each", ECHO_CHUNK)
+            }
+            fn visit_bytes<E: serde::de::Error>(self, v: &[u8]) -> Result<EchoValues, E> {
+                if v.len() % 4 != 0 {
+                    return Err(E::invalid_length(v.len(), &self));
+                }
+                heapless::Vec::from_slice(v)
+                    .map(EchoValues)
+                    .map_err(|_| E::invalid_length(v.len(), &self))
+            }
+        }
+        d.deserialize_bytes(Bytes)
+    }
+}
+
+/// Features of one sample as the detector took them, sent while echoes are
+/// on ([`HostMsg::SetEcho`]), so a host can record what the device saw (and
+/// refit from it). A sample of `d` features takes ⌈d / [`ECHO_CHUNK`]⌉
+/// messages, in order of `first`, each sent once (not retained).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct FeatureEcho {
+    /// Sample index.
+    pub sample: u64,
+    /// Index of `values[0]` among the sample's features.
+    pub first: u8,
+    /// The features from `first` on, at most [`ECHO_CHUNK`].
+    pub values: EchoValues,
+}
+
 /// Device → host messages.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
@@ -386,6 +475,8 @@ pub enum DeviceMsg {
     Refused(Refusal),
     /// 8: end of a resend.
     ResendDone(ResendDone),
+    /// 9: features of one sample, or part of them (while echoes are on).
+    Features(FeatureEcho),
 }
 
 impl DeviceMsg {
@@ -458,4 +549,9 @@ pub enum HostMsg {
     ResetStats,
     /// 8: asks for a [`DeviceMsg::Greeting`].
     GreetingQuery,
+    /// 9: turns feature echoes ([`DeviceMsg::Features`]) on or off.
+    SetEcho {
+        /// New setting.
+        on: bool,
+    },
 }
