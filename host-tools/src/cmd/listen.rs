@@ -4,11 +4,12 @@ use crate::cmd::connect::{self, LinkArgs};
 use crate::cmd::inspect::read_model;
 use crate::device;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
-use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
+use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder, SampleRecorder};
 use crate::link::{Link, LinkStats, Notice, Received};
 use crate::live;
 use clap::Args;
-use plumb_model::wire::{DeviceMsg, Greeting, HostMsg};
+use plumb_model::file::ModelFile;
+use plumb_model::wire::{Ack, DeviceMsg, Greeting, HostMsg};
 use std::cell::Cell;
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -45,6 +46,12 @@ The board's greeting names its protocol version: listen stops with an error (exi
 when it is one this host does not know, at the start or in any later greeting (a board
 restarted on other firmware).
 
+--record-samples FILE asks the board to echo the features of every sample it takes and
+writes them as a log `plumb fit` reads (`t[s]`, the sample's index on the board times the
+model's sample period, then the model's features; --model is required and must be the board's model): record a robot
+while it runs as it should, then refit with `plumb fit --base MODEL FILE`. Echoes are not
+kept for resend, so a sample with a frame lost on the link is left out (and counted).
+
 Runs until the device closes the link (a spawned program ends, or the port goes away with
 --no-reconnect), --for elapses, or Ctrl-C. Exit code 1 if a drift flag was raised while
 listening, 0 otherwise, 2 on a link or usage error.";
@@ -74,6 +81,11 @@ pub struct ListenArgs {
     /// Write every event received to FILE as CSV (seq,event,sample,state,spe,t2,nll,detail,recovered)
     #[arg(long, value_name = "FILE")]
     pub record: Option<PathBuf>,
+
+    /// Ask the board to echo the features of every sample and write them to FILE as a log
+    /// `plumb fit` reads (needs --model, the board's model)
+    #[arg(long, value_name = "FILE", requires = "model")]
+    pub record_samples: Option<PathBuf>,
 
     /// One JSON object per line
     #[arg(long)]
@@ -115,6 +127,20 @@ pub fn run(args: ListenArgs) -> Result<u8> {
         }
         None => None,
     };
+    let mut samples = match (&args.record_samples, &model) {
+        (Some(p), Some(m)) => {
+            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
+            Some(
+                SampleRecorder::new(
+                    std::io::BufWriter::new(f),
+                    &m.labels,
+                    m.model.meta.sample_period_us,
+                )
+                .map_err(|e| Error::io(p, "write", &e))?,
+            )
+        }
+        _ => None,
+    };
     let stop = Arc::new(AtomicBool::new(false));
     {
         let stop = Arc::clone(&stop);
@@ -143,6 +169,9 @@ pub fn run(args: ListenArgs) -> Result<u8> {
         if let Some(r) = recorder.as_mut() {
             sinks.push(r);
         }
+        if let Some(r) = samples.as_mut() {
+            sinks.push(r);
+        }
         // Frames and the link's notices go to the same sinks.
         let fan = std::cell::RefCell::new(Fan(sinks));
         let mut sink = |r: &Received| {
@@ -154,8 +183,12 @@ pub fn run(args: ListenArgs) -> Result<u8> {
         let mut note = |n: &Notice| fan.borrow_mut().notice(n);
         let mut tick = |s: &LinkStats| watch.iter_mut().for_each(|w| w(s));
         let foreign = Cell::new(false);
+        let echo = match (&args.record_samples, &model) {
+            (Some(_), Some(m)) => Some(m),
+            _ => None,
+        };
         let res = listen(
-            &args, &mut link, &stop, &foreign, &mut sink, &mut note, &mut tick,
+            &args, echo, &mut link, &stop, &foreign, &mut sink, &mut note, &mut tick,
         );
         // Frames still arriving from a board of another protocol version
         // are not shown: this host cannot tell what they mean.
@@ -179,6 +212,22 @@ pub fn run(args: ListenArgs) -> Result<u8> {
                 .unwrap_or_else(|| std::path::Path::new("record"));
             return Err(Error::io(p, "write", &e));
         }
+    }
+    if let (Some(r), Some(p)) = (samples.as_mut(), &args.record_samples) {
+        if let Some(e) = r.take_error() {
+            return Err(Error::io(p, "write", &e));
+        }
+        eprintln!(
+            "plumb: recorded {} samples to {} ({} left out: a part lost on the link{})",
+            r.rows,
+            p.display(),
+            r.incomplete,
+            if r.misfits > 0 {
+                format!("; {} echo parts past the model's features", r.misfits)
+            } else {
+                String::new()
+            }
+        );
     }
     result?;
     Ok(if drift { EXIT_DRIFT } else { EXIT_CLEAN })
@@ -219,8 +268,26 @@ fn notices(link: &mut Link, note: &mut dyn FnMut(&Notice)) -> Result<()> {
     Ok(())
 }
 
+/// Whether the board runs `model` (same features, in the same order): the
+/// samples it echoes are then rows of `model`'s logs.
+fn check_echo_model(g: &Greeting, model: &ModelFile, path: &std::path::Path) -> Result<()> {
+    if g.schema != model.model.meta.schema || usize::from(g.dims.features) != model.labels.len() {
+        return Err(Error::input(format!(
+            "--record-samples: the board runs a model of {} features (schema {:#018x}), {} has {} (schema {:#018x}); give --model the board's model",
+            g.dims.features,
+            g.schema,
+            path.display(),
+            model.labels.len(),
+            model.model.meta.schema
+        )));
+    }
+    Ok(())
+}
+
+#[allow(clippy::too_many_arguments)]
 fn listen(
     args: &ListenArgs,
+    echo: Option<&ModelFile>,
     link: &mut Link,
     stop: &AtomicBool,
     foreign: &Cell<bool>,
@@ -241,7 +308,20 @@ fn listen(
                 check_version(h, foreign)?;
             }
         }
-        check_version(&g?, foreign)?;
+        let g = g?;
+        check_version(&g, foreign)?;
+        if let (Some(m), Some(p)) = (echo, &args.model) {
+            check_echo_model(&g, m, p)?;
+        }
+    }
+    if echo.is_some() {
+        device::request(
+            link,
+            &HostMsg::SetEcho { on: true },
+            args.link.patience(),
+            sink,
+            |m| matches!(m, DeviceMsg::Ack(Ack::Echo { on: true })).then_some(()),
+        )?;
     }
     let end = args
         .duration
@@ -259,12 +339,21 @@ fn listen(
                 // another protocol version cannot be read any further.
                 if let DeviceMsg::Greeting(g) = &r.frame.msg {
                     check_version(g, foreign)?;
+                    // A board that restarted echoes nothing until asked.
+                    if let (Some(m), Some(p)) = (echo, &args.model) {
+                        check_echo_model(g, m, p)?;
+                        link.send(&HostMsg::SetEcho { on: true })?;
+                    }
                 }
             }
             None if link.is_closed() => break,
             None => {}
         }
         tick(&link.stats());
+    }
+    if echo.is_some() && !link.is_closed() {
+        // Best effort: the board stops echoing when the host stops listening.
+        let _ = link.send(&HostMsg::SetEcho { on: false });
     }
     Ok(())
 }
