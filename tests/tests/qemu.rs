@@ -32,7 +32,8 @@ use plumb::rng::Rng;
 use plumb_firmware::{Detector, DriftState, Event, Fault};
 use plumb_model::file::ModelFile;
 use plumb_model::wire::{
-    DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, Reason, Request, Slot, State,
+    Ack, DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, HostMsg, Reason, Request, Slot,
+    State,
 };
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -1136,6 +1137,47 @@ fn plumb_feed_trace_has_the_host_bits() {
         let a: Vec<u32> = a.iter().map(|v| v.to_bits()).collect();
         let b: Vec<u32> = b.iter().map(|v| v.to_bits()).collect();
         assert_eq!(a, b);
+    }
+}
+
+/// Feature echoes on the emulated board: every sample it takes comes back
+/// first, bit for bit (the dropout log's NaN cells included), with the
+/// index it got, so a host can record what the board saw.
+#[test]
+fn the_board_echoes_each_sample_it_takes() {
+    let model = default_model();
+    let file = ModelFile::from_bytes(&model).unwrap();
+    let mut board = Board::start(&[]);
+    greet(&mut board);
+    let on = device::request(
+        &mut board.link,
+        &HostMsg::SetEcho { on: true },
+        patience(2000),
+        &mut |_| {},
+        |m| match m {
+            DeviceMsg::Ack(Ack::Echo { on }) => Some(*on),
+            _ => None,
+        },
+    )
+    .expect("echo switch");
+    assert!(on);
+    let samples = read_rows(&file, &drift_log("sensor_dropout.csv"), 2900..3200);
+    assert!(samples.iter().flatten().any(|v| v.is_nan()));
+    let (mut frames, sum) = feed(&mut board, &samples, 2000);
+    assert_eq!(sum.taken, samples.len() as u64);
+    board.finish(&mut frames);
+    let mut echoed: Vec<Option<Vec<u32>>> = vec![None; samples.len()];
+    for r in &frames {
+        if let DeviceMsg::Features(e) = &r.frame.msg {
+            assert_eq!(e.first, 0, "24 features: one part");
+            let i = (e.sample - sum.base) as usize;
+            assert!(echoed[i].is_none(), "sample {i} echoed twice");
+            echoed[i] = Some(e.values.iter().map(f32::to_bits).collect());
+        }
+    }
+    for (i, (got, x)) in echoed.iter().zip(&samples).enumerate() {
+        let want: Vec<u32> = x.iter().map(|v| v.to_bits()).collect();
+        assert_eq!(got.as_ref(), Some(&want), "sample {i}");
     }
 }
 
