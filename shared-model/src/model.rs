@@ -45,8 +45,10 @@ pub struct Dims {
 /// Limits and smoothing constants for one score.
 ///
 /// The monitored quantity is the score passed through a variance-stabilising
-/// transform (cube root for SPE and T², after Wilson & Hilferty 1931; identity
-/// for the mixture NLL), then standardised: `u = (g(score) - center) / spread`.
+/// transform (cube root for SPE and T², after Wilson & Hilferty 1931; for the
+/// mixture NLL, cube root of its excess over the model's floor, the smallest
+/// NLL the model can give), then standardised:
+/// `u = (g(score) - center) / spread`.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub struct ScoreLimits {
