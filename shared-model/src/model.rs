@@ -85,8 +85,9 @@ pub struct MonitorParams {
     pub clear_dwell: u16,
     /// Fewest samples a raised flag stays raised.
     pub min_hold: u32,
-    /// Calm means every CUSUM below `clear_fraction · h` and every EWMA below
-    /// `clear_fraction · L`; in (0, 1].
+    /// Calm means every CUSUM at or below `clear_fraction · h`, every EWMA at
+    /// or below `clear_fraction · L`, and no score of the last scored sample
+    /// over its per-sample limit; in (0, 1].
     pub clear_fraction: f32,
     /// Limits for SPE (Q). Its per-sample chart and CUSUM run on `u` with
     /// this `center` and `spread`; its EWMA runs on the SPE standardised
