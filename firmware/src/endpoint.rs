@@ -191,7 +191,7 @@ impl<E> defmt::Format for Error<E> {
     }
 }
 
-/// Why [`Endpoint::boot`] found nothing to run.
+/// Why [`Endpoint::start`] (or [`Endpoint::boot`]) found nothing to run.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub enum BootError {

@@ -26,7 +26,7 @@
 //! ```
 //!
 //! Code memory the loader did not fill reads `0x00`, which has no valid
-//! record; `Endpoint::boot` picks the newest valid slot as on any board.
+//! record; `Endpoint::start` picks the newest valid slot as on any board.
 
 use plumb_firmware::endpoint::{Flash, FlashLayout, FlashSlots, SlotError, FILE_OFFSET};
 use plumb_firmware::plumb_model::wire::Slot;
