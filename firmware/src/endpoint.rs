@@ -360,7 +360,9 @@ impl<S: ModelSlots, P: OutputPin, const R: usize> Endpoint<S, P, R> {
     /// Starts on the newest valid slot (highest generation whose record,
     /// CRC-32 and model file all pass), else on `builtin` (a model file in
     /// the image), else fails. Default [`Config`]: no signature needed.
-    /// Returns the endpoint by value (about 13 KiB): see [`Endpoint::start`].
+    /// Returns the endpoint by value (about 8.5 KiB on
+    /// `thumbv7em-none-eabihf`: its [`Places`], about 8 KiB, and a small
+    /// rest): see [`Endpoint::start`].
     pub fn boot(slots: S, pin: P, builtin: Option<&'static [u8]>) -> Result<Self, BootError> {
         Self::boot_with(slots, pin, builtin, Config::default())
     }
