@@ -18,8 +18,9 @@
 //!
 //! The emulator has no persistent storage, so an upload over the link lives
 //! until QEMU exits. What a reset starts from is what QEMU's loader put into
-//! the regions before it: `plumb image MODEL --board mps2-an386 --slot a|b`
-//! writes an image of one region (a slot record and the model file):
+//! the regions before it:
+//! `plumb image MODEL --board mps2-an386 --slot a|b --out FILE` writes an
+//! image of one region (a slot record and the model file):
 //!
 //! ```text
 //! qemu-system-arm ... -device loader,file=slot-a.hex -kernel plumb-board-mps2
