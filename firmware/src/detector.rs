@@ -224,7 +224,9 @@ pub struct Outcome {
     pub state: DriftState,
     /// State change caused by this sample.
     pub event: Option<Event>,
-    /// Scores whose CUSUM or EWMA is over its limit after this sample.
+    /// Scores hot after this sample: CUSUM over its limit, EWMA over its
+    /// limit, or the last scored sample (this one, unless it is a fault) over
+    /// the per-sample limit.
     pub hot: ScoreSet,
     /// Largest SPE contributions (zeros on a fault).
     pub top: [Contribution; TOP_FEATURES],

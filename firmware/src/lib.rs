@@ -46,9 +46,13 @@
 //!
 //! ## Numbers
 //!
-//! All arithmetic is `f32`. Transcendentals go through `libm` ([`math`]);
-//! sums run in a fixed order with no fused multiply-add. The optional
-//! `fast-math` feature swaps `exp`/`ln` for `micromath` approximations.
+//! All arithmetic is `f32`. The per-sample path's transcendentals go through
+//! [`math`]: `exp` and `ln` from `libm`, and our own `f32` cube root. The
+//! constants derived at model load use full-accuracy `libm` whatever the
+//! features ([`math::ln_exact`], and one direct `libm::expf` in [`score`]).
+//! Sums run in a fixed order with no fused multiply-add. The optional
+//! `fast-math` feature swaps the per-sample `exp`/`ln` for `micromath`
+//! approximations.
 #![no_std]
 #![forbid(unsafe_code)]
 #![deny(missing_docs)]

@@ -205,8 +205,8 @@ mod tests {
     #[test]
     fn welford_small_example() {
         // [2, 4, 4, 4, 5, 5, 7, 9]: mean 5, population variance 4, sample
-        // variance 32/7 = 4.5714286 (shared/references.md, Welford row: memory,
-        // computed with numpy var(ddof=0/1)).
+        // variance 32/7 = 4.5714286 (computed with numpy var(ddof=0/1); the
+        // method is Welford 1962).
         let mut w = Welford::<f32>::new();
         for x in [2.0, 4.0, 4.0, 4.0, 5.0, 5.0, 7.0, 9.0] {
             w.push(x);
@@ -220,8 +220,8 @@ mod tests {
     #[test]
     fn welford_large_offset_f64() {
         // 1e9 + {4, 7, 13, 16}: sample variance 30 exactly; the naive
-        // sum-of-squares formula gives -170.67 in f64 (references.md, Welford
-        // row: memory, computed). Welford keeps it to rounding.
+        // sum-of-squares formula gives -170.67 in f64 (computed). Welford's
+        // method (1962) keeps it to rounding.
         let xs = [4.0, 7.0, 13.0, 16.0].map(|v| 1e9 + v);
         let mut w = Welford::<f64>::new();
         for x in xs {

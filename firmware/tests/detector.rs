@@ -573,7 +573,7 @@ fn mean_se(v: &[f64]) -> (f64, f64) {
 #[test]
 fn cusum_run_lengths_match_lucas_crosier() {
     // Two-sided tabular CUSUM, k = 0.5, h = 4: ARL 168 in control and 8.38 at
-    // a 1σ shift (Lucas & Crosier 1982, Table 1; shared/references.md).
+    // a 1σ shift (Lucas & Crosier 1982, Table 1).
     // Accept within 3 Monte Carlo standard errors.
     for (shift, want, runs) in [(0.0, 168.0, 3000), (1.0, 8.38, 3000)] {
         let (mean, se) = cusum_arl(4.0, shift, runs, 17);
@@ -587,7 +587,7 @@ fn cusum_run_lengths_match_lucas_crosier() {
 #[test]
 fn one_sided_cusum_matches_brook_evans() {
     // One-sided, k = 0.5, h = 3: ARL0 117.59 and 3.75 at a 1.5σ shift
-    // (Brook & Evans 1972; shared/references.md).
+    // (Brook & Evans 1972).
     for (shift, want) in [(0.0f32, 117.59), (1.5, 3.75)] {
         let mut rng = Rng(23);
         let lens: Vec<f64> = (0..4000)
@@ -614,7 +614,7 @@ fn one_sided_cusum_matches_brook_evans() {
 fn ewma_run_lengths_match_lucas_saccucci() {
     // EWMA with fixed asymptotic limits ±L·sqrt(λ/(2−λ)), start 0, λ = 0.1,
     // L = 2.814: ARL 500 in control and 10.3 at a 1σ shift (Lucas & Saccucci
-    // 1990; shared/references.md). Within 3 Monte Carlo standard errors.
+    // 1990). Within 3 Monte Carlo standard errors.
     let lambda = 0.1f32;
     let limit = 2.814 * (lambda / (2.0 - lambda)).sqrt();
     for (shift, want, runs) in [(0.0f32, 500.0, 2000), (1.0, 10.3, 3000)] {

@@ -214,9 +214,8 @@ pub fn cusum_arl(k: f64, h: f64, shift: f64) -> f64 {
 }
 
 /// Siegmund's approximation to the ARL of the one-sided upper CUSUM
-/// (Siegmund 1985; references.md, CUSUM row): with `Δ = shift − k` and
-/// `b = h + 1.166`, `ARL = (e^(−2Δb) + 2Δb − 1) / (2Δ²)`, and `b²` when
-/// `Δ = 0`. A Brownian-motion approximation with an overshoot correction:
+/// (Siegmund 1985): with `Δ = shift − k` and `b = h + 1.166`,
+/// `ARL = (e^(−2Δb) + 2Δb − 1) / (2Δ²)`, and `b²` when `Δ = 0`. A Brownian-motion approximation with an overshoot correction:
 /// within a few percent for `h ≥ 3` and better as `h` grows.
 pub fn cusum_arl_siegmund(k: f64, h: f64, shift: f64) -> f64 {
     let delta = shift - k;
@@ -416,7 +415,7 @@ mod tests {
     #[test]
     fn cusum_one_sided_brook_evans() {
         // Brook & Evans (1972), k = 0.5, h = 3: ARL0 = 117.59, ARL(1.5σ) = 3.75
-        // (references.md, CUSUM: published, computed).
+        // (published there; also computed).
         assert!((cusum_arl(0.5, 3.0, 0.0) - 117.59).abs() < 0.01);
         assert!((cusum_arl(0.5, 3.0, 1.5) - 3.75).abs() < 0.005);
     }
@@ -425,8 +424,9 @@ mod tests {
     fn cusum_two_sided_lucas_crosier() {
         // Lucas & Crosier (1982) Table 1, k = 0.5: h = 4 → 168, shift 1σ →
         // 8.38 (8.38 is the true two-sided value; the one-sided combination
-        // is exact enough away from zero shift); h = 5 → 465 (Montgomery)
-        // (references.md, tabular CUSUM: published, computed).
+        // is exact enough away from zero shift); h = 5 → 465 and shift 1σ →
+        // 10.4 (Montgomery, Introduction to Statistical Quality Control, CUSUM
+        // chapter; also computed by integral equation and Monte Carlo).
         assert!((cusum_arl_two_sided(0.5, 4.0, 0.0) - 168.0).abs() < 0.5);
         assert!((cusum_arl_two_sided(0.5, 5.0, 0.0) - 465.0).abs() < 0.5);
         assert!((cusum_arl_two_sided(0.5, 4.0, 1.0) - 8.38).abs() < 0.01);
@@ -436,8 +436,8 @@ mod tests {
     #[test]
     fn ewma_two_sided_lucas_saccucci() {
         // Lucas & Saccucci (1990): λ = 0.1, L = 2.814 → 500, 1σ → 10.3;
-        // λ = 0.5, L = 3.071 → 500, 1σ → 17.5 (references.md, EWMA:
-        // published, computed). Fixed asymptotic limits, start at 0.
+        // λ = 0.5, L = 3.071 → 500, 1σ → 17.5 (Table 3) (published; also
+        // computed). Fixed asymptotic limits, start at 0.
         let a = ewma_arl(0.1, 2.814, 0.0, Sides::Both);
         assert!((a - 500.0).abs() < 2.5, "{a}");
         let b = ewma_arl(0.5, 3.071, 0.0, Sides::Both);
@@ -460,8 +460,8 @@ mod tests {
 
     #[test]
     fn limits_for_target_arl() {
-        // references.md (detection delay row, computed): one-sided CUSUM
-        // k = 0.5 with ARL0 = 10⁴ needs h = 7.3608, 10⁵ needs h = 9.6617.
+        // Computed, not published: one-sided CUSUM k = 0.5 with ARL0 = 10⁴
+        // needs h = 7.3608, 10⁵ needs h = 9.6617.
         let h4 = cusum_limit_for(0.5, 1e4).unwrap();
         assert!((h4 - 7.3608).abs() < 2e-3, "{h4}");
         let h5 = cusum_limit_for(0.5, 1e5).unwrap();
@@ -523,7 +523,7 @@ mod tests {
 
     #[test]
     fn siegmund_against_the_chain() {
-        // references.md, CUSUM row: Siegmund's approximation. Against the
+        // Siegmund's approximation (Siegmund 1985). Against the
         // Brook–Evans chain (k = 0.5, h = 3: 117.59 in control, 3.75 at
         // 1.5σ, published): within 4 % at h = 3, and closer as h grows,
         // which is where `cusum_arl_any` uses it.

@@ -1292,7 +1292,8 @@ mod tests {
 
     #[test]
     fn jackson_mudholkar_reference_values() {
-        // references.md, Q (SPE) limit (formula published, values computed):
+        // Q (SPE) limit, formula of Jackson & Mudholkar 1979 (Technometrics
+        // 21, 341–349), values computed:
         // discarded {0.14675688, 0.02071484}: 0.584852 (α = 0.05) and
         // 1.030203 (α = 0.01); {0.8, 0.5, 0.3, 0.2, 0.1, 0.07, 0.03}:
         // 4.908964 and 7.393989.
@@ -1324,8 +1325,9 @@ mod tests {
 
     #[test]
     fn quantile_definition() {
-        // references.md, empirical quantiles: on 1..100 the 0.95 quantile is
-        // 95 by the inverted CDF.
+        // On 1..100 the 0.95 quantile is 95 by the inverted empirical CDF
+        // (type 1 of Hyndman & Fan 1996; the linear type 7, numpy's default,
+        // gives 95.05).
         let mut v: Vec<f32> = (1..=100).map(|i| i as f32).collect();
         assert_eq!(quantile_type1(&mut v, 0.95), 95.0);
         let mut v: Vec<f32> = (1..=1000).rev().map(|i| i as f32).collect();

@@ -45,8 +45,10 @@ pub struct Dims {
 /// Limits and smoothing constants for one score.
 ///
 /// The monitored quantity is the score passed through a variance-stabilising
-/// transform (cube root for SPE and T², after Wilson & Hilferty 1931; identity
-/// for the mixture NLL), then standardised: `u = (g(score) - center) / spread`.
+/// transform (cube root for SPE and T², after Wilson & Hilferty 1931; for the
+/// mixture NLL, cube root of its excess over the model's floor, the smallest
+/// NLL the model can give), then standardised:
+/// `u = (g(score) - center) / spread`.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub struct ScoreLimits {
@@ -83,8 +85,9 @@ pub struct MonitorParams {
     pub clear_dwell: u16,
     /// Fewest samples a raised flag stays raised.
     pub min_hold: u32,
-    /// Calm means every CUSUM below `clear_fraction · h` and every EWMA below
-    /// `clear_fraction · L`; in (0, 1].
+    /// Calm means every CUSUM at or below `clear_fraction · h`, every EWMA at
+    /// or below `clear_fraction · L`, and no score of the last scored sample
+    /// over its per-sample limit; in (0, 1].
     pub clear_fraction: f32,
     /// Limits for SPE (Q). Its per-sample chart and CUSUM run on `u` with
     /// this `center` and `spread`; its EWMA runs on the SPE standardised

@@ -1,5 +1,6 @@
 //! The detector and the fit against published tables and exact identities
-//! (values from shared/references.md; each check names its source).
+//! (each check names the source of its values: the publication, or how
+//! they were computed).
 #![allow(clippy::needless_range_loop)] // index loops mirror the published tables
 
 use plumb::pca::{symmetric_eigen, Moments};
@@ -80,7 +81,7 @@ fn iris_covariance_eigenvalues_match_published() {
     // Iris (Fisher 1936), raw data, covariance with ddof = 1: eigenvalues
     // 4.22824171, 0.24267075, 0.07820950, 0.02383509 and explained variance
     // ratios 0.92461872, 0.05306648, 0.01710261, 0.00521218 (scikit-learn's
-    // PCA-vs-LDA example output; shared/references.md "PCA — Iris").
+    // PCA-vs-LDA example output; also computed).
     // Tolerance 1e-7 relative: the Jacobi sweep stops at 1e-15 of the
     // matrix norm, the table has 8-9 significant digits.
     let (_, rows, d) = read_csv(&data("iris.csv"));
@@ -101,7 +102,7 @@ fn iris_covariance_eigenvalues_match_published() {
 #[test]
 fn iris_standardised_ratios_match_published() {
     // Standardised iris: explained variance ratios 0.72962445, 0.22850762,
-    // 0.03668922, 0.00517871 (R princomp(cor = TRUE); references.md).
+    // 0.03668922, 0.00517871 (R princomp(cor = TRUE); also computed).
     let (_, rows, d) = read_csv(&data("iris.csv"));
     let pca = plumb::pca::fit(&rows, d).expect("pca");
     let want = [0.72962445, 0.22850762, 0.03668922, 0.00517871];
@@ -114,7 +115,8 @@ fn iris_standardised_ratios_match_published() {
     }
     // Correlation-matrix eigenvalues 2.91849782, 0.91403047, 0.14675688,
     // 0.02071484; the fit reports them on the ddof = 1 scale, i.e. × 150/149
-    // (references.md note on standardisers).
+    // (dividing by the ddof = 0 deviation scales the eigenvalues by 150/149;
+    // the ratios are unchanged).
     let corr = [2.91849782, 0.91403047, 0.14675688, 0.02071484];
     for j in 0..4 {
         let got = pca.eigenvalues[j] * 149.0 / 150.0;
@@ -125,9 +127,9 @@ fn iris_standardised_ratios_match_published() {
 #[test]
 fn iris_sample_zero_scores_and_training_identities() {
     // Iris, raw data, 2 components: sample 0 has Q = 0.00078436 and
-    // T² = 2.12428971 (computed, references.md). Σ Q over the training set
+    // T² = 2.12428971 (computed, not published). Σ Q over the training set
     // = (n − 1) Σ residual eigenvalues = 15.204644; mean T² = k (n − 1)/n
-    // = 1.986667 (exact identities, references.md).
+    // = 1.986667 (exact identities).
     //
     // Tolerances: the detector works in f32. For sample 0, ‖z‖ ≈ 2.7, so each
     // residual r_i carries an absolute error of a few ulp(2.7) ≈ 1e-6 against
@@ -169,9 +171,8 @@ fn iris_sample_zero_scores_and_training_identities() {
 fn iris_jackson_mudholkar_limits_match_computed_values() {
     // Iris, raw data, 2 components kept: Jackson–Mudholkar Q limits 0.334464
     // (α = 0.05) and 0.571355 (α = 0.01) (Jackson & Mudholkar 1979 formula;
-    // values computed, shared/references.md). θ comes from the fitted
-    // model's discarded eigenvalues, so this checks the fit and the formula
-    // together. 1e-5 relative: θ is stored in f32 (≈ 6e-8 relative) and the
+    // values computed). θ comes from the fitted model's discarded
+    // eigenvalues, so this checks the fit and the formula together. 1e-5 relative: θ is stored in f32 (≈ 6e-8 relative) and the
     // table has six digits.
     let (_, rows, d) = read_csv(&data("iris.csv"));
     let (model, _) = raw_pca_model(&rows, d, 2);

@@ -174,7 +174,7 @@ fn old_faithful_diagonal_mixture_matches_published_log_likelihood() {
     // Old Faithful (Azzalini & Bowman 1990), 2 diagonal components: total
     // log-likelihood −1147.806, weights 0.35652 / 0.64348, means (2.03792,
     // 54.49295) and (4.29107, 79.98562) (published benchmark value; all
-    // computed with scikit-learn, n_init = 20; shared/references.md).
+    // computed with scikit-learn, n_init = 20).
     // Within 1e-3 on the total: EM is run to a tight tolerance, so what is
     // left is the rounding of the published figure.
     let (_, rows, _) = read_csv(&data("faithful.csv"));

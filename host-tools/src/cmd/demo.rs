@@ -16,7 +16,7 @@ use std::path::{Path, PathBuf};
 pub const LONG_ABOUT: &str = "\
 Run the whole loop on the invented demo scenario: a warehouse tugger robot's drive module,
 24 features per 100 ms window (currents, speeds, temperatures, vibration bands, IMU
-statistics), four operating modes.
+statistics), five operating modes.
 
 1. Fit a model on the nominal training logs (demo-logs/train: three robots, two days), and
    on --train-rows rows of generated nominal logs from four more robots on more days if

@@ -10,8 +10,8 @@
 //! firmware crate's [`FlashSlots`] (tested there with power cut at every
 //! step of an upload); this file is only the [`Flash`] driver over the HAL:
 //! the memory-mapped flash (`FlashExt::read`), `erase(sector)` and byte-wise
-//! `program`. `plumb image MODEL --board blackpill-f411 --slot a|b` writes
-//! an image of the same layout for a probe to flash.
+//! `program`. `plumb image MODEL --board blackpill-f411 --slot a|b --out FILE`
+//! writes an image of the same layout for a probe to flash.
 //!
 //! Erasing a 128 KiB sector stalls the core for one to two seconds (data
 //! sheet typical); the host waits for the upload-open acknowledgement before

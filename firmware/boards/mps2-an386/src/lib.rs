@@ -12,7 +12,7 @@
 //! as an `embedded-hal` output pin), [`slots`] (the two model slots in code
 //! memory, the emulated board's flash), [`ticks`] (SysTick), [`stack`] (painting),
 //! [`semihost`] (ending the run), and [`endpoint_places`] (the endpoint's
-//! detector places and resend ring, a static in `.bss`). All `unsafe` code
+//! detector place and resend ring, a static in `.bss`). All `unsafe` code
 //! is in `mmio`.
 
 #![no_std]

@@ -105,7 +105,7 @@ fn main() -> ! {
     semihost::exit(uart_errors == 0 && write_errors == 0)
 }
 
-/// The endpoint type of this board: its places (detectors and resend ring)
+/// The endpoint type of this board: its places (detector and resend ring)
 /// are lent from a static.
 type Ep = Endpoint<BoardSlots, DriftLine, DEFAULT_RING_BYTES, &'static mut Places>;
 

@@ -2,15 +2,15 @@
 //!
 //! Everything that touches memory-mapped registers or memory that Rust does
 //! not own (the unused part of the stack, the model-slot regions of code
-//! memory), and the one `static mut` (the endpoint's detector places), goes
-//! through the small safe API below. Each unsafe block states why it is
-//! sound for this board.
+//! memory), and the one `static mut` (the endpoint's places: its detector
+//! place and resend ring), goes through the small safe API below. Each
+//! unsafe block states why it is sound for this board.
 
 use core::ptr;
 use core::sync::atomic::{AtomicBool, Ordering};
 use plumb_firmware::endpoint::Places;
 
-/// The endpoint's detector place and resend ring (about 13 KiB).
+/// The endpoint's detector place and resend ring (about 8 KiB).
 /// `Places::EMPTY` is zero and uninitialised bytes only, so this lives in
 /// `.bss`: zeroed at reset, never built on the stack, no flash.
 static mut PLACES: Places = Places::EMPTY;

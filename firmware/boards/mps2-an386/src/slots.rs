@@ -18,15 +18,16 @@
 //!
 //! The emulator has no persistent storage, so an upload over the link lives
 //! until QEMU exits. What a reset starts from is what QEMU's loader put into
-//! the regions before it: `plumb image MODEL --board mps2-an386 --slot a|b`
-//! writes an image of one region (a slot record and the model file):
+//! the regions before it:
+//! `plumb image MODEL --board mps2-an386 --slot a|b --out FILE` writes an
+//! image of one region (a slot record and the model file):
 //!
 //! ```text
 //! qemu-system-arm ... -device loader,file=slot-a.hex -kernel plumb-board-mps2
 //! ```
 //!
 //! Code memory the loader did not fill reads `0x00`, which has no valid
-//! record; `Endpoint::boot` picks the newest valid slot as on any board.
+//! record; `Endpoint::start` picks the newest valid slot as on any board.
 
 use plumb_firmware::endpoint::{Flash, FlashLayout, FlashSlots, SlotError, FILE_OFFSET};
 use plumb_firmware::plumb_model::wire::Slot;
