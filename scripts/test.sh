@@ -29,3 +29,6 @@ if [ -x firmware/boards/check.sh ]; then firmware/boards/check.sh; fi
 
 step "host tests, cross-checks and end-to-end runs"
 cargo test --workspace --locked --release
+
+step "detector scores with fast-math (NLL within its documented bound)"
+cargo test --locked --release -p plumb-firmware --features fast-math --test fast_math
