@@ -25,7 +25,7 @@ cargo build --locked -p plumb-firmware --target thumbv7em-none-eabihf --no-defau
 cargo build --locked -p plumb-firmware --target thumbv7em-none-eabihf --features defmt,fast-math
 
 step "boards: build, size, run under QEMU"
-if [ -x firmware/boards/check.sh ]; then firmware/boards/check.sh; fi
+bash firmware/boards/check.sh
 
 step "host tests, cross-checks and end-to-end runs"
 cargo test --workspace --locked --release
