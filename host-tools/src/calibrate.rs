@@ -1292,10 +1292,15 @@ mod tests {
 
     #[test]
     fn jackson_mudholkar_reference_values() {
-        // references.md, Q (SPE) limit (formula published, values computed):
-        // discarded {0.14675688, 0.02071484}: 0.584852 (α = 0.05) and
-        // 1.030203 (α = 0.01); {0.8, 0.5, 0.3, 0.2, 0.1, 0.07, 0.03}:
-        // 4.908964 and 7.393989.
+        // Jackson & Mudholkar (1979) formula; values computed with scipy
+        // 1.17.1 (norm.ppf for the quantile) in Python: discarded
+        // {0.14675688, 0.02071484} (standardised iris, 2 kept):
+        // 0.584851695676 (α = 0.05) and 1.030202668854 (α = 0.01);
+        // {0.8, 0.5, 0.3, 0.2, 0.1, 0.07, 0.03}: 4.908963724242 and
+        // 7.393988748698. Within 1e-12: 12 printed decimals (5e-13), the
+        // quantile (AS 241, ~1e-16 relative) and ~20 f64 operations (~1e-14
+        // relative of values up to 7.4). This checks the formula on given
+        // eigenvalues; tests/tests/published.rs checks it on θ from the fit.
         let th = |ls: &[f64]| {
             let mut t = [0.0; 3];
             for l in ls {
