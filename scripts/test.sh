@@ -2,7 +2,8 @@
 # The whole test suite, as CI runs it. Installs what it needs first
 # (scripts/setup.sh), then: formatting, lints, API docs, host tests (with the scikit-learn
 # and published-table cross-checks), the no_std crates built alone for the
-# Cortex-M4F target, and the boards built and run under QEMU.
+# Cortex-M4F target, the boards built and run under QEMU, and the detector's
+# scores with the fast-math feature.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 scripts/setup.sh
