@@ -2,7 +2,8 @@
 # The whole test suite, as CI runs it. Installs what it needs first
 # (scripts/setup.sh), then: formatting, lints, API docs, host tests (with the scikit-learn
 # and published-table cross-checks), the no_std crates built alone for the
-# Cortex-M4F target, and the boards built and run under QEMU.
+# Cortex-M4F target, the boards built and run under QEMU, and the detector's
+# scores with the fast-math feature.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 scripts/setup.sh
@@ -25,7 +26,10 @@ cargo build --locked -p plumb-firmware --target thumbv7em-none-eabihf --no-defau
 cargo build --locked -p plumb-firmware --target thumbv7em-none-eabihf --features defmt,fast-math
 
 step "boards: build, size, run under QEMU"
-if [ -x firmware/boards/check.sh ]; then firmware/boards/check.sh; fi
+bash firmware/boards/check.sh
 
 step "host tests, cross-checks and end-to-end runs"
 cargo test --workspace --locked --release
+
+step "detector scores with fast-math (NLL within its documented bound)"
+cargo test --locked --release -p plumb-firmware --features fast-math --test fast_math

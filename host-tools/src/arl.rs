@@ -392,8 +392,9 @@ mod tests {
 
     #[test]
     fn normal_quantiles() {
-        // Φ⁻¹(0.975) = 1.959963984540054, Φ⁻¹(0.999) = 3.090232306167813
-        // (standard tables; AS 241 is accurate to ~1e-16).
+        // Φ⁻¹(0.975) = 1.959963984540054, Φ⁻¹(0.999) = 3.090232306167813,
+        // Φ⁻¹(1e-10) = −6.361340902404056 (computed with scipy 1.17.1
+        // scipy.stats.norm.ppf; AS 241 is accurate to ~1e-16).
         assert!((phi_inv(0.975) - 1.959_963_984_540_054).abs() < 1e-12);
         assert!((phi_inv(0.999) - 3.090_232_306_167_813).abs() < 1e-12);
         assert!((phi_inv(1e-10) + 6.361_340_902_404_056).abs() < 1e-9);
@@ -452,7 +453,8 @@ mod tests {
     fn one_sided_ewma_doubles_in_control_arl_roughly() {
         // With one limit instead of two, the in-control ARL is close to (a
         // little under) twice the two-sided one (signals are rare and nearly
-        // independent across sides).
+        // independent across sides). The 1.8–2.05 range around 2 is common
+        // practice, no source.
         let both = ewma_arl(0.1, 3.0, 0.0, Sides::Both);
         let up = ewma_arl(0.1, 3.0, 0.0, Sides::Upper);
         assert!(up > 1.8 * both && up < 2.05 * both, "{up} {both}");

@@ -1292,11 +1292,15 @@ mod tests {
 
     #[test]
     fn jackson_mudholkar_reference_values() {
-        // Q (SPE) limit, formula of Jackson & Mudholkar 1979 (Technometrics
-        // 21, 341–349), values computed:
-        // discarded {0.14675688, 0.02071484}: 0.584852 (α = 0.05) and
-        // 1.030203 (α = 0.01); {0.8, 0.5, 0.3, 0.2, 0.1, 0.07, 0.03}:
-        // 4.908964 and 7.393989.
+        // Jackson & Mudholkar (1979) formula; values computed with scipy
+        // 1.17.1 (norm.ppf for the quantile) in Python: discarded
+        // {0.14675688, 0.02071484} (standardised iris, 2 kept):
+        // 0.584851695676 (α = 0.05) and 1.030202668854 (α = 0.01);
+        // {0.8, 0.5, 0.3, 0.2, 0.1, 0.07, 0.03}: 4.908963724242 and
+        // 7.393988748698. Within 1e-12: 12 printed decimals (5e-13), the
+        // quantile (AS 241, ~1e-16 relative) and ~20 f64 operations (~1e-14
+        // relative of values up to 7.4). This checks the formula on given
+        // eigenvalues; tests/tests/published.rs checks it on θ from the fit.
         let th = |ls: &[f64]| {
             let mut t = [0.0; 3];
             for l in ls {
@@ -1307,11 +1311,11 @@ mod tests {
             t
         };
         let a = th(&[0.14675688, 0.02071484]);
-        assert!((jackson_mudholkar(a, 0.05).unwrap() - 0.584852).abs() < 1e-6);
-        assert!((jackson_mudholkar(a, 0.01).unwrap() - 1.030203).abs() < 1e-6);
+        assert!((jackson_mudholkar(a, 0.05).unwrap() - 0.584_851_695_676).abs() < 1e-12);
+        assert!((jackson_mudholkar(a, 0.01).unwrap() - 1.030_202_668_854).abs() < 1e-12);
         let b = th(&[0.8, 0.5, 0.3, 0.2, 0.1, 0.07, 0.03]);
-        assert!((jackson_mudholkar(b, 0.05).unwrap() - 4.908964).abs() < 1e-6);
-        assert!((jackson_mudholkar(b, 0.01).unwrap() - 7.393989).abs() < 1e-6);
+        assert!((jackson_mudholkar(b, 0.05).unwrap() - 4.908_963_724_242).abs() < 1e-12);
+        assert!((jackson_mudholkar(b, 0.01).unwrap() - 7.393_988_748_698).abs() < 1e-12);
         // One dominant eigenvalue among many small ones: h0 < 0. The limit
         // must still lie above the mean θ1 and grow as α shrinks.
         let mut ls = vec![0.2];
@@ -1336,12 +1340,25 @@ mod tests {
 
     #[test]
     fn wilson_interval() {
-        // 0 of 1000: upper bound z²/(n + z²) = 3.8415/1003.8415.
-        let [lo, hi] = wilson(0, 1000, 1.959_963_984_540_054);
-        assert!(lo.abs() < 1e-15);
-        assert!((hi - 3.841_458_820_694_124 / 1_003.841_458_820_694_1).abs() < 1e-12);
-        let [lo, hi] = wilson(50, 100, 1.959_963_984_540_054);
-        assert!((lo - 0.403_831_9).abs() < 1e-6 && (hi - 0.596_168_1).abs() < 1e-6);
+        // Wilson (1927) score interval at z = Φ⁻¹(0.975) = 1.959963984540054
+        // (computed with scipy 1.17.1 norm.ppf).
+        let z = 1.959_963_984_540_054;
+        // 0 of 1000: the formula reduces to [0, z²/(n + z²)] exactly; what is
+        // left is rounding, a few ulps.
+        let [lo, hi] = wilson(0, 1000, z);
+        assert_eq!(lo, 0.0);
+        let want = z * z / (1000.0 + z * z);
+        assert!(
+            (hi - want).abs() <= 4.0 * f64::EPSILON * want,
+            "{hi} vs {want}"
+        );
+        // 50 of 100: [0.403831530366, 0.596168469634] (the Wilson formula
+        // evaluated in Python with that z; statsmodels, which has it, is not
+        // in the reference venv). Within 1e-12: 12 printed decimals (5e-13)
+        // and a dozen f64 operations on values below 1.
+        let [lo, hi] = wilson(50, 100, z);
+        assert!((lo - 0.403_831_530_366).abs() < 1e-12, "{lo}");
+        assert!((hi - 0.596_168_469_634).abs() < 1e-12, "{hi}");
     }
     /// AR(1) with unit marginal variance: `x ← φ x + √(1 − φ²) e`, one log
     /// after another, each from a stationary start.

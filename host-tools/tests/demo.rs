@@ -95,7 +95,20 @@ fn demo_fits_replays_and_reports_every_scenario() {
     assert_eq!(lm["false_alarms"], 0);
     assert!(lm["drivers"].as_array().unwrap().iter().any(|d| d == "spe"));
     assert!(lm["top_in_truth"].as_u64().unwrap() >= 1, "{lm}");
-    assert!(lm["lorden_bound"].as_f64().is_some());
+    // The Lorden bound is ln(ARL0) / (δ²/2) with ARL0 = 1 / target rate
+    // and δ the shift the output reports (Lorden 1971; KL divergence δ²/2 of
+    // a unit-variance normal shifted by δ). serde_json prints f64 so that it
+    // reads back exactly, so the two agree to the rounding of this formula
+    // (a few ulps: 8 ε relative allows it).
+    let target = r["target_rate"].as_f64().unwrap();
+    let delta = lm["shift"].as_f64().expect("shift reported");
+    assert!(delta > 0.0, "{lm}");
+    let bound = lm["lorden_bound"].as_f64().expect("lorden_bound reported");
+    let want = (1.0 / target).ln() / (delta * delta / 2.0);
+    assert!(
+        (bound - want).abs() <= 8.0 * f64::EPSILON * want,
+        "lorden_bound {bound} vs ln(1/{target}) / ({delta}²/2) = {want}"
+    );
 
     // Sensor dropout is a fault, not drift: faults counted, no flag.
     let sd = scenario(&r, "sensor_dropout");

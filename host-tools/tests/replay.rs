@@ -123,7 +123,7 @@ fn replay_is_the_firmware_detector() {
     let dir = Scratch::new("same");
     let trace = dir.path("trace.csv");
     let log = demo("drift/gain_change.csv");
-    plumb(&[
+    let o = plumb(&[
         "replay",
         model().to_str().unwrap(),
         log.to_str().unwrap(),
@@ -131,6 +131,14 @@ fn replay_is_the_firmware_detector() {
         "--trace",
         trace.to_str().unwrap(),
     ]);
+    // The replay ran to the end: exit 0 (no flag) or 1 (a flag rose), never
+    // 2 (bad input) or a crash.
+    assert!(
+        matches!(o.status.code(), Some(0) | Some(1)),
+        "replay failed ({:?}): {}",
+        o.status.code(),
+        String::from_utf8_lossy(&o.stderr)
+    );
     let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
     let mut det = Detector::new(file.model.to_device().unwrap()).unwrap();
     let text = std::fs::read_to_string(&log).unwrap();
@@ -146,7 +154,16 @@ fn replay_is_the_firmware_detector() {
         })
         .collect();
     let traced = std::fs::read_to_string(&trace).unwrap();
-    for (row, tr) in text.lines().skip(1).zip(traced.lines().skip(1)).take(4000) {
+    assert!(
+        traced.starts_with("log,sample,t,spe,t2,nll"),
+        "trace header"
+    );
+    // One trace row per log row (8000), every one of them compared.
+    let rows = text.lines().skip(1).count();
+    assert_eq!(rows, 8000);
+    assert_eq!(traced.lines().skip(1).count(), rows);
+    let mut compared = 0;
+    for (row, tr) in text.lines().skip(1).zip(traced.lines().skip(1)) {
         let cells: Vec<&str> = row.split(',').collect();
         let x: Vec<f32> = cols
             .iter()
@@ -158,7 +175,9 @@ fn replay_is_the_firmware_detector() {
         assert_eq!(t[3].parse::<f32>().unwrap().to_bits(), s.spe.to_bits());
         assert_eq!(t[4].parse::<f32>().unwrap().to_bits(), s.t2.to_bits());
         assert_eq!(t[5].parse::<f32>().unwrap().to_bits(), s.nll.to_bits());
+        compared += 1;
     }
+    assert_eq!(compared, rows);
 }
 
 #[test]

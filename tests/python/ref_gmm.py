@@ -4,7 +4,7 @@ from given parameters.
 stdin: {"rows": [[...]], "weights": [...], "means": [[...]], "variances": [[...]],
         "tol": float, "max_iter": int, "reg_covar": float}
 stdout: {"weights", "means", "variances", "lower_bound", "n_iter", "converged",
-         "mean_log_likelihood"}
+         "mean_log_likelihood", "bic"}
 """
 import json
 import sys
@@ -40,6 +40,7 @@ json.dump(
         "n_iter": int(gm.n_iter_),
         "converged": bool(gm.converged_),
         "mean_log_likelihood": float(gm.score(X)),
+        "bic": float(gm.bic(X)),
     },
     sys.stdout,
 )

@@ -47,6 +47,47 @@ fn slot_regions_match_memory_x() {
             "{}: the program region overlaps slot A",
             b.name
         );
-        assert!(b.capacity() == b.region_len - DATA_OFFSET);
+        // The model file's offset in a slot, as memory.x states it ("the
+        // model file at +0x100"), and the largest model file the board's
+        // src/slots.rs documents for each slot ("at most N B"); memory.x is
+        // read as words, without the comment's leading stars.
+        let flat = text
+            .split_whitespace()
+            .filter(|w| *w != "*")
+            .collect::<Vec<_>>()
+            .join(" ");
+        let at = flat
+            .find("the model file at +")
+            .unwrap_or_else(|| panic!("{}: memory.x states no model file offset", b.name));
+        let offset = parse_number(
+            flat[at + "the model file at +".len()..]
+                .split(|c: char| !c.is_ascii_alphanumeric())
+                .next()
+                .unwrap(),
+        );
+        assert_eq!(offset, DATA_OFFSET, "{}: model file offset", b.name);
+        let slot_len = region(&text, "SLOT_A").1;
+        assert_eq!(b.capacity(), slot_len - offset, "{}", b.name);
+        let slots = plumb_checks::root()
+            .join("firmware/boards")
+            .join(b.name)
+            .join("src/slots.rs");
+        let doc = std::fs::read_to_string(&slots).expect("read src/slots.rs");
+        let documented: Vec<u32> = doc
+            .lines()
+            .filter_map(|l| l.split("at most ").nth(1))
+            .map(|r| {
+                r.split(" B")
+                    .next()
+                    .unwrap()
+                    .replace(',', "")
+                    .parse()
+                    .unwrap()
+            })
+            .collect();
+        assert_eq!(documented.len(), 2, "{}: one capacity per slot", b.name);
+        for n in documented {
+            assert_eq!(b.capacity(), n, "{}: capacity in src/slots.rs", b.name);
+        }
     }
 }

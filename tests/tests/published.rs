@@ -169,16 +169,64 @@ fn iris_sample_zero_scores_and_training_identities() {
 
 #[test]
 fn iris_jackson_mudholkar_limits_match_computed_values() {
-    // Iris, raw data, 2 components kept: Jackson–Mudholkar Q limits 0.334464
-    // (α = 0.05) and 0.571355 (α = 0.01) (Jackson & Mudholkar 1979 formula;
-    // values computed). θ comes from the fitted model's discarded
-    // eigenvalues, so this checks the fit and the formula together. 1e-5 relative: θ is stored in f32 (≈ 6e-8 relative) and the
-    // table has six digits.
+    // Iris, raw data, 2 components kept: Jackson–Mudholkar Q limits
+    // 0.334464 (α = 0.05) and 0.571355 (α = 0.01) (Jackson & Mudholkar 1979
+    // formula; computed with scipy 1.17.1 norm.ppf on the numpy 2.4.6
+    // eigenvalues of the ddof = 1 covariance: 0.334464046, 0.571355036).
+    // θ here is the test's raw-data PCA's (plumb's Moments and
+    // symmetric_eigen, not its fit, which standardises: see the next test),
+    // stored in the model in f32. 1e-5 relative: θ in f32 (≈ 6e-8 relative)
+    // and the six printed digits (≤ 1.5e-6 relative).
     let (_, rows, d) = read_csv(&data("iris.csv"));
     let (model, _) = raw_pca_model(&rows, d, 2);
     let theta = model.theta.map(f64::from);
     for (alpha, want) in [(0.05, 0.334464), (0.01, 0.571355)] {
         let got = plumb::calibrate::jackson_mudholkar(theta, alpha).expect("defined");
         assert!((got - want).abs() <= 1e-5 * want, "alpha {alpha}: {got}");
+    }
+}
+
+#[test]
+fn iris_jackson_mudholkar_limits_from_the_fit() {
+    // Standardised iris, 2 components kept, θ from plumb's own PCA fit
+    // (Pca::theta), so the fit and the formula are checked together.
+    // Reference: the Jackson & Mudholkar (1979) formula on the discarded
+    // correlation-matrix eigenvalues (0.14675688 and 0.02071484) gives
+    // 0.584851672923 (α = 0.05) and 1.030202630820 (α = 0.01) (computed with
+    // scipy 1.17.1 norm.ppf on numpy 2.4.6 eigvalsh of the correlation
+    // matrix; 0.584852 and 1.030203 to six decimals). The fit reports eigenvalues on the ddof = 1 scale, i.e. the
+    // correlation eigenvalues × 150/149, so θ_i is scaled back by
+    // (149/150)^i.
+    //
+    // Tolerance: the references are printed to 12 decimals (5e-13); plumb's
+    // eigenvalues agree with numpy's and scikit-learn's to ~3e-14 relative on
+    // iris (reference.rs), which moves Q (∂Q/∂λ of order 1-3 here) by
+    // < 1e-13; the normal quantile is good to ~1e-16 (AS 241) and the
+    // formula's ~20 f64 operations add ~1e-14: 1e-12 covers the sum.
+    let (_, rows, d) = read_csv(&data("iris.csv"));
+    let pca = plumb::pca::fit(&rows, d).expect("pca");
+    let th = pca.theta(2);
+    let back = 149.0 / 150.0;
+    let theta = [
+        th[0] * back,
+        th[1] * back * back,
+        th[2] * back * back * back,
+    ];
+    for (alpha, want) in [(0.05, 0.584851672923), (0.01, 1.030202630820)] {
+        let got = plumb::calibrate::jackson_mudholkar(theta, alpha).expect("defined");
+        assert!(
+            (got - want).abs() <= 1e-12,
+            "alpha {alpha}: {got} vs {want}"
+        );
+    }
+    // Without the rescale the limits are those of the ddof = 1 eigenvalues
+    // (0.588776851936 and 1.037116742436, computed the same way): the scale
+    // convention is part of what is checked.
+    for (alpha, want) in [(0.05, 0.588776851936), (0.01, 1.037116742436)] {
+        let got = plumb::calibrate::jackson_mudholkar(th, alpha).expect("defined");
+        assert!(
+            (got - want).abs() <= 1e-12,
+            "alpha {alpha} (ddof = 1): {got} vs {want}"
+        );
     }
 }

@@ -1,0 +1,82 @@
+#!/usr/bin/env python3
+"""Holds the full-size demo's results (`plumb demo --json`) to the project's
+goals; run by .ci/run after the demo, on the summary it printed.
+
+    scripts/check-demo.py SUMMARY.json
+
+Checks:
+* loose_mount, new_floor and bearing_wear are each flagged at or after their
+  onset, and none of them raises a flag before it;
+* false alarms on all nominal data replayed (the generated evaluation set and
+  the committed held-out logs together) are at most 1 per 10^5 samples, the
+  project's goal;
+* sensor_dropout is reported as a fault: faulted samples counted, no flag.
+
+gain_change is not flagged at present (BENCHMARKS.md explains why); it is
+printed, not checked. Exit status 0 only if every check passed.
+"""
+import json
+import sys
+
+DRIFTS = ["loose_mount", "new_floor", "bearing_wear"]
+GOAL_PER_1E5 = 1.0
+
+with open(sys.argv[1], encoding="utf-8") as f:
+    r = json.load(f)
+failures = []
+scenarios = {s["scenario"]: s for s in r["scenarios"]}
+
+nominal_samples = sum(n["samples"] for n in r["nominal"])
+nominal_flags = sum(n["flags"] for n in r["nominal"])
+per_1e5 = nominal_flags * 1e5 / max(nominal_samples, 1)
+for n in r["nominal"]:
+    print(f"check-demo: {n['name']}: {n['flags']} flags in {n['samples']} samples")
+if nominal_samples == 0:
+    failures.append("no nominal samples replayed")
+elif per_1e5 > GOAL_PER_1E5:
+    failures.append(
+        f"false alarms {per_1e5:.2f} per 10^5 nominal samples (goal <= {GOAL_PER_1E5})"
+    )
+
+for name in DRIFTS:
+    s = scenarios.get(name)
+    if s is None:
+        failures.append(f"{name}: missing from the summary")
+        continue
+    print(
+        f"check-demo: {name}: onset {s['onset']}, first flag {s['first_flag']}, "
+        f"false alarms {s['false_alarms']}"
+    )
+    # first_flag is the first flag at or after the onset (plumb demo picks it
+    # so); flags before the onset are counted in false_alarms.
+    if s["first_flag"] is None:
+        failures.append(f"{name}: not flagged")
+    if s["false_alarms"] != 0:
+        failures.append(f"{name}: {s['false_alarms']} flags before the onset")
+
+sd = scenarios.get("sensor_dropout")
+if sd is None:
+    failures.append("sensor_dropout: missing from the summary")
+else:
+    print(
+        f"check-demo: sensor_dropout: {sd['faults']} faults, first flag {sd['first_flag']}, "
+        f"flags {sd['false_alarms']}"
+    )
+    if sd["kind"] != "fault":
+        failures.append(f"sensor_dropout: kind {sd['kind']!r}, not 'fault'")
+    if not sd["faults"] > 0:
+        failures.append("sensor_dropout: no faults counted")
+    if sd["first_flag"] is not None or sd["false_alarms"] != 0:
+        failures.append("sensor_dropout: flagged as drift")
+
+gc = scenarios.get("gain_change")
+if gc is not None:
+    print(f"check-demo: gain_change (not checked): first flag {gc['first_flag']}")
+
+for f in failures:
+    print(f"check-demo: FAIL: {f}", file=sys.stderr)
+print(
+    f"check-demo: {'FAILED' if failures else 'ok'}: "
+    f"{per_1e5:.2f} false alarms per 10^5 nominal samples, {len(failures)} failures"
+)
+sys.exit(1 if failures else 0)
