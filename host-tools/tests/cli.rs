@@ -933,3 +933,61 @@ fn a_format_1_model_is_read_by_the_host_and_refused_for_a_board() {
     assert_eq!(o.status.code(), Some(2));
     assert!(stderr(&o).contains("version 1"), "{}", stderr(&o));
 }
+
+/// Expects exit code 2 and every needle on stderr.
+fn refused(args: &[&str], needles: &[&str]) -> String {
+    let o = plumb(args);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
+    for n in needles {
+        assert!(err.contains(n), "{args:?}: expected {n:?} in: {err}");
+    }
+    assert!(!err.contains("panicked"), "{err}");
+    err
+}
+
+#[test]
+fn listen_for_takes_a_sane_number_of_seconds() {
+    // `inf` and `1e20` used to panic with the program still running.
+    for v in ["inf", "1e20", "1e10", "0", "-1", "nan", "soon"] {
+        let arg = format!("--for={v}");
+        refused(
+            &["listen", "--exec", "cat", "--no-greeting", "--plain", &arg],
+            &["--for", "expected"],
+        );
+    }
+    let o = plumb(&[
+        "listen",
+        "--exec",
+        "cat",
+        "--no-greeting",
+        "--plain",
+        "--for",
+        "0.2",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+}
+
+#[test]
+fn link_counts_are_checked() {
+    let link = ["--exec", "cat"];
+    for (cmd, bad) in [
+        ("listen", ["--reply-ms", "0"]),
+        ("listen", ["--reply-ms", "18446744073709551615"]),
+        ("listen", ["--tries", "0"]),
+        ("listen", ["--baud", "0"]),
+        ("upload", ["--tries", "0"]),
+        ("feed", ["--window", "0"]),
+    ] {
+        let mut args = vec![cmd];
+        if cmd != "listen" {
+            args.push("m.plumb");
+        }
+        if cmd == "feed" {
+            args.push("log.csv");
+        }
+        args.extend(link);
+        args.extend(bad);
+        refused(&args, &[bad[0]]);
+    }
+}

@@ -56,8 +56,8 @@ pub struct FeedArgs {
     #[arg(long, value_name = "A..B", value_parser = parse_rows)]
     pub rows: Option<std::ops::Range<u64>>,
 
-    /// Samples in flight before waiting for the board's reports
-    #[arg(long, value_name = "N", default_value_t = 1)]
+    /// Samples in flight before waiting for the board's reports (at least 1)
+    #[arg(long, value_name = "N", default_value_t = 1, value_parser = parse_window)]
     pub window: usize,
 
     /// Do not reset the board's statistics first
@@ -92,6 +92,14 @@ pub struct FeedArgs {
     /// Print only the summary and the counters
     #[arg(short, long)]
     pub quiet: bool,
+}
+
+/// Parses `--window`: a count of at least 1.
+fn parse_window(s: &str) -> std::result::Result<usize, String> {
+    match s.trim().parse::<usize>() {
+        Ok(n) if n >= 1 => Ok(n),
+        _ => Err(format!("expected a count of at least 1, found {s:?}")),
+    }
 }
 
 /// Parses `A..B` or `A..`.

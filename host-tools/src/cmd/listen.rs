@@ -66,8 +66,8 @@ pub struct ListenArgs {
     #[arg(long, value_name = "MODEL")]
     pub model: Option<PathBuf>,
 
-    /// Stop after this many seconds
-    #[arg(long = "for", value_name = "SECONDS")]
+    /// Stop after this many seconds (more than 0, at most 10^9)
+    #[arg(long = "for", value_name = "SECONDS", value_parser = parse_seconds)]
     pub duration: Option<f64>,
 
     /// Also print per-sample score reports (turn them on with `plumb feed --reports`)
@@ -102,6 +102,24 @@ pub struct ListenArgs {
     /// Stop when the serial port or TCP connection goes away (default: reopen it)
     #[arg(long)]
     pub no_reconnect: bool,
+}
+
+/// Longest `--for`: about 31 years, far below what a deadline can hold.
+pub const MAX_SECONDS: f64 = 1e9;
+
+/// Parses `--for`: a finite number of seconds above 0 and at most
+/// [`MAX_SECONDS`].
+pub fn parse_seconds(s: &str) -> std::result::Result<f64, String> {
+    let v: f64 = s
+        .trim()
+        .parse()
+        .map_err(|_| format!("expected a number of seconds, found {s:?}"))?;
+    if !v.is_finite() || !(v > 0.0) || v > MAX_SECONDS {
+        return Err(format!(
+            "expected seconds above 0 and at most {MAX_SECONDS:e}, found {s:?}"
+        ));
+    }
+    Ok(v)
 }
 
 /// Runs `plumb listen`.
@@ -325,7 +343,8 @@ fn listen(
     }
     let end = args
         .duration
-        .map(|s| Instant::now() + Duration::from_secs_f64(s.max(0.0)));
+        .and_then(|s| Duration::try_from_secs_f64(s).ok())
+        .and_then(|d| Instant::now().checked_add(d));
     while !stop.load(Ordering::SeqCst) {
         if end.is_some_and(|e| Instant::now() >= e) {
             break;
