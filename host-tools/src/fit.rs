@@ -791,34 +791,9 @@ pub fn model_id(file: &ModelFile) -> Result<u32> {
     Ok(plumb_model::file::crc32(sections.payload))
 }
 
-/// Writes `bytes` to `path` atomically: a temporary file in the same folder,
-/// flushed to disk, then renamed over `path`. On any error the temporary file
-/// is removed and `path` is untouched.
+/// Writes `bytes` to `path` atomically ([`crate::files::write_atomic`]).
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
-    use std::io::Write;
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => std::path::PathBuf::from("."),
-    };
-    let name = path
-        .file_name()
-        .ok_or_else(|| Error::at(Location::file(path), "expected a file name"))?;
-    let mut tmp_name = std::ffi::OsString::from(".");
-    tmp_name.push(name);
-    tmp_name.push(format!(".{}.plumb.tmp", std::process::id()));
-    let tmp = dir.join(tmp_name);
-    let result = (|| -> std::io::Result<()> {
-        let mut f = std::fs::File::create(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-        drop(f);
-        std::fs::rename(&tmp, path)
-    })();
-    if let Err(e) = result {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(Error::io(path, "write", &e));
-    }
-    Ok(())
+    crate::files::write_atomic(path, bytes)
 }
 
 crate::simd::kernel! {

@@ -991,3 +991,229 @@ fn link_counts_are_checked() {
         refused(&args, &[bad[0]]);
     }
 }
+
+/// The emulated board's model (24 features, the demo logs' columns).
+fn board_model(dir: &Scratch) -> PathBuf {
+    let bytes = std::fs::read(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../firmware/boards/mps2-an386/default.plumb"),
+    )
+    .unwrap();
+    let p = dir.path("m.plumb");
+    std::fs::write(&p, bytes).unwrap();
+    p
+}
+
+/// The first `rows` rows of a demo log.
+fn demo_head(dir: &Scratch, name: &str, rel: &str, rows: usize) -> PathBuf {
+    let text = std::fs::read_to_string(common::demo(rel)).unwrap();
+    let head: Vec<String> = text.lines().take(rows + 1).map(str::to_string).collect();
+    dir.write(name, &join(&head))
+}
+
+fn no_temporaries(dir: &Scratch) {
+    let left: Vec<PathBuf> = std::fs::read_dir(&dir.0)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.to_string_lossy().ends_with(".tmp"))
+        .collect();
+    assert!(left.is_empty(), "temporary files left: {left:?}");
+}
+
+#[test]
+fn an_output_that_is_an_input_is_refused_before_any_work() {
+    let d = Scratch::new("same-file");
+    let m = board_model(&d);
+    let log = demo_head(&d, "a.csv", "holdout/robot1_day3.csv", 300);
+    let key = d.write("k", "plumb-ed25519-secret 00\n");
+    let before = |p: &Path| std::fs::read(p).unwrap();
+    let (m0, log0, key0) = (before(&m), before(&log), before(&key));
+    let (m, log, key) = (s(&m), s(&log), s(&key));
+    // The same file by another spelling counts too.
+    let dotted = format!("{}/./a.csv", d.0.display());
+    let link = ["--exec", "cat"];
+    let cases: Vec<(Vec<&str>, &str, &str)> = vec![
+        (vec!["fit", log, "--out", log], "--out", "input (log"),
+        (vec!["fit", log, "--out", &dotted], "--out", "input (log"),
+        (vec!["report", m, log, "--out", m], "--out", "input (model"),
+        (vec!["report", m, log, "--out", log], "--out", "input (log"),
+        (
+            vec![
+                "image",
+                m,
+                "--board",
+                "mps2-an386",
+                "--slot",
+                "a",
+                "--out",
+                m,
+            ],
+            "--out",
+            "input (model",
+        ),
+        (
+            vec!["replay", m, log, "--trace", m],
+            "--trace",
+            "input (model",
+        ),
+        (
+            vec!["replay", m, log, "--trace", log],
+            "--trace",
+            "input (log",
+        ),
+        (
+            vec!["feed", m, log, "--trace", log],
+            "--trace",
+            "input (log",
+        ),
+        (
+            vec!["feed", m, log, "--record-samples", log],
+            "--record-samples",
+            "input (log",
+        ),
+        (
+            vec!["feed", m, log, "--record", m],
+            "--record",
+            "input (model",
+        ),
+        (
+            vec!["listen", "--model", m, "--record", m],
+            "--record",
+            "input (model",
+        ),
+        (
+            vec!["listen", "--model", m, "--record-samples", m],
+            "--record-samples",
+            "input (model",
+        ),
+        (
+            vec!["sign", m, "--key", key, "--out", key],
+            "--out",
+            "input (secret key",
+        ),
+    ];
+    for (mut args, option, what) in cases {
+        if matches!(args[0], "feed" | "listen") {
+            args.extend(link);
+        }
+        let err = refused(&args, &[option, what, "choose another file"]);
+        assert!(err.contains("is also an input"), "{err}");
+        assert_eq!(before(Path::new(m)), m0, "{args:?} changed the model");
+        assert_eq!(before(Path::new(log)), log0, "{args:?} changed the log");
+        assert_eq!(before(Path::new(key)), key0, "{args:?} changed the key");
+    }
+    // Two outputs on one file.
+    let t = d.path("t.csv");
+    refused(
+        &[
+            "feed",
+            m,
+            log,
+            "--trace",
+            s(&t),
+            "--record",
+            s(&t),
+            "--exec",
+            "cat",
+        ],
+        &["--record", "also the file of --trace"],
+    );
+    no_temporaries(&d);
+}
+
+#[test]
+fn a_failed_replay_or_feed_leaves_an_existing_output_as_it_was() {
+    let d = Scratch::new("keep");
+    let m = board_model(&d);
+    let good = demo_head(&d, "good.csv", "holdout/robot1_day3.csv", 300);
+    let mut bad = lines(&std::fs::read_to_string(&good).unwrap());
+    bad[200] = bad[200].rsplit_once(',').unwrap().0.to_string();
+    let bad = d.write("bad.csv", &join(&bad));
+    let keep = d.write("keep.csv", "old\n");
+    refused(
+        &[
+            "replay",
+            s(&m),
+            s(&good),
+            s(&bad),
+            "--trace",
+            s(&keep),
+            "--quiet",
+        ],
+        &["bad.csv:201"],
+    );
+    assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n");
+    // A replay that succeeds replaces it.
+    let o = plumb(&["replay", s(&m), s(&good), "--trace", s(&keep), "--quiet"]);
+    assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+    assert!(std::fs::read_to_string(&keep)
+        .unwrap()
+        .starts_with("log,sample,"));
+    // Feed: a link that cannot be opened touches no output.
+    for option in ["--trace", "--record", "--record-samples"] {
+        let keep = d.write("keep2.csv", "old\n");
+        let port = d.path("no-such-port");
+        refused(
+            &[
+                "feed",
+                s(&m),
+                s(&good),
+                option,
+                s(&keep),
+                "--port",
+                s(&port),
+            ],
+            &["no-such-port"],
+        );
+        assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n", "{option}");
+    }
+    // A feed that fails on the link: the trace is all or nothing.
+    let keep = d.write("keep3.csv", "old\n");
+    refused(
+        &[
+            "feed",
+            s(&m),
+            s(&good),
+            "--trace",
+            s(&keep),
+            "--exec",
+            "true",
+            "--reply-ms",
+            "50",
+            "--tries",
+            "2",
+            "--quiet",
+        ],
+        &[],
+    );
+    assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n");
+    // Listen: a link that cannot be opened touches no recording.
+    let keep = d.write("keep4.csv", "old\n");
+    let port = d.path("no-such-port");
+    refused(
+        &[
+            "listen",
+            "--record",
+            s(&keep),
+            "--port",
+            s(&port),
+            "--plain",
+        ],
+        &["no-such-port"],
+    );
+    assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n");
+    // Image: written whole.
+    let img = d.write("slot.hex", "old\n");
+    let o = plumb(&[
+        "image",
+        s(&m),
+        "--board",
+        "mps2-an386",
+        "--slot",
+        "a",
+        "--out",
+        s(&img),
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    assert!(std::fs::read_to_string(&img).unwrap().starts_with(':'));
+    no_temporaries(&d);
+}

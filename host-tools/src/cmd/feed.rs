@@ -6,6 +6,7 @@ use crate::cmd::inspect::read_model;
 use crate::device::{self, FeedConfig, FeedSummary};
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
 use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
+use crate::files::{self, AtomicWriter, Input, Output, TempOutput};
 use crate::link::Received;
 use crate::logs::{BadCells, LogSet, Selection};
 use crate::progress::Stage;
@@ -31,7 +32,10 @@ was lost) is simply sent again: the board takes each sample once and in order, w
 window. Events lost on the way are asked for again (see `plumb listen --help`).
 
 --reports prints the score reports and --trace writes them as CSV with the exact f32 bit
-patterns; --record-samples writes the samples sent as a log `plumb fit` reads.
+patterns (put in place only when the feed succeeds: a failed feed leaves an existing file
+as it was); --record-samples writes the samples sent as a log `plumb fit` reads, and
+--record the events received: both are kept however the feed ends once the link is open.
+No output may be the model, the log or another output.
 
 Exit code 1 if the board raised a drift flag, 0 otherwise, 2 on bad input or a link error.";
 
@@ -198,8 +202,12 @@ fn samples_header(labels: &[Label], time: Option<(&str, &str)>) -> String {
     cols.join(",")
 }
 
-fn create(path: &Path) -> Result<std::io::BufWriter<std::fs::File>> {
-    let f = std::fs::File::create(path).map_err(|e| Error::io(path, "create", &e))?;
+/// A recording: written beside `path` until the link is open, then put in
+/// place (an early failure leaves an existing file as it was; what a
+/// session recorded is kept however it ends).
+fn create(path: &Path, places: &mut Vec<TempOutput>) -> Result<std::io::BufWriter<std::fs::File>> {
+    let (place, f) = TempOutput::create(path)?;
+    places.push(place);
     Ok(std::io::BufWriter::new(f))
 }
 
@@ -213,6 +221,31 @@ struct Tally {
 
 /// Runs `plumb feed`.
 pub fn run(args: FeedArgs) -> Result<u8> {
+    let mut outputs = Vec::new();
+    for (option, p) in [
+        ("--trace", &args.trace),
+        ("--record", &args.record),
+        ("--record-samples", &args.record_samples),
+    ] {
+        if let Some(path) = p {
+            outputs.push(Output { option, path });
+        }
+    }
+    let mut inputs = vec![
+        Input {
+            what: "model",
+            path: &args.model,
+        },
+        Input {
+            what: "log",
+            path: &args.log,
+        },
+    ];
+    inputs.extend(args.read.units.as_deref().map(|p| Input {
+        what: "units",
+        path: p,
+    }));
+    files::check_outputs(&outputs, &inputs)?;
     let file: ModelFile = read_model(&args.model)?;
     let set = LogSet::open_for_labels(
         std::slice::from_ref(&args.log),
@@ -227,13 +260,17 @@ pub fn run(args: FeedArgs) -> Result<u8> {
     };
     let mut printer = LinePrinter::new(std::io::stdout(), format, names.clone());
     printer.scores = args.reports;
+    let mut places = Vec::new();
     let mut recorder = match &args.record {
-        Some(p) => Some(Recorder::new(create(p)?, names).map_err(|e| Error::io(p, "write", &e))?),
+        Some(p) => Some(
+            Recorder::new(create(p, &mut places)?, names).map_err(|e| Error::io(p, "write", &e))?,
+        ),
         None => None,
     };
+    // The trace is all or nothing: in place only when the feed succeeds.
     let mut trace = match &args.trace {
         Some(p) => {
-            let mut w = create(p)?;
+            let mut w = AtomicWriter::create(p)?;
             writeln!(w, "{TRACE_HEADER}").map_err(|e| Error::io(p, "write", &e))?;
             Some(w)
         }
@@ -241,7 +278,7 @@ pub fn run(args: FeedArgs) -> Result<u8> {
     };
     let mut samples_out = match &args.record_samples {
         Some(p) => {
-            let mut w = create(p)?;
+            let mut w = create(p, &mut places)?;
             let time = set
                 .options()
                 .time_column
@@ -259,6 +296,9 @@ pub fn run(args: FeedArgs) -> Result<u8> {
     };
 
     let mut link = args.link.open()?;
+    for place in places {
+        place.commit()?;
+    }
     let patience = args.link.patience();
     let quiet = args.quiet;
     let mut tally = Tally::default();
@@ -355,17 +395,18 @@ pub fn run(args: FeedArgs) -> Result<u8> {
         let fin = connect::finish(&mut link, &mut fan, format, quiet);
         res.and_then(|s| fin.map(|()| s))
     };
+    // Samples sent are kept however the feed ended.
+    let flushed = match (samples_out.as_mut(), &args.record_samples) {
+        (Some(w), Some(p)) => w.flush().map_err(|e| Error::io(p, "write", &e)),
+        _ => Ok(()),
+    };
     let sum = outcome?;
-    for (w, p) in [
-        (trace.as_mut(), &args.trace),
-        (samples_out.as_mut(), &args.record_samples),
-    ] {
-        if let (Some(w), Some(p)) = (w, p) {
-            w.flush().map_err(|e| Error::io(p, "write", &e))?;
-        }
-    }
+    flushed?;
     if let (Some(e), Some(p)) = (trace_err, &args.trace) {
         return Err(Error::io(p, "write", &e));
+    }
+    if let Some(w) = trace {
+        w.finish()?;
     }
     if let (Some(r), Some(p)) = (recorder.as_mut(), &args.record) {
         if let Some(e) = r.take_error() {

@@ -5,6 +5,7 @@ use crate::cmd::inspect::read_model;
 use crate::device;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
 use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder, SampleRecorder};
+use crate::files::{self, Input, Output, TempOutput};
 use crate::link::{Link, LinkStats, Notice, Received};
 use crate::live;
 use clap::Args;
@@ -124,6 +125,25 @@ pub fn parse_seconds(s: &str) -> std::result::Result<f64, String> {
 
 /// Runs `plumb listen`.
 pub fn run(args: ListenArgs) -> Result<u8> {
+    let mut outputs = Vec::new();
+    for (option, p) in [
+        ("--record", &args.record),
+        ("--record-samples", &args.record_samples),
+    ] {
+        if let Some(path) = p {
+            outputs.push(Output { option, path });
+        }
+    }
+    let inputs: Vec<Input<'_>> = args
+        .model
+        .as_deref()
+        .map(|p| Input {
+            what: "model",
+            path: p,
+        })
+        .into_iter()
+        .collect();
+    files::check_outputs(&outputs, &inputs)?;
     let model = args.model.as_deref().map(read_model).transpose()?;
     let names = model
         .as_ref()
@@ -135,9 +155,14 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     };
     let mut printer = LinePrinter::new(std::io::stdout(), format, names.clone());
     printer.scores = args.scores;
+    // Recordings are written beside their files until the link is open,
+    // then put in place: an early failure leaves an existing file as it
+    // was, and what a session recorded is kept however it ends.
+    let mut places = Vec::new();
     let mut recorder = match &args.record {
         Some(p) => {
-            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
+            let (place, f) = TempOutput::create(p)?;
+            places.push(place);
             Some(
                 Recorder::new(std::io::BufWriter::new(f), names.clone())
                     .map_err(|e| Error::io(p, "write", &e))?,
@@ -147,7 +172,8 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     };
     let mut samples = match (&args.record_samples, &model) {
         (Some(p), Some(m)) => {
-            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
+            let (place, f) = TempOutput::create(p)?;
+            places.push(place);
             Some(
                 SampleRecorder::new(
                     std::io::BufWriter::new(f),
@@ -168,6 +194,9 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     }
 
     let mut link = args.link.open()?;
+    for place in places {
+        place.commit()?;
+    }
     if !args.no_reconnect {
         if let Some(reopen) = args.link.reopener() {
             link.set_reopen(reopen);

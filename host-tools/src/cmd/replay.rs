@@ -3,6 +3,7 @@
 use crate::cli::{LogArgs, OutputArgs};
 use crate::cmd::inspect::read_model;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
+use crate::files::{self, AtomicWriter, Input, Output};
 use crate::logs::{expand_paths, BadCells};
 use crate::progress::Progress;
 use crate::replay::{self, event_name, fault_name, state_name, Flag, LogReplay, Step};
@@ -10,7 +11,7 @@ use clap::Args;
 use plumb_firmware::Score;
 use serde::Serialize;
 use std::io::Write;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 /// Long help of `plumb replay`.
 pub const LONG_ABOUT: &str = "\
@@ -153,6 +154,24 @@ pub fn text(reps: &[LogReplay]) -> String {
     s
 }
 
+/// The files `replay` and `report` read: the model, the logs and the
+/// units sidecar.
+pub fn inputs<'a>(model: &'a Path, logs: &'a [PathBuf], read: &'a LogArgs) -> Vec<Input<'a>> {
+    let mut v = vec![Input {
+        what: "model",
+        path: model,
+    }];
+    v.extend(logs.iter().map(|p| Input {
+        what: "log",
+        path: p,
+    }));
+    v.extend(read.units.as_deref().map(|p| Input {
+        what: "units",
+        path: p,
+    }));
+    v
+}
+
 /// Runs `plumb replay`.
 pub fn run(args: ReplayArgs) -> Result<u8> {
     if args.compare {
@@ -167,10 +186,20 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
         .map(|p| std::fs::metadata(p).map(|m| m.len()).unwrap_or(0))
         .sum();
     let stage = progress.stage("replay", total, true);
+    if let Some(t) = &args.trace {
+        files::check_outputs(
+            &[Output {
+                option: "--trace",
+                path: t,
+            }],
+            &inputs(&args.model, &paths, &args.read),
+        )?;
+    }
+    // Written beside the trace and renamed into place when the replay
+    // succeeds: a failure leaves an existing file as it was.
     let mut trace = match &args.trace {
         Some(p) => {
-            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
-            let mut w = std::io::BufWriter::new(f);
+            let mut w = AtomicWriter::create(p)?;
             trace_header(&mut w).map_err(|e| Error::io(p, "write", &e))?;
             Some((p.clone(), w))
         }
@@ -182,8 +211,8 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
         }
         Ok(())
     })?;
-    if let Some((p, mut w)) = trace {
-        w.flush().map_err(|e| Error::io(&p, "write", &e))?;
+    if let Some((_, w)) = trace {
+        w.finish()?;
     }
     if args.output.json {
         crate::outln!("{}", serde_json::json!({ "logs": reps }));

@@ -3,7 +3,8 @@
 use crate::cli::{LogArgs, OutputArgs};
 use crate::cmd::inspect::read_model;
 use crate::error::{Result, EXIT_CLEAN, EXIT_DRIFT};
-use crate::logs::BadCells;
+use crate::files::{self, Input, Output};
+use crate::logs::{expand_paths, BadCells};
 use crate::progress::Progress;
 use crate::report::{read_truth, write_report};
 use clap::Args;
@@ -68,6 +69,28 @@ pub struct ReportArgs {
 
 /// Runs `plumb report`.
 pub fn run(args: ReportArgs) -> Result<u8> {
+    let logs = expand_paths(&args.logs)?;
+    let train = if args.train.is_empty() {
+        Vec::new()
+    } else {
+        expand_paths(&args.train)?
+    };
+    let mut inputs = crate::cmd::replay::inputs(&args.model, &logs, &args.read);
+    inputs.extend(train.iter().map(|p| Input {
+        what: "training log",
+        path: p,
+    }));
+    inputs.extend(args.truth.as_deref().map(|p| Input {
+        what: "truth",
+        path: p,
+    }));
+    files::check_outputs(
+        &[Output {
+            option: "--out",
+            path: &args.out,
+        }],
+        &inputs,
+    )?;
     let file = read_model(&args.model)?;
     let truth = match &args.truth {
         Some(p) => read_truth(p)?,
