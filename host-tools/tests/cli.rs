@@ -1217,3 +1217,20 @@ fn a_failed_replay_or_feed_leaves_an_existing_output_as_it_was() {
     assert!(std::fs::read_to_string(&img).unwrap().starts_with(':'));
     no_temporaries(&d);
 }
+
+#[test]
+fn keygen_says_a_folder_is_a_folder_and_leaves_no_half_pair() {
+    let d = Scratch::new("keygen");
+    refused(&["keygen", "--out", s(&d.0)], &["is a folder"]);
+    let k = d.path("k");
+    std::fs::create_dir(d.path("k.pub")).unwrap();
+    refused(
+        &["keygen", "--out", s(&k), "--force"],
+        &["k.pub: is a folder"],
+    );
+    assert!(!k.exists(), "a secret key without its public key");
+    let long = d.path(&"s".repeat(252));
+    refused(&["keygen", "--out", s(&long)], &[".pub"]);
+    assert!(!long.exists(), "a secret key without its public key");
+    no_temporaries(&d);
+}
