@@ -249,7 +249,7 @@ fn capacity_error(dims: &Dims) -> Option<Error> {
             "{e}: the model would have {} features, {} components and {} mixture components; \
              a device holds at most {}, {} and {}. Use fewer features, --components or \
              --variance for fewer components, --mixture for fewer mixture components, or \
-             --no-device-check to write a host-only model",
+             --no-device-check to write a model only `plumb inspect` reads (no board, nor replay, runs it)",
             dims.features, dims.components, dims.mixture, c.features, c.components, c.mixture
         ))
     })

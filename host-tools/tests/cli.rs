@@ -493,6 +493,32 @@ fn no_device_check_writes_a_host_only_model() {
     );
     let o = plumb(&["inspect", s(&m)]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    // Replay and report run the boards' detector: refused, naming the model.
+    let html = d.path("r.html");
+    for args in [
+        vec!["replay", s(&m), s(&p)],
+        vec!["report", s(&m), s(&p), "--out", s(&html)],
+    ] {
+        let err = refused(
+            &args,
+            &[&format!("{}: the model does not fit the device", s(&m))],
+        );
+        assert!(err.contains("--no-device-check"), "{err}");
+    }
+    // Upload checks what a board holds before it opens the link.
+    let port = d.path("no-such-port");
+    refused(
+        &["upload", s(&m), "--port", s(&port)],
+        &[
+            &format!("{}: a board would refuse this model", s(&m)),
+            "at most 64 features",
+            "--unchecked",
+        ],
+    );
+    let o = plumb(&["fit", "--help"]);
+    let help = String::from_utf8_lossy(&o.stdout);
+    assert!(help.contains("`plumb inspect` reads it"), "{help}");
+    assert!(!help.contains("for host use"), "{help}");
 }
 
 #[test]
@@ -1233,4 +1259,91 @@ fn keygen_says_a_folder_is_a_folder_and_leaves_no_half_pair() {
     refused(&["keygen", "--out", s(&long)], &[".pub"]);
     assert!(!long.exists(), "a secret key without its public key");
     no_temporaries(&d);
+}
+
+#[test]
+fn no_sample_at_all_is_not_a_clean_run() {
+    let d = Scratch::new("empty");
+    let m = board_model(&d);
+    let full = demo_head(&d, "full.csv", "holdout/robot1_day3.csv", 200);
+    let empty = demo_head(&d, "empty.csv", "holdout/robot1_day3.csv", 0);
+    let trace = d.path("t.csv");
+    let err = refused(
+        &["replay", s(&m), s(&empty), "--trace", s(&trace)],
+        &[
+            &format!("warning: 0 samples in {}", s(&empty)),
+            "nothing was checked",
+        ],
+    );
+    assert!(!trace.exists(), "{err}");
+    refused(
+        &["report", s(&m), s(&empty), "--out", s(&d.path("r.html"))],
+        &["0 samples in", "nothing was checked"],
+    );
+    assert!(!d.path("r.html").exists());
+    // One empty log among others: warned about, the rest is checked.
+    let o = plumb(&["replay", s(&m), s(&empty), s(&full), "--quiet"]);
+    assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+    assert!(stderr(&o).contains("0 samples in"), "{}", stderr(&o));
+    // Every row faulted: warned about.
+    let text = std::fs::read_to_string(&full).unwrap();
+    let mut ls = lines(&text);
+    for l in ls.iter_mut().skip(1) {
+        *l = set_field(l, 2, "");
+    }
+    let faulted = d.write("faulted.csv", &join(&ls));
+    let o = plumb(&["replay", s(&m), s(&faulted), "--quiet"]);
+    assert!(
+        stderr(&o).contains("all 200 samples in") && stderr(&o).contains("sensor faults"),
+        "{}",
+        stderr(&o)
+    );
+}
+
+#[test]
+fn skip_bad_rows_leaves_rows_out_of_replay_and_report() {
+    let d = Scratch::new("skip-replay");
+    let m = board_model(&d);
+    let full = demo_head(&d, "full.csv", "holdout/robot1_day3.csv", 300);
+    let mut ls = lines(&std::fs::read_to_string(&full).unwrap());
+    for i in [10, 20, 30] {
+        ls[i] = set_field(&ls[i], 3, "NaN");
+    }
+    let holes = d.write("holes.csv", &join(&ls));
+    let run = |extra: &[&str]| {
+        let mut args = vec!["replay", s(&m), s(&holes), "--json"];
+        args.extend(extra);
+        let o = plumb(&args);
+        assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+        let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        v["logs"][0].clone()
+    };
+    let passed = run(&[]);
+    assert_eq!(passed["samples"], 300);
+    assert_eq!(passed["skipped"], 0);
+    assert!(passed["faults"].as_u64().unwrap() >= 3, "{passed}");
+    let skipped = run(&["--skip-bad-rows"]);
+    assert_eq!(skipped["samples"], 297);
+    assert_eq!(skipped["skipped"], 3);
+    assert_eq!(
+        skipped["faults"].as_u64().unwrap() + 3,
+        passed["faults"].as_u64().unwrap(),
+        "{skipped}"
+    );
+    let o = plumb(&["replay", s(&m), s(&holes), "--skip-bad-rows"]);
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert!(out.contains("3 rows skipped"), "{out}");
+    let html = d.path("r.html");
+    let o = plumb(&[
+        "report",
+        s(&m),
+        s(&holes),
+        "--out",
+        s(&html),
+        "--skip-bad-rows",
+        "--json",
+    ]);
+    assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["logs"][0]["skipped"], 3, "{v}");
 }

@@ -37,7 +37,9 @@ as it was); --record-samples writes the samples sent as a log `plumb fit` reads,
 --record the events received: both are kept however the feed ends once the link is open.
 No output may be the model, the log or another output.
 
-Exit code 1 if the board raised a drift flag, 0 otherwise, 2 on bad input or a link error.";
+Exit code 1 if the board raised a drift flag, 0 otherwise, 2 on bad input or a link error,
+and 2 when no sample was fed (a log without data rows, or --rows past its end): nothing was
+checked.";
 
 /// Arguments of `plumb feed`.
 #[derive(Debug, Clone, Args)]
@@ -402,6 +404,20 @@ pub fn run(args: FeedArgs) -> Result<u8> {
     };
     let sum = outcome?;
     flushed?;
+    if sum.samples == 0 {
+        eprintln!(
+            "plumb: warning: 0 samples in {}{}",
+            args.log.display(),
+            match &args.rows {
+                Some(r) if r.end == u64::MAX => format!(" (rows {}..)", r.start),
+                Some(r) => format!(" (rows {}..{})", r.start, r.end),
+                None => String::new(),
+            }
+        );
+        return Err(Error::input(
+            "0 samples fed: nothing was checked (the log has no data rows there)",
+        ));
+    }
     if let (Some(e), Some(p)) = (trace_err, &args.trace) {
         return Err(Error::io(p, "write", &e));
     }

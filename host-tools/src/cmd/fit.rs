@@ -293,7 +293,9 @@ pub struct FitArgs {
     )]
     pub fault_z: f64,
 
-    /// Write a model over the device capacities (64 features, 16 components, 8 mixture components) for host use
+    /// Allow a model over the device capacities (64 features, 16 components, 8 mixture
+    /// components): no board loads it, and `plumb replay` and `plumb report` refuse it too (they
+    /// run the boards' detector, with the boards' capacities); `plumb inspect` reads it
     #[arg(long)]
     pub no_device_check: bool,
 

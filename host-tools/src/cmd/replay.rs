@@ -19,7 +19,9 @@ Run logs through the very same detector the boards run (the firmware crate, buil
 the host), sample by sample, and report every drift flag: when it rose and cleared
 (0-based sample index and log time), which scores drove it, and the features with the
 largest residual share. Each log starts from a fresh detector, warm-up included.
-Empty or NaN cells are passed to the detector, which counts them as sensor faults.
+Empty or NaN cells are passed to the detector, which counts them as sensor faults (as a
+board does); --skip-bad-rows leaves such rows out instead: they never reach the detector,
+are counted per log (`skipped`), and sample indices then count the rows replayed.
 
 --trace writes one CSV row per sample: scores, EWMA and CUSUM of each score, state,
 event and fault, for plotting or for comparing with a board bit for bit.
@@ -31,7 +33,8 @@ flagged which, whether the new model raises earlier or later). With --json: `old
 `logs` (both flag lists per log) and `summary`.
 
 Exit code 1 when any flag was raised (under either model with --compare), 0 when none,
-2 on bad input.";
+2 on bad input, and 2 when the logs gave no sample at all: nothing was checked. A log with
+no sample, or with every sample a sensor fault, is warned about on standard error.";
 
 /// Arguments of `plumb replay`.
 #[derive(Debug, Clone, Args)]
@@ -125,6 +128,12 @@ pub fn text(reps: &[LogReplay]) -> String {
             r.faults,
             r.flags.len()
         ));
+        if r.skipped > 0 {
+            s.push_str(&format!(
+                "  {} rows skipped (empty or non-finite cells; --skip-bad-rows)\n",
+                r.skipped
+            ));
+        }
         for (i, f) in r.flags.iter().enumerate() {
             let cleared = match f.cleared_at {
                 Some(c) => format!("cleared at {}", fmt_at(c, f.cleared_t)),
@@ -178,6 +187,7 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
         return run_compare(args);
     }
     let file = read_model(&args.model)?;
+    replay::check_model(&file, &args.model)?;
     let paths = expand_paths(&args.logs)?;
     let opts = args.read.options(BadCells::PassAsNan)?;
     let progress = Progress::stderr(args.output.quiet || args.output.json);
@@ -211,6 +221,8 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
         }
         Ok(())
     })?;
+    drop(stage);
+    replay::require_samples(&reps)?;
     if let Some((_, w)) = trace {
         w.finish()?;
     }
@@ -446,6 +458,8 @@ fn run_compare(args: ReplayArgs) -> Result<u8> {
     };
     let old_file = read_model(&args.model)?;
     let new_file = read_model(&new_path)?;
+    replay::check_model(&old_file, &args.model)?;
+    replay::check_model(&new_file, &new_path)?;
     let paths = expand_paths(&log_args)?;
     let opts = args.read.options(BadCells::PassAsNan)?;
     let progress = Progress::stderr(args.output.quiet || args.output.json);
@@ -460,6 +474,7 @@ fn run_compare(args: ReplayArgs) -> Result<u8> {
             Ok(())
         })?);
     }
+    replay::require_samples(&runs[0])?;
     let logs: Vec<LogCompare> = runs[0]
         .iter()
         .zip(&runs[1])
@@ -520,6 +535,7 @@ mod tests {
         LogReplay {
             path: PathBuf::from("a.csv"),
             samples: 100,
+            skipped: 0,
             faults: 0,
             fault_kinds: Faults::default(),
             flags,

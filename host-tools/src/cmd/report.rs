@@ -34,8 +34,11 @@ per component; and tables of flags and faults.
 `fault`; features `;`-separated), as demo-logs/truth.csv. A row applies to a log with the
 same path, or else the only row with the same file name.
 
+Empty or NaN cells reach the detector as sensor faults, as in `plumb replay`; with
+--skip-bad-rows such rows are left out and counted.
+
 The report is written atomically. Exit code 1 when any flag was raised, 0 when none,
-2 on bad input.";
+2 on bad input, and 2 (no report written) when the logs gave no sample at all.";
 
 /// Arguments of `plumb report`.
 #[derive(Debug, Clone, Args)]
@@ -92,6 +95,7 @@ pub fn run(args: ReportArgs) -> Result<u8> {
         &inputs,
     )?;
     let file = read_model(&args.model)?;
+    crate::replay::check_model(&file, &args.model)?;
     let truth = match &args.truth {
         Some(p) => read_truth(p)?,
         None => Vec::new(),
