@@ -266,10 +266,23 @@ pub fn fit(
     if cfg.restarts == 0 || cfg.max_iter == 0 {
         return Err(Error::input("--restarts and --max-iter must be at least 1"));
     }
-    if !(cfg.tol > 0.0) || !(cfg.reg_covar >= 0.0) || !(cfg.var_floor >= 0.0) {
-        return Err(Error::input(
-            "--tol must be > 0; --reg-covar and --var-floor must be ≥ 0",
-        ));
+    if !(cfg.tol > 0.0) || !cfg.tol.is_finite() {
+        return Err(Error::input(format!(
+            "--tol must be a number above 0, found {}",
+            cfg.tol
+        )));
+    }
+    if !(cfg.reg_covar >= 0.0) || !cfg.reg_covar.is_finite() {
+        return Err(Error::input(format!(
+            "--reg-covar must be a number ≥ 0, found {}",
+            cfg.reg_covar
+        )));
+    }
+    if !(0.0..=1.0).contains(&cfg.var_floor) {
+        return Err(Error::input(format!(
+            "--var-floor is a fraction of each latent score's variance: expected 0 to 1, found {}",
+            cfg.var_floor
+        )));
     }
     let d = train.features();
     let first = &train.files()[0].path;

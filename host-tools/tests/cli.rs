@@ -1347,3 +1347,22 @@ fn skip_bad_rows_leaves_rows_out_of_replay_and_report() {
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(v["logs"][0]["skipped"], 3, "{v}");
 }
+
+#[test]
+fn em_settings_name_the_offending_option() {
+    let d = Scratch::new("em-settings");
+    let p = d.write("a.csv", &log_text(4, 1000, 1));
+    for (opt, v, want) in [
+        ("--tol", "0", "--tol must be a number above 0, found 0"),
+        ("--reg-covar", "-1", "--reg-covar must be a number ≥ 0"),
+        ("--var-floor", "2", "--var-floor is a fraction"),
+        ("--var-floor", "-0.5", "expected 0 to 1"),
+    ] {
+        let arg = format!("{opt}={v}");
+        let err = fit_fails(&d, &[&p], &[&arg], &[want]);
+        let others = ["--tol", "--reg-covar", "--var-floor"];
+        for o in others.iter().filter(|o| **o != opt) {
+            assert!(!err.contains(o), "{opt}: {err}");
+        }
+    }
+}

@@ -175,7 +175,7 @@ pub struct FitArgs {
     )]
     pub reg_covar: f64,
 
-    /// Variance floor, as a fraction of each latent score's variance (stops collapse onto repeated points)
+    /// Variance floor, as a fraction (0 to 1) of each latent score's variance (stops collapse onto repeated points)
     #[arg(
         long,
         value_name = "FRACTION",
