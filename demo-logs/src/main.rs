@@ -93,6 +93,7 @@ fn parse_args(mut it: impl Iterator<Item = String>) -> Result<Option<Args>, Stri
             other => return Err(format!("unknown argument `{other}` (see --help)")),
         }
     }
+    check_sizes(&a)?;
     if a.out.is_none() && a.holdout_rows.is_none() {
         return Err(
             "nothing to do: give --out <DIR> and/or --holdout-rows <N> (see --help)".into(),
@@ -108,6 +109,36 @@ fn parse_args(mut it: impl Iterator<Item = String>) -> Result<Option<Args>, Stri
         );
     }
     Ok(Some(a))
+}
+
+/// The sizes, checked before anything is written; errors name the option.
+fn check_sizes(a: &Args) -> Result<(), String> {
+    let c = &a.cfg;
+    if c.train_rows_per_log == 0 {
+        return Err("--train-rows must be at least 1".into());
+    }
+    if c.holdout_rows_per_log == 0 {
+        return Err("--holdout-log-rows must be at least 1".into());
+    }
+    if c.drift_onset == 0 || c.drift_onset >= c.drift_rows {
+        return Err(format!(
+            "--drift-onset ({}) must be at least 1 and below --drift-rows ({})",
+            c.drift_onset, c.drift_rows
+        ));
+    }
+    if a.holdout_rows == Some(0) {
+        return Err("--holdout-rows must be at least 1".into());
+    }
+    match (a.holdout_files, a.holdout_rows) {
+        (Some(0), _) => return Err("--holdout-files must be at least 1".into()),
+        (Some(f), Some(r)) if f > r => {
+            return Err(format!(
+                "--holdout-files ({f}) must not exceed --holdout-rows ({r}): each file needs a row"
+            ))
+        }
+        _ => {}
+    }
+    Ok(())
 }
 
 fn file_summary(path: &std::path::Path) -> String {
@@ -181,5 +212,68 @@ fn main() -> ExitCode {
             eprintln!("plumb-scenario: error: {e}");
             ExitCode::from(2)
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn err(args: &[&str]) -> String {
+        match parse_args(args.iter().map(|s| s.to_string())) {
+            Err(e) => e,
+            Ok(_) => panic!("{args:?} accepted"),
+        }
+    }
+
+    #[test]
+    fn bad_sizes_name_the_option() {
+        let cases: [(&[&str], &str); 7] = [
+            (
+                &["--out", "d", "--train-rows", "0"],
+                "--train-rows must be at least 1",
+            ),
+            (
+                &["--out", "d", "--holdout-log-rows=0"],
+                "--holdout-log-rows",
+            ),
+            (
+                &["--out", "d", "--drift-onset", "9000"],
+                "--drift-onset (9000)",
+            ),
+            (&["--out", "d", "--drift-onset", "0"], "--drift-onset"),
+            (
+                &["--holdout-rows", "0", "--holdout-out", "d"],
+                "--holdout-rows",
+            ),
+            (
+                &[
+                    "--holdout-rows",
+                    "10",
+                    "--holdout-out",
+                    "d",
+                    "--holdout-files",
+                    "0",
+                ],
+                "--holdout-files must be at least 1",
+            ),
+            (
+                &[
+                    "--holdout-rows",
+                    "3",
+                    "--holdout-out",
+                    "d",
+                    "--holdout-files",
+                    "4",
+                ],
+                "--holdout-files (4)",
+            ),
+        ];
+        for (args, want) in cases {
+            let e = err(args);
+            assert!(e.contains(want), "{args:?}: {e}");
+            assert!(!e.contains("_per_log"), "{e}");
+        }
+        assert!(parse_args(["--out", "d"].iter().map(|s| s.to_string())).is_ok());
     }
 }

@@ -124,7 +124,8 @@ pub struct LogArgs {
     #[arg(long, value_name = "NAME", default_value = "t")]
     pub time_column: String,
 
-    /// Skip rows with empty, NaN or infinite cells and count them, instead of stopping
+    /// Skip rows with empty, NaN or infinite cells and count them, instead of stopping (fit) or
+    /// passing them on as sensor faults (replay, report, feed)
     #[arg(long)]
     pub skip_bad_rows: bool,
 

@@ -249,7 +249,7 @@ fn capacity_error(dims: &Dims) -> Option<Error> {
             "{e}: the model would have {} features, {} components and {} mixture components; \
              a device holds at most {}, {} and {}. Use fewer features, --components or \
              --variance for fewer components, --mixture for fewer mixture components, or \
-             --no-device-check to write a host-only model",
+             --no-device-check to write a model only `plumb inspect` reads (no board, nor replay, runs it)",
             dims.features, dims.components, dims.mixture, c.features, c.components, c.mixture
         ))
     })
@@ -266,10 +266,23 @@ pub fn fit(
     if cfg.restarts == 0 || cfg.max_iter == 0 {
         return Err(Error::input("--restarts and --max-iter must be at least 1"));
     }
-    if !(cfg.tol > 0.0) || !(cfg.reg_covar >= 0.0) || !(cfg.var_floor >= 0.0) {
-        return Err(Error::input(
-            "--tol must be > 0; --reg-covar and --var-floor must be ≥ 0",
-        ));
+    if !(cfg.tol > 0.0) || !cfg.tol.is_finite() {
+        return Err(Error::input(format!(
+            "--tol must be a number above 0, found {}",
+            cfg.tol
+        )));
+    }
+    if !(cfg.reg_covar >= 0.0) || !cfg.reg_covar.is_finite() {
+        return Err(Error::input(format!(
+            "--reg-covar must be a number ≥ 0, found {}",
+            cfg.reg_covar
+        )));
+    }
+    if !(0.0..=1.0).contains(&cfg.var_floor) {
+        return Err(Error::input(format!(
+            "--var-floor is a fraction of each latent score's variance: expected 0 to 1, found {}",
+            cfg.var_floor
+        )));
     }
     let d = train.features();
     let first = &train.files()[0].path;
@@ -791,34 +804,9 @@ pub fn model_id(file: &ModelFile) -> Result<u32> {
     Ok(plumb_model::file::crc32(sections.payload))
 }
 
-/// Writes `bytes` to `path` atomically: a temporary file in the same folder,
-/// flushed to disk, then renamed over `path`. On any error the temporary file
-/// is removed and `path` is untouched.
+/// Writes `bytes` to `path` atomically ([`crate::files::write_atomic`]).
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
-    use std::io::Write;
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => std::path::PathBuf::from("."),
-    };
-    let name = path
-        .file_name()
-        .ok_or_else(|| Error::at(Location::file(path), "expected a file name"))?;
-    let mut tmp_name = std::ffi::OsString::from(".");
-    tmp_name.push(name);
-    tmp_name.push(format!(".{}.plumb.tmp", std::process::id()));
-    let tmp = dir.join(tmp_name);
-    let result = (|| -> std::io::Result<()> {
-        let mut f = std::fs::File::create(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-        drop(f);
-        std::fs::rename(&tmp, path)
-    })();
-    if let Err(e) = result {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(Error::io(path, "write", &e));
-    }
-    Ok(())
+    crate::files::write_atomic(path, bytes)
 }
 
 crate::simd::kernel! {

@@ -15,6 +15,7 @@
 //! `shared-model/FORMAT.md`, "Signature".
 
 use crate::error::{Error, Location, Result};
+use crate::files::TempOutput;
 use plumb_model::file;
 use plumb_model::signature::{self, KeyId, SignatureError, TrustedKey};
 use std::path::{Path, PathBuf};
@@ -150,41 +151,54 @@ pub fn public_path(secret: &Path) -> PathBuf {
 }
 
 /// Writes a new key pair: `secret` (owner-only on Unix) and `secret.pub`.
-/// Existing files are kept unless `force`.
+/// Existing files are kept unless `force`; a folder at either path is
+/// refused. Both keys are written to temporary files beside them first and
+/// renamed into place only when both are written, the public key first and
+/// the secret key last: a failure leaves the old pair (or nothing) as it
+/// was.
 pub fn write_pair(key: &SigningKey, secret: &Path, force: bool) -> Result<PathBuf> {
     let public = public_path(secret);
-    if !force {
-        for p in [secret, public.as_path()] {
-            if p.exists() {
-                return Err(Error::at(
-                    Location::file(p),
-                    "exists; not overwritten (give --force to replace the key pair)",
-                ));
-            }
+    for p in [secret, public.as_path()] {
+        if p.is_dir() {
+            return Err(Error::at(
+                Location::file(p),
+                "is a folder; expected a key file name (--out names the secret key file, \
+                 the public key goes beside it with .pub)",
+            ));
+        }
+        if !force && (p.exists() || p.is_symlink()) {
+            return Err(Error::at(
+                Location::file(p),
+                "exists; not overwritten (give --force to replace the key pair)",
+            ));
         }
     }
-    write_secret(secret, &key.secret_text())?;
-    std::fs::write(&public, key.public_text()).map_err(|e| Error::io(&public, "write", &e))?;
+    let (secret_place, f) = TempOutput::create_private(secret)?;
+    write_secret(secret, secret_place.temp_path(), f, &key.secret_text())?;
+    let (public_place, mut f) = TempOutput::create(&public)?;
+    {
+        use std::io::Write;
+        f.write_all(key.public_text().as_bytes())
+            .and_then(|()| f.sync_all())
+            .map_err(|e| Error::io(&public, "write", &e))?;
+    }
+    public_place.commit()?;
+    secret_place.commit()?;
     Ok(public)
 }
 
-fn write_secret(path: &Path, text: &str) -> Result<()> {
+/// Writes the secret key text to `tmp` (open as `f`), readable by its owner
+/// only; errors name `path`, the file it will become.
+fn write_secret(path: &Path, tmp: &Path, mut f: std::fs::File, text: &str) -> Result<()> {
     use std::io::Write;
-    let mut opts = std::fs::OpenOptions::new();
-    opts.write(true).create(true).truncate(true);
     #[cfg(unix)]
     {
-        use std::os::unix::fs::OpenOptionsExt;
-        opts.mode(0o600);
-    }
-    let mut f = opts.open(path).map_err(|e| Error::io(path, "create", &e))?;
-    #[cfg(unix)]
-    {
-        // A file that existed keeps its mode through open: tighten it.
         use std::os::unix::fs::PermissionsExt;
-        std::fs::set_permissions(path, std::fs::Permissions::from_mode(0o600))
+        std::fs::set_permissions(tmp, std::fs::Permissions::from_mode(0o600))
             .map_err(|e| Error::io(path, "set permissions of", &e))?;
     }
+    #[cfg(not(unix))]
+    let _ = tmp;
     f.write_all(text.as_bytes())
         .and_then(|()| f.sync_all())
         .map_err(|e| Error::io(path, "write", &e))
@@ -265,6 +279,33 @@ mod tests {
         std::fs::write(dir.join("short"), format!("{PUBLIC_TAG} abcd\n")).unwrap();
         let e = read_public(&dir.join("short")).unwrap_err().to_string();
         assert!(e.contains("64 hex digits"), "{e}");
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    #[test]
+    fn a_pair_is_written_whole_or_not_at_all() {
+        let dir = scratch("whole");
+        let old = SigningKey::from_seed([7; 32]);
+        let secret = dir.join("k");
+        write_pair(&old, &secret, false).unwrap();
+        // A folder where the public key goes: refused before anything is
+        // written, even with force; the old secret key stays.
+        std::fs::remove_file(dir.join("k.pub")).unwrap();
+        std::fs::create_dir(dir.join("k.pub")).unwrap();
+        let e = write_pair(&SigningKey::from_seed([8; 32]), &secret, true).unwrap_err();
+        assert!(e.to_string().contains("k.pub: is a folder"), "{e}");
+        assert_eq!(read_secret(&secret).unwrap(), old);
+        // A public key name too long for the file system: nothing written.
+        let long = dir.join("s".repeat(252));
+        let e = write_pair(&old, &long, false).unwrap_err();
+        assert!(e.to_string().contains(".pub"), "{e}");
+        assert!(!long.exists(), "a secret key without its public key");
+        let left: Vec<_> = std::fs::read_dir(&dir)
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .filter(|n| n.to_string_lossy().ends_with(".tmp"))
+            .collect();
+        assert!(left.is_empty(), "{left:?}");
         let _ = std::fs::remove_dir_all(&dir);
     }
 

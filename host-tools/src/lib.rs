@@ -13,7 +13,8 @@
 //! | [`simd`] | the numeric kernels compiled for AVX2 when the processor has it (same bits) |
 //! | [`arl`] | run lengths of CUSUM and EWMA charts (Markov chain), limit search |
 //! | [`calibrate`] | limits from held-out rows through the device detector |
-//! | [`fit`] | the fit pipeline, model id, atomic output |
+//! | [`fit`] | the fit pipeline, model id |
+//! | [`files`] | output files: never an input, written atomically |
 //! | [`replay`] | logs through the firmware detector on the host |
 //! | [`report`] | the HTML drift report (timelines, contributions, latent plane) |
 //! | [`summary`] | human and JSON summary of a model (fit, inspect) |
@@ -45,6 +46,7 @@ pub mod cmd;
 pub mod device;
 pub mod error;
 pub mod events;
+pub mod files;
 pub mod fit;
 pub mod gmm;
 pub mod keys;

@@ -2,7 +2,9 @@
 //!
 //! Each log is replayed from a fresh detector (reset statistics, warm-up), in
 //! model column order; empty and non-finite cells pass through as NaN so the
-//! detector counts them as sensor faults, exactly as a board would.
+//! detector counts them as sensor faults, exactly as a board would, unless
+//! the reading options skip such rows ([`BadCells::SkipRow`]): those never
+//! reach the detector and are counted per log.
 
 use crate::error::{Error, Location, Result};
 use crate::logs::{BadCells, LogSet, ReadOptions, Selection};
@@ -14,10 +16,13 @@ use std::path::PathBuf;
 
 /// A detector for a model file, refusing one over the device capacities.
 pub fn detector(file: &ModelFile) -> Result<Detector> {
-    let device = file
-        .model
-        .to_device()
-        .map_err(|e| Error::input(format!("the model does not fit the device: {e}")))?;
+    let device = file.model.to_device().map_err(|e| {
+        Error::input(format!(
+            "the model does not fit the device: {e} (replay runs the boards' own detector, \
+             with their capacities; a model fitted with --no-device-check is for `plumb \
+             inspect` only)"
+        ))
+    })?;
     Detector::new(device).map_err(|e| Error::input(format!("the model is not usable: {e}")))
 }
 
@@ -96,6 +101,8 @@ pub struct LogReplay {
     pub path: PathBuf,
     /// Samples replayed.
     pub samples: u64,
+    /// Rows left out for empty or non-finite cells (`--skip-bad-rows`).
+    pub skipped: u64,
     /// Faulted samples (total).
     pub faults: u64,
     /// Faulted samples by cause.
@@ -112,6 +119,13 @@ pub struct LogReplay {
 /// Names of the scores in a set.
 pub fn score_names(set: ScoreSet) -> Vec<&'static str> {
     set.iter().map(Score::name).collect()
+}
+
+/// [`detector`] for the model file at `path`: errors name the file.
+pub fn check_model(file: &ModelFile, path: &std::path::Path) -> Result<()> {
+    detector(file)
+        .map(drop)
+        .map_err(|e| e.with_location(Location::file(path)))
 }
 
 /// One replayed sample as handed to a sink.
@@ -139,7 +153,9 @@ pub fn replay(
     mut sink: impl FnMut(Step<'_>) -> Result<()>,
 ) -> Result<Vec<LogReplay>> {
     let template = detector(file)?;
-    read.bad_cells = BadCells::PassAsNan;
+    if read.bad_cells != BadCells::SkipRow {
+        read.bad_cells = BadCells::PassAsNan;
+    }
     let set = LogSet::open_for_labels(paths, &file.labels, read)?;
     let names: Vec<String> = file.labels.iter().map(|l| l.name.clone()).collect();
     let time_scale = set.time_unit_us().map(|us| us / 1e6);
@@ -150,6 +166,7 @@ pub fn replay(
         let mut rep = LogReplay {
             path: log.path.clone(),
             samples: 0,
+            skipped: 0,
             faults: 0,
             fault_kinds: Faults::default(),
             flags: Vec::new(),
@@ -161,6 +178,7 @@ pub fn replay(
         let mut select = Selection(vec![0..0; set.files().len()]);
         select.0[fi] = 0..u64::MAX;
         set.for_each(&select, stage, |chunk| {
+            rep.skipped += chunk.skipped;
             for (i, row) in chunk.iter_rows().enumerate() {
                 for (xi, v) in x.iter_mut().zip(row) {
                     *xi = *v as f32;
@@ -239,6 +257,40 @@ pub fn replay(
         out.push(rep);
     }
     Ok(out)
+}
+
+/// Warns on standard error about every log that gave no sample, or whose
+/// every sample was faulted (nothing scored), and refuses a replay that
+/// gave no sample at all: nothing was checked (exit code 2).
+pub fn require_samples(reps: &[LogReplay]) -> Result<()> {
+    for r in reps {
+        if r.samples == 0 {
+            eprintln!(
+                "plumb: warning: 0 samples in {}{}",
+                r.path.display(),
+                if r.skipped > 0 {
+                    format!(
+                        " ({} rows skipped for empty or non-finite cells)",
+                        r.skipped
+                    )
+                } else {
+                    String::new()
+                }
+            );
+        } else if r.faults == r.samples {
+            eprintln!(
+                "plumb: warning: all {} samples in {} are sensor faults: nothing was scored",
+                r.samples,
+                r.path.display()
+            );
+        }
+    }
+    if reps.iter().all(|r| r.samples == 0) {
+        return Err(Error::input(
+            "0 samples replayed: nothing was checked (the logs have no data rows, or every row was skipped)",
+        ));
+    }
+    Ok(())
 }
 
 /// Short fixed name of a state (trace files, tables).

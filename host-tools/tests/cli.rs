@@ -496,6 +496,32 @@ fn no_device_check_writes_a_host_only_model() {
     );
     let o = plumb(&["inspect", s(&m)]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    // Replay and report run the boards' detector: refused, naming the model.
+    let html = d.path("r.html");
+    for args in [
+        vec!["replay", s(&m), s(&p)],
+        vec!["report", s(&m), s(&p), "--out", s(&html)],
+    ] {
+        let err = refused(
+            &args,
+            &[&format!("{}: the model does not fit the device", s(&m))],
+        );
+        assert!(err.contains("--no-device-check"), "{err}");
+    }
+    // Upload checks what a board holds before it opens the link.
+    let port = d.path("no-such-port");
+    refused(
+        &["upload", s(&m), "--port", s(&port)],
+        &[
+            &format!("{}: a board would refuse this model", s(&m)),
+            "at most 64 features",
+            "--unchecked",
+        ],
+    );
+    let o = plumb(&["fit", "--help"]);
+    let help = String::from_utf8_lossy(&o.stdout);
+    assert!(help.contains("`plumb inspect` reads it"), "{help}");
+    assert!(!help.contains("for host use"), "{help}");
 }
 
 #[test]
@@ -948,4 +974,411 @@ fn a_format_1_model_is_read_by_the_host_and_refused_for_a_board() {
     let o = plumb(&["upload", s(&old), "--port", "/dev/null"]);
     assert_eq!(o.status.code(), Some(2));
     assert!(stderr(&o).contains("version 1"), "{}", stderr(&o));
+}
+
+/// Expects exit code 2 and every needle on stderr.
+fn refused(args: &[&str], needles: &[&str]) -> String {
+    let o = plumb(args);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
+    for n in needles {
+        assert!(err.contains(n), "{args:?}: expected {n:?} in: {err}");
+    }
+    assert!(!err.contains("panicked"), "{err}");
+    err
+}
+
+#[test]
+fn listen_for_takes_a_sane_number_of_seconds() {
+    // `inf` and `1e20` used to panic with the program still running.
+    for v in ["inf", "1e20", "1e10", "0", "-1", "nan", "soon"] {
+        let arg = format!("--for={v}");
+        refused(
+            &["listen", "--exec", "cat", "--no-greeting", "--plain", &arg],
+            &["--for", "expected"],
+        );
+    }
+    let o = plumb(&[
+        "listen",
+        "--exec",
+        "cat",
+        "--no-greeting",
+        "--plain",
+        "--for",
+        "0.2",
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+}
+
+#[test]
+fn link_counts_are_checked() {
+    let link = ["--exec", "cat"];
+    for (cmd, bad) in [
+        ("listen", ["--reply-ms", "0"]),
+        ("listen", ["--reply-ms", "18446744073709551615"]),
+        ("listen", ["--tries", "0"]),
+        ("listen", ["--baud", "0"]),
+        ("upload", ["--tries", "0"]),
+        ("feed", ["--window", "0"]),
+    ] {
+        let mut args = vec![cmd];
+        if cmd != "listen" {
+            args.push("m.plumb");
+        }
+        if cmd == "feed" {
+            args.push("log.csv");
+        }
+        args.extend(link);
+        args.extend(bad);
+        refused(&args, &[bad[0]]);
+    }
+}
+
+/// The emulated board's model (24 features, the demo logs' columns).
+fn board_model(dir: &Scratch) -> PathBuf {
+    let bytes = std::fs::read(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../firmware/boards/mps2-an386/default.plumb"),
+    )
+    .unwrap();
+    let p = dir.path("m.plumb");
+    std::fs::write(&p, bytes).unwrap();
+    p
+}
+
+/// The first `rows` rows of a demo log.
+fn demo_head(dir: &Scratch, name: &str, rel: &str, rows: usize) -> PathBuf {
+    let text = std::fs::read_to_string(common::demo(rel)).unwrap();
+    let head: Vec<String> = text.lines().take(rows + 1).map(str::to_string).collect();
+    dir.write(name, &join(&head))
+}
+
+fn no_temporaries(dir: &Scratch) {
+    let left: Vec<PathBuf> = std::fs::read_dir(&dir.0)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.to_string_lossy().ends_with(".tmp"))
+        .collect();
+    assert!(left.is_empty(), "temporary files left: {left:?}");
+}
+
+#[test]
+fn an_output_that_is_an_input_is_refused_before_any_work() {
+    let d = Scratch::new("same-file");
+    let m = board_model(&d);
+    let log = demo_head(&d, "a.csv", "holdout/robot1_day3.csv", 300);
+    let key = d.write("k", "plumb-ed25519-secret 00\n");
+    let before = |p: &Path| std::fs::read(p).unwrap();
+    let (m0, log0, key0) = (before(&m), before(&log), before(&key));
+    let (m, log, key) = (s(&m), s(&log), s(&key));
+    // The same file by another spelling counts too.
+    let dotted = format!("{}/./a.csv", d.0.display());
+    let link = ["--exec", "cat"];
+    let cases: Vec<(Vec<&str>, &str, &str)> = vec![
+        (vec!["fit", log, "--out", log], "--out", "input (log"),
+        (vec!["fit", log, "--out", &dotted], "--out", "input (log"),
+        (vec!["report", m, log, "--out", m], "--out", "input (model"),
+        (vec!["report", m, log, "--out", log], "--out", "input (log"),
+        (
+            vec![
+                "image",
+                m,
+                "--board",
+                "mps2-an386",
+                "--slot",
+                "a",
+                "--out",
+                m,
+            ],
+            "--out",
+            "input (model",
+        ),
+        (
+            vec!["replay", m, log, "--trace", m],
+            "--trace",
+            "input (model",
+        ),
+        (
+            vec!["replay", m, log, "--trace", log],
+            "--trace",
+            "input (log",
+        ),
+        (
+            vec!["feed", m, log, "--trace", log],
+            "--trace",
+            "input (log",
+        ),
+        (
+            vec!["feed", m, log, "--record-samples", log],
+            "--record-samples",
+            "input (log",
+        ),
+        (
+            vec!["feed", m, log, "--record", m],
+            "--record",
+            "input (model",
+        ),
+        (
+            vec!["listen", "--model", m, "--record", m],
+            "--record",
+            "input (model",
+        ),
+        (
+            vec!["listen", "--model", m, "--record-samples", m],
+            "--record-samples",
+            "input (model",
+        ),
+        (
+            vec!["sign", m, "--key", key, "--out", key],
+            "--out",
+            "input (secret key",
+        ),
+    ];
+    for (mut args, option, what) in cases {
+        if matches!(args[0], "feed" | "listen") {
+            args.extend(link);
+        }
+        let err = refused(&args, &[option, what, "choose another file"]);
+        assert!(err.contains("is also an input"), "{err}");
+        assert_eq!(before(Path::new(m)), m0, "{args:?} changed the model");
+        assert_eq!(before(Path::new(log)), log0, "{args:?} changed the log");
+        assert_eq!(before(Path::new(key)), key0, "{args:?} changed the key");
+    }
+    // Two outputs on one file.
+    let t = d.path("t.csv");
+    refused(
+        &[
+            "feed",
+            m,
+            log,
+            "--trace",
+            s(&t),
+            "--record",
+            s(&t),
+            "--exec",
+            "cat",
+        ],
+        &["--record", "also the file of --trace"],
+    );
+    no_temporaries(&d);
+}
+
+#[test]
+fn a_failed_replay_or_feed_leaves_an_existing_output_as_it_was() {
+    let d = Scratch::new("keep");
+    let m = board_model(&d);
+    let good = demo_head(&d, "good.csv", "holdout/robot1_day3.csv", 300);
+    let mut bad = lines(&std::fs::read_to_string(&good).unwrap());
+    bad[200] = bad[200].rsplit_once(',').unwrap().0.to_string();
+    let bad = d.write("bad.csv", &join(&bad));
+    let keep = d.write("keep.csv", "old\n");
+    refused(
+        &[
+            "replay",
+            s(&m),
+            s(&good),
+            s(&bad),
+            "--trace",
+            s(&keep),
+            "--quiet",
+        ],
+        &["bad.csv:201"],
+    );
+    assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n");
+    // A replay that succeeds replaces it.
+    let o = plumb(&["replay", s(&m), s(&good), "--trace", s(&keep), "--quiet"]);
+    assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+    assert!(std::fs::read_to_string(&keep)
+        .unwrap()
+        .starts_with("log,sample,"));
+    // Feed: a link that cannot be opened touches no output.
+    for option in ["--trace", "--record", "--record-samples"] {
+        let keep = d.write("keep2.csv", "old\n");
+        let port = d.path("no-such-port");
+        refused(
+            &[
+                "feed",
+                s(&m),
+                s(&good),
+                option,
+                s(&keep),
+                "--port",
+                s(&port),
+            ],
+            &["no-such-port"],
+        );
+        assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n", "{option}");
+    }
+    // A feed that fails on the link: the trace is all or nothing.
+    let keep = d.write("keep3.csv", "old\n");
+    refused(
+        &[
+            "feed",
+            s(&m),
+            s(&good),
+            "--trace",
+            s(&keep),
+            "--exec",
+            "true",
+            "--reply-ms",
+            "50",
+            "--tries",
+            "2",
+            "--quiet",
+        ],
+        &[],
+    );
+    assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n");
+    // Listen: a link that cannot be opened touches no recording.
+    let keep = d.write("keep4.csv", "old\n");
+    let port = d.path("no-such-port");
+    refused(
+        &[
+            "listen",
+            "--record",
+            s(&keep),
+            "--port",
+            s(&port),
+            "--plain",
+        ],
+        &["no-such-port"],
+    );
+    assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n");
+    // Image: written whole.
+    let img = d.write("slot.hex", "old\n");
+    let o = plumb(&[
+        "image",
+        s(&m),
+        "--board",
+        "mps2-an386",
+        "--slot",
+        "a",
+        "--out",
+        s(&img),
+    ]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    assert!(std::fs::read_to_string(&img).unwrap().starts_with(':'));
+    no_temporaries(&d);
+}
+
+#[test]
+fn keygen_says_a_folder_is_a_folder_and_leaves_no_half_pair() {
+    let d = Scratch::new("keygen");
+    refused(&["keygen", "--out", s(&d.0)], &["is a folder"]);
+    let k = d.path("k");
+    std::fs::create_dir(d.path("k.pub")).unwrap();
+    refused(
+        &["keygen", "--out", s(&k), "--force"],
+        &["k.pub: is a folder"],
+    );
+    assert!(!k.exists(), "a secret key without its public key");
+    let long = d.path(&"s".repeat(252));
+    refused(&["keygen", "--out", s(&long)], &[".pub"]);
+    assert!(!long.exists(), "a secret key without its public key");
+    no_temporaries(&d);
+}
+
+#[test]
+fn no_sample_at_all_is_not_a_clean_run() {
+    let d = Scratch::new("empty");
+    let m = board_model(&d);
+    let full = demo_head(&d, "full.csv", "holdout/robot1_day3.csv", 200);
+    let empty = demo_head(&d, "empty.csv", "holdout/robot1_day3.csv", 0);
+    let trace = d.path("t.csv");
+    let err = refused(
+        &["replay", s(&m), s(&empty), "--trace", s(&trace)],
+        &[
+            &format!("warning: 0 samples in {}", s(&empty)),
+            "nothing was checked",
+        ],
+    );
+    assert!(!trace.exists(), "{err}");
+    refused(
+        &["report", s(&m), s(&empty), "--out", s(&d.path("r.html"))],
+        &["0 samples in", "nothing was checked"],
+    );
+    assert!(!d.path("r.html").exists());
+    // One empty log among others: warned about, the rest is checked.
+    let o = plumb(&["replay", s(&m), s(&empty), s(&full), "--quiet"]);
+    assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+    assert!(stderr(&o).contains("0 samples in"), "{}", stderr(&o));
+    // Every row faulted: warned about.
+    let text = std::fs::read_to_string(&full).unwrap();
+    let mut ls = lines(&text);
+    for l in ls.iter_mut().skip(1) {
+        *l = set_field(l, 2, "");
+    }
+    let faulted = d.write("faulted.csv", &join(&ls));
+    let o = plumb(&["replay", s(&m), s(&faulted), "--quiet"]);
+    assert!(
+        stderr(&o).contains("all 200 samples in") && stderr(&o).contains("sensor faults"),
+        "{}",
+        stderr(&o)
+    );
+}
+
+#[test]
+fn skip_bad_rows_leaves_rows_out_of_replay_and_report() {
+    let d = Scratch::new("skip-replay");
+    let m = board_model(&d);
+    let full = demo_head(&d, "full.csv", "holdout/robot1_day3.csv", 300);
+    let mut ls = lines(&std::fs::read_to_string(&full).unwrap());
+    for i in [10, 20, 30] {
+        ls[i] = set_field(&ls[i], 3, "NaN");
+    }
+    let holes = d.write("holes.csv", &join(&ls));
+    let run = |extra: &[&str]| {
+        let mut args = vec!["replay", s(&m), s(&holes), "--json"];
+        args.extend(extra);
+        let o = plumb(&args);
+        assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+        let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        v["logs"][0].clone()
+    };
+    let passed = run(&[]);
+    assert_eq!(passed["samples"], 300);
+    assert_eq!(passed["skipped"], 0);
+    assert!(passed["faults"].as_u64().unwrap() >= 3, "{passed}");
+    let skipped = run(&["--skip-bad-rows"]);
+    assert_eq!(skipped["samples"], 297);
+    assert_eq!(skipped["skipped"], 3);
+    assert_eq!(
+        skipped["faults"].as_u64().unwrap() + 3,
+        passed["faults"].as_u64().unwrap(),
+        "{skipped}"
+    );
+    let o = plumb(&["replay", s(&m), s(&holes), "--skip-bad-rows"]);
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert!(out.contains("3 rows skipped"), "{out}");
+    let html = d.path("r.html");
+    let o = plumb(&[
+        "report",
+        s(&m),
+        s(&holes),
+        "--out",
+        s(&html),
+        "--skip-bad-rows",
+        "--json",
+    ]);
+    assert!(matches!(o.status.code(), Some(0 | 1)), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(v["logs"][0]["skipped"], 3, "{v}");
+}
+
+#[test]
+fn em_settings_name_the_offending_option() {
+    let d = Scratch::new("em-settings");
+    let p = d.write("a.csv", &log_text(4, 1000, 1));
+    for (opt, v, want) in [
+        ("--tol", "0", "--tol must be a number above 0, found 0"),
+        ("--reg-covar", "-1", "--reg-covar must be a number ≥ 0"),
+        ("--var-floor", "2", "--var-floor is a fraction"),
+        ("--var-floor", "-0.5", "expected 0 to 1"),
+    ] {
+        let arg = format!("{opt}={v}");
+        let err = fit_fails(&d, &[&p], &[&arg], &[want]);
+        let others = ["--tol", "--reg-covar", "--var-floor"];
+        for o in others.iter().filter(|o| **o != opt) {
+            assert!(!err.contains(o), "{opt}: {err}");
+        }
+    }
 }

@@ -140,3 +140,32 @@ fn demo_without_generated_training_rows_uses_the_committed_logs_alone() {
     assert_eq!(file.model.meta.train_rows, 36_000);
     assert_eq!(r["scenarios"].as_array().unwrap().len(), 5);
 }
+
+#[test]
+fn too_few_nominal_rows_are_refused_before_the_cache_is_touched() {
+    let dir = Scratch::new("demo-rows");
+    let logs = dir.path("logs");
+    let cached = logs.join("generated/calibration");
+    std::fs::create_dir_all(&cached).unwrap();
+    std::fs::write(cached.join("complete"), "seed 1001 rows 1000000 files 8\n").unwrap();
+    for rows in ["10", "0", "-5", "many"] {
+        let rows_arg = format!("--nominal-rows={rows}");
+        let o = plumb(&[
+            "demo",
+            "--logs",
+            logs.to_str().unwrap(),
+            "--out",
+            dir.path("out").to_str().unwrap(),
+            &rows_arg,
+        ]);
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{rows}: {err}");
+        assert!(err.contains("--nominal-rows"), "{err}");
+        assert!(
+            cached.join("complete").exists(),
+            "{rows}: the cached set was removed"
+        );
+        assert!(!dir.path("out").exists(), "{rows}: output folder made");
+        assert!(!logs.join("train").exists(), "{rows}: demo logs generated");
+    }
+}

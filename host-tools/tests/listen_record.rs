@@ -178,3 +178,37 @@ fn record_samples_needs_a_model() {
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("--model"));
 }
+
+#[test]
+fn feed_past_the_end_of_the_log_is_not_a_clean_run() {
+    let l = TcpListener::bind("127.0.0.1:0").unwrap();
+    let addr = l.local_addr().unwrap().to_string();
+    let device = std::thread::spawn(move || board(l, Vec::new()));
+    let dir = std::env::temp_dir().join(format!("plumb-feed-empty-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let model = dir.join("board.plumb");
+    std::fs::write(&model, MODEL).unwrap();
+    let log = root().join("demo-logs/train/robot2_day1.csv");
+    let out = Command::new(env!("CARGO_BIN_EXE_plumb"))
+        .args([
+            "feed",
+            model.to_str().unwrap(),
+            log.to_str().unwrap(),
+            "--tcp",
+            &addr,
+            "--rows",
+            "1000000..",
+            "--quiet",
+        ])
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("0 samples in") && err.contains("(rows 1000000..)"),
+        "{err}"
+    );
+    assert!(err.contains("nothing was checked"), "{err}");
+    device.join().unwrap();
+    let _ = std::fs::remove_dir_all(&dir);
+}

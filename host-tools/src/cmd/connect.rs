@@ -22,6 +22,7 @@ pub struct LinkArgs {
         long,
         value_name = "N",
         default_value_t = 115_200,
+        value_parser = clap::value_parser!(u32).range(1..),
         help_heading = "Link"
     )]
     pub baud: u32,
@@ -38,14 +39,20 @@ pub struct LinkArgs {
     pub tcp: Option<String>,
 
     /// Milliseconds to wait for each answer before asking again. While `feed` streams samples
-    /// the wait follows the measured round trip (RFC 6298) and this is its ceiling
-    #[arg(long, value_name = "MS", default_value_t = 1000, help_heading = "Link")]
+    /// the wait follows the measured round trip (RFC 6298) and this is its ceiling (1 to
+    /// 3600000, an hour)
+    #[arg(long, value_name = "MS", default_value_t = 1000, help_heading = "Link",
+          value_parser = clap::value_parser!(u64).range(1..=MAX_REPLY_MS))]
     pub reply_ms: u64,
 
-    /// Times a request is sent before giving up
-    #[arg(long, value_name = "N", default_value_t = 10, help_heading = "Link")]
+    /// Times a request is sent before giving up (at least 1)
+    #[arg(long, value_name = "N", default_value_t = 10, help_heading = "Link",
+          value_parser = clap::value_parser!(u32).range(1..))]
     pub tries: u32,
 }
+
+/// Longest `--reply-ms`: an hour.
+pub const MAX_REPLY_MS: u64 = 3_600_000;
 
 /// Seconds a spawned program gets to exit after the session.
 pub const EXIT_GRACE: Duration = Duration::from_secs(10);

@@ -45,8 +45,9 @@ pub struct DemoArgs {
     #[arg(long, value_name = "DIR", default_value = "out/demo")]
     pub out: PathBuf,
 
-    /// Rows of generated nominal data for calibration, and as many again for counting false alarms
-    #[arg(long, value_name = "N", default_value_t = 1_000_000)]
+    /// Rows of generated nominal data for calibration, and as many again for counting false
+    /// alarms (at least 1000)
+    #[arg(long, value_name = "N", default_value_t = 1_000_000, value_parser = parse_nominal_rows)]
     pub nominal_rows: usize,
 
     /// Rows of generated nominal training data fitted together with demo-logs/train (0: the
@@ -60,6 +61,21 @@ pub struct DemoArgs {
 
     #[command(flatten)]
     pub output: OutputArgs,
+}
+
+/// Fewest `--nominal-rows`: calibration needs the warm-up plus 100 scored
+/// rows at the very least, and a few hundred more to set limits on.
+pub const MIN_NOMINAL_ROWS: usize = 1000;
+
+/// Parses `--nominal-rows` (checked before the cached sets are touched).
+fn parse_nominal_rows(s: &str) -> std::result::Result<usize, String> {
+    match s.trim().parse::<usize>() {
+        Ok(n) if n >= MIN_NOMINAL_ROWS => Ok(n),
+        Ok(n) => Err(format!(
+            "expected at least {MIN_NOMINAL_ROWS} rows (calibration sets its limits on them), found {n}"
+        )),
+        Err(_) => Err(format!("expected a count of rows, found {s:?}")),
+    }
 }
 
 /// Seeds of the generated nominal sets (never the committed demo's seed).
@@ -264,11 +280,15 @@ pub fn run(args: DemoArgs) -> Result<u8> {
     // 1–2. Fit and calibrate.
     say(
         quiet,
-        if extra_train.is_empty() {
-            "fitting on demo-logs/train, calibrating on the generated nominal set"
-        } else {
-            "fitting on demo-logs/train and the generated training set, calibrating on the generated nominal set"
-        },
+        &format!(
+            "fitting on {}{}, calibrating on the generated nominal set",
+            args.logs.join("train").display(),
+            if extra_train.is_empty() {
+                ""
+            } else {
+                " and the generated training set"
+            }
+        ),
     );
     let read = ReadOptions::default();
     let train_paths = logs::expand_paths(&[args.logs.join("train")])?;

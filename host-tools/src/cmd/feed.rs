@@ -6,6 +6,7 @@ use crate::cmd::inspect::read_model;
 use crate::device::{self, FeedConfig, FeedSummary};
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
 use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder};
+use crate::files::{self, AtomicWriter, Input, Output, TempOutput};
 use crate::link::Received;
 use crate::logs::{BadCells, LogSet, Selection};
 use crate::progress::Stage;
@@ -31,9 +32,14 @@ was lost) is simply sent again: the board takes each sample once and in order, w
 window. Events lost on the way are asked for again (see `plumb listen --help`).
 
 --reports prints the score reports and --trace writes them as CSV with the exact f32 bit
-patterns; --record-samples writes the samples sent as a log `plumb fit` reads.
+patterns (put in place only when the feed succeeds: a failed feed leaves an existing file
+as it was); --record-samples writes the samples sent as a log `plumb fit` reads, and
+--record the events received: both are kept however the feed ends once the link is open.
+No output may be the model, the log or another output.
 
-Exit code 1 if the board raised a drift flag, 0 otherwise, 2 on bad input or a link error.";
+Exit code 1 if the board raised a drift flag, 0 otherwise, 2 on bad input or a link error,
+and 2 when no sample was fed (a log without data rows, or --rows past its end): nothing was
+checked.";
 
 /// Arguments of `plumb feed`.
 #[derive(Debug, Clone, Args)]
@@ -56,8 +62,8 @@ pub struct FeedArgs {
     #[arg(long, value_name = "A..B", value_parser = parse_rows)]
     pub rows: Option<std::ops::Range<u64>>,
 
-    /// Samples in flight before waiting for the board's reports
-    #[arg(long, value_name = "N", default_value_t = 1)]
+    /// Samples in flight before waiting for the board's reports (at least 1)
+    #[arg(long, value_name = "N", default_value_t = 1, value_parser = parse_window)]
     pub window: usize,
 
     /// Do not reset the board's statistics first
@@ -92,6 +98,14 @@ pub struct FeedArgs {
     /// Print only the summary and the counters
     #[arg(short, long)]
     pub quiet: bool,
+}
+
+/// Parses `--window`: a count of at least 1.
+fn parse_window(s: &str) -> std::result::Result<usize, String> {
+    match s.trim().parse::<usize>() {
+        Ok(n) if n >= 1 => Ok(n),
+        _ => Err(format!("expected a count of at least 1, found {s:?}")),
+    }
 }
 
 /// Parses `A..B` or `A..`.
@@ -190,8 +204,12 @@ fn samples_header(labels: &[Label], time: Option<(&str, &str)>) -> String {
     cols.join(",")
 }
 
-fn create(path: &Path) -> Result<std::io::BufWriter<std::fs::File>> {
-    let f = std::fs::File::create(path).map_err(|e| Error::io(path, "create", &e))?;
+/// A recording: written beside `path` until the link is open, then put in
+/// place (an early failure leaves an existing file as it was; what a
+/// session recorded is kept however it ends).
+fn create(path: &Path, places: &mut Vec<TempOutput>) -> Result<std::io::BufWriter<std::fs::File>> {
+    let (place, f) = TempOutput::create(path)?;
+    places.push(place);
     Ok(std::io::BufWriter::new(f))
 }
 
@@ -205,6 +223,31 @@ struct Tally {
 
 /// Runs `plumb feed`.
 pub fn run(args: FeedArgs) -> Result<u8> {
+    let mut outputs = Vec::new();
+    for (option, p) in [
+        ("--trace", &args.trace),
+        ("--record", &args.record),
+        ("--record-samples", &args.record_samples),
+    ] {
+        if let Some(path) = p {
+            outputs.push(Output { option, path });
+        }
+    }
+    let mut inputs = vec![
+        Input {
+            what: "model",
+            path: &args.model,
+        },
+        Input {
+            what: "log",
+            path: &args.log,
+        },
+    ];
+    inputs.extend(args.read.units.as_deref().map(|p| Input {
+        what: "units",
+        path: p,
+    }));
+    files::check_outputs(&outputs, &inputs)?;
     let file: ModelFile = read_model(&args.model)?;
     let set = LogSet::open_for_labels(
         std::slice::from_ref(&args.log),
@@ -219,13 +262,17 @@ pub fn run(args: FeedArgs) -> Result<u8> {
     };
     let mut printer = LinePrinter::new(std::io::stdout(), format, names.clone());
     printer.scores = args.reports;
+    let mut places = Vec::new();
     let mut recorder = match &args.record {
-        Some(p) => Some(Recorder::new(create(p)?, names).map_err(|e| Error::io(p, "write", &e))?),
+        Some(p) => Some(
+            Recorder::new(create(p, &mut places)?, names).map_err(|e| Error::io(p, "write", &e))?,
+        ),
         None => None,
     };
+    // The trace is all or nothing: in place only when the feed succeeds.
     let mut trace = match &args.trace {
         Some(p) => {
-            let mut w = create(p)?;
+            let mut w = AtomicWriter::create(p)?;
             writeln!(w, "{TRACE_HEADER}").map_err(|e| Error::io(p, "write", &e))?;
             Some(w)
         }
@@ -233,7 +280,7 @@ pub fn run(args: FeedArgs) -> Result<u8> {
     };
     let mut samples_out = match &args.record_samples {
         Some(p) => {
-            let mut w = create(p)?;
+            let mut w = create(p, &mut places)?;
             let time = set
                 .options()
                 .time_column
@@ -251,6 +298,9 @@ pub fn run(args: FeedArgs) -> Result<u8> {
     };
 
     let mut link = args.link.open()?;
+    for place in places {
+        place.commit()?;
+    }
     let patience = args.link.patience();
     let quiet = args.quiet;
     let mut tally = Tally::default();
@@ -347,17 +397,32 @@ pub fn run(args: FeedArgs) -> Result<u8> {
         let fin = connect::finish(&mut link, &mut fan, format, quiet);
         res.and_then(|s| fin.map(|()| s))
     };
+    // Samples sent are kept however the feed ended.
+    let flushed = match (samples_out.as_mut(), &args.record_samples) {
+        (Some(w), Some(p)) => w.flush().map_err(|e| Error::io(p, "write", &e)),
+        _ => Ok(()),
+    };
     let sum = outcome?;
-    for (w, p) in [
-        (trace.as_mut(), &args.trace),
-        (samples_out.as_mut(), &args.record_samples),
-    ] {
-        if let (Some(w), Some(p)) = (w, p) {
-            w.flush().map_err(|e| Error::io(p, "write", &e))?;
-        }
+    flushed?;
+    if sum.samples == 0 {
+        eprintln!(
+            "plumb: warning: 0 samples in {}{}",
+            args.log.display(),
+            match &args.rows {
+                Some(r) if r.end == u64::MAX => format!(" (rows {}..)", r.start),
+                Some(r) => format!(" (rows {}..{})", r.start, r.end),
+                None => String::new(),
+            }
+        );
+        return Err(Error::input(
+            "0 samples fed: nothing was checked (the log has no data rows there)",
+        ));
     }
     if let (Some(e), Some(p)) = (trace_err, &args.trace) {
         return Err(Error::io(p, "write", &e));
+    }
+    if let Some(w) = trace {
+        w.finish()?;
     }
     if let (Some(r), Some(p)) = (recorder.as_mut(), &args.record) {
         if let Some(e) = r.take_error() {

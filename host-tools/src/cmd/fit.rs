@@ -4,6 +4,7 @@ use crate::calibrate::{self, CalibConfig};
 use crate::cli::{LogArgs, OutputArgs};
 use crate::cmd::inspect::read_model;
 use crate::error::{Error, Result, EXIT_CLEAN};
+use crate::files::{self, Input, Output};
 use crate::fit::{self, FitConfig, Holdout, MixtureChoice};
 use crate::logs::{self, BadCells, LogSet};
 use crate::pca::Keep;
@@ -174,7 +175,7 @@ pub struct FitArgs {
     )]
     pub reg_covar: f64,
 
-    /// Variance floor, as a fraction of each latent score's variance (stops collapse onto repeated points)
+    /// Variance floor, as a fraction (0 to 1) of each latent score's variance (stops collapse onto repeated points)
     #[arg(
         long,
         value_name = "FRACTION",
@@ -292,7 +293,9 @@ pub struct FitArgs {
     )]
     pub fault_z: f64,
 
-    /// Write a model over the device capacities (64 features, 16 components, 8 mixture components) for host use
+    /// Allow a model over the device capacities (64 features, 16 components, 8 mixture
+    /// components): no board loads it, and `plumb replay` and `plumb report` refuse it too (they
+    /// run the boards' detector, with the boards' capacities); `plumb inspect` reads it
     #[arg(long)]
     pub no_device_check: bool,
 
@@ -374,14 +377,44 @@ pub fn run(args: FitArgs) -> Result<u8> {
     };
     let opts = args.read.options(BadCells::Reject)?;
     let paths = logs::expand_paths(&args.logs)?;
+    let hpaths = if args.holdout.is_empty() {
+        Vec::new()
+    } else {
+        logs::expand_paths(&args.holdout)?
+    };
+    let mut inputs: Vec<Input<'_>> = paths
+        .iter()
+        .map(|p| Input {
+            what: "log",
+            path: p,
+        })
+        .collect();
+    inputs.extend(hpaths.iter().map(|p| Input {
+        what: "held-out log",
+        path: p,
+    }));
+    inputs.extend(args.base.as_deref().map(|p| Input {
+        what: "base model",
+        path: p,
+    }));
+    inputs.extend(args.read.units.as_deref().map(|p| Input {
+        what: "units",
+        path: p,
+    }));
+    files::check_outputs(
+        &[Output {
+            option: "--out",
+            path: &args.out,
+        }],
+        &inputs,
+    )?;
     let train = LogSet::open(&paths, opts.clone())?;
     if let Some((p, old)) = &base {
         fit::check_schema(&train, &old.labels, p)?;
     }
-    let hold_set = if args.holdout.is_empty() {
+    let hold_set = if hpaths.is_empty() {
         None
     } else {
-        let hpaths = logs::expand_paths(&args.holdout)?;
         Some(LogSet::open_for_labels(&hpaths, train.labels(), opts)?)
     };
     let holdout = match &hold_set {

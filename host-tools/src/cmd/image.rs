@@ -2,6 +2,7 @@
 
 use crate::boards::{self, SlotImage, DATA_OFFSET};
 use crate::error::{Error, Location, Result, EXIT_CLEAN};
+use crate::files::{self, Input, Output};
 use clap::{Args, ValueEnum};
 use plumb_model::file::ModelFile;
 use plumb_model::wire::Slot;
@@ -52,7 +53,7 @@ pub struct ImageArgs {
     #[arg(long, value_enum)]
     pub slot: SlotArg,
 
-    /// Where to write the image
+    /// Where to write the image (written atomically; not the model file)
     #[arg(short, long, value_name = "FILE")]
     pub out: PathBuf,
 
@@ -67,6 +68,16 @@ pub struct ImageArgs {
 
 /// Runs `plumb image`.
 pub fn run(args: ImageArgs) -> Result<u8> {
+    files::check_outputs(
+        &[Output {
+            option: "--out",
+            path: &args.out,
+        }],
+        &[Input {
+            what: "model",
+            path: &args.model,
+        }],
+    )?;
     let bytes = std::fs::read(&args.model).map_err(|e| Error::io(&args.model, "read", &e))?;
     ModelFile::from_bytes(&bytes).map_err(|e| {
         Error::at(
@@ -103,7 +114,7 @@ pub fn run(args: ImageArgs) -> Result<u8> {
         ImageFormat::Hex => image.to_hex().into_bytes(),
         ImageFormat::Bin => image.to_bin(),
     };
-    std::fs::write(&args.out, &data).map_err(|e| Error::io(&args.out, "write", &e))?;
+    files::write_atomic(&args.out, &data)?;
     crate::outln!(
         "wrote {} ({} image, {} bytes): board {} slot {} at {:#010x} (record) and {:#010x} (file, {} bytes), generation {}",
         args.out.display(),

@@ -5,6 +5,7 @@ use crate::cmd::inspect::read_model;
 use crate::device;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
 use crate::events::{EventSink, Fan, LineFormat, LinePrinter, Names, Recorder, SampleRecorder};
+use crate::files::{self, Input, Output, TempOutput};
 use crate::link::{Link, LinkStats, Notice, Received};
 use crate::live;
 use clap::Args;
@@ -66,8 +67,8 @@ pub struct ListenArgs {
     #[arg(long, value_name = "MODEL")]
     pub model: Option<PathBuf>,
 
-    /// Stop after this many seconds
-    #[arg(long = "for", value_name = "SECONDS")]
+    /// Stop after this many seconds (more than 0, at most 10^9)
+    #[arg(long = "for", value_name = "SECONDS", value_parser = parse_seconds)]
     pub duration: Option<f64>,
 
     /// Also print per-sample score reports (turn them on with `plumb feed --reports`)
@@ -104,8 +105,45 @@ pub struct ListenArgs {
     pub no_reconnect: bool,
 }
 
+/// Longest `--for`: about 31 years, far below what a deadline can hold.
+pub const MAX_SECONDS: f64 = 1e9;
+
+/// Parses `--for`: a finite number of seconds above 0 and at most
+/// [`MAX_SECONDS`].
+pub fn parse_seconds(s: &str) -> std::result::Result<f64, String> {
+    let v: f64 = s
+        .trim()
+        .parse()
+        .map_err(|_| format!("expected a number of seconds, found {s:?}"))?;
+    if !v.is_finite() || !(v > 0.0) || v > MAX_SECONDS {
+        return Err(format!(
+            "expected seconds above 0 and at most {MAX_SECONDS:e}, found {s:?}"
+        ));
+    }
+    Ok(v)
+}
+
 /// Runs `plumb listen`.
 pub fn run(args: ListenArgs) -> Result<u8> {
+    let mut outputs = Vec::new();
+    for (option, p) in [
+        ("--record", &args.record),
+        ("--record-samples", &args.record_samples),
+    ] {
+        if let Some(path) = p {
+            outputs.push(Output { option, path });
+        }
+    }
+    let inputs: Vec<Input<'_>> = args
+        .model
+        .as_deref()
+        .map(|p| Input {
+            what: "model",
+            path: p,
+        })
+        .into_iter()
+        .collect();
+    files::check_outputs(&outputs, &inputs)?;
     let model = args.model.as_deref().map(read_model).transpose()?;
     let names = model
         .as_ref()
@@ -117,9 +155,14 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     };
     let mut printer = LinePrinter::new(std::io::stdout(), format, names.clone());
     printer.scores = args.scores;
+    // Recordings are written beside their files until the link is open,
+    // then put in place: an early failure leaves an existing file as it
+    // was, and what a session recorded is kept however it ends.
+    let mut places = Vec::new();
     let mut recorder = match &args.record {
         Some(p) => {
-            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
+            let (place, f) = TempOutput::create(p)?;
+            places.push(place);
             Some(
                 Recorder::new(std::io::BufWriter::new(f), names.clone())
                     .map_err(|e| Error::io(p, "write", &e))?,
@@ -129,7 +172,8 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     };
     let mut samples = match (&args.record_samples, &model) {
         (Some(p), Some(m)) => {
-            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
+            let (place, f) = TempOutput::create(p)?;
+            places.push(place);
             Some(
                 SampleRecorder::new(
                     std::io::BufWriter::new(f),
@@ -150,6 +194,9 @@ pub fn run(args: ListenArgs) -> Result<u8> {
     }
 
     let mut link = args.link.open()?;
+    for place in places {
+        place.commit()?;
+    }
     if !args.no_reconnect {
         if let Some(reopen) = args.link.reopener() {
             link.set_reopen(reopen);
@@ -325,7 +372,8 @@ fn listen(
     }
     let end = args
         .duration
-        .map(|s| Instant::now() + Duration::from_secs_f64(s.max(0.0)));
+        .and_then(|s| Duration::try_from_secs_f64(s).ok())
+        .and_then(|d| Instant::now().checked_add(d));
     while !stop.load(Ordering::SeqCst) {
         if end.is_some_and(|e| Instant::now() >= e) {
             break;

@@ -3,6 +3,7 @@
 use crate::cli::{LogArgs, OutputArgs};
 use crate::cmd::inspect::read_model;
 use crate::error::{Error, Result, EXIT_CLEAN, EXIT_DRIFT};
+use crate::files::{self, AtomicWriter, Input, Output};
 use crate::logs::{expand_paths, BadCells};
 use crate::progress::Progress;
 use crate::replay::{self, event_name, fault_name, state_name, Flag, LogReplay, Step};
@@ -10,7 +11,7 @@ use clap::Args;
 use plumb_firmware::Score;
 use serde::Serialize;
 use std::io::Write;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 /// Long help of `plumb replay`.
 pub const LONG_ABOUT: &str = "\
@@ -18,7 +19,9 @@ Run logs through the very same detector the boards run (the firmware crate, buil
 the host), sample by sample, and report every drift flag: when it rose and cleared
 (0-based sample index and log time), which scores drove it, and the features with the
 largest residual share. Each log starts from a fresh detector, warm-up included.
-Empty or NaN cells are passed to the detector, which counts them as sensor faults.
+Empty or NaN cells are passed to the detector, which counts them as sensor faults (as a
+board does); --skip-bad-rows leaves such rows out instead: they never reach the detector,
+are counted per log (`skipped`), and sample indices then count the rows replayed.
 
 --trace writes one CSV row per sample: scores, EWMA and CUSUM of each score, state,
 event and fault, for plotting or for comparing with a board bit for bit.
@@ -30,7 +33,8 @@ flagged which, whether the new model raises earlier or later). With --json: `old
 `logs` (both flag lists per log) and `summary`.
 
 Exit code 1 when any flag was raised (under either model with --compare), 0 when none,
-2 on bad input.";
+2 on bad input, and 2 when the logs gave no sample at all: nothing was checked. A log with
+no sample, or with every sample a sensor fault, is warned about on standard error.";
 
 /// Arguments of `plumb replay`.
 #[derive(Debug, Clone, Args)]
@@ -124,6 +128,12 @@ pub fn text(reps: &[LogReplay]) -> String {
             r.faults,
             r.flags.len()
         ));
+        if r.skipped > 0 {
+            s.push_str(&format!(
+                "  {} rows skipped (empty or non-finite cells; --skip-bad-rows)\n",
+                r.skipped
+            ));
+        }
         for (i, f) in r.flags.iter().enumerate() {
             let cleared = match f.cleared_at {
                 Some(c) => format!("cleared at {}", fmt_at(c, f.cleared_t)),
@@ -153,12 +163,31 @@ pub fn text(reps: &[LogReplay]) -> String {
     s
 }
 
+/// The files `replay` and `report` read: the model, the logs and the
+/// units sidecar.
+pub fn inputs<'a>(model: &'a Path, logs: &'a [PathBuf], read: &'a LogArgs) -> Vec<Input<'a>> {
+    let mut v = vec![Input {
+        what: "model",
+        path: model,
+    }];
+    v.extend(logs.iter().map(|p| Input {
+        what: "log",
+        path: p,
+    }));
+    v.extend(read.units.as_deref().map(|p| Input {
+        what: "units",
+        path: p,
+    }));
+    v
+}
+
 /// Runs `plumb replay`.
 pub fn run(args: ReplayArgs) -> Result<u8> {
     if args.compare {
         return run_compare(args);
     }
     let file = read_model(&args.model)?;
+    replay::check_model(&file, &args.model)?;
     let paths = expand_paths(&args.logs)?;
     let opts = args.read.options(BadCells::PassAsNan)?;
     let progress = Progress::stderr(args.output.quiet || args.output.json);
@@ -167,10 +196,20 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
         .map(|p| std::fs::metadata(p).map(|m| m.len()).unwrap_or(0))
         .sum();
     let stage = progress.stage("replay", total, true);
+    if let Some(t) = &args.trace {
+        files::check_outputs(
+            &[Output {
+                option: "--trace",
+                path: t,
+            }],
+            &inputs(&args.model, &paths, &args.read),
+        )?;
+    }
+    // Written beside the trace and renamed into place when the replay
+    // succeeds: a failure leaves an existing file as it was.
     let mut trace = match &args.trace {
         Some(p) => {
-            let f = std::fs::File::create(p).map_err(|e| Error::io(p, "create", &e))?;
-            let mut w = std::io::BufWriter::new(f);
+            let mut w = AtomicWriter::create(p)?;
             trace_header(&mut w).map_err(|e| Error::io(p, "write", &e))?;
             Some((p.clone(), w))
         }
@@ -182,8 +221,10 @@ pub fn run(args: ReplayArgs) -> Result<u8> {
         }
         Ok(())
     })?;
-    if let Some((p, mut w)) = trace {
-        w.flush().map_err(|e| Error::io(&p, "write", &e))?;
+    drop(stage);
+    replay::require_samples(&reps)?;
+    if let Some((_, w)) = trace {
+        w.finish()?;
     }
     if args.output.json {
         crate::outln!("{}", serde_json::json!({ "logs": reps }));
@@ -417,6 +458,8 @@ fn run_compare(args: ReplayArgs) -> Result<u8> {
     };
     let old_file = read_model(&args.model)?;
     let new_file = read_model(&new_path)?;
+    replay::check_model(&old_file, &args.model)?;
+    replay::check_model(&new_file, &new_path)?;
     let paths = expand_paths(&log_args)?;
     let opts = args.read.options(BadCells::PassAsNan)?;
     let progress = Progress::stderr(args.output.quiet || args.output.json);
@@ -431,6 +474,7 @@ fn run_compare(args: ReplayArgs) -> Result<u8> {
             Ok(())
         })?);
     }
+    replay::require_samples(&runs[0])?;
     let logs: Vec<LogCompare> = runs[0]
         .iter()
         .zip(&runs[1])
@@ -491,6 +535,7 @@ mod tests {
         LogReplay {
             path: PathBuf::from("a.csv"),
             samples: 100,
+            skipped: 0,
             faults: 0,
             fault_kinds: Faults::default(),
             flags,

@@ -3,7 +3,8 @@
 use crate::cli::{LogArgs, OutputArgs};
 use crate::cmd::inspect::read_model;
 use crate::error::{Result, EXIT_CLEAN, EXIT_DRIFT};
-use crate::logs::BadCells;
+use crate::files::{self, Input, Output};
+use crate::logs::{expand_paths, BadCells};
 use crate::progress::Progress;
 use crate::report::{read_truth, write_report};
 use clap::Args;
@@ -33,8 +34,11 @@ per component; and tables of flags and faults.
 `fault`; features `;`-separated), as demo-logs/truth.csv. A row applies to a log with the
 same path, or else the only row with the same file name.
 
+Empty or NaN cells reach the detector as sensor faults, as in `plumb replay`; with
+--skip-bad-rows such rows are left out and counted.
+
 The report is written atomically. Exit code 1 when any flag was raised, 0 when none,
-2 on bad input.";
+2 on bad input, and 2 (no report written) when the logs gave no sample at all.";
 
 /// Arguments of `plumb report`.
 #[derive(Debug, Clone, Args)]
@@ -68,7 +72,30 @@ pub struct ReportArgs {
 
 /// Runs `plumb report`.
 pub fn run(args: ReportArgs) -> Result<u8> {
+    let logs = expand_paths(&args.logs)?;
+    let train = if args.train.is_empty() {
+        Vec::new()
+    } else {
+        expand_paths(&args.train)?
+    };
+    let mut inputs = crate::cmd::replay::inputs(&args.model, &logs, &args.read);
+    inputs.extend(train.iter().map(|p| Input {
+        what: "training log",
+        path: p,
+    }));
+    inputs.extend(args.truth.as_deref().map(|p| Input {
+        what: "truth",
+        path: p,
+    }));
+    files::check_outputs(
+        &[Output {
+            option: "--out",
+            path: &args.out,
+        }],
+        &inputs,
+    )?;
     let file = read_model(&args.model)?;
+    crate::replay::check_model(&file, &args.model)?;
     let truth = match &args.truth {
         Some(p) => read_truth(p)?,
         None => Vec::new(),

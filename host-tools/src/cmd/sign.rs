@@ -2,6 +2,7 @@
 
 use crate::cmd::inspect::read_model;
 use crate::error::{Error, Location, Result, EXIT_CLEAN};
+use crate::files::{self, Input, Output};
 use crate::keys::{self, SigningKey};
 use clap::Args;
 use std::path::PathBuf;
@@ -26,7 +27,7 @@ pub struct SignArgs {
     #[arg(long, value_name = "KEY")]
     pub key: PathBuf,
 
-    /// Where to write the signed model (may be MODEL itself)
+    /// Where to write the signed model, atomically (may be MODEL itself, not KEY)
     #[arg(long, value_name = "SIGNED")]
     pub out: PathBuf,
 
@@ -37,6 +38,17 @@ pub struct SignArgs {
 
 /// Runs `plumb sign`.
 pub fn run(args: SignArgs) -> Result<u8> {
+    // MODEL itself may be the output (it is replaced atomically); the key may not.
+    files::check_outputs(
+        &[Output {
+            option: "--out",
+            path: &args.out,
+        }],
+        &[Input {
+            what: "secret key",
+            path: &args.key,
+        }],
+    )?;
     // The whole file must be a valid model (framing, CRC, values, labels).
     read_model(&args.model)?;
     let bytes = std::fs::read(&args.model).map_err(|e| Error::io(&args.model, "read", &e))?;
@@ -50,7 +62,7 @@ pub fn run(args: SignArgs) -> Result<u8> {
             "the signature just made does not verify ({e}); nothing written"
         )));
     }
-    crate::fit::write_atomic(&args.out, &signed)?;
+    files::write_atomic(&args.out, &signed)?;
     if !args.quiet {
         crate::outln!(
             "signed {} with key id {} -> {} ({} bytes)",

@@ -22,7 +22,9 @@ running. A lost chunk or acknowledgement is sent again; an interrupted upload ch
 nothing on the board. A board built to trust a signing key (PLUMB_TRUSTED_KEY) also refuses
 a file that is unsigned, signed by another key, or changed after signing (`plumb sign`).
 
-The file is checked on the host first; --unchecked sends it anyway (to test a board).
+The file is checked on the host first, and against the capacity (features, components,
+mixture components) the board states in its greeting, before anything is sent; --unchecked
+sends it anyway (to test a board).
 Exit code 0 when the board switched, 2 when it refused or on a link error.";
 
 /// Arguments of `plumb upload`.
@@ -77,6 +79,26 @@ pub fn run(args: UploadArgs) -> Result<u8> {
             ))
         }
     };
+    // What a board holds, as `plumb image` checks it, before the link is
+    // opened; then against the capacity the board states in its greeting.
+    let fits = |cap: &plumb_model::Capacity, whose: &str| -> Result<()> {
+        match plumb_model::file::decode(&bytes, cap) {
+            Ok(_) => Ok(()),
+            Err(e) if args.unchecked => {
+                eprintln!("plumb: note: sending a model {whose} refuses ({e})");
+                Ok(())
+            }
+            Err(e) => Err(Error::at(
+                Location::file(&args.model),
+                format!(
+                    "{whose} would refuse this model: {e} (it holds at most {} features, {} \
+                     components and {} mixture components; --unchecked sends it anyway)",
+                    cap.features, cap.components, cap.mixture
+                ),
+            )),
+        }
+    };
+    fits(&plumb_model::Capacity::DEVICE, "a board")?;
     let format = if args.json {
         LineFormat::Json
     } else {
@@ -109,6 +131,7 @@ pub fn run(args: UploadArgs) -> Result<u8> {
             };
             let g = device::greeting(&mut link, patience, &mut sink)?;
             device::check_protocol(&g)?;
+            fits(&g.capacity, "the board")?;
             let mut done = 0u64;
             let cfg = UploadConfig {
                 chunk: usize::from(args.chunk),

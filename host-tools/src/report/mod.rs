@@ -556,8 +556,9 @@ pub fn write_report(
         train_rows: nominal_n,
         nll_floor,
     };
+    replay::require_samples(&reps)?;
     let html = page::render(&collected);
-    crate::fit::write_atomic(out, html.as_bytes())?;
+    crate::files::write_atomic(out, html.as_bytes())?;
     Ok(reps)
 }
 
