@@ -371,7 +371,7 @@ pub struct ResendDone {
 
 /// Most features in one [`FeatureEcho`]: a sample of more features is echoed
 /// in several messages. 31 is the most that keeps a device frame within
-/// [`MAX_DEVICE_MESSAGE`]: seq 5 + variant 1 + sample 10 + first 1 +
+/// [`MAX_DEVICE_MESSAGE`](super::MAX_DEVICE_MESSAGE): seq 5 + variant 1 + sample 10 + first 1 +
 /// length 1 + 31 × 4 = 142 bytes.
 pub const ECHO_CHUNK: usize = 31;
 
