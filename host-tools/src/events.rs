@@ -675,15 +675,8 @@ impl<W: Write> SampleRecorder<W> {
     /// Starts a recording of samples of a model with `labels` and a sample
     /// period of `period_us` microseconds (0: unknown); writes the header.
     pub fn new(mut out: W, labels: &[Label], period_us: u32) -> std::io::Result<Self> {
-        let mut cols = vec!["t[s]".to_string()];
-        cols.extend(labels.iter().map(|l| {
-            if l.unit.is_empty() {
-                l.name.clone()
-            } else {
-                format!("{}[{}]", l.name, l.unit)
-            }
-        }));
-        writeln!(out, "{}", cols.join(","))?;
+        let header = crate::logs::header_line(labels, Some(("t", "s")));
+        writeln!(out, "{header}")?;
         Ok(SampleRecorder {
             out,
             features: labels.len(),

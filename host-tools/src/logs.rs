@@ -98,6 +98,28 @@ impl Default for ReadOptions {
     }
 }
 
+/// The header row of a log of samples: the time column `name[unit]` (if
+/// any), then each feature as `name[unit]` (bare `name` without a unit), as
+/// the log reader reads it back.
+pub fn header_line(labels: &[Label], time: Option<(&str, &str)>) -> String {
+    let mut cols: Vec<String> = Vec::new();
+    if let Some((name, unit)) = time {
+        cols.push(if unit.is_empty() {
+            name.to_string()
+        } else {
+            format!("{name}[{unit}]")
+        });
+    }
+    for l in labels {
+        cols.push(if l.unit.is_empty() {
+            l.name.clone()
+        } else {
+            format!("{}[{}]", l.name, l.unit)
+        });
+    }
+    cols.join(",")
+}
+
 /// Splits a header cell `name[unit]` into name and unit (empty when absent).
 pub fn split_name_unit(cell: &str) -> (&str, &str) {
     let cell = cell.trim();

@@ -11,7 +11,7 @@ use crate::link::Received;
 use crate::logs::{BadCells, LogSet, Selection};
 use crate::progress::Stage;
 use clap::Args;
-use plumb_model::file::{Label, ModelFile};
+use plumb_model::file::ModelFile;
 use plumb_model::wire::{DeviceMsg, State};
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -185,25 +185,6 @@ fn stream_rows(set: LogSet, select: Selection) -> mpsc::Receiver<Result<Row>> {
     rx
 }
 
-fn samples_header(labels: &[Label], time: Option<(&str, &str)>) -> String {
-    let mut cols: Vec<String> = Vec::new();
-    if let Some((name, unit)) = time {
-        cols.push(if unit.is_empty() {
-            name.to_string()
-        } else {
-            format!("{name}[{unit}]")
-        });
-    }
-    for l in labels {
-        cols.push(if l.unit.is_empty() {
-            l.name.clone()
-        } else {
-            format!("{}[{}]", l.name, l.unit)
-        });
-    }
-    cols.join(",")
-}
-
 /// A recording: written beside `path` until the link is open, then put in
 /// place (an early failure leaves an existing file as it was; what a
 /// session recorded is kept however it ends).
@@ -286,7 +267,7 @@ pub fn run(args: FeedArgs) -> Result<u8> {
                 .time_column
                 .as_deref()
                 .map(|t| (t, set.time_unit()));
-            writeln!(w, "{}", samples_header(&file.labels, time))
+            writeln!(w, "{}", crate::logs::header_line(&file.labels, time))
                 .map_err(|e| Error::io(p, "write", &e))?;
             Some(w)
         }
