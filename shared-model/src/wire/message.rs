@@ -405,9 +405,10 @@ impl EchoValues {
 
     /// The features, bit for bit as the device had them.
     pub fn iter(&self) -> impl Iterator<Item = f32> + '_ {
+        // `chunks_exact(4)` gives 4 bytes every time; the NaN is never made.
         self.0
             .chunks_exact(4)
-            .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+            .map(|b| <[u8; 4]>::try_from(b).map_or(f32::NAN, f32::from_le_bytes))
     }
 }
 
