@@ -35,6 +35,9 @@ pub enum Field {
     Labels,
     /// The SPE's centre and spread per mixture component.
     SpeByMode,
+    /// The residual chart: each feature's residual centre and gain, and the
+    /// chart's limit.
+    ResidualChart,
 }
 
 impl Field {
@@ -55,6 +58,7 @@ impl Field {
             Field::NllLimits => "NLL limits",
             Field::Labels => "labels",
             Field::SpeByMode => "SPE by mode",
+            Field::ResidualChart => "residual chart",
         }
     }
 }

@@ -21,7 +21,7 @@ use crate::{Capacity, Dims, Model, ModelMeta};
 /// The four bytes every model file starts with.
 pub const MAGIC: [u8; 4] = *b"PLMD";
 /// The model format version this crate reads and writes.
-pub const FORMAT_VERSION: u16 = 2;
+pub const FORMAT_VERSION: u16 = 3;
 /// Header length in bytes.
 pub const HEADER_LEN: usize = 16;
 /// CRC trailer length in bytes.
@@ -86,9 +86,9 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
 }
 
 /// Format versions the host reads ([`ModelFile::from_bytes`]; a version 1
-/// file gets the global SPE centre and spread for every mode). Devices read
-/// [`FORMAT_VERSION`] only.
-pub const HOST_VERSIONS: [u16; 2] = [1, FORMAT_VERSION];
+/// file gets the global SPE centre and spread for every mode, versions 1 and
+/// 2 the residual chart off). Devices read [`FORMAT_VERSION`] only.
+pub const HOST_VERSIONS: [u16; 3] = [1, 2, FORMAT_VERSION];
 
 /// [`split`] for a host reader: any of [`HOST_VERSIONS`].
 pub fn split_host(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
@@ -293,7 +293,8 @@ mod owned {
     }
 
     /// The payload of format version 1: the model without the SPE's centre
-    /// and spread per mode. Read by the host only.
+    /// and spread per mode, and without the residual chart. Read by the
+    /// host only.
     #[derive(Deserialize)]
     struct ModelV1 {
         meta: crate::ModelMeta,
@@ -309,6 +310,15 @@ mod owned {
         monitor: crate::MonitorParams,
     }
 
+    /// The payload of format version 2: version 1 and the SPE's centre and
+    /// spread per mode, without the residual chart. Read by the host only.
+    #[derive(Deserialize)]
+    struct ModelV2 {
+        v1: ModelV1,
+        spe_center_by_mode: Vec<f32>,
+        spe_spread_by_mode: Vec<f32>,
+    }
+
     impl ModelV1 {
         /// Every mode with the global SPE centre and spread: the SPE's EWMA
         /// then sees exactly the values a version 1 detector smoothed, so
@@ -316,20 +326,39 @@ mod owned {
         fn upgrade(self) -> ModelOwned {
             let k = self.weights.len();
             let spe = self.monitor.spe;
-            ModelOwned {
-                meta: self.meta,
-                dims: self.dims,
-                mean: self.mean,
-                scale: self.scale,
-                loadings: self.loadings,
-                eigenvalues: self.eigenvalues,
-                theta: self.theta,
-                weights: self.weights,
-                mix_means: self.mix_means,
-                mix_variances: self.mix_variances,
-                monitor: self.monitor,
+            ModelV2 {
+                v1: self,
                 spe_center_by_mode: alloc::vec![spe.center; k],
                 spe_spread_by_mode: alloc::vec![spe.spread; k],
+            }
+            .upgrade()
+        }
+    }
+
+    impl ModelV2 {
+        /// The residual chart off (every gain 0, so every feature's EWMA
+        /// stays 0 and never reaches the limit): the model flags as a
+        /// version 2 detector did.
+        fn upgrade(self) -> ModelOwned {
+            let v = self.v1;
+            let d = v.mean.len();
+            ModelOwned {
+                meta: v.meta,
+                dims: v.dims,
+                mean: v.mean,
+                scale: v.scale,
+                loadings: v.loadings,
+                eigenvalues: v.eigenvalues,
+                theta: v.theta,
+                weights: v.weights,
+                mix_means: v.mix_means,
+                mix_variances: v.mix_variances,
+                monitor: v.monitor,
+                spe_center_by_mode: self.spe_center_by_mode,
+                spe_spread_by_mode: self.spe_spread_by_mode,
+                resid_center: alloc::vec![0.0; d],
+                resid_gain: alloc::vec![0.0; d],
+                resid_limit: 1.0,
             }
         }
     }
@@ -364,8 +393,9 @@ mod owned {
         }
 
         /// Decodes and validates a model file without device capacity limits.
-        /// A version 1 file is read too, with every mode at the global SPE
-        /// centre and spread (it then flags as it did); devices read only
+        /// Version 1 and 2 files are read too, a version 1 file with every
+        /// mode at the global SPE centre and spread, both with the residual
+        /// chart off (each then flags as it did); devices read only
         /// [`FORMAT_VERSION`].
         pub fn from_bytes(bytes: &[u8]) -> Result<ModelFile, ModelError> {
             let sections = split_host(bytes)?;
@@ -377,6 +407,8 @@ mod owned {
             }
             let model = if sections.version == 1 {
                 whole::<ModelV1>(sections.payload)?.upgrade()
+            } else if sections.version == 2 {
+                whole::<ModelV2>(sections.payload)?.upgrade()
             } else {
                 whole::<ModelOwned>(sections.payload)?
             };

@@ -44,6 +44,9 @@ const FIELDS: &[&str] = &[
     "monitor",
     "spe_center_by_mode",
     "spe_spread_by_mode",
+    "resid_center",
+    "resid_gain",
+    "resid_limit",
 ];
 
 impl<'de> Visitor<'de> for ModelSeed<'_> {
@@ -70,6 +73,9 @@ impl<'de> Visitor<'de> for ModelSeed<'_> {
             monitor,
             spe_center_by_mode,
             spe_spread_by_mode,
+            resid_center,
+            resid_gain,
+            resid_limit,
         } = self.0;
         let mut at = 0usize;
         field(&mut seq, &mut at, Assign(meta))?;
@@ -85,6 +91,9 @@ impl<'de> Visitor<'de> for ModelSeed<'_> {
         field(&mut seq, &mut at, Assign(monitor))?;
         field(&mut seq, &mut at, Fill(spe_center_by_mode))?;
         field(&mut seq, &mut at, Fill(spe_spread_by_mode))?;
+        field(&mut seq, &mut at, Fill(resid_center))?;
+        field(&mut seq, &mut at, Fill(resid_gain))?;
+        field(&mut seq, &mut at, Assign(resid_limit))?;
         Ok(())
     }
 }

@@ -129,6 +129,13 @@ pub struct ModelView<'a> {
     pub spe_center_by_mode: &'a [f32],
     /// Spread of the transformed SPE per mixture component, `k`.
     pub spe_spread_by_mode: &'a [f32],
+    /// Centre of each feature's residual, `d`.
+    pub resid_center: &'a [f32],
+    /// Gain of each feature's residual chart, `d` (0: that feature's chart
+    /// is off).
+    pub resid_gain: &'a [f32],
+    /// Limit of the residual chart.
+    pub resid_limit: f32,
 }
 
 fn check_len(field: Field, slice: &[f32], expected: usize) -> Result<(), ModelError> {
@@ -258,7 +265,17 @@ impl ModelView<'_> {
         check_len(Field::SpeByMode, self.spe_center_by_mode, k)?;
         check_len(Field::SpeByMode, self.spe_spread_by_mode, k)?;
         check_finite(Field::SpeByMode, self.spe_center_by_mode)?;
-        check_positive(Field::SpeByMode, self.spe_spread_by_mode)
+        check_positive(Field::SpeByMode, self.spe_spread_by_mode)?;
+        check_len(Field::ResidualChart, self.resid_center, d)?;
+        check_len(Field::ResidualChart, self.resid_gain, d)?;
+        check_finite(Field::ResidualChart, self.resid_center)?;
+        check_finite(Field::ResidualChart, self.resid_gain)?;
+        if self.resid_gain.iter().any(|g| *g < 0.0) {
+            return Err(ModelError::OutOfRange {
+                field: Field::ResidualChart,
+            });
+        }
+        check_positive(Field::ResidualChart, &[self.resid_limit])
     }
 }
 
@@ -304,6 +321,18 @@ macro_rules! model_type {
             /// `(g(SPE) − center_c) / spread_c`, `c` the sample's most likely
             /// component.
             pub spe_spread_by_mode: $mix,
+            /// Centre of each feature's residual `r_i = z_i − (P Pᵀ z)_i` on
+            /// the calibration samples, `d` values.
+            pub resid_center: $feat,
+            /// Gain of each feature's residual chart, `d` values, ≥ 0: the
+            /// chart of feature `i` smooths `(r_i − center_i) · gain_i` by
+            /// an EWMA (the monitor's λ). The gain scales each feature's
+            /// smoothed residual to its own nominal tail, so one limit serves
+            /// features of any memory; 0 turns that feature's chart off.
+            pub resid_gain: $feat,
+            /// Limit on the absolute value of every feature's residual EWMA
+            /// (> 0).
+            pub resid_limit: f32,
         }
 
         impl $name {
@@ -323,6 +352,9 @@ macro_rules! model_type {
                     monitor: &self.monitor,
                     spe_center_by_mode: &self.spe_center_by_mode,
                     spe_spread_by_mode: &self.spe_spread_by_mode,
+                    resid_center: &self.resid_center,
+                    resid_gain: &self.resid_gain,
+                    resid_limit: self.resid_limit,
                 }
             }
 
@@ -415,6 +447,9 @@ impl Model {
         monitor: MonitorParams::ZERO,
         spe_center_by_mode: heapless::Vec::new(),
         spe_spread_by_mode: heapless::Vec::new(),
+        resid_center: heapless::Vec::new(),
+        resid_gain: heapless::Vec::new(),
+        resid_limit: 0.0,
     };
 
     /// Returns to [`Model::EMPTY`] in place (no 6 KiB value is built).
@@ -433,6 +468,9 @@ impl Model {
             monitor,
             spe_center_by_mode,
             spe_spread_by_mode,
+            resid_center,
+            resid_gain,
+            resid_limit,
         } = self;
         *meta = ModelMeta::ZERO;
         *dims = Dims::ZERO;
@@ -447,6 +485,9 @@ impl Model {
         *monitor = MonitorParams::ZERO;
         spe_center_by_mode.clear();
         spe_spread_by_mode.clear();
+        resid_center.clear();
+        resid_gain.clear();
+        *resid_limit = 0.0;
     }
 
     /// Whether this is [`Model::EMPTY`]'s state: no features.
@@ -492,6 +533,9 @@ impl ModelOwned {
             monitor: self.monitor,
             spe_center_by_mode: copy(&self.spe_center_by_mode),
             spe_spread_by_mode: copy(&self.spe_spread_by_mode),
+            resid_center: copy(&self.resid_center),
+            resid_gain: copy(&self.resid_gain),
+            resid_limit: self.resid_limit,
         })
     }
 }
@@ -513,6 +557,9 @@ impl From<&Model> for ModelOwned {
             monitor: m.monitor,
             spe_center_by_mode: m.spe_center_by_mode.to_vec(),
             spe_spread_by_mode: m.spe_spread_by_mode.to_vec(),
+            resid_center: m.resid_center.to_vec(),
+            resid_gain: m.resid_gain.to_vec(),
+            resid_limit: m.resid_limit,
         }
     }
 }

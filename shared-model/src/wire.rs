@@ -30,7 +30,7 @@ use crate::MAX_FEATURES;
 
 /// Version of this protocol, sent in every [`Greeting`]. Bumped by any change
 /// that an older peer would misread (see `PROTOCOL.md`, "Stability").
-pub const PROTOCOL_VERSION: u16 = 3;
+pub const PROTOCOL_VERSION: u16 = 4;
 
 /// Bytes of CRC after each message.
 pub const CRC_LEN: usize = 4;
@@ -63,10 +63,10 @@ pub const MAX_HOST_MESSAGE: usize = max(
     1 + varint_len(u32::MAX as u64) + varint_len(MAX_CHUNK as u64) + MAX_CHUNK,
 );
 
-/// Bound on the postcard encoding of a [`DeviceFrame`] (the longest, a
-/// feature echo of [`ECHO_CHUNK`] values, takes 142 bytes, and a drift raised
-/// message with nine crossings 135; tests check every variant at its worst).
-pub const MAX_DEVICE_MESSAGE: usize = 144;
+/// Bound on the postcard encoding of a [`DeviceFrame`] (the longest, a drift
+/// raised message with all ten crossings, takes 146 bytes, and a feature echo
+/// of [`ECHO_CHUNK`] values 142; tests check every variant at its worst).
+pub const MAX_DEVICE_MESSAGE: usize = 146;
 
 /// Longest host → device frame, delimiter included.
 pub const MAX_HOST_FRAME: usize = max_frame_len(MAX_HOST_MESSAGE);

@@ -55,6 +55,9 @@ fn tiny() -> ModelOwned {
         monitor: support::monitor(),
         spe_center_by_mode: vec![0.75],
         spe_spread_by_mode: vec![0.25],
+        resid_center: vec![0.25, -0.5],
+        resid_gain: vec![2.0, 0.0],
+        resid_limit: 1.5,
     }
 }
 
@@ -85,9 +88,9 @@ fn tiny_model_exact_bytes() {
     }
     .to_bytes()
     .unwrap();
-    // Header (FORMAT.md): magic, version 2, flags 0, payload length, labels length 0.
+    // Header (FORMAT.md): magic, version 3, flags 0, payload length, labels length 0.
     assert_eq!(&bytes[0..4], b"PLMD");
-    assert_eq!(&bytes[4..8], &[2, 0, 0, 0]);
+    assert_eq!(&bytes[4..8], &[3, 0, 0, 0]);
     let payload_len = u32::from_le_bytes(bytes[8..12].try_into().unwrap()) as usize;
     assert_eq!(&bytes[12..16], &[0, 0, 0, 0]);
     assert_eq!(bytes.len(), HEADER_LEN + payload_len + 4);
@@ -131,12 +134,18 @@ fn tiny_model_exact_bytes() {
     // SPE centre and spread by mode, one component.
     f(&[0.75], true, &mut expect);
     f(&[0.25], true, &mut expect);
+    // Residual chart: centre and gain per feature, then the limit.
+    f(&[0.25, -0.5], true, &mut expect);
+    f(&[2.0, 0.0], true, &mut expect);
+    f(&[1.5], false, &mut expect);
     assert_eq!(&bytes[HEADER_LEN..HEADER_LEN + payload_len], &expect[..]);
     // And the whole file, pinned: any change to the layout shows up here.
     let crc = u32::from_le_bytes(bytes[bytes.len() - 4..].try_into().unwrap());
     assert_eq!(crc, crc32(&bytes[..bytes.len() - 4]));
-    assert_eq!(payload_len, 169);
-    assert_eq!(crc, 0xccb4_7532, "pinned CRC of the tiny model file");
+    assert_eq!(payload_len, 191);
+    // Also computed with Python's zlib.crc32 over the bytes written out by
+    // hand from FORMAT.md (header, then the payload listed above).
+    assert_eq!(crc, 0x8e3e_3c87, "pinned CRC of the tiny model file");
 }
 
 #[test]
@@ -203,12 +212,20 @@ fn each_framing_error_is_distinct() {
     assert_eq!(decode(&b), Err(ModelError::BadMagic));
 
     let mut b = good.clone();
-    b[4] = 3;
-    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 3 }));
-    // Version 1 (before the SPE by mode) is refused, not misread.
-    let mut b = good.clone();
-    b[4] = 1;
-    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 1 }));
+    b[4] = 4;
+    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 4 }));
+    // Versions 1 (before the SPE by mode) and 2 (before the residual chart)
+    // are refused, not misread.
+    for old in [1u8, 2] {
+        let mut b = good.clone();
+        b[4] = old;
+        assert_eq!(
+            decode(&b),
+            Err(ModelError::UnknownVersion {
+                found: u16::from(old)
+            })
+        );
+    }
 
     // Flag bit 0 is the signature's; any other set flag is unknown.
     let mut b = good.clone();
@@ -746,40 +763,89 @@ mod signed {
     }
 }
 
+/// An older file: the current file's payload less its last `cut` bytes,
+/// under a header of `version` (FORMAT.md's history: versions differ only by
+/// fields appended at the end).
+fn older_file(current: &[u8], version: u16, cut: usize) -> Vec<u8> {
+    let payload_len = u32::from_le_bytes(current[8..12].try_into().unwrap()) as usize;
+    let payload = &current[HEADER_LEN..HEADER_LEN + payload_len - cut];
+    let mut out = Vec::new();
+    out.extend_from_slice(&MAGIC);
+    out.extend_from_slice(&version.to_le_bytes());
+    out.extend_from_slice(&0u16.to_le_bytes());
+    out.extend_from_slice(&(payload.len() as u32).to_le_bytes());
+    out.extend_from_slice(&0u32.to_le_bytes());
+    out.extend_from_slice(payload);
+    out.extend_from_slice(&crc32(&out).to_le_bytes());
+    out
+}
+
+/// Bytes of the tiny model's fields added by version 3 (d = 2: two vectors
+/// of a length byte and two f32, and one f32) and by version 2 (k = 1: two
+/// vectors of a length byte and one f32).
+const V3_FIELDS: usize = 2 * (1 + 8) + 4;
+const V2_FIELDS: usize = 2 * (1 + 4);
+
+/// The tiny model as an older version reads on the host: the residual chart
+/// off (every gain 0), so it flags as it did.
+fn tiny_chart_off() -> ModelOwned {
+    let mut want = tiny();
+    want.resid_center = vec![0.0, 0.0];
+    want.resid_gain = vec![0.0, 0.0];
+    want.resid_limit = 1.0;
+    want
+}
+
 /// A version 1 file (the layout before fields 28–29, as FORMAT.md's
 /// history gives it: the same header with version 1, the payload without
-/// the two trailing vectors) is read by the host with every mode at the
-/// global SPE centre and spread, so its EWMA smooths what a version 1
-/// detector smoothed; a device refuses it.
+/// the trailing fields of versions 2 and 3) is read by the host with every
+/// mode at the global SPE centre and spread, so its EWMA smooths what a
+/// version 1 detector smoothed, and the residual chart off; a device refuses
+/// it.
 #[test]
 fn a_version_1_file_reads_on_the_host_with_the_global_spe() {
-    let v2 = ModelFile {
+    let v3 = ModelFile {
         model: tiny(),
         labels: vec![],
     }
     .to_bytes()
     .unwrap();
-    let payload_len = u32::from_le_bytes(v2[8..12].try_into().unwrap()) as usize;
-    // k = 1: each vector is a length byte and one f32.
-    let v1_payload = &v2[HEADER_LEN..HEADER_LEN + payload_len - 10];
-    let mut v1 = Vec::new();
-    v1.extend_from_slice(&MAGIC);
-    v1.extend_from_slice(&1u16.to_le_bytes());
-    v1.extend_from_slice(&0u16.to_le_bytes());
-    v1.extend_from_slice(&(v1_payload.len() as u32).to_le_bytes());
-    v1.extend_from_slice(&0u32.to_le_bytes());
-    v1.extend_from_slice(v1_payload);
-    v1.extend_from_slice(&crc32(&v1).to_le_bytes());
-
+    let v1 = older_file(&v3, 1, V3_FIELDS + V2_FIELDS);
     let read = ModelFile::from_bytes(&v1).unwrap().model;
-    let mut want = tiny();
+    let mut want = tiny_chart_off();
     want.spe_center_by_mode = vec![want.monitor.spe.center];
     want.spe_spread_by_mode = vec![want.monitor.spe.spread];
     assert_eq!(read, want);
     assert_eq!(decode(&v1), Err(ModelError::UnknownVersion { found: 1 }));
-    // A version 1 header over a version 2 payload does not decode.
-    let mut wrong = v2.clone();
+    // A version 1 header over a version 3 payload does not decode.
+    let mut wrong = v3.clone();
     wrong[4] = 1;
     fix_crc(&mut wrong);
     assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
+}
+
+/// A version 2 file (before fields 30–32) is read by the host with the
+/// residual chart off and everything else as stored; a device refuses it.
+#[test]
+fn a_version_2_file_reads_on_the_host_with_the_residual_chart_off() {
+    let v3 = ModelFile {
+        model: tiny(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .unwrap();
+    let v2 = older_file(&v3, 2, V3_FIELDS);
+    assert_eq!(ModelFile::from_bytes(&v2).unwrap().model, tiny_chart_off());
+    assert_eq!(decode(&v2), Err(ModelError::UnknownVersion { found: 2 }));
+    // Off means off: a chart with every gain 0 validates.
+    tiny_chart_off().validate().unwrap();
+    // Version headers over the wrong payloads do not decode.
+    let mut wrong = v3.clone();
+    wrong[4] = 2;
+    fix_crc(&mut wrong);
+    assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
+    let mut wrong = v2.clone();
+    wrong[4] = 3;
+    fix_crc(&mut wrong);
+    assert_eq!(decode(&wrong), Err(ModelError::Undecodable));
 }

@@ -449,7 +449,14 @@ mod exact_bytes {
             Statistic::ALL,
             [Statistic::Ewma, Statistic::Cusum, Statistic::Sample]
         );
+        // The residual chart (appended with model format 3): variant 3,
+        // then the feature index as one byte.
+        assert_eq!(
+            postcard::to_allocvec(&Statistic::Residual { feature: 17 }).unwrap(),
+            vec![3, 17]
+        );
         // An index past the last chart is refused, not misread.
+        assert!(postcard::from_bytes::<Statistic>(&[4]).is_err());
         assert!(postcard::from_bytes::<Statistic>(&[3]).is_err());
     }
 
@@ -577,6 +584,12 @@ fn every_host_msg() -> Vec<HostMsg> {
 }
 
 fn every_device_msg() -> Vec<DeviceMsg> {
+    let residual = Crossing {
+        score: ScoreKind::Spe,
+        statistic: Statistic::Residual { feature: u8::MAX },
+        value: 7.5,
+        limit: 3.25,
+    };
     let crossed: heapless::Vec<Crossing, MAX_CROSSINGS> =
         [ScoreKind::Spe, ScoreKind::T2, ScoreKind::Nll]
             .into_iter()
@@ -588,6 +601,7 @@ fn every_device_msg() -> Vec<DeviceMsg> {
                     limit: 3.25,
                 })
             })
+            .chain([residual])
             .collect();
     let reasons = every_reason();
     let mut msgs = vec![
@@ -825,14 +839,16 @@ mod messages {
             assert_eq!(got, vec![Ok(frame.clone())]);
             assert_eq!(dec.counters().frames_ok, 1);
         }
-        // A feature echo of ECHO_CHUNK values is the longest: seq 5 +
-        // variant 1 + sample 10 + first 1 + length 1 + 31 × 4 = 142 (the
-        // drift raised message with nine crossings, three charts of three
-        // scores, takes seq 5 + variant 1 + sample 10 + drivers 1 + scores
-        // 12 + length 1 + 9 × 10 + top 3 × 5 = 135).
-        assert_eq!(longest, 142);
+        // A drift raised message with ten crossings, three charts of three
+        // scores and the SPE's residual chart, is the longest: seq 5 +
+        // variant 1 + sample 10 + drivers 1 + scores 12 + length 1 + 9 × 10
+        // + (score 1, variant 1, feature 1, 8) + top 3 × 5 = 146 (a feature
+        // echo of ECHO_CHUNK values takes seq 5 + variant 1 + sample 10 +
+        // first 1 + length 1 + 31 × 4 = 142).
+        assert_eq!(longest, 146);
+        assert_eq!(longest, MAX_DEVICE_MESSAGE);
         assert_eq!(ECHO_CHUNK, 31);
-        assert_eq!(MAX_CROSSINGS, 9);
+        assert_eq!(MAX_CROSSINGS, 10);
     }
 
     /// The frame encoder has its own serializer (`wire/ser.rs`); its bytes
@@ -907,7 +923,11 @@ mod messages {
             wire::field_from_code(13),
             Some(plumb_model::Field::SpeByMode)
         );
-        assert_eq!(wire::field_from_code(14), None);
+        assert_eq!(
+            wire::field_from_code(14),
+            Some(plumb_model::Field::ResidualChart)
+        );
+        assert_eq!(wire::field_from_code(15), None);
         assert_eq!(
             Reason::OutOfRange { field: 200 }.to_string(),
             "model refused (reason code 12)"
@@ -928,11 +948,11 @@ mod messages {
     #[test]
     fn documented_sizes() {
         // PROTOCOL.md, "Framing".
-        assert_eq!(wire::PROTOCOL_VERSION, 3);
+        assert_eq!(wire::PROTOCOL_VERSION, 4);
         assert_eq!(MAX_HOST_MESSAGE, 263);
         assert_eq!(MAX_HOST_FRAME, 270);
-        assert_eq!(MAX_DEVICE_MESSAGE, 144);
-        assert_eq!(MAX_DEVICE_FRAME, 150);
+        assert_eq!(MAX_DEVICE_MESSAGE, 146);
+        assert_eq!(MAX_DEVICE_FRAME, 152);
         assert_eq!(MAX_CHUNK, 128);
         assert_eq!(wire::FIRMWARE_LEN, 16);
     }

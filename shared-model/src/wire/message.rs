@@ -12,8 +12,9 @@ pub const FIRMWARE_LEN: usize = 16;
 /// Most bytes of model file one upload chunk carries.
 pub const MAX_CHUNK: usize = 128;
 /// Most limit crossings a drift raised message lists: three charts (EWMA,
-/// CUSUM, per-sample limit) for each of three scores.
-pub const MAX_CROSSINGS: usize = 9;
+/// CUSUM, per-sample limit) for each of three scores, and the SPE's residual
+/// chart.
+pub const MAX_CROSSINGS: usize = 10;
 
 /// One of the two model slots of a device.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -67,8 +68,8 @@ pub enum ScoreKind {
     Nll,
 }
 
-/// One of the three charts kept per score: the two streaming statistics
-/// and the per-sample limit.
+/// One of the charts kept per score: the two streaming statistics and the
+/// per-sample limit, and for the SPE the residual chart.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub enum Statistic {
@@ -80,10 +81,19 @@ pub enum Statistic {
     /// The sample's raw score against the per-sample limit
     /// (`ScoreLimits::sample_limit`), in the score's own units (variant 2).
     Sample,
+    /// The SPE's residual chart (variant 3, model format 3): the EWMA of one
+    /// feature's residual, centred and scaled by the model's
+    /// `resid_center` and `resid_gain`, in absolute value, against
+    /// `resid_limit`. A crossing names the feature furthest over the limit.
+    Residual {
+        /// Feature index in model order.
+        feature: u8,
+    },
 }
 
 impl Statistic {
-    /// Every chart, in the order a drift raised message lists them.
+    /// The three charts every score has, in the order a drift raised message
+    /// lists them (the SPE's residual chart comes after them).
     pub const ALL: [Statistic; 3] = [Statistic::Ewma, Statistic::Cusum, Statistic::Sample];
 }
 
@@ -247,7 +257,8 @@ pub struct DriftRaised {
     /// That sample's scores.
     pub scores: ScoreTriple,
     /// Every chart of a driving score that is over its limit: SPE before
-    /// T² before NLL, and per score EWMA, CUSUM, per-sample limit.
+    /// T² before NLL, and per score EWMA, CUSUM, per-sample limit, then for
+    /// the SPE its residual chart.
     pub crossed: heapless::Vec<Crossing, MAX_CROSSINGS>,
     /// The three largest SPE contributions, largest first.
     pub top: [Share; 3],

@@ -154,7 +154,7 @@ pub enum Reason {
 }
 
 /// Wire code of a model [`Field`] (its position in this list).
-pub const FIELDS: [Field; 14] = [
+pub const FIELDS: [Field; 15] = [
     Field::Mean,
     Field::Scale,
     Field::Loadings,
@@ -169,11 +169,13 @@ pub const FIELDS: [Field; 14] = [
     Field::NllLimits,
     Field::Labels,
     Field::SpeByMode,
+    Field::ResidualChart,
 ];
 
 /// Wire code of a [`Field`]: 0 mean, 1 scale, 2 loadings, 3 eigenvalues,
 /// 4 theta, 5 weights, 6 mixture means, 7 mixture variances, 8 monitor,
-/// 9 SPE limits, 10 T² limits, 11 NLL limits, 12 labels, 13 SPE by mode.
+/// 9 SPE limits, 10 T² limits, 11 NLL limits, 12 labels, 13 SPE by mode,
+/// 14 residual chart.
 pub const fn field_code(f: Field) -> u8 {
     match f {
         Field::Mean => 0,
@@ -190,6 +192,7 @@ pub const fn field_code(f: Field) -> u8 {
         Field::NllLimits => 11,
         Field::Labels => 12,
         Field::SpeByMode => 13,
+        Field::ResidualChart => 14,
     }
 }
 

@@ -109,5 +109,11 @@ pub fn example_model(d: usize, m: usize, k: usize, seed: u64) -> ModelOwned {
         // Every mode as the global SPE centre and spread of `monitor()`.
         spe_center_by_mode: vec![0.5; k],
         spe_spread_by_mode: vec![0.3; k],
+        // A residual chart with a gain per feature (one off) and a limit.
+        resid_center: (0..d).map(|i| i as f32 * 0.01 - 0.05).collect(),
+        resid_gain: (0..d)
+            .map(|i| if i == 1 { 0.0 } else { 0.5 + i as f32 * 0.05 })
+            .collect(),
+        resid_limit: 1.75,
     }
 }
