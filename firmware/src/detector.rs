@@ -2,7 +2,7 @@
 
 use crate::score::{self, Contribution, Derived, Fault, Scores, TOP_FEATURES};
 use crate::stats::{Cusum, Ewma, Welford};
-use plumb_model::{Capacity, Model, ModelError, ScoreLimits};
+use plumb_model::{Capacity, Model, ModelError, ScoreLimits, MAX_FEATURES};
 
 /// The three monitored scores.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -253,6 +253,32 @@ pub struct Detector {
     held: u32,
     faults: FaultCounts,
     window_len: u32,
+    resid: ResidualChart,
+}
+
+/// The SPE's residual chart: one EWMA per feature of
+/// `(r_i − resid_center_i) · resid_gain_i`, `r_i` the feature's PCA residual,
+/// hot when any of them is beyond `resid_limit` in absolute value. The model's
+/// gains scale each feature's smoothed residual to its own nominal tail, so one
+/// limit serves features of any memory (`plumb fit`'s calibration sets both).
+#[derive(Debug, Clone, Copy, PartialEq)]
+#[cfg_attr(feature = "defmt", derive(defmt::Format))]
+pub struct ResidualChart {
+    /// Each feature's EWMA (the first `d` values).
+    pub ewma: [f32; MAX_FEATURES],
+    /// The largest `|ewma_i|` after the last scored sample.
+    pub peak: f32,
+    /// The feature of `peak` (the first of equal ones).
+    pub peak_feature: u8,
+}
+
+impl ResidualChart {
+    /// Every EWMA at 0.
+    pub const ZERO: ResidualChart = ResidualChart {
+        ewma: [0.0; MAX_FEATURES],
+        peak: 0.0,
+        peak_feature: 0,
+    };
 }
 
 /// Samples per telemetry window of [`Track::window`].
@@ -279,6 +305,7 @@ impl Detector {
             overflow: 0,
         },
         window_len: 0,
+        resid: ResidualChart::ZERO,
     };
 
     /// Validates `model` against the device capacities and starts a detector
@@ -398,6 +425,7 @@ impl Detector {
         self.held = 0;
         self.faults = FaultCounts::default();
         self.window_len = 0;
+        self.resid = ResidualChart::ZERO;
     }
 
     /// The running model.
@@ -413,6 +441,11 @@ impl Detector {
     /// Statistics of one score.
     pub fn track(&self, s: Score) -> &Track {
         &self.tracks[s as usize]
+    }
+
+    /// The SPE's residual chart.
+    pub fn residual_chart(&self) -> &ResidualChart {
+        &self.resid
     }
 
     /// Faults since the last reset.
@@ -461,14 +494,27 @@ impl Detector {
 
     /// Scores one sample without touching any statistic (used by calibration).
     pub fn score(&self, x: &[f32]) -> Result<score::Scored, Fault> {
-        score::score(&self.model, &self.derived, x)
+        self.score_residuals(x, &mut [0.0; MAX_FEATURES])
+    }
+
+    /// [`Detector::score`], leaving each feature's PCA residual
+    /// `r_i = z_i − (P Pᵀ z)_i` in `resid[i]` (used by calibration).
+    pub fn score_residuals(
+        &self,
+        x: &[f32],
+        resid: &mut [f32; MAX_FEATURES],
+    ) -> Result<score::Scored, Fault> {
+        score::score(&self.model, &self.derived, x, resid, score::Residuals::Keep)
     }
 
     /// Feeds one sample: score it, update the statistics, step the states.
     pub fn update(&mut self, x: &[f32]) -> Outcome {
         let index = self.index;
         self.index = self.index.wrapping_add(1);
-        let scored = match score::score(&self.model, &self.derived, x) {
+        // The standardised sample, then the residual chart's next values.
+        let mut buf = [0.0f32; MAX_FEATURES];
+        let chart = score::Residuals::Step(&self.resid.ewma);
+        let scored = match score::score(&self.model, &self.derived, x, &mut buf, chart) {
             Ok(s) => s,
             Err(fault) => return self.faulted(index, fault),
         };
@@ -500,6 +546,13 @@ impl Detector {
         if !ewmas.iter().all(|e| e.value().is_finite()) {
             return self.faulted(index, Fault::Overflow);
         }
+        // The residual chart's next values (`score` checked them finite).
+        let d = usize::from(self.model.dims.features);
+        if let (Some(to), Some(from)) = (self.resid.ewma.get_mut(..d), buf.get(..d)) {
+            to.copy_from_slice(from);
+        }
+        self.resid.peak = scored.chart.peak;
+        self.resid.peak_feature = scored.chart.feature;
         self.valid += 1;
         self.window_len += 1;
         let roll = self.window_len >= WINDOW;
@@ -570,6 +623,9 @@ impl Detector {
                 set.insert(which);
             }
         }
+        if self.resid.peak > self.model.resid_limit {
+            set.insert(Score::Spe);
+        }
         set
     }
 
@@ -577,11 +633,12 @@ impl Detector {
         let mp = &self.model.monitor;
         let f = mp.clear_fraction;
         let limits = [&mp.spe, &mp.t2, &mp.nll];
-        self.tracks.iter().zip(limits).all(|(track, lim)| {
-            track.cusum.value() <= f * lim.cusum_limit
-                && track.ewma.value() <= f * lim.ewma_limit
-                && track.last_u <= track.sample_u
-        })
+        self.resid.peak <= f * self.model.resid_limit
+            && self.tracks.iter().zip(limits).all(|(track, lim)| {
+                track.cusum.value() <= f * lim.cusum_limit
+                    && track.ewma.value() <= f * lim.ewma_limit
+                    && track.last_u <= track.sample_u
+            })
     }
 
     fn step(&mut self, hot: ScoreSet) -> Option<Event> {

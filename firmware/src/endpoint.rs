@@ -784,6 +784,11 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         }
     }
 
+    // Out of line, so the detector update's working space (the residual
+    // chart's next values, 256 bytes, and the drift raised message) is not
+    // in the frame of `handle` on every other path, such as an upload's
+    // decoding (BENCHMARKS.md, "Residual chart").
+    #[inline(never)]
     fn on_sample<W: Write>(&mut self, x: &[f32], out: &mut Out<'_, W>) {
         if self.echo {
             let sample = self.running().samples();
@@ -858,7 +863,8 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
 
     /// The drift raised message for `o`: every chart of a driving score
     /// over its limit, SPE before T² before NLL and per score EWMA, CUSUM,
-    /// per-sample limit (the order of [`Statistic::ALL`]).
+    /// per-sample limit (the order of [`Statistic::ALL`]), the SPE's residual
+    /// chart after its other three.
     fn raised(&self, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
         let scores = o.scores.unwrap_or_default();
         let mut crossed = heapless::Vec::new();
@@ -884,6 +890,8 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
                         (v > lim.cusum_limit, v, lim.cusum_limit)
                     }
                     Statistic::Sample => (t.last_u > t.sample_u, raw, lim.sample_limit),
+                    // Not in `Statistic::ALL`: listed after the loop.
+                    Statistic::Residual { .. } => (false, 0.0, 0.0),
                 };
                 if over {
                     let c = Crossing {
@@ -892,9 +900,22 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
                         value,
                         limit,
                     };
-                    // At most 3 scores × 3 charts = MAX_CROSSINGS: always fits.
+                    // At most 3 scores × 3 charts and the residual chart =
+                    // MAX_CROSSINGS: always fits.
                     let _ = crossed.push(c);
                 }
+            }
+            let chart = self.running().residual_chart();
+            let resid_limit = self.running().model().resid_limit;
+            if s == Score::Spe && chart.peak > resid_limit {
+                let _ = crossed.push(Crossing {
+                    score: ScoreKind::Spe,
+                    statistic: Statistic::Residual {
+                        feature: chart.peak_feature,
+                    },
+                    value: chart.peak,
+                    limit: resid_limit,
+                });
             }
         }
         DriftRaised {

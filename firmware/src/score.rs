@@ -69,6 +69,8 @@ pub struct Scored {
     /// The most likely mixture component (the sample's operating mode): the
     /// first of the largest `ln π_c + ln N(t; ν_c, v_c)`.
     pub mode: usize,
+    /// The residual chart's step (see [`Residuals`]).
+    pub chart: ChartStep,
 }
 
 /// Constants derived from a model at load time, so the per-sample path does
@@ -184,11 +186,49 @@ fn input_fault(x: &[f32], at: usize) -> Fault {
     }
 }
 
-/// Scores one sample. `x` must have `d` features in model order.
+/// What [`score`] does with each feature's PCA residual `r_i = z_i − (P t)_i`.
+#[derive(Debug, Clone, Copy)]
+pub enum Residuals<'a> {
+    /// Leave `r_i` in `buf[i]` (calibration).
+    Keep,
+    /// One step of the SPE's residual chart from these EWMA values: leave
+    /// each feature's next value `e_i + λ ((r_i − center_i) · gain_i − e_i)`
+    /// in `buf[i]` and the largest in absolute value in
+    /// [`Scored::chart`]. The detector keeps them only if the sample is not
+    /// a fault.
+    Step(&'a [f32; MAX_FEATURES]),
+}
+
+/// One feature's residual chart EWMA after residual `r`:
+/// `e + λ ((r − center) · gain − e)`. The detector ([`score`]) and the host
+/// calibration both step the chart through this function.
+#[inline(always)]
+pub fn chart_next(e: f32, r: f32, center: f32, gain: f32, lambda: f32) -> f32 {
+    e + lambda * ((r - center) * gain - e)
+}
+
+/// The residual chart's step on a scored sample (see [`Residuals::Step`]).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ChartStep {
+    /// The largest `|next EWMA|` over the features (0 for [`Residuals::Keep`]).
+    pub peak: f32,
+    /// Its feature (the first of equal ones).
+    pub feature: u8,
+}
+
+/// Scores one sample. `x` must have `d` features in model order. `buf` is
+/// the working space of the standardised sample, then holds what `resid`
+/// asks for in its first `d` values (on a fault, whatever was reached).
 ///
 /// Operation order is fixed (sums run in index order, no fused multiply-add),
 /// so the host and the board produce the same bits.
-pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Fault> {
+pub fn score(
+    model: &Model,
+    derived: &Derived,
+    x: &[f32],
+    buf: &mut [f32; MAX_FEATURES],
+    resid: Residuals<'_>,
+) -> Result<Scored, Fault> {
     let d = usize::from(model.dims.features);
     let m = usize::from(model.dims.components);
     let k = usize::from(model.dims.mixture);
@@ -208,8 +248,7 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         });
     }
     let fault_z = model.monitor.fault_z;
-    let mut z = [0.0f32; MAX_FEATURES];
-    for (i, (((zi, xi), mu), inv)) in z
+    for (i, (((zi, xi), mu), inv)) in buf
         .iter_mut()
         .zip(x)
         .zip(model.mean.iter())
@@ -228,7 +267,7 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         }
         *zi = v;
     }
-    let z = &z[..d];
+    let z = &buf[..d];
 
     // t = Pᵀ z (P is d × m, row-major). Each t_j is summed over the
     // features in index order; eight of them at a time (then four), so that
@@ -281,7 +320,8 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
     }
     let t = &latent[..m];
 
-    // r = z − P t; SPE = Σ r_i²; keep the top contributions.
+    // r = z − P t; SPE = Σ r_i²; keep the top contributions; the residual
+    // chart's step or the residual itself goes where z_i was.
     let mut spe = 0.0f32;
     // Sentinel below any real contribution; slots still unused after the loop
     // (only when d < TOP_FEATURES) name feature NO_FEATURE with value 0.
@@ -290,19 +330,20 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         value: -1.0,
     }; TOP_FEATURES];
     // Feature i's residual, taken into the SPE and the top contributions in
-    // index order.
-    let mut residual = |i: usize, zi: f32, recon: f32| {
-        let r = zi - recon;
+    // index order, and left where z_i was.
+    let mut residual = |i: usize, zi: &mut f32, recon: f32| {
+        let r = *zi - recon;
         let c = r * r;
         spe += c;
         insert_top(&mut top, i, c);
+        *zi = r;
     };
     // (P t)_i for four rows at a time, each summed over j in index order:
     // every t_j is loaded once for the four rows, and the four residuals are
     // used at once (no buffer of reconstructions).
     let rows4 = model.loadings.chunks_exact(4 * m);
     let done = 4 * rows4.len();
-    for ((b, block), zs) in rows4.enumerate().zip(z.chunks_exact(4)) {
+    for (b, block) in rows4.enumerate() {
         let (Some(r0), Some(r1), Some(r2), Some(r3)) = (
             block.get(..m),
             block.get(m..2 * m),
@@ -318,21 +359,48 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
             a2 += p2 * tj;
             a3 += p3 * tj;
         }
-        for (k, (zi, a)) in zs.iter().zip([a0, a1, a2, a3]).enumerate() {
-            residual(4 * b + k, *zi, a);
+        if let Some(zs) = buf.get_mut(4 * b..4 * b + 4) {
+            for (k, (zi, a)) in zs.iter_mut().zip([a0, a1, a2, a3]).enumerate() {
+                residual(4 * b + k, zi, a);
+            }
         }
     }
-    for (i, (zi, row)) in z
-        .iter()
-        .zip(model.loadings.chunks_exact(m))
-        .enumerate()
-        .skip(done)
-    {
+    for (i, row) in model.loadings.chunks_exact(m).enumerate().skip(done) {
         let mut a = 0.0f32;
         for (p, tj) in row.iter().zip(t) {
             a += p * tj;
         }
-        residual(i, *zi, a);
+        if let Some(zi) = buf.get_mut(i) {
+            residual(i, zi, a);
+        }
+    }
+
+    // The residual chart's step, in place: each r_i becomes its feature's
+    // next EWMA value.
+    let mut chart = ChartStep {
+        peak: 0.0,
+        feature: 0,
+    };
+    let mut finite = true;
+    if let Residuals::Step(old) = resid {
+        let lambda = model.monitor.ewma_lambda;
+        for (i, (((v, e), center), gain)) in buf
+            .iter_mut()
+            .zip(old)
+            .zip(model.resid_center.iter())
+            .zip(model.resid_gain.iter())
+            .enumerate()
+        {
+            let next = chart_next(*e, *v, *center, *gain, lambda);
+            let a = next.abs();
+            // One comparison: NaN is never below infinity.
+            finite &= a < f32::INFINITY;
+            if a > chart.peak {
+                chart.peak = a;
+                chart.feature = i as u8;
+            }
+            *v = next;
+        }
     }
 
     for c in top.iter_mut().filter(|c| c.feature == NO_FEATURE) {
@@ -374,7 +442,7 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
     let nll = -(best + math::ln(sum));
 
     let scores = Scores { spe, t2, nll };
-    if !(spe.is_finite() && t2.is_finite() && nll.is_finite()) {
+    if !(spe.is_finite() && t2.is_finite() && nll.is_finite() && finite) {
         return Err(Fault::Overflow);
     }
     Ok(Scored {
@@ -383,5 +451,6 @@ pub fn score(model: &Model, derived: &Derived, x: &[f32]) -> Result<Scored, Faul
         m,
         latent,
         mode,
+        chart,
     })
 }

@@ -220,10 +220,12 @@ fn calibrated(model: &ModelOwned, rng: &mut Rng) -> ModelOwned {
         lim.cusum_limit = 8.0;
         lim.ewma_limit = 1.0;
     }
-    // Every mode as the whole: the state tests are about the states.
+    // Every mode as the whole, the residual chart off: the state tests are
+    // about the states.
     let k = cal.weights.len();
     cal.spe_center_by_mode = vec![cal.monitor.spe.center; k];
     cal.spe_spread_by_mode = vec![cal.monitor.spe.spread; k];
+    cal.resid_gain.iter_mut().for_each(|g| *g = 0.0);
     cal
 }
 
@@ -653,4 +655,142 @@ fn one_sample_over_the_per_sample_limit_raises_at_once() {
             }
         ))
     );
+}
+
+/// The SPE's residual chart: one EWMA per feature of
+/// `(r_i − center_i) · gain_i`, `r_i = z_i − (P Pᵀ z)_i` (Roberts 1959 for
+/// the EWMA), against an f64 recursion written from that definition, with a
+/// first-order a-priori bound on the f32 error carried through the same
+/// recursion (Higham §3.1, u = 2⁻²⁴):
+///
+/// * `z_i`: within `γ₃ |z_i|` (subtract, multiply by the rounded reciprocal);
+/// * `t_j`: within `δ_j = γ_{d+3} Σ_i |z_i p_ij|` (as for the scores);
+/// * `(P t)_i`: within `γ_m Σ_j |p_ij t_j| + Σ_j |p_ij| δ_j`;
+/// * `r_i`: the sum of those and `u |r_i|` for the subtraction;
+/// * `w_i = (r_i − c_i) g_i`: `g_i (Δr_i + γ₂ |r_i − c_i|)`;
+/// * the EWMA averages the errors of its inputs and adds `γ₃ (|e| + |w|)`
+///   of its own per step: `b ← (1 − λ) b + λ Δw + γ₃ (|e| + λ |w|)`.
+///
+/// A chart off by 1e-4 of its limit would fail; the measured worst error
+/// over its bound is printed.
+#[test]
+fn residual_chart_is_an_ewma_of_each_scaled_residual() {
+    use scores::{gamma, U};
+    let mut worst = 0.0f64;
+    for (d, m, k, seed) in [(12, 3, 3, 5), (32, 8, 4, 2), (64, 16, 8, 1)] {
+        let model = example_model(d, m, k, seed);
+        let lambda = model.monitor.ewma_lambda as f64;
+        let mut det = Detector::new(model.to_device().unwrap()).unwrap();
+        let mut rng = Rng(31 + seed);
+        let mut e = vec![0.0f64; d];
+        let mut b = vec![0.0f64; d];
+        for n in 0..400 {
+            let x = draw(&model, &mut rng, [0.05, 0.5, 2.0][n % 3]);
+            let xf: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+            let xr: Vec<f64> = xf.iter().map(|v| *v as f64).collect();
+            let (z, t, _) = reference_parts(&model, &xr);
+            let p = |i: usize, j: usize| model.loadings[i * m + j] as f64;
+            let delta: Vec<f64> = (0..m)
+                .map(|j| gamma(d + 3) * (0..d).map(|i| (z[i] * p(i, j)).abs()).sum::<f64>())
+                .collect();
+            let out = det.update(&xf);
+            assert!(out.scores.is_some(), "sample {n}");
+            let chart = det.residual_chart();
+            let mut peak = (0.0f64, 0usize);
+            for i in 0..d {
+                let recon: f64 = (0..m).map(|j| p(i, j) * t[j]).sum();
+                let r = z[i] - recon;
+                let dr = gamma(3) * z[i].abs()
+                    + gamma(m) * (0..m).map(|j| (p(i, j) * t[j]).abs()).sum::<f64>()
+                    + (0..m).map(|j| p(i, j).abs() * delta[j]).sum::<f64>()
+                    + U * r.abs();
+                let (c, g) = (model.resid_center[i] as f64, model.resid_gain[i] as f64);
+                let w = (r - c) * g;
+                let dw = g * (dr + gamma(2) * (r - c).abs());
+                b[i] = (1.0 - lambda) * b[i]
+                    + lambda * dw
+                    + gamma(3) * (e[i].abs() + lambda * w.abs());
+                e[i] += lambda * (w - e[i]);
+                let got = chart.ewma[i] as f64;
+                let err = (got - e[i]).abs();
+                assert!(
+                    err <= b[i],
+                    "(d {d}) sample {n}, feature {i}: EWMA {got} vs {} (error {err:e} > bound {:e})",
+                    e[i],
+                    b[i]
+                );
+                worst = worst.max(err / b[i]);
+                if e[i].abs() > peak.0 {
+                    peak = (e[i].abs(), i);
+                }
+            }
+            // The peak is the largest |EWMA| (its feature may differ from
+            // the f64 one only on a near tie).
+            let got_peak = chart.ewma[..d].iter().fold(0.0f32, |a, v| a.max(v.abs()));
+            assert_eq!(chart.peak, got_peak, "sample {n}");
+            assert!((chart.peak as f64 - peak.0).abs() <= b.iter().cloned().fold(0.0, f64::max));
+            assert_eq!(
+                chart.ewma[usize::from(chart.peak_feature)].abs(),
+                chart.peak
+            );
+        }
+    }
+    println!("residual chart: worst error / bound {worst:.2e}");
+}
+
+/// A drift that keeps to the model's subspace except in one feature: only
+/// that feature's residual moves. Its chart rises, a flag is raised by the
+/// SPE with the residual chart over its limit (the peak naming that
+/// feature), and once the shift is gone the flag clears; a model with the
+/// chart off (every gain 0) does not flag the same shift through the chart.
+#[test]
+fn a_shift_in_one_residual_raises_the_residual_chart() {
+    let d = 12;
+    let mut model = example_model(d, 3, 3, 5);
+    // Quiet every other chart: only the residual chart may raise.
+    for lim in [
+        &mut model.monitor.spe,
+        &mut model.monitor.t2,
+        &mut model.monitor.nll,
+    ] {
+        lim.sample_limit = 1e30;
+        lim.cusum_limit = 1e30;
+        lim.ewma_limit = 1e30;
+    }
+    model.monitor.warmup = 20;
+    let feature = 7;
+    let run = |model: &ModelOwned| {
+        let mut det = Detector::new(model.to_device().unwrap()).unwrap();
+        let mut rng = Rng(99);
+        let mut raised = None;
+        let mut cleared = None;
+        for n in 0..1500 {
+            let mut x = draw(model, &mut rng, 0.05);
+            if (300..600).contains(&n) {
+                // Five scales on one feature.
+                x[feature] += 5.0 * model.scale[feature] as f64;
+            }
+            let xf: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+            let out = det.update(&xf);
+            match out.event {
+                Some(Event::Raised { drivers }) if raised.is_none() => {
+                    assert!(drivers.contains(Score::Spe), "{drivers:?}");
+                    let chart = det.residual_chart();
+                    assert!(chart.peak > det.model().resid_limit);
+                    assert_eq!(usize::from(chart.peak_feature), feature);
+                    raised = Some(n);
+                }
+                Some(Event::Cleared) if raised.is_some() => cleared = Some(n),
+                _ => {}
+            }
+        }
+        (raised, cleared)
+    };
+    let (raised, cleared) = run(&model);
+    let raised = raised.expect("the residual chart raises a flag");
+    assert!((300..340).contains(&raised), "raised at {raised}");
+    assert!(cleared.expect("and the flag clears") > 600);
+    let mut off = model.clone();
+    off.resid_gain.iter_mut().for_each(|g| *g = 0.0);
+    assert_eq!(run(&off), (None, None));
 }

@@ -144,6 +144,10 @@ fn model(id: u32, mean_shift: f32) -> ModelOwned {
         },
         spe_center_by_mode: vec![0.2; 2],
         spe_spread_by_mode: vec![0.1; 2],
+        // The residual chart off; `residual_chart` turns it on.
+        resid_center: vec![0.0; 4],
+        resid_gain: vec![0.0; 4],
+        resid_limit: 1.0,
     }
 }
 
@@ -759,6 +763,48 @@ mod scoring {
     }
 
     #[test]
+    fn the_residual_chart_crossing_follows_the_spe_charts_and_names_its_feature() {
+        // As above, SPE's per-sample limit crossed by the spike, and the
+        // residual chart on (limit 0.2; feature 2 with twice the gain of the
+        // others): one spike sample moves each feature's chart to λ·w =
+        // 0.2 × 1.5 × gain, over the limit, so it is listed right after the
+        // SPE's own charts (before T²'s), with its peak and that feature.
+        let spe = ScoreLimits {
+            sample_limit: 3.0,
+            cusum_limit: 40.0,
+            ewma_limit: 40.0,
+            ..limits(0.2, 0.1)
+        };
+        let mut m = chart_model(spe, 50.0);
+        m.resid_gain = vec![1.0, 1.0, 2.0, 1.0];
+        m.resid_limit = 0.2;
+        let spike = Lcg(5).drifted();
+        let (r, reference) = raise_with(&m, &spike);
+        assert_eq!(r.drivers, 0b001, "{r:?}");
+        let chart = reference.residual_chart();
+        assert_eq!(chart.peak_feature, 2, "{chart:?}");
+        assert_eq!(
+            r.crossed.as_slice(),
+            &[
+                Crossing {
+                    score: ScoreKind::Spe,
+                    statistic: Statistic::Sample,
+                    value: r.scores.spe,
+                    limit: 3.0,
+                },
+                Crossing {
+                    score: ScoreKind::Spe,
+                    statistic: Statistic::Residual { feature: 2 },
+                    value: chart.peak,
+                    limit: 0.2,
+                },
+            ]
+        );
+        // The chart's value is the detector's, bit for bit.
+        assert_eq!(r.crossed[1].value.to_bits(), chart.peak.to_bits());
+    }
+
+    #[test]
     fn score_reports_equal_the_detector_bit_for_bit() {
         let mut rig: Rig = Rig::new();
         let mut reference = Detector::from_file(&file_of(&model(1, 0.0))).unwrap();
@@ -959,6 +1005,8 @@ mod upload {
         m.mix_variances = vec![1.0];
         m.spe_center_by_mode = vec![0.2];
         m.spe_spread_by_mode = vec![0.1];
+        m.resid_center = vec![0.0; d];
+        m.resid_gain = vec![0.0; d];
         let bytes = file_of(&m);
         refused_and_untouched(
             |rig| rig.upload(&bytes, wire::crc32(&bytes)),

@@ -98,6 +98,9 @@ fn synthetic(d: usize, m: usize, k: usize) -> Option<Model> {
         },
         spe_center_by_mode: heapless::Vec::new(),
         spe_spread_by_mode: heapless::Vec::new(),
+        resid_center: heapless::Vec::new(),
+        resid_gain: heapless::Vec::new(),
+        resid_limit: 3.0,
     };
     for _ in 0..d {
         model.mean.push(rng.next() * 0.1).ok()?;
@@ -118,6 +121,12 @@ fn synthetic(d: usize, m: usize, k: usize) -> Option<Model> {
     for _ in 0..k * m {
         model.mix_means.push(rng.next() * 0.5).ok()?;
         model.mix_variances.push(1.0 + rng.next() * 0.2).ok()?;
+    }
+    // The residual chart on for every feature (fixed values, so the random
+    // parameters above stay those of earlier measurements).
+    for i in 0..d {
+        model.resid_center.push(0.01 * i as f32).ok()?;
+        model.resid_gain.push(0.5 + 0.01 * i as f32).ok()?;
     }
     Some(model)
 }
