@@ -24,8 +24,9 @@
 //!    The stored `sample_limit` is the per-sample (Shewhart) chart's limit,
 //!    set like the other charts below and mapped back to the raw score.
 //! 4. Allowance. The target false-alarm rate per sample is split evenly over
-//!    the nine charts (three scores × upper CUSUM, upper EWMA and the
-//!    per-sample chart; Bonferroni): each chart's budget is `B = rate / 9 × n`
+//!    the ten charts (three scores × upper CUSUM, upper EWMA and the
+//!    per-sample chart, and the SPE's residual chart, [`crate::residual`];
+//!    Bonferroni): each chart's budget is `B = rate / 10 × n`
 //!    false alarms,
 //!    `n` being the samples it can alarm on (those after each log's
 //!    warm-up). A limit that gives `a` alarms on the held-out data gives
@@ -43,7 +44,7 @@
 //!    limit is therefore the smallest that meets its allowance on the held-out
 //!    data, found by bisection ([`smallest_limit`], to [`SEARCH_TOL`]), and
 //!    never below the design for independent N(0, 1) input: the limit whose
-//!    in-control ARL is `9 / rate` (Markov chain of Brook & Evans 1972,
+//!    in-control ARL is `10 / rate` (Markov chain of Brook & Evans 1972,
 //!    [`crate::arl`]).
 //! 6. CUSUM: for every reference value `k` of the slack grid (default
 //!    [`SLACK_GRID`]) the decision limit `h` is set as in 5; the `(k, h)`
@@ -89,8 +90,9 @@ pub const SAMPLE_QUANTILE: f64 = 0.999;
 /// Significance of the Jackson–Mudholkar SPE limit shown beside it.
 pub const JM_ALPHA: f64 = 0.001;
 /// Charts sharing the false-alarm rate: three scores × CUSUM, EWMA and the
-/// per-sample (Shewhart) chart, combined as in Lucas (1982).
-pub const CHARTS: usize = 9;
+/// per-sample (Shewhart) chart, combined as in Lucas (1982), and the SPE's
+/// residual chart ([`crate::residual`]).
+pub const CHARTS: usize = 10;
 /// CUSUM reference values `k` (spreads) tried per score by default.
 pub const SLACK_GRID: [f64; 7] = [0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0];
 /// Largest CUSUM reference value accepted (spreads).
@@ -447,7 +449,7 @@ pub fn smallest_limit(chart: Chart, s: &Series<'_>, floor: f64, allowed: u64) ->
 }
 
 /// Each chart's false-alarm budget on `samples` held-out samples,
-/// `B = rate / 9 × samples`, and the alarms it may give there,
+/// `B = rate / 10 × samples` ([`CHARTS`]), and the alarms it may give there,
 /// `⌊B⌋ − 1` (at least 0).
 ///
 /// Why one fewer than the budget: a limit at which a chart alarms `a` times
@@ -625,12 +627,12 @@ pub struct CalibReport {
     /// Held-out rows left out for empty or non-finite cells.
     pub skipped: u64,
     /// In-control ARL each chart is designed for with independent input
-    /// (`9 / rate`).
+    /// (`10 / rate`).
     pub chart_arl: f64,
     /// Held-out samples a chart can alarm on (after each log's warm-up).
     pub chart_samples: u64,
     /// False alarms each chart may raise on them by the target
-    /// (`rate / 9 × samples`).
+    /// (`rate / 10 × samples`).
     pub chart_budget: f64,
     /// Alarms each chart may give on the held-out data (`⌊budget⌋ − 1`, at
     /// least 0; see [`chart_allowance`]).
@@ -643,6 +645,9 @@ pub struct CalibReport {
     pub search_passes: u64,
     /// Per score.
     pub scores: Vec<ScoreCalib>,
+    /// The SPE's residual chart (`None`, chart off, for a model over the
+    /// device capacities).
+    pub residual: Option<crate::residual::ResidualCalib>,
     /// Per mixture component: the transformed SPE's centre and spread among
     /// the held-out rows it is the most likely component of.
     pub spe_modes: Vec<ModeCalib>,
@@ -839,6 +844,7 @@ pub fn calibrate(
     let k = usize::from(model.dims.mixture);
     model.spe_center_by_mode = vec![0.0; k];
     model.spe_spread_by_mode = vec![1.0; k];
+    crate::residual::off(model);
 
     // 1. Score every held-out row once: raw scores (for the quantiles) and
     // transformed scores (for the charts), with where each log starts.
@@ -849,6 +855,8 @@ pub fn calibrate(
     let mut modes: Vec<u16> = Vec::new();
     let mut moments = [Welford::<f64>::new(); 3];
     let mut faults = 0u64;
+    // Each scored row's PCA residuals, `d` per row (device models only).
+    let mut resid_rows: Vec<f32> = Vec::new();
     let skipped: u64;
     let nll_floor: f64;
     {
@@ -879,7 +887,9 @@ pub fn calibrate(
                     for (o, v) in x32.iter_mut().zip(row) {
                         *o = *v as f32;
                     }
-                    det.score(&x32).ok().map(|s| {
+                    let mut resid = [0.0f32; plumb_model::MAX_FEATURES];
+                    det.score_residuals(&x32, &mut resid).ok().map(|s| {
+                        resid_rows.extend_from_slice(&resid[..d]);
                         let mode = s.mode;
                         let s = s.scores;
                         ([[s.spe, s.t2, s.nll], det.transformed(&s)], mode)
@@ -1129,6 +1139,34 @@ pub fn calibrate(
     model.spe_center_by_mode = spe_modes.iter().map(|m| m.center as f32).collect();
     model.spe_spread_by_mode = spe_modes.iter().map(|m| m.spread as f32).collect();
     apply(model, &mut scores);
+    // The SPE's residual chart (device models: the residuals come from the
+    // device detector).
+    let clock = Instant::now();
+    // A chart of each feature's level needs more than one log to see how the
+    // levels differ between logs (robots, days): with one, it stays off.
+    let mut residual = if device && starts.len() >= 2 {
+        let r = crate::residual::Residuals {
+            d,
+            rows: &resid_rows,
+            starts: &starts,
+            warmup: cfg.warmup,
+            dwell: cfg.raise_dwell,
+        };
+        Some(crate::residual::calibrate(model, &r, allowed_per_chart)?)
+    } else {
+        if device {
+            warnings.push(
+                "the held-out rows come from one log, so the SPE's residual chart is off: it \
+                 needs logs of several robots or days to see how each feature's level differs \
+                 between them"
+                    .to_string(),
+            );
+        }
+        crate::residual::off(model);
+        None
+    };
+    drop(resid_rows);
+    seconds.design += clock.elapsed().as_secs_f64();
 
     let mut report = CalibReport {
         scored,
@@ -1140,8 +1178,9 @@ pub fn calibrate(
         allowed_per_chart,
         design_shift: cfg.design_shift,
         ewma_l_iid: l_iid,
-        search_passes,
+        search_passes: search_passes + residual.as_ref().map_or(0, |r| u64::from(r.passes)),
         scores: Vec::new(),
+        residual: None,
         spe_modes,
         end_to_end: device,
         rounds: 0,
@@ -1166,6 +1205,7 @@ pub fn calibrate(
                 .to_string(),
         );
         report.scores = scores;
+        report.residual = residual;
         report.seconds = seconds;
         report.warnings = warnings;
         return Ok(report);
@@ -1184,6 +1224,7 @@ pub fn calibrate(
         let mut flags = 0u64;
         let mut watched = 0u64;
         let mut widen = [[false; 3]; 3];
+        let mut widen_resid = false;
         let mut x32 = vec![0.0f32; d];
         let label = if round == 1 {
             "check".to_string()
@@ -1221,6 +1262,9 @@ pub fn calibrate(
                         widen[i][2] = true;
                     }
                 }
+                if det.residual_chart().peak > det.model().resid_limit {
+                    widen_resid = true;
+                }
             }
         })?;
         let allowed = (cfg.false_alarm_rate * watched as f64).floor() as u64;
@@ -1245,6 +1289,10 @@ pub fn calibrate(
             }
         }
         apply(model, &mut scores);
+        if let (true, Some(r)) = (widen_resid, residual.as_mut()) {
+            r.widened *= GROWTH;
+            model.resid_limit = r.stored();
+        }
     }
     seconds.check = clock.elapsed().as_secs_f64();
     if report.widened {
@@ -1281,6 +1329,7 @@ pub fn calibrate(
     };
     report.rate_ci95 = wilson(report.flags, report.watched, arl::phi_inv(0.975));
     report.scores = scores;
+    report.residual = residual;
     report.seconds = seconds;
     report.warnings = warnings;
     Ok(report)
@@ -1538,12 +1587,13 @@ mod tests {
 
     #[test]
     fn allowance_is_the_budget_less_one() {
-        // 1e-5 over 9 charts on 999 900 samples: budget 1.111; one alarm on
-        // the held-out data would mean about two on new data, so none.
-        let (b, a) = chart_allowance(1e-5, 999_900);
+        // 1e-5 over 10 charts on 1 111 000 samples: budget 1.111; one alarm
+        // on the held-out data would mean about two on new data, so none.
+        let (b, a) = chart_allowance(1e-5, 1_111_000);
         assert!((b - 1.111).abs() < 1e-12 && a == 0, "{b} {a}");
-        assert_eq!(chart_allowance(9e-4, 200_000).1, 19);
-        assert_eq!(chart_allowance(9e-4, 199_999).1, 18);
+        assert_eq!(CHARTS, 10);
+        assert_eq!(chart_allowance(1e-3, 200_000).1, 19);
+        assert_eq!(chart_allowance(1e-3, 199_999).1, 18);
         assert_eq!(chart_allowance(1e-5, 7_000).1, 0);
         assert_eq!(chart_allowance(1e-5, 0), (0.0, 0));
     }

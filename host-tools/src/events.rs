@@ -250,13 +250,23 @@ fn score_name(s: ScoreKind) -> &'static str {
     }
 }
 
-/// Name of a chart in lines and JSON: `ewma`, `cusum`, or `per-sample`
-/// (the per-sample limit on the raw score).
+/// Name of a chart in lines and JSON: `ewma`, `cusum`, `per-sample` (the
+/// per-sample limit on the raw score) or `residual` (the SPE's residual
+/// chart; its feature is given beside it).
 fn statistic_name(s: Statistic) -> &'static str {
     match s {
         Statistic::Ewma => "ewma",
         Statistic::Cusum => "cusum",
         Statistic::Sample => "per-sample",
+        Statistic::Residual { .. } => "residual",
+    }
+}
+
+/// The feature a crossing names (the residual chart's), if any.
+fn crossing_feature(c: &Crossing) -> Option<u8> {
+    match c.statistic {
+        Statistic::Residual { feature } => Some(feature),
+        _ => None,
     }
 }
 
@@ -301,9 +311,14 @@ pub fn fault_parts(f: FaultKind) -> (&'static str, Option<u8>, Option<u16>) {
     }
 }
 
-fn crossing_text(c: &Crossing) -> String {
+/// `spe/ewma:7.5>3.25`; the residual chart names its feature:
+/// `spe/residual(vib_band6):1.2>1`.
+fn crossing_text(c: &Crossing, names: &Names) -> String {
+    let feature = crossing_feature(c)
+        .map(|i| format!("({})", names.feature(i)))
+        .unwrap_or_default();
     format!(
-        "{}/{}:{}>{}",
+        "{}/{}{feature}:{}>{}",
         score_name(c.score),
         statistic_name(c.statistic),
         c.value,
@@ -375,7 +390,7 @@ pub fn text_line(r: &Received, names: &Names) -> String {
                 .filter(|s| s.feature != u8::MAX)
                 .map(|s| format!("{}:{}", names.feature(s.feature), s.value))
                 .collect();
-            let crossed: Vec<String> = d.crossed.iter().map(crossing_text).collect();
+            let crossed: Vec<String> = d.crossed.iter().map(|c| crossing_text(c, names)).collect();
             format!(
                 "raised seq={seq} sample={} drivers={} {} top={} crossed={}",
                 d.sample,
@@ -504,9 +519,16 @@ pub fn json_line(r: &Received, names: &Names) -> Value {
             "top": d.top.iter().filter(|s| s.feature != u8::MAX)
                 .map(|s| json!({"feature": names.feature(s.feature), "index": s.feature, "value": s.value}))
                 .collect::<Vec<_>>(),
-            "crossed": d.crossed.iter().map(|c| json!({
-                "score": score_name(c.score), "statistic": statistic_name(c.statistic),
-                "value": c.value, "limit": c.limit})).collect::<Vec<_>>(),
+            "crossed": d.crossed.iter().map(|c| {
+                let mut j = json!({
+                    "score": score_name(c.score), "statistic": statistic_name(c.statistic),
+                    "value": c.value, "limit": c.limit});
+                if let Some(i) = crossing_feature(c) {
+                    j["feature"] = json!(names.feature(i));
+                    j["index"] = json!(i);
+                }
+                j
+            }).collect::<Vec<_>>(),
         }),
         DeviceMsg::DriftCleared(c) => json!({"event": "cleared", "seq": seq, "sample": c.sample}),
         DeviceMsg::SensorFault(f) => {

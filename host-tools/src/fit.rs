@@ -633,6 +633,9 @@ pub fn fit(
         // Set by the calibration.
         spe_center_by_mode: Vec::new(),
         spe_spread_by_mode: Vec::new(),
+        resid_center: Vec::new(),
+        resid_gain: Vec::new(),
+        resid_limit: 0.0,
     };
     let device = Capacity::DEVICE.admits(&dims).is_ok();
     let calib_stage = |label: &str, total: u64| progress.stage(label, total, true);

@@ -59,6 +59,7 @@ pub mod pca;
 pub mod progress;
 pub mod replay;
 pub mod report;
+pub mod residual;
 pub mod rng;
 pub mod simd;
 pub mod summary;

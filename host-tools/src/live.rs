@@ -317,14 +317,23 @@ pub struct ModelInfo {
     pub id: u32,
     /// Its limits and drift-state parameters.
     pub monitor: MonitorParams,
+    /// The residual chart's limit (`None` when the chart is off: a model
+    /// of format 1 or 2).
+    pub resid_limit: Option<f32>,
 }
 
 impl ModelInfo {
     /// From a model file.
     pub fn of(file: &ModelFile) -> Self {
+        let m = &file.model;
         ModelInfo {
-            id: file.model.meta.id,
-            monitor: file.model.monitor,
+            id: m.meta.id,
+            monitor: m.monitor,
+            resid_limit: m
+                .resid_gain
+                .iter()
+                .any(|g| *g > 0.0)
+                .then_some(m.resid_limit),
         }
     }
 }
@@ -379,7 +388,7 @@ pub struct LiveState {
     reports: u64,
     /// Limits learnt from crossings: `[score][chart]` (EWMA, CUSUM,
     /// per-sample).
-    seen_limits: [[Option<f32>; 3]; 3],
+    seen_limits: [[Option<f32>; 4]; 3],
     host: LinkStats,
     frames: u64,
     last_frame: Option<Duration>,
@@ -412,6 +421,7 @@ fn statistic_label(s: Statistic) -> &'static str {
         Statistic::Ewma => "EWMA",
         Statistic::Cusum => "CUSUM",
         Statistic::Sample => "per-sample",
+        Statistic::Residual { .. } => "residual",
     }
 }
 
@@ -420,6 +430,7 @@ fn statistic_index(s: Statistic) -> usize {
         Statistic::Ewma => 0,
         Statistic::Cusum => 1,
         Statistic::Sample => 2,
+        Statistic::Residual { .. } => 3,
     }
 }
 
@@ -479,7 +490,7 @@ impl LiveState {
             fault_events: 0,
             scores: VecDeque::new(),
             reports: 0,
-            seen_limits: [[None; 3]; 3],
+            seen_limits: [[None; 4]; 3],
             host: LinkStats::default(),
             frames: 0,
             last_frame: None,
@@ -503,26 +514,33 @@ impl LiveState {
     /// Whether the model file's limits apply: it was given, and the board
     /// runs it (or has not said what it runs yet).
     fn file_limits(&self) -> Option<&MonitorParams> {
+        self.file_model().map(|m| &m.monitor)
+    }
+
+    /// The model file, when it applies (see [`LiveState::file_limits`]).
+    fn file_model(&self) -> Option<&ModelInfo> {
         let m = self.model.as_ref()?;
         match self.board_model {
             Some(id) if id != m.id => None,
-            _ => Some(&m.monitor),
+            _ => Some(m),
         }
     }
 
     /// Limit of `stat` of `score`, from the model file or a crossing seen.
     fn limit(&self, score: ScoreKind, stat: Statistic) -> Option<f32> {
-        if let Some(m) = self.file_limits() {
+        if let Some(info) = self.file_model() {
+            let m = &info.monitor;
             let l = match score {
                 ScoreKind::Spe => &m.spe,
                 ScoreKind::T2 => &m.t2,
                 ScoreKind::Nll => &m.nll,
             };
-            return Some(match stat {
-                Statistic::Ewma => l.ewma_limit,
-                Statistic::Cusum => l.cusum_limit,
-                Statistic::Sample => l.sample_limit,
-            });
+            return match stat {
+                Statistic::Ewma => Some(l.ewma_limit),
+                Statistic::Cusum => Some(l.cusum_limit),
+                Statistic::Sample => Some(l.sample_limit),
+                Statistic::Residual { .. } => info.resid_limit,
+            };
         }
         self.seen_limits[score_index(score)][statistic_index(stat)]
     }

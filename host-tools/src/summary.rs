@@ -56,6 +56,10 @@ pub struct FeatureRow {
     pub mean: f32,
     /// Scale (ddof = 0 standard deviation).
     pub scale: f32,
+    /// Centre of the feature's PCA residual (the SPE's residual chart).
+    pub resid_center: f32,
+    /// Gain of the feature's residual chart (0: off).
+    pub resid_gain: f32,
 }
 
 /// One kept component.
@@ -179,6 +183,8 @@ pub struct Summary {
     pub monitor: MonitorInfo,
     /// Limits per score.
     pub limits: Vec<LimitRow>,
+    /// Limit of the SPE's residual chart on `|EWMA|` of every feature.
+    pub resid_limit: f32,
     /// Jackson–Mudholkar SPE limit at α = 0.001 from θ (None if θ1 = 0).
     pub spe_limit_jm: Option<f64>,
     /// Sizes.
@@ -273,6 +279,8 @@ impl Summary {
                     .unwrap_or_default(),
                 mean: model.mean[i],
                 scale: model.scale[i],
+                resid_center: model.resid_center[i],
+                resid_gain: model.resid_gain[i],
             })
             .collect();
         let mixture = (0..k)
@@ -314,6 +322,7 @@ impl Summary {
                 ewma_lambda: mp.ewma_lambda,
                 fault_z: mp.fault_z,
             },
+            resid_limit: model.resid_limit,
             limits: vec![
                 LimitRow {
                     score: "spe",
@@ -369,9 +378,14 @@ impl Summary {
         if mi.format_version < plumb_model::file::FORMAT_VERSION {
             let _ = writeln!(
                 o,
-                "  format {} file: read with every mode at the global SPE centre and spread (it \
-                 flags as it did); boards read format {} only: refit it (plumb fit --base)",
+                "  format {} file: read {}with the SPE's residual chart off (it flags as it did); \
+                 boards read format {} only: refit it (plumb fit --base)",
                 mi.format_version,
+                if mi.format_version == 1 {
+                    "with every mode at the global SPE centre and spread and "
+                } else {
+                    ""
+                },
                 plumb_model::file::FORMAT_VERSION
             );
         }
@@ -396,7 +410,11 @@ impl Summary {
             let _ = writeln!(o, "  sample period unknown");
         }
 
-        let _ = writeln!(o, "\nFeatures (standardised with these means and scales)");
+        let _ = writeln!(
+            o,
+            "\nFeatures (standardised with these means and scales; the SPE's residual chart \
+             smooths (r - centre) x gain, r the feature's PCA residual)"
+        );
         let width = self
             .features
             .iter()
@@ -406,8 +424,8 @@ impl Summary {
             .max(7);
         let _ = writeln!(
             o,
-            "  {:>4}  {:<width$}  {:>12}  {:>12}",
-            "#", "feature", "mean", "scale"
+            "  {:>4}  {:<width$}  {:>12}  {:>12}  {:>12}  {:>12}",
+            "#", "feature", "mean", "scale", "resid centre", "resid gain"
         );
         for (i, f) in self.features.iter().enumerate() {
             let label = if f.unit.is_empty() {
@@ -417,11 +435,13 @@ impl Summary {
             };
             let _ = writeln!(
                 o,
-                "  {:>4}  {:<width$}  {:>12.5}  {:>12.5}",
+                "  {:>4}  {:<width$}  {:>12.5}  {:>12.5}  {:>12.5}  {:>12.5}",
                 i + 1,
                 label,
                 f.mean,
-                f.scale
+                f.scale,
+                f.resid_center,
+                f.resid_gain
             );
         }
 
@@ -546,6 +566,21 @@ impl Summary {
             "  spe EWMA: of g(SPE) standardised with the centre and spread of the sample's \
              mode (its most likely mixture component; Mixture above)"
         );
+        let on = self.features.iter().filter(|f| f.resid_gain > 0.0).count();
+        if on == 0 {
+            let _ = writeln!(
+                o,
+                "  spe residual chart: off (every gain 0; a model of format 1 or 2)"
+            );
+        } else {
+            let _ = writeln!(
+                o,
+                "  spe residual chart: hot when any feature's EWMA of (r - centre) x gain is \
+                 beyond {:.4} in absolute value ({on} of {} features on; Features above)",
+                self.resid_limit,
+                self.features.len()
+            );
+        }
         match self.spe_limit_jm {
             Some(q) => {
                 let _ = writeln!(
@@ -574,8 +609,8 @@ impl Summary {
             let _ = writeln!(o, "\nCalibration on held-out logs");
             let _ = writeln!(
                 o,
-                "  {} rows scored ({} faulted, {} skipped). Each of the 9 charts has a budget of \
-                 {:.3} false alarms on its {} samples (rate / 9) and may alarm {} time{} there \
+                "  {} rows scored ({} faulted, {} skipped). Each of the {} charts has a budget of \
+                 {:.3} false alarms on its {} samples (rate / {}) and may alarm {} time{} there \
                  (budget rounded down, less one: a limit that alarms a times on held-out data \
                  alarms about a + 1 times on new data). Limits never below the design for \
                  independent input (ARL0 = {:.0} per chart). Delays: ARL at a shift of {} \
@@ -583,8 +618,10 @@ impl Summary {
                 c.scored,
                 c.faults,
                 c.skipped,
+                crate::calibrate::CHARTS,
                 c.chart_budget,
                 c.chart_samples,
+                crate::calibrate::CHARTS,
                 c.allowed_per_chart,
                 if c.allowed_per_chart == 1 { "" } else { "s" },
                 c.chart_arl,
@@ -644,6 +681,24 @@ impl Summary {
                     let _ = writeln!(o, "{line}");
                 }
             }
+            if let Some(r) = &c.residual {
+                let _ = writeln!(
+                    o,
+                    "  spe residual chart: each feature's standardised residual EWMA scaled to its \
+                     {:.6} quantile on the held-out rows, or to the 99% prediction bound of a new \
+                     log's level from the {} held-out logs (t = {:.3}) where that is larger \
+                     ({} feature{}); limit {:.4}{} ({} alarm{})",
+                    r.tail_level,
+                    r.logs,
+                    r.level_t,
+                    r.level_bound_features,
+                    if r.level_bound_features == 1 { "" } else { "s" },
+                    r.limit,
+                    if r.at_floor { " (the floor, 1)" } else { "" },
+                    r.alarms,
+                    if r.alarms == 1 { "" } else { "s" }
+                );
+            }
             if c.end_to_end {
                 let _ = writeln!(
                     o,
@@ -665,6 +720,9 @@ impl Summary {
                             s.score, s.cusum_widened, s.ewma_widened
                         );
                     }
+                }
+                if let Some(r) = c.residual.as_ref().filter(|r| r.widened > 1.0) {
+                    let _ = writeln!(o, "    spe residual chart widened: x{:.3}", r.widened);
                 }
                 let _ = writeln!(
                     o,

@@ -913,48 +913,38 @@ fn spe_by_mode_is_the_held_out_moments_of_each_mode() {
     assert!(own >= 2, "at least two modes hold rows: {acc:?}");
 }
 
-/// A format 1 file (FORMAT.md, history): the host reads it, says so, and
-/// replays it exactly as the same model written in the current format with
-/// every mode at the global SPE centre and spread; `plumb upload` refuses
-/// it before sending, since boards read the current format only.
+/// Format 1 and 2 files (FORMAT.md, history): the host reads them, says so,
+/// and replays each exactly as the same model written in the current format
+/// with the residual chart off (and, for format 1, every mode at the global
+/// SPE centre and spread); `plumb upload` refuses them before sending, since
+/// boards read the current format only.
 #[test]
-fn a_format_1_model_is_read_by_the_host_and_refused_for_a_board() {
+fn format_1_and_2_models_are_read_by_the_host_and_refused_for_a_board() {
     let dir = Scratch::new("format1");
     let a = dir.write("a.csv", &log_text(4, 1200, 1));
     let b = dir.write("b.csv", &log_text(4, 1200, 2));
-    let v2 = dir.path("v2.plumb");
-    let mut args = vec!["fit", s(&a), "--out", s(&v2)];
+    let v3 = dir.path("v3.plumb");
+    let mut args = vec!["fit", s(&a), "--out", s(&v3)];
     args.extend(FAST); // --mixture 2
     let o = plumb(&args);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
-    // Downgrade: drop fields 28–29 (k = 2: two × (length byte + 2 f32)).
-    let bytes = std::fs::read(&v2).unwrap();
+    let bytes = std::fs::read(&v3).unwrap();
     let word = |at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap()) as usize;
     let (payload, labels) = (word(8), word(12));
-    let body = &bytes[16..16 + payload - 18];
-    let mut v1 = b"PLMD".to_vec();
-    v1.extend_from_slice(&[1, 0, 0, 0]);
-    v1.extend_from_slice(&(body.len() as u32).to_le_bytes());
-    v1.extend_from_slice(&(labels as u32).to_le_bytes());
-    v1.extend_from_slice(body);
-    v1.extend_from_slice(&bytes[16 + payload..16 + payload + labels]);
-    v1.extend_from_slice(&plumb_model::file::crc32(&v1).to_le_bytes());
-    let old = dir.path("v1.plumb");
-    std::fs::write(&old, &v1).unwrap();
-    // The same model in the current format, modes at the global values.
-    let file = plumb_model::file::ModelFile::from_bytes(&v1).unwrap();
-    let spe = file.model.monitor.spe;
-    assert_eq!(file.model.spe_center_by_mode, vec![spe.center; 2]);
-    assert_eq!(file.model.spe_spread_by_mode, vec![spe.spread; 2]);
-    let same = dir.path("same.plumb");
-    std::fs::write(&same, file.to_bytes().unwrap()).unwrap();
-
-    let o = plumb(&["inspect", s(&old)]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
-    let text = String::from_utf8_lossy(&o.stdout);
-    assert!(text.contains("format 1)"), "{text}");
-    assert!(text.contains("boards read format 2 only"), "{text}");
-
+    // Downgrade: drop fields 30–32 (d = 4: two × (length byte + 4 f32) and
+    // one f32) for version 2, and fields 28–29 too (k = 2: two × (length
+    // byte + 2 f32)) for version 1.
+    let older = |version: u8, cut: usize| {
+        let body = &bytes[16..16 + payload - cut];
+        let mut out = b"PLMD".to_vec();
+        out.extend_from_slice(&[version, 0, 0, 0]);
+        out.extend_from_slice(&(body.len() as u32).to_le_bytes());
+        out.extend_from_slice(&(labels as u32).to_le_bytes());
+        out.extend_from_slice(body);
+        out.extend_from_slice(&bytes[16 + payload..16 + payload + labels]);
+        out.extend_from_slice(&plumb_model::file::crc32(&out).to_le_bytes());
+        out
+    };
     // A shifted log, so the replays have flags to compare.
     let mut rows = lines(&log_text(4, 1500, 3));
     for r in rows.iter_mut().skip(800) {
@@ -969,11 +959,40 @@ fn a_format_1_model_is_read_by_the_host_and_refused_for_a_board() {
         assert!(o.status.code() == Some(1), "{}", stderr(&o));
         String::from_utf8_lossy(&o.stdout).into_owned()
     };
-    assert_eq!(replay(&old), replay(&same));
+    for (version, cut) in [(1u8, 38 + 18), (2, 38)] {
+        let old_bytes = older(version, cut);
+        let old = dir.path(&format!("v{version}.plumb"));
+        std::fs::write(&old, &old_bytes).unwrap();
+        // The same model in the current format, the residual chart off and
+        // (version 1) the modes at the global values.
+        let file = plumb_model::file::ModelFile::from_bytes(&old_bytes).unwrap();
+        let m = &file.model;
+        assert!(m.resid_gain.iter().all(|g| *g == 0.0), "{version}");
+        if version == 1 {
+            let spe = m.monitor.spe;
+            assert_eq!(m.spe_center_by_mode, vec![spe.center; 2]);
+            assert_eq!(m.spe_spread_by_mode, vec![spe.spread; 2]);
+        }
+        let same = dir.path(&format!("same{version}.plumb"));
+        std::fs::write(&same, file.to_bytes().unwrap()).unwrap();
 
-    let o = plumb(&["upload", s(&old), "--port", "/dev/null"]);
-    assert_eq!(o.status.code(), Some(2));
-    assert!(stderr(&o).contains("version 1"), "{}", stderr(&o));
+        let o = plumb(&["inspect", s(&old)]);
+        assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+        let text = String::from_utf8_lossy(&o.stdout);
+        assert!(text.contains(&format!("format {version})")), "{text}");
+        assert!(text.contains("residual chart off"), "{text}");
+        assert!(text.contains("boards read format 3 only"), "{text}");
+
+        assert_eq!(replay(&old), replay(&same), "version {version}");
+
+        let o = plumb(&["upload", s(&old), "--port", "/dev/null"]);
+        assert_eq!(o.status.code(), Some(2));
+        assert!(
+            stderr(&o).contains(&format!("version {version}")),
+            "{}",
+            stderr(&o)
+        );
+    }
 }
 
 /// Expects exit code 2 and every needle on stderr.

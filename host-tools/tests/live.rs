@@ -160,6 +160,7 @@ fn state_with_model() -> LiveState {
         Some(ModelInfo {
             id: MODEL_ID,
             monitor: monitor(),
+            resid_limit: Some(1.25),
         }),
     );
     // 2024-01-01 10:00:00 UTC.
@@ -475,6 +476,7 @@ fn a_model_file_the_board_does_not_run_is_named_and_its_limits_unused() {
         Some(ModelInfo {
             id: 0xdead_0001,
             monitor: monitor(),
+            resid_limit: Some(1.25),
         }),
     );
     feed(&mut s, session(), 0);

@@ -57,7 +57,7 @@ pub fn run(args: InspectArgs) -> Result<u8> {
         None => None,
     };
     let mut summary = Summary::from_file(&file)?;
-    // What the header says (a version 1 file is read as the current one).
+    // What the header says (a version 1 or 2 file is read as the current one).
     if let Ok(s) = plumb_model::file::split_host(&bytes) {
         summary.model.format_version = s.version;
     }
