@@ -72,6 +72,10 @@ fn raw_pca_model(rows: &[f64], d: usize, m: usize) -> (ModelOwned, Vec<f64>) {
         },
         spe_center_by_mode: vec![0.0],
         spe_spread_by_mode: vec![1.0],
+        // The residual chart off: these checks are about the scores.
+        resid_center: vec![0.0; d],
+        resid_gain: vec![0.0; d],
+        resid_limit: 1.0,
     };
     (model, values)
 }
