@@ -343,7 +343,7 @@ pub fn score(
     // used at once (no buffer of reconstructions).
     let rows4 = model.loadings.chunks_exact(4 * m);
     let done = 4 * rows4.len();
-    for (b, block) in rows4.enumerate() {
+    for ((b, block), zs) in rows4.enumerate().zip(buf.chunks_exact_mut(4)) {
         let (Some(r0), Some(r1), Some(r2), Some(r3)) = (
             block.get(..m),
             block.get(m..2 * m),
@@ -359,29 +359,31 @@ pub fn score(
             a2 += p2 * tj;
             a3 += p3 * tj;
         }
-        if let Some(zs) = buf.get_mut(4 * b..4 * b + 4) {
-            for (k, (zi, a)) in zs.iter_mut().zip([a0, a1, a2, a3]).enumerate() {
-                residual(4 * b + k, zi, a);
-            }
+        for (k, (zi, a)) in zs.iter_mut().zip([a0, a1, a2, a3]).enumerate() {
+            residual(4 * b + k, zi, a);
         }
     }
-    for (i, row) in model.loadings.chunks_exact(m).enumerate().skip(done) {
+    for (i, (zi, row)) in buf
+        .iter_mut()
+        .zip(model.loadings.chunks_exact(m))
+        .enumerate()
+        .skip(done)
+    {
         let mut a = 0.0f32;
         for (p, tj) in row.iter().zip(t) {
             a += p * tj;
         }
-        if let Some(zi) = buf.get_mut(i) {
-            residual(i, zi, a);
-        }
+        residual(i, zi, a);
     }
 
     // The residual chart's step, in place: each r_i becomes its feature's
-    // next EWMA value.
-    let mut chart = ChartStep {
-        peak: 0.0,
-        feature: 0,
-    };
-    let mut finite = true;
+    // next EWMA value. The peak is found on the bit patterns of the absolute
+    // values, whose integer order is the order of the values for every
+    // non-negative float, and above every finite one for infinity and NaN:
+    // one integer comparison per feature finds the largest and tells
+    // whether all are finite.
+    let mut peak_bits = 0u32;
+    let mut at = 0usize;
     if let Residuals::Step(old) = resid {
         let lambda = model.monitor.ewma_lambda;
         for (i, (((v, e), center), gain)) in buf
@@ -392,16 +394,19 @@ pub fn score(
             .enumerate()
         {
             let next = chart_next(*e, *v, *center, *gain, lambda);
-            let a = next.abs();
-            // One comparison: NaN is never below infinity.
-            finite &= a < f32::INFINITY;
-            if a > chart.peak {
-                chart.peak = a;
-                chart.feature = i as u8;
-            }
             *v = next;
+            let bits = next.to_bits() & 0x7fff_ffff;
+            if bits > peak_bits {
+                peak_bits = bits;
+                at = i;
+            }
         }
     }
+    let finite = peak_bits < f32::INFINITY.to_bits();
+    let chart = ChartStep {
+        peak: f32::from_bits(peak_bits),
+        feature: at as u8,
+    };
 
     for c in top.iter_mut().filter(|c| c.feature == NO_FEATURE) {
         c.value = 0.0;
