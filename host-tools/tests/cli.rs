@@ -1401,3 +1401,57 @@ fn em_settings_name_the_offending_option() {
         }
     }
 }
+
+/// The SPE's residual chart needs held-out logs of more than one robot or
+/// day to bound each feature's level in a new one (host-tools/src/
+/// residual.rs, step 2): with one held-out log `plumb fit` leaves it off and
+/// says why; with two it is on.
+#[test]
+fn the_residual_chart_is_off_with_one_held_out_log_and_on_with_two() {
+    let dir = Scratch::new("resid-logs");
+    let a = dir.write("a.csv", &log_text(4, 1200, 1));
+    let h1 = dir.write("h1.csv", &log_text(4, 1500, 5));
+    let h2 = dir.write("h2.csv", &log_text(4, 1500, 6));
+    let gains = |out: &Path| {
+        let file = plumb_model::file::ModelFile::from_bytes(&std::fs::read(out).unwrap()).unwrap();
+        file.model.resid_gain
+    };
+    // Not quiet: the warnings are part of the summary.
+    let opts = ["--mixture", "2", "--restarts", "1", "--threads=2"];
+    let said =
+        |o: &std::process::Output| format!("{}{}", String::from_utf8_lossy(&o.stdout), stderr(o));
+    let one = dir.path("one.plumb");
+    let mut args = vec!["fit", s(&a), "--holdout", s(&h1), "--out", s(&one)];
+    args.extend(opts);
+    let o = plumb(&args);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    assert!(
+        said(&o).contains("held-out rows come from one log, so the SPE's residual chart is off"),
+        "{}",
+        said(&o)
+    );
+    assert!(gains(&one).iter().all(|g| *g == 0.0));
+    let o = plumb(&["inspect", s(&one)]);
+    assert!(
+        String::from_utf8_lossy(&o.stdout).contains("spe residual chart: off"),
+        "{}",
+        String::from_utf8_lossy(&o.stdout)
+    );
+
+    let held = dir.path("held");
+    std::fs::create_dir_all(&held).unwrap();
+    std::fs::copy(&h1, held.join("h1.csv")).unwrap();
+    std::fs::copy(&h2, held.join("h2.csv")).unwrap();
+    let two = dir.path("two.plumb");
+    let mut args = vec!["fit", s(&a), "--holdout", s(&held), "--out", s(&two)];
+    args.extend(opts);
+    let o = plumb(&args);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    assert!(!said(&o).contains("residual chart is off"), "{}", said(&o));
+    assert!(
+        said(&o).contains("from the 2 held-out logs"),
+        "{}",
+        said(&o)
+    );
+    assert!(gains(&two).iter().any(|g| *g > 0.0), "{:?}", gains(&two));
+}
