@@ -42,6 +42,11 @@
 //! per-sample limit; back to watching after `clear_dwell` consecutive calm
 //! samples (every CUSUM and EWMA below `clear_fraction` of its limit and no
 //! sample over its per-sample limit) and at least `min_hold` samples raised.
+//! The SPE has a fourth chart, the residual chart ([`ResidualChart`], model
+//! format 3): one EWMA per feature of that feature's PCA residual, centred
+//! and scaled by the model, hot (with the dwell, as the other EWMAs) when any
+//! is beyond one limit in absolute value; a single sensor drifting from its
+//! relation to the others shows there long before it moves the SPE.
 //! Every parameter comes from the model.
 //!
 //! ## Numbers
