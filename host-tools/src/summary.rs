@@ -840,6 +840,9 @@ pub struct ModelDiff {
     pub weights: Pair<Vec<f32>>,
     /// Limits per score.
     pub limits: Vec<LimitChange>,
+    /// The SPE's residual chart: its limit, and how many features have it
+    /// on (gain > 0).
+    pub residual_chart: Pair<(f32, usize)>,
     /// State-machine settings.
     pub monitor: Pair<MonitorInfo>,
     /// Standardisation per feature, in model order.
@@ -877,6 +880,10 @@ impl ModelDiff {
                     new: b.limits.clone(),
                 })
                 .collect(),
+            residual_chart: [old, new].map(|s| {
+                let on = s.features.iter().filter(|f| f.resid_gain > 0.0).count();
+                (s.resid_limit, on)
+            }),
             monitor: [old.monitor.clone(), new.monitor.clone()],
             features: old
                 .features
@@ -969,6 +976,19 @@ impl ModelDiff {
                 format!("{:.4} -> {:.4}", a.ewma_limit, b.ewma_limit)
             );
         }
+        let chart = |(limit, on): (f32, usize)| {
+            if on == 0 {
+                "off".to_string()
+            } else {
+                format!("limit {limit:.4} on {on} features")
+            }
+        };
+        let _ = writeln!(
+            o,
+            "  spe residual chart: {} -> {}",
+            chart(self.residual_chart[0]),
+            chart(self.residual_chart[1])
+        );
         let [ma, mb] = &self.monitor;
         if ma == mb {
             let _ = writeln!(o, "  drift-state settings unchanged");

@@ -657,6 +657,16 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
         v["limits"][2]["cusum_limit"]
     );
     assert_eq!(ch["features"].as_array().unwrap().len(), 4);
+    // The residual chart's limit and the features it watches, old and new,
+    // as each model's own summary gives them.
+    assert_eq!(ch["residual_chart"][1][0], v["resid_limit"]);
+    let on = v["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|f| f["resid_gain"].as_f64().unwrap() > 0.0)
+        .count();
+    assert_eq!(ch["residual_chart"][1][1].as_u64(), Some(on as u64));
     // The text ends with the changes.
     let o = refit(&[]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
@@ -667,6 +677,7 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
         "old explained",
         "mixture: k 2 -> 3",
         "limits (old -> new)",
+        "spe residual chart: ",
         "drift-state settings unchanged",
     ] {
         assert!(text.contains(needle), "{needle}: {text}");
