@@ -1335,8 +1335,15 @@ impl LiveState {
                     .crossed
                     .iter()
                     .map(|c| {
+                        // The residual chart names its feature.
+                        let feature = match c.statistic {
+                            Statistic::Residual { feature } => {
+                                format!(" ({})", self.names.feature(feature))
+                            }
+                            _ => String::new(),
+                        };
                         format!(
-                            "{} {} {} > {}",
+                            "{} {}{feature} {} > {}",
                             score_label(c.score),
                             statistic_label(c.statistic),
                             num(c.value),

@@ -130,3 +130,28 @@ fn the_record_row_keeps_the_crossings() {
     );
     assert!(row.ends_with(",0"), "{row}");
 }
+
+#[test]
+fn the_residual_chart_crossing_names_its_feature() {
+    let c = [crossing(
+        ScoreKind::Spe,
+        Statistic::Residual { feature: 1 },
+        2.5,
+        2.0,
+    )];
+    let line = text_line(&raised(&c), &names());
+    assert!(
+        line.ends_with(" crossed=spe/residual(motor_amps):2.5>2"),
+        "{line}"
+    );
+    let v = json_line(&raised(&c), &names());
+    let x = &v["crossed"][0];
+    assert_eq!(x["score"], "spe");
+    assert_eq!(x["statistic"], "residual");
+    assert_eq!(x["feature"], "motor_amps");
+    assert_eq!(x["index"], 1);
+    assert_eq!(x["value"], 2.5);
+    // The other charts carry no feature.
+    let v = json_line(&raised(&three()), &names());
+    assert!(v["crossed"][0].get("feature").is_none(), "{v}");
+}

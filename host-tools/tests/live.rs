@@ -82,6 +82,14 @@ fn raised(sample: u64) -> DriftRaised {
             limit: 5.0,
         })
         .unwrap();
+    crossed
+        .push(Crossing {
+            score: ScoreKind::Spe,
+            statistic: Statistic::Residual { feature: 3 },
+            value: 1.5,
+            limit: 1.25,
+        })
+        .unwrap();
     DriftRaised {
         sample,
         drivers: 0b001,
@@ -262,8 +270,8 @@ fn a_scripted_session_shows_identity_state_gauges_flags_and_faults() {
         "feature names from the model: {flag}"
     );
     assert!(
-        text.contains("crossed SPE CUSUM 6.50 > 5.00"),
-        "the newest flag's crossings: {text}"
+        text.contains("crossed SPE CUSUM 6.50 > 5.00, SPE residual (bearing_band) 1.50 > 1.25"),
+        "the newest flag's crossings, the residual chart with its feature: {text}"
     );
     assert!(text.contains("1 raised · 0 cleared"), "{text}");
     let fault = screen.find("! out of range").expect("the fault");
