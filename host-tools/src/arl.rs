@@ -456,39 +456,23 @@ fn incomplete_beta(a: f64, b: f64, x: f64) -> f64 {
 /// The continued fraction of `I_x(a, b)` (Numerical Recipes §6.4, `betacf`).
 fn beta_fraction(a: f64, b: f64, x: f64) -> f64 {
     const TINY: f64 = 1e-300;
+    let away_from_zero = |v: f64| if v.abs() < TINY { TINY } else { v };
     let (qab, qap, qam) = (a + b, a + 1.0, a - 1.0);
     let mut c = 1.0;
-    let mut d = 1.0 - qab * x / qap;
-    if d.abs() < TINY {
-        d = TINY;
-    }
-    d = 1.0 / d;
+    let mut d = 1.0 / away_from_zero(1.0 - qab * x / qap);
     let mut h = d;
+    // One step of the modified Lentz method with partial numerator `aa`:
+    // the factor it multiplies the fraction by.
+    let mut step = |aa: f64| {
+        d = 1.0 / away_from_zero(1.0 + aa * d);
+        c = away_from_zero(1.0 + aa / c);
+        d * c
+    };
     for m in 1..=300 {
         let m = f64::from(m);
         let m2 = 2.0 * m;
-        let aa = m * (b - m) * x / ((qam + m2) * (a + m2));
-        d = 1.0 + aa * d;
-        if d.abs() < TINY {
-            d = TINY;
-        }
-        c = 1.0 + aa / c;
-        if c.abs() < TINY {
-            c = TINY;
-        }
-        d = 1.0 / d;
-        h *= d * c;
-        let aa = -(a + m) * (qab + m) * x / ((a + m2) * (qap + m2));
-        d = 1.0 + aa * d;
-        if d.abs() < TINY {
-            d = TINY;
-        }
-        c = 1.0 + aa / c;
-        if c.abs() < TINY {
-            c = TINY;
-        }
-        d = 1.0 / d;
-        let del = d * c;
+        h *= step(m * (b - m) * x / ((qam + m2) * (a + m2)));
+        let del = step(-(a + m) * (qab + m) * x / ((a + m2) * (qap + m2)));
         h *= del;
         if (del - 1.0).abs() < 1e-15 {
             break;

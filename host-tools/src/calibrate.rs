@@ -403,27 +403,43 @@ pub struct LimitSearch {
 /// it even where the count is not monotone in the limit (a restart after an
 /// alarm can change later counts).
 pub fn smallest_limit(chart: Chart, s: &Series<'_>, floor: f64, allowed: u64) -> LimitSearch {
-    let floor32 = floor as f32;
+    smallest_limit_with(
+        |l| chart.alarms(s, l),
+        || chart.peak(s),
+        floor as f32,
+        allowed,
+    )
+}
+
+/// [`smallest_limit`] for any chart: `alarms(limit)` counts its alarms on the
+/// held-out data, `peak()` gives the highest value it takes there (a limit
+/// at or above it gives no alarm). Each call of either is one pass.
+pub fn smallest_limit_with(
+    alarms: impl Fn(f32) -> u64,
+    peak: impl FnOnce() -> f32,
+    floor: f32,
+    allowed: u64,
+) -> LimitSearch {
     let mut passes = 1;
-    let at_floor = chart.alarms(s, floor32);
+    let at_floor = alarms(floor);
     if at_floor <= allowed {
         return LimitSearch {
-            limit: floor32,
+            limit: floor,
             alarms: at_floor,
             at_floor: true,
             passes,
         };
     }
-    let mut lo = floor32;
-    let mut hi = chart.peak(s).max(floor32);
+    let mut lo = floor;
+    let mut hi = peak().max(floor);
     passes += 1;
     // The peak gives no alarm; step up should rounding have it otherwise.
-    let mut hi_alarms = chart.alarms(s, hi);
+    let mut hi_alarms = alarms(hi);
     passes += 1;
     while hi_alarms > allowed && hi.is_finite() {
         lo = hi;
         hi = if hi > 0.0 { hi * 2.0 } else { 1.0 };
-        hi_alarms = chart.alarms(s, hi);
+        hi_alarms = alarms(hi);
         passes += 1;
     }
     while f64::from(hi - lo) > SEARCH_TOL * f64::from(hi) {
@@ -431,7 +447,7 @@ pub fn smallest_limit(chart: Chart, s: &Series<'_>, floor: f64, allowed: u64) ->
         if !(mid > lo && mid < hi) {
             break;
         }
-        let a = chart.alarms(s, mid);
+        let a = alarms(mid);
         passes += 1;
         if a <= allowed {
             hi = mid;

@@ -53,7 +53,7 @@
 //! On the demo scenario this chart flags `bearing_wear` and `new_floor` far
 //! sooner than the SPE's own charts (BENCHMARKS.md, "Detection", attempt 9).
 
-use crate::calibrate::{quantile_type1, SEARCH_TOL};
+use crate::calibrate::quantile_type1;
 use crate::error::{Error, Result};
 use plumb_firmware::score::chart_next;
 use plumb_firmware::stats::Welford;
@@ -307,39 +307,14 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
         .map_err(|e| Error::input(format!("model does not fit the device detector: {e}")))?;
 
     // 4. The limit.
-    let mut passes = 1;
-    let (at_floor, _) = r.alarms(&dev, LIMIT_FLOOR);
-    let (limit, alarms, floor) = if at_floor <= allowed {
-        (LIMIT_FLOOR, at_floor, true)
-    } else {
-        let (_, peak) = r.alarms(&dev, f32::INFINITY);
-        passes += 1;
-        let mut lo = LIMIT_FLOOR;
-        let mut hi = peak.max(LIMIT_FLOOR);
-        let (mut hi_alarms, _) = r.alarms(&dev, hi);
-        passes += 1;
-        while hi_alarms > allowed && hi.is_finite() {
-            lo = hi;
-            hi *= 2.0;
-            hi_alarms = r.alarms(&dev, hi).0;
-            passes += 1;
-        }
-        while f64::from(hi - lo) > SEARCH_TOL * f64::from(hi) {
-            let mid = lo + 0.5 * (hi - lo);
-            if !(mid > lo && mid < hi) {
-                break;
-            }
-            let (a, _) = r.alarms(&dev, mid);
-            passes += 1;
-            if a <= allowed {
-                hi = mid;
-                hi_alarms = a;
-            } else {
-                lo = mid;
-            }
-        }
-        (hi, hi_alarms, false)
-    };
+    let search = crate::calibrate::smallest_limit_with(
+        |l| r.alarms(&dev, l).0,
+        || r.alarms(&dev, f32::INFINITY).1,
+        LIMIT_FLOOR,
+        allowed,
+    );
+    let (limit, alarms, floor, passes) =
+        (search.limit, search.alarms, search.at_floor, search.passes);
     model.resid_limit = limit;
     Ok(ResidualCalib {
         tail_level,
