@@ -1,8 +1,10 @@
 //! `plumb report` end to end: a model fitted on the demo training logs, a
 //! report over two drift logs with ground truth, checked for structure
-//! (balanced tags, one timeline per score per log, flag spans, onset
-//! markers, latent ellipses, explained variance, labelled contributions),
-//! size, exit codes, and rendered by a headless browser.
+//! (balanced tags, one timeline per score and one of the SPE's residual
+//! chart per log, flag spans, onset markers, latent ellipses, explained
+//! variance, labelled contributions, the residual chart's feature beside the
+//! flags it was hot for, checked against the detector's own), size, exit
+//! codes, and rendered by a headless browser.
 //!
 //! The browser check needs Debian's `chromium` (`scripts/setup.sh` installs
 //! it) and fails loudly without it; `PLUMB_NO_BROWSER=1` skips it on
@@ -11,7 +13,7 @@
 mod common;
 
 use common::{demo, log_text, plumb, Scratch};
-use plumb_firmware::Detector;
+use plumb_firmware::{Detector, Event};
 use plumb_model::file::ModelFile;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output, Stdio};
@@ -145,16 +147,46 @@ fn report_has_every_part_and_is_self_contained() {
     assert!(html.contains(&format!("model {:08x}", meta.id)));
     assert!(html.contains(&format!("schema {:016x}", meta.schema)));
 
-    // One timeline per score per log.
-    assert_eq!(count(html, "<svg class=\"timeline\""), 6);
+    // One timeline per score per log, and one of the SPE's residual chart
+    // (the model's chart is on: `plumb fit` calibrates it from the six
+    // training logs).
+    assert!(file.model.resid_gain.iter().any(|g| *g > 0.0), "chart on");
+    assert_eq!(count(html, "<svg class=\"timeline\""), 8);
     for log in 0..2 {
-        for score in ["spe", "t2", "nll"] {
+        for score in ["spe", "t2", "nll", "resid"] {
             let tag = format!("<svg class=\"timeline\" data-log=\"{log}\" data-score=\"{score}\"");
             assert_eq!(count(html, &tag), 1, "{tag}");
         }
+        let panel = &html[html
+            .find(&format!("<div class=\"panel\" id=\"resid-{log}\">"))
+            .expect("residual chart panel")..];
+        let panel = &panel[..panel.find("</svg>").expect("its plot")];
+        assert!(
+            panel.contains(
+                "<b>SPE residual chart</b> · largest |EWMA| of a feature's scaled residual"
+            ),
+            "panel title"
+        );
+        assert!(!panel.contains("Off in this model"));
+        // The limit line at the model's limit, and the peak drawn.
+        assert!(panel.contains("<path class=\"lim-l\""));
+        let shown: f64 = panel
+            .split("limit L = ")
+            .nth(1)
+            .and_then(|t| t.split('<').next())
+            .expect("limit label")
+            .parse()
+            .unwrap();
+        let limit = f64::from(file.model.resid_limit);
+        assert!((shown - limit).abs() <= 0.01 * limit, "{shown} vs {limit}");
+        let peak = panel
+            .split("<path class=\"ewma\" d=\"")
+            .nth(1)
+            .expect("peak line");
+        assert!(peak.len() > 1000, "a drawn line, not an empty path");
     }
 
-    // Flag spans: one shaded span per flag in each of its log's three panels.
+    // Flag spans: one shaded span per flag in each of its log's four panels.
     let logs = v["logs"].as_array().unwrap();
     let flags: usize = logs
         .iter()
@@ -162,16 +194,16 @@ fn report_has_every_part_and_is_self_contained() {
         .sum();
     assert!(flags >= 1);
     let timelines = svgs(html, "<svg class=\"timeline\"");
-    assert_eq!(count(&timelines, "<rect class=\"flag\""), 3 * flags);
+    assert_eq!(count(&timelines, "<rect class=\"flag\""), 4 * flags);
     assert!(logs[1]["faults"].as_u64().unwrap() > 0, "dropout faults");
 
     // Ground truth: an onset line in every panel of both logs; faults marked.
-    assert_eq!(count(&timelines, "<path class=\"onset\""), 6);
-    assert_eq!(count(&timelines, "onset (drift)"), 3);
-    assert_eq!(count(&timelines, "onset (fault)"), 3);
+    assert_eq!(count(&timelines, "<path class=\"onset\""), 8);
+    assert_eq!(count(&timelines, "onset (drift)"), 4);
+    assert_eq!(count(&timelines, "onset (fault)"), 4);
     assert_eq!(
         count(&timelines, "<path class=\"fault\""),
-        3,
+        4,
         "dropout panels"
     );
     assert!(html.contains("id=\"faults\""));
@@ -225,6 +257,116 @@ fn report_has_every_part_and_is_self_contained() {
         "two 8000-sample logs: {} bytes",
         html.len()
     );
+}
+
+/// The flags table's rows of the log whose cell reads `name`, in order.
+fn flag_rows<'a>(html: &'a str, name: &str) -> Vec<&'a str> {
+    let at = html.find("<section id=\"flags\">").expect("flags table");
+    let table = &html[at..at + html[at..].find("</table>").unwrap()];
+    table
+        .split("<tr>")
+        .filter(|r| r.contains(&format!(">{name}</a></td>")))
+        .collect()
+}
+
+/// Replays a demo log through the detector, as `plumb replay` does: for
+/// each flag, the residual chart's feature when the chart was over its limit
+/// at the sample that raised it.
+fn resid_at_raises(file: &ModelFile, log: &Path) -> Vec<Option<usize>> {
+    let mut det = Detector::new(file.model.to_device().unwrap()).unwrap();
+    let text = std::fs::read_to_string(log).unwrap();
+    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
+    let cols: Vec<usize> = file
+        .labels
+        .iter()
+        .map(|l| {
+            header
+                .iter()
+                .position(|h| h.split('[').next() == Some(l.name.as_str()))
+                .unwrap()
+        })
+        .collect();
+    let mut out = Vec::new();
+    for row in text.lines().skip(1) {
+        let cells: Vec<&str> = row.split(',').collect();
+        let x: Vec<f32> = cols
+            .iter()
+            .map(|&c| cells[c].parse::<f64>().map_or(f32::NAN, |v| v as f32))
+            .collect();
+        let o = det.update(&x);
+        if let Some(Event::Raised { .. }) = o.event {
+            let chart = det.residual_chart();
+            out.push(
+                (chart.peak > det.model().resid_limit).then_some(usize::from(chart.peak_feature)),
+            );
+        }
+    }
+    out
+}
+
+#[test]
+fn flags_the_residual_chart_raised_name_its_feature() {
+    let (_dir, html, _out, v) = drift_report();
+    let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
+    let raises = resid_at_raises(&file, &demo("drift/bearing_wear.csv"));
+    let flags = v["logs"][0]["flags"].as_array().unwrap();
+    assert_eq!(raises.len(), flags.len(), "the same flags as the report's");
+    // This model's residual chart is over its limit as some of bearing
+    // wear's flags rise (vib_band5/6 wear shows in their own residuals).
+    let named: Vec<(usize, usize)> = raises
+        .iter()
+        .enumerate()
+        .filter_map(|(fi, r)| r.map(|f| (fi, f)))
+        .collect();
+    assert!(!named.is_empty(), "no flag raised by the residual chart");
+    let rows = flag_rows(html, "bearing_wear.csv");
+    assert_eq!(rows.len(), flags.len());
+    for (fi, row) in rows.iter().enumerate() {
+        match raises[fi] {
+            Some(f) => {
+                let name = &file.labels[f].name;
+                assert!(
+                    row.contains(&format!(
+                        "<span class=\"chip up\">SPE residual chart</span> {name} "
+                    )),
+                    "flag {}: {row}",
+                    fi + 1
+                );
+            }
+            None => assert!(!row.contains("SPE residual chart"), "flag {}", fi + 1),
+        }
+    }
+    // The contribution chart's caption of such a flag names it too, and so
+    // does the residual chart's panel where there is room.
+    let (fi, f) = named[0];
+    let name = &file.labels[f].name;
+    let caption = html
+        .split(&format!("<figcaption><b>Flag {}</b>", fi + 1))
+        .nth(1)
+        .expect("its contribution chart");
+    let caption = &caption[..caption.find("</figcaption>").unwrap()];
+    assert!(
+        caption.contains(&format!("SPE residual chart</span> {name} ")),
+        "{caption}"
+    );
+    let panel = svgs(
+        html,
+        "<svg class=\"timeline\" data-log=\"0\" data-score=\"resid\"",
+    );
+    assert!(
+        panel.contains(&format!(">{name}</text>")),
+        "panel names {name}"
+    );
+    // The dropout log's flags: none raised by the chart, none named.
+    let raises = resid_at_raises(&file, &demo("drift/sensor_dropout.csv"));
+    for (fi, row) in flag_rows(html, "sensor_dropout.csv").iter().enumerate() {
+        assert_eq!(
+            raises[fi].is_some(),
+            row.contains("SPE residual chart"),
+            "sensor_dropout flag {}",
+            fi + 1
+        );
+    }
 }
 
 #[test]
@@ -390,6 +532,17 @@ fn a_million_samples_stay_under_two_megabytes() {
     let html = std::fs::read_to_string(&out).unwrap();
     assert_balanced(&html);
     assert!(html.contains("1\u{202f}000\u{202f}000 samples"));
+    // One training log: `plumb fit` leaves the residual chart off, and the
+    // chart's panel says so in place of a plot.
+    let file = ModelFile::from_bytes(&std::fs::read(&model).unwrap()).unwrap();
+    assert!(file.model.resid_gain.iter().all(|g| *g == 0.0), "chart off");
+    let panel = &html[html
+        .find("<div class=\"panel\" id=\"resid-0\">")
+        .expect("residual chart panel")..];
+    let panel = &panel[..panel.find("</p>").expect("its note")];
+    assert!(panel.contains("<b>SPE residual chart</b>"));
+    assert!(panel.contains("Off in this model"), "{panel}");
+    assert!(!html.contains("data-score=\"resid\""), "no plot when off");
     assert!(html.len() < 2_000_000, "10^6 samples: {} bytes", html.len());
 }
 
@@ -477,6 +630,8 @@ fn a_browser_renders_the_report() {
         "<rect class=\"flag\"",
         "<path class=\"onset\"",
         "class=\"timeline\"",
+        "data-score=\"resid\"",
+        "class=\"resid-at\"",
     ] {
         assert_eq!(
             count(&dom, tag),
@@ -484,6 +639,12 @@ fn a_browser_renders_the_report() {
             "{tag} in the parsed DOM"
         );
     }
+    // The residual chart's panel of each log, drawn.
+    assert_eq!(
+        count(&dom, "data-score=\"resid\""),
+        2,
+        "residual chart panels"
+    );
 
     // A screenshot: a blank page compresses to a few kilobytes. The
     // 60,000-byte floor is common practice, no source (a rendered report is

@@ -19,15 +19,19 @@ For each log, a timeline per score (SPE, T², mixture NLL) on the detector's own
 u = (cube root of the score − centre)/spread, with the raw score on the right axis: the
 per-sample values (lightly), the detector's EWMA of u, its CUSUM, the per-sample limit and
 the chart limits, flags shaded from raise to clear, faulted samples marked and, with
---truth, the known onset. Long logs are reduced to one column per pixel keeping each
-column's minimum and maximum, so spikes stay visible and each log adds about 150 kB to
-the file whatever its length (a million samples included).
+--truth, the known onset. Below them, the SPE's residual chart (model format 3): the
+largest |EWMA| of a feature's scaled residual, its limit and the same flags and marks; a
+model whose chart is off (every gain 0) gets a one-line note instead. Long logs are
+reduced to one column per pixel keeping each column's minimum and maximum, so spikes stay
+visible and each log adds about 170 kB to the file whatever its length (a million
+samples included).
 
 For each flag, the features behind it: the mean squared residual r² of every feature over
-the first 50 scored samples from the raise, with the training mean beside it (--train).
-Then the latent plane (t1, t2) of training rows (--train) and field rows, coloured by the
-detector's state, with each mixture component's 1σ and 2σ ellipse; the explained variance
-per component; and tables of flags and faults.
+the first 50 scored samples from the raise, with the training mean beside it (--train);
+a flag raised while the residual chart was over its limit also names the chart and the
+feature of its largest EWMA. Then the latent plane (t1, t2) of training rows (--train)
+and field rows, coloured by the detector's state, with each mixture component's 1σ and
+2σ ellipse; the explained variance per component; and tables of flags and faults.
 
 --truth reads a CSV with the header `scenario,file,onset_row,onset_t_s,kind,features`
 (file relative to the truth file; onset_row 0-based, header not counted; kind `drift` or

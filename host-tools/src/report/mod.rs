@@ -5,9 +5,12 @@
 //! The logs run through [`replay::replay`], the same detector the boards
 //! run; a sink keeps, in memory that does not grow with the number of rows:
 //!
-//! - per log, a min/max reduction of each score's `u`, EWMA and CUSUM into at
-//!   most `2 · PLOT_COLUMNS` buckets of equal length (pairs merge when the
-//!   list fills), so spikes survive the reduction;
+//! - per log, a min/max reduction of each score's `u`, EWMA and CUSUM, and of
+//!   the SPE's residual chart (its largest `|EWMA|`), into at most
+//!   `2 · PLOT_COLUMNS` buckets of equal length (pairs merge when the list
+//!   fills), so spikes survive the reduction;
+//! - per flag, whether the residual chart was over its limit at the sample
+//!   that raised it, and for which feature;
 //! - per flag, the mean squared residual `r_i²` of every feature over the first
 //!   [`CONTRIB_SAMPLES`] scored samples from the sample that raised it;
 //! - fixed-size uniform samples (reservoir sampling, seeded) of the latent
@@ -129,6 +132,8 @@ pub(crate) struct Bucket {
     pub ewma: [Span; 3],
     /// The detector's CUSUM of `u` over its limit `h`.
     pub cusum: [Span; 3],
+    /// The SPE's residual chart: its largest `|EWMA|` over the features.
+    pub resid: Span,
 }
 
 impl Bucket {
@@ -141,6 +146,7 @@ impl Bucket {
             self.ewma[s].merge(o.ewma[s]);
             self.cusum[s].merge(o.cusum[s]);
         }
+        self.resid.merge(o.resid);
     }
 }
 
@@ -160,6 +166,8 @@ pub(crate) struct Sample {
     pub raw: Option<[f32; 3]>,
     pub ewma: [f32; 3],
     pub cusum: [f32; 3],
+    /// The residual chart's largest `|EWMA|` ([`plumb_firmware::ResidualChart::peak`]).
+    pub resid: f32,
     pub drifting: bool,
 }
 
@@ -196,6 +204,7 @@ impl Reducer {
                 raw: [Span::EMPTY; 3],
                 ewma: [Span::EMPTY; 3],
                 cusum: [Span::EMPTY; 3],
+                resid: Span::EMPTY,
             });
         }
         let Some(b) = self.buckets.last_mut() else {
@@ -217,6 +226,7 @@ impl Reducer {
             b.ewma[i].add(s.ewma[i]);
             b.cusum[i].add(s.cusum[i]);
         }
+        b.resid.add(s.resid);
     }
 }
 
@@ -228,6 +238,16 @@ pub(crate) struct FlagContrib {
     pub samples: u32,
     /// Mean `r_i²` per feature, model order.
     pub mean: Vec<f64>,
+}
+
+/// The SPE's residual chart at the sample that raised a flag, when it was
+/// over its limit there (so it is one of the reasons the SPE drove the flag).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub(crate) struct ResidualAtRaise {
+    /// The feature whose EWMA was the largest in absolute value (model order).
+    pub feature: usize,
+    /// That EWMA (signed).
+    pub ewma: f32,
 }
 
 /// Where a field row stood.
@@ -329,6 +349,11 @@ pub(crate) struct Collected<'a> {
 pub(crate) struct LogData {
     pub buckets: Vec<Bucket>,
     pub contribs: Vec<FlagContrib>,
+    /// Per flag: the residual chart, when it was over its limit as the flag
+    /// rose.
+    pub resid_at_raise: Vec<Option<ResidualAtRaise>>,
+    /// Scored samples on which the residual chart was over its limit.
+    pub resid_over: u64,
     pub truth: Option<TruthRow>,
     /// Whether the log has a time column.
     pub timed: bool,
@@ -349,6 +374,8 @@ struct ContribState {
     sums: Vec<Vec<f64>>,
     counts: Vec<u32>,
     active: Option<usize>,
+    resid_at_raise: Vec<Option<ResidualAtRaise>>,
+    resid_over: u64,
 }
 
 /// Replays `logs` (files or folders of `*.csv`) through the firmware detector
@@ -433,6 +460,8 @@ pub fn write_report(
                 sums: Vec::new(),
                 counts: Vec::new(),
                 active: None,
+                resid_at_raise: Vec::new(),
+                resid_over: 0,
             });
             timed.push(false);
             fault_at.push((None, None));
@@ -465,20 +494,32 @@ pub fn write_report(
             ewma[i] = tr.ewma.value();
             cusum[i] = tr.cusum.value() / limits[i].cusum_limit;
         }
+        // The residual chart (its peak stays 0 when every gain is 0).
+        let chart = det.residual_chart();
+        let resid_hot = chart.peak > det.model().resid_limit;
         reducers[step.log].push(&Sample {
             index: o.index,
             t: step.t,
             raw,
             ewma,
             cusum,
+            resid: chart.peak,
             drifting: o.state == DriftState::Drifting,
         });
 
         let cs = &mut contribs[step.log];
+        if o.scores.is_some() && resid_hot {
+            cs.resid_over += 1;
+        }
         if let Some(Event::Raised { .. }) = o.event {
             cs.sums.push(vec![0.0; d]);
             cs.counts.push(0);
             cs.active = Some(cs.sums.len() - 1);
+            let feature = usize::from(chart.peak_feature);
+            cs.resid_at_raise.push(resid_hot.then(|| ResidualAtRaise {
+                feature,
+                ewma: chart.ewma.get(feature).copied().unwrap_or(chart.peak),
+            }));
         }
         if matches!(o.event, Some(Event::Cleared)) {
             cs.active = None;
@@ -521,23 +562,28 @@ pub fn write_report(
 
     let mut data = Vec::with_capacity(reps.len());
     for (i, rep) in reps.iter().enumerate() {
-        let (buckets, contrib) = match (reducers.get(i), contribs.get(i)) {
-            (Some(r), Some(c)) => (
-                r.buckets.clone(),
-                c.sums
-                    .iter()
-                    .zip(&c.counts)
-                    .map(|(s, n)| FlagContrib {
-                        samples: *n,
-                        mean: s.iter().map(|v| v / f64::from((*n).max(1))).collect(),
-                    })
-                    .collect(),
-            ),
-            _ => (Vec::new(), Vec::new()),
-        };
+        let (buckets, contrib, resid_at_raise, resid_over) =
+            match (reducers.get(i), contribs.get(i)) {
+                (Some(r), Some(c)) => (
+                    r.buckets.clone(),
+                    c.sums
+                        .iter()
+                        .zip(&c.counts)
+                        .map(|(s, n)| FlagContrib {
+                            samples: *n,
+                            mean: s.iter().map(|v| v / f64::from((*n).max(1))).collect(),
+                        })
+                        .collect(),
+                    c.resid_at_raise.clone(),
+                    c.resid_over,
+                ),
+                _ => (Vec::new(), Vec::new(), Vec::new(), 0),
+            };
         data.push(LogData {
             buckets,
             contribs: contrib,
+            resid_at_raise,
+            resid_over,
             truth: truth_for(&rep.path, truth).cloned(),
             timed: timed.get(i).copied().unwrap_or(false),
             first_fault: fault_at.get(i).and_then(|f| f.0),
@@ -573,6 +619,7 @@ mod tests {
             raw: Some([v, -v, v * 2.0]),
             ewma: [v; 3],
             cusum: [0.0; 3],
+            resid: v,
             drifting: false,
         }
     }

@@ -3,8 +3,8 @@
 
 use super::plot::{count, esc, line, nice_ticks, pt, rect, sig, text, tick, vtext, Scale};
 use super::{
-    Bucket, Collected, FlagContrib, LatentPoint, PointClass, Span, TruthKind, CONTRIB_SAMPLES,
-    LATENT_FIELD_POINTS, LATENT_TRAIN_POINTS, PLOT_COLUMNS,
+    Bucket, Collected, FlagContrib, LatentPoint, LogData, PointClass, Span, TruthKind,
+    CONTRIB_SAMPLES, LATENT_FIELD_POINTS, LATENT_TRAIN_POINTS, PLOT_COLUMNS,
 };
 use crate::replay::{Flag, LogReplay};
 use crate::summary::utc_string;
@@ -22,6 +22,10 @@ const SCORE_WHAT: [&str; 3] = [
     "distance within the PCA plane",
     "negative log-likelihood under the Gaussian mixture",
 ];
+/// Display name of the SPE's residual chart (the panel's title, flag notes).
+const RESID_NAME: &str = "SPE residual chart";
+/// One line on what the residual chart follows.
+const RESID_WHAT: &str = "largest |EWMA| of a feature's scaled residual";
 
 const STYLE: &str = r#"
 :root{--ink:#1d2731;--muted:#5a6672;--rule:#d9dee3;--panel:#ffffff;--ground:#f2f0eb}
@@ -53,6 +57,7 @@ td.n,th.n{text-align:right;font-variant-numeric:tabular-nums}
 .panel{margin:10px 0 2px}
 .ptitle{font-size:13px;margin:0 0 0 2px}
 .ptitle b{font-size:14px}
+.pnote{margin:2px 0 4px 2px;font-size:12.5px;color:var(--muted)}
 .contribs{display:flex;flex-wrap:wrap;gap:10px 22px}
 figure{margin:6px 0;flex:1 1 520px;max-width:560px}
 figcaption{font-size:12.5px;color:var(--muted)}
@@ -145,6 +150,27 @@ fn feature_label(c: &Collected<'_>, i: usize) -> String {
     match c.file.labels.get(i).map(|l| l.unit.as_str()) {
         Some(u) if !u.is_empty() => format!("{name} [{u}]"),
         _ => name,
+    }
+}
+
+/// Whether the model's residual chart is on (some feature's gain is not 0).
+fn resid_on(c: &Collected<'_>) -> bool {
+    c.file.model.resid_gain.iter().any(|g| *g != 0.0)
+}
+
+/// Beside flag `fi` of log `li`: the residual chart and the feature of its
+/// largest EWMA, when the chart was over its limit as the flag rose; empty
+/// otherwise.
+fn resid_note(c: &Collected<'_>, li: usize, fi: usize) -> String {
+    match c.logs[li].resid_at_raise.get(fi).copied().flatten() {
+        Some(r) => format!(
+            " <span class=\"resid-at\"><span class=\"chip up\">{RESID_NAME}</span> {} \
+             <span class=\"muted\">(EWMA {}; limit ±{})</span></span>",
+            esc(&feature_name(c, r.feature)),
+            sig(f64::from(r.ewma)),
+            sig(f64::from(c.file.model.resid_limit))
+        ),
+        None => String::new(),
     }
 }
 
@@ -276,7 +302,12 @@ fn overview(o: &mut String, c: &Collected<'_>) {
             count(rep.faults),
             rep.flags.len(),
             first
-                .map(|f| format!("{} {}", at(f.raised_at, f.raised_t), driver_chips(f)))
+                .map(|f| format!(
+                    "{} {}{}",
+                    at(f.raised_at, f.raised_t),
+                    driver_chips(f),
+                    resid_note(c, li, 0)
+                ))
                 .unwrap_or_else(|| "<span class=\"chip ok\">none</span>".to_string()),
             truth
                 .map(|t| format!(
@@ -317,13 +348,32 @@ fn legend(o: &mut String, c: &Collected<'_>) {
          with the CUSUM in the strip below (drawn as CUSUM/<i>h</i>). A flag rises after {} hot \
          samples in a row and clears after {} calm ones (every chart below {} of its limit) and at \
          least {} samples up. Long logs are reduced to one column per pixel, keeping each \
-         column's minimum and maximum, so short spikes stay visible.</p>\n<div class=\"keys\">",
+         column's minimum and maximum, so short spikes stay visible.</p>\n",
         sig(f64::from(mp.ewma_lambda)),
         mp.raise_dwell,
         mp.clear_dwell,
         sig(f64::from(mp.clear_fraction)),
         mp.min_hold
     );
+    if resid_on(c) {
+        let _ = writeln!(
+            o,
+            "<p>Below the three scores, the {RESID_NAME}: one EWMA per feature (the same λ) of \
+             (<i>r<sub>i</sub></i> − centre<sub><i>i</i></sub>) · gain<sub><i>i</i></sub>, \
+             <i>r<sub>i</sub></i> the feature's PCA residual, each gain scaling the feature to its \
+             own nominal tail. The line is the largest |EWMA| over the features; above the limit \
+             <i>L</i> = {} the chart is hot and makes the SPE a driver. A flag raised while it was \
+             hot is labelled in that panel, and in the tables, with the feature of the largest \
+             EWMA.</p>",
+            sig(f64::from(c.file.model.resid_limit))
+        );
+    } else {
+        o.push_str(
+            "<p>The model's SPE residual chart (one EWMA per feature of its scaled PCA residual) \
+             is off: every feature's gain is 0.</p>\n",
+        );
+    }
+    o.push_str("<div class=\"keys\">");
     key(
         o,
         r#"<path class="raw" stroke-width="8" d="M2 6H24"/>"#,
@@ -412,6 +462,23 @@ fn log_section(o: &mut String, c: &Collected<'_>, li: usize) {
         timeline(o, c, li, si);
         o.push_str("</div>\n");
     }
+    if resid_on(c) {
+        let _ = writeln!(
+            o,
+            "<div class=\"panel\" id=\"resid-{li}\"><div class=\"ptitle\"><b>{RESID_NAME}</b> · {RESID_WHAT} · \
+             {} sample{} over its limit</div>",
+            count(data.resid_over),
+            if data.resid_over == 1 { "" } else { "s" }
+        );
+        resid_timeline(o, c, li);
+    } else {
+        let _ = writeln!(
+            o,
+            "<div class=\"panel\" id=\"resid-{li}\"><div class=\"ptitle\"><b>{RESID_NAME}</b> · {RESID_WHAT}</div>\n\
+             <p class=\"pnote\">Off in this model (every feature's gain is 0), so it raises no flag.</p>"
+        );
+    }
+    o.push_str("</div>\n");
     if !rep.flags.is_empty() {
         let _ = write!(
             o,
@@ -558,21 +625,14 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
     }
 
     // Flag spans, under everything else.
-    for (fi, f) in rep.flags.iter().enumerate() {
-        let x0 = xs.at(f.raised_at as f64);
-        let x1 = xs.at(f.cleared_at.unwrap_or(n) as f64).max(x0 + 1.0);
-        rect(o, x0, MT, x1 - x0, ST + SH - MT, "flag");
-        if si == 0 || x1 - x0 > 30.0 {
-            text(
-                o,
-                x0 + 3.0,
-                MT + 11.0,
-                "s flag-t lbl",
-                "start",
-                &format!("flag {}", fi + 1),
-            );
+    flag_spans(o, rep, &xs, ST + SH, |fi, span, room| {
+        let full = format!("flag {}", fi + 1);
+        if si == 0 || span > 30.0 {
+            fitted(room, [full, (fi + 1).to_string()])
+        } else {
+            None
         }
-    }
+    });
 
     // Per-sample u: one vertical stroke per column, clipped to the scale;
     // when every column is a single sample, a thin line through them.
@@ -716,19 +776,7 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
     text(o, 4.0, ST + SH / 2.0 + 4.0, "s", "start", "CUSUM");
 
     // Ground truth.
-    if let Some(t) = &data.truth {
-        if t.onset_row as u64 <= n {
-            let x = xs.at(t.onset_row as f64);
-            line(o, x, MT - 4.0, x, ST + SH, "onset");
-            let label = match t.kind {
-                TruthKind::Drift => "onset (drift)",
-                TruthKind::Fault => "onset (fault)",
-            };
-            let anchor = if x > ML + PW - 90.0 { "end" } else { "start" };
-            let dx = if anchor == "end" { -4.0 } else { 4.0 };
-            text(o, x + dx, MT - 6.0, "s onset-t", anchor, label);
-        }
-    }
+    onset_marker(o, data, &xs, n, ST + SH);
 
     // Frames.
     rect(o, ML, MT, PW, MH, "frame");
@@ -768,28 +816,203 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
     }
     vtext(o, TW - 12.0, MT + MH / 2.0, "", SCORE_SHORT[si]);
 
-    // Bottom axis: sample index, and log time when known.
-    let period = rep.period_s;
-    for &s in &xticks {
+    sample_axis(o, rep, data, &xs, (&xticks, xstep), ST + SH);
+    o.push_str("</svg>\n");
+}
+
+/// The shaded span of each flag, from the top of the plot area to `bottom`;
+/// `label(flag, span, room)` gives the text at its start, if any: `span` is
+/// the shaded width, `room` the width up to the next flag or the plot's end.
+fn flag_spans(
+    o: &mut String,
+    rep: &LogReplay,
+    xs: &Scale,
+    bottom: f64,
+    label: impl Fn(usize, f64, f64) -> Option<String>,
+) {
+    let n = rep.samples.max(1);
+    for (fi, f) in rep.flags.iter().enumerate() {
+        let x0 = xs.at(f.raised_at as f64);
+        let x1 = xs.at(f.cleared_at.unwrap_or(n) as f64).max(x0 + 1.0);
+        rect(o, x0, MT, x1 - x0, bottom - MT, "flag");
+        let next = rep
+            .flags
+            .get(fi + 1)
+            .map_or(ML + PW, |g| xs.at(g.raised_at as f64));
+        if let Some(body) = label(fi, x1 - x0, next - x0) {
+            text(o, x0 + 3.0, MT + 11.0, "s flag-t lbl", "start", &body);
+        }
+    }
+}
+
+/// The first of `labels` (plain text, 10-unit bold type) that fits in
+/// `room` units after a flag's start, if any.
+fn fitted<const N: usize>(room: f64, labels: [String; N]) -> Option<String> {
+    // About 5.8 units per character of the labels' type, and a gap.
+    labels
+        .into_iter()
+        .find(|l| 5.8 * l.chars().count() as f64 + 8.0 <= room)
+}
+
+/// The ground-truth onset of a log, from above the plot area to `bottom`.
+fn onset_marker(o: &mut String, data: &LogData, xs: &Scale, n: u64, bottom: f64) {
+    if let Some(t) = &data.truth {
+        if t.onset_row as u64 <= n {
+            let x = xs.at(t.onset_row as f64);
+            line(o, x, MT - 4.0, x, bottom, "onset");
+            let label = match t.kind {
+                TruthKind::Drift => "onset (drift)",
+                TruthKind::Fault => "onset (fault)",
+            };
+            let anchor = if x > ML + PW - 90.0 { "end" } else { "start" };
+            let dx = if anchor == "end" { -4.0 } else { 4.0 };
+            text(o, x + dx, MT - 6.0, "s onset-t", anchor, label);
+        }
+    }
+}
+
+/// Bottom axis below `y`: sample index, and log time when known.
+fn sample_axis(
+    o: &mut String,
+    rep: &LogReplay,
+    data: &LogData,
+    xs: &Scale,
+    (xticks, xstep): (&[f64], f64),
+    y: f64,
+) {
+    for &s in xticks {
         let x = xs.at(s);
-        text(o, x, ST + SH + 13.0, "s", "middle", &tick(s, xstep));
+        text(o, x, y + 13.0, "s", "middle", &tick(s, xstep));
         if data.timed {
-            if let Some(t) = time_at(&data.buckets, s as u64, period) {
-                text(
-                    o,
-                    x,
-                    ST + SH + 25.0,
-                    "s",
-                    "middle",
-                    &format!("{} s", seconds(t)),
-                );
+            if let Some(t) = time_at(&data.buckets, s as u64, rep.period_s) {
+                text(o, x, y + 25.0, "s", "middle", &format!("{} s", seconds(t)));
             }
         }
     }
-    text(o, 4.0, ST + SH + 13.0, "s", "start", "sample");
+    text(o, 4.0, y + 13.0, "s", "start", "sample");
     if data.timed {
-        text(o, 4.0, ST + SH + 25.0, "s", "start", "time");
+        text(o, 4.0, y + 25.0, "s", "start", "time");
     }
+}
+
+/// Height of the residual chart's panel: the plot area and the sample axis.
+const RH: f64 = MT + MH + 32.0;
+
+/// The SPE's residual chart of log `li`: per column the smallest and largest
+/// peak `|EWMA|`, the limit and the clear level, flag spans (named with the
+/// chart's feature where the chart was over its limit as the flag rose),
+/// ground truth and faulted samples.
+fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
+    let rep = &c.reps[li];
+    let data = &c.logs[li];
+    let mp = &c.file.model.monitor;
+    let n = rep.samples.max(1);
+    let (cols, ncol) = columns(&data.buckets, rep.samples);
+    let colw = PW / ncol as f64;
+    let xc = |ci: usize| ML + colw * (ci as f64 + 0.5);
+    let xs = Scale::new(0.0, n as f64, ML, ML + PW);
+    let big_l = f64::from(c.file.model.resid_limit);
+
+    let mut peak = Span::EMPTY;
+    for b in cols.iter().flatten() {
+        peak.merge(b.resid);
+    }
+    let hi = (big_l * 1.25).max(if peak.is_empty() {
+        0.0
+    } else {
+        f64::from(peak.hi) * 1.08
+    });
+    let ys = Scale::new(0.0, hi, MT + MH, MT);
+
+    let _ = write!(
+        o,
+        "<svg class=\"timeline\" data-log=\"{li}\" data-score=\"resid\" viewBox=\"0 0 {} {}\" \
+         role=\"img\" aria-label=\"{RESID_NAME} of {}\">",
+        pt(TW),
+        pt(RH),
+        esc(&log_name(rep))
+    );
+    let (yticks, ystep) = nice_ticks(0.0, hi, 5);
+    for &v in &yticks {
+        let y = ys.at(v);
+        line(o, ML, y, ML + PW, y, "grid");
+        text(o, ML - 5.0, y + 3.5, "", "end", &tick(v, ystep));
+    }
+    vtext(o, 14.0, MT + MH / 2.0, "", "max |EWMA|");
+    let (xticks, xstep) = nice_ticks(0.0, n as f64, 8);
+    for &s in &xticks {
+        let x = xs.at(s);
+        line(o, x, MT, x, MT + MH, "grid");
+    }
+
+    // Flags; one the chart was hot for names its feature on a second line.
+    flag_spans(o, rep, &xs, MT + MH, |fi, span, room| {
+        let named = data.resid_at_raise.get(fi).is_some_and(Option::is_some);
+        if named || span > 30.0 {
+            fitted(room, [format!("flag {}", fi + 1), (fi + 1).to_string()])
+        } else {
+            None
+        }
+    });
+    for (fi, f) in rep.flags.iter().enumerate() {
+        let Some(r) = data.resid_at_raise.get(fi).copied().flatten() else {
+            continue;
+        };
+        let x0 = xs.at(f.raised_at as f64);
+        let next = rep
+            .flags
+            .get(fi + 1)
+            .map_or(ML + PW, |g| xs.at(g.raised_at as f64));
+        if let Some(name) = fitted(next - x0, [feature_name(c, r.feature)]) {
+            text(o, x0 + 3.0, MT + 23.0, "s flag-t lbl", "start", &esc(&name));
+        }
+    }
+
+    // Limits.
+    let clear = f64::from(mp.clear_fraction) * big_l;
+    line(o, ML, ys.at(clear), ML + PW, ys.at(clear), "lim-c");
+    line(o, ML, ys.at(big_l), ML + PW, ys.at(big_l), "lim-l");
+    text(
+        o,
+        ML + PW - 4.0,
+        ys.at(big_l) - 3.5,
+        "s lim-l-t lbl",
+        "end",
+        &format!("limit L = {}", sig(big_l)),
+    );
+
+    // The peak: through each column's extremes.
+    let mut pts = String::new();
+    let mut prev = f64::NAN;
+    let mut faults = String::new();
+    for (ci, b) in cols.iter().enumerate() {
+        let Some(b) = b else { continue };
+        let x = xc(ci);
+        if b.faults > 0 {
+            let _ = write!(faults, "M{} {}v-7", pt(x), pt(MT + MH));
+        }
+        let e = b.resid;
+        if e.is_empty() {
+            continue;
+        }
+        let (a, z) = near_first(prev, ys.at(f64::from(e.lo)), ys.at(f64::from(e.hi)));
+        prev = z;
+        let sep = if pts.is_empty() { "M" } else { "L" };
+        if (a - z).abs() < 0.5 {
+            let _ = write!(pts, "{sep}{} {}", pt(x), pt(a));
+        } else {
+            let _ = write!(pts, "{sep}{} {}V{}", pt(x), pt(a), pt(z));
+        }
+    }
+    let _ = write!(o, r#"<path class="ewma" d="{pts}"/>"#);
+    if !faults.is_empty() {
+        let _ = write!(o, r#"<path class="fault" d="{faults}"/>"#);
+    }
+
+    onset_marker(o, data, &xs, n, MT + MH);
+    rect(o, ML, MT, PW, MH, "frame");
+    vtext(o, TW - 12.0, MT + MH / 2.0, "", "residual");
+    sample_axis(o, rep, data, &xs, (&xticks, xstep), MT + MH);
     o.push_str("</svg>\n");
 }
 
@@ -927,10 +1150,11 @@ fn contrib_chart(
     o.push_str("</svg>\n");
     let _ = writeln!(
         o,
-        "<figcaption><b>Flag {}</b> raised at sample {} by {} · mean over {} sample{}</figcaption></figure>",
+        "<figcaption><b>Flag {}</b> raised at sample {} by {}{} · mean over {} sample{}</figcaption></figure>",
         fi + 1,
         at(f.raised_at, f.raised_t),
         driver_chips(f),
+        resid_note(c, li, fi),
         fc.samples,
         if fc.samples == 1 { "" } else { "s" }
     );
@@ -1367,13 +1591,14 @@ fn flag_table(o: &mut String, c: &Collected<'_>) {
             let _ = writeln!(
                 o,
                 "<tr>{}<td class=\"n\">{}</td><td class=\"nw\">{}</td><td class=\"nw\">{}</td>\
-                 <td class=\"n\">{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"n\">{}</td></tr>",
+                 <td class=\"n\">{}</td><td>{}{}</td><td>{}</td><td>{}</td><td class=\"n\">{}</td></tr>",
                 log_cell(c, li),
                 fi + 1,
                 at(f.raised_at, f.raised_t),
                 cleared,
                 count(up),
                 driver_chips(f),
+                resid_note(c, li, fi),
                 top,
                 mean_top,
                 after
@@ -1438,6 +1663,7 @@ fn notes(o: &mut String, c: &Collected<'_>) {
          <li>Timelines: one drawn column per pixel; each column shows the smallest and largest \
          per-sample <i>u</i>, EWMA and CUSUM of the samples it covers. Marks along the top of a \
          panel are columns whose per-sample <i>u</i> goes above the drawn scale.</li>\n\
+         <li>{}</li>\n\
          <li>Contributions: <i>r<sub>i</sub></i>² recomputed from the model in double precision; \
          their sum is the SPE the detector reported, to rounding.</li>\n\
          <li>Latent plane: reservoir samples (fixed seed), so the same inputs give the same picture.</li>\n\
@@ -1449,5 +1675,23 @@ fn notes(o: &mut String, c: &Collected<'_>) {
         sig(f64::from(lim[2].center)),
         sig(f64::from(lim[2].spread)),
         sig(f64::from(c.nll_floor)),
+        resid_sentence(c),
     );
+}
+
+/// The notes' sentence on the residual chart.
+fn resid_sentence(c: &Collected<'_>) -> String {
+    let m = &c.file.model;
+    let on = m.resid_gain.iter().filter(|g| **g != 0.0).count();
+    if on == 0 {
+        return format!("{RESID_NAME}: off in this model (every feature's gain is 0).");
+    }
+    format!(
+        "{RESID_NAME}: the detector's own per-feature EWMAs; each panel column shows the smallest \
+         and largest of their peak |EWMA| over its samples. On for {on} of {} features, limit \
+         <i>L</i> = {}. A flag's feature is the one whose EWMA was the largest in absolute value \
+         at the sample that raised it, named only when that EWMA was beyond <i>L</i>.",
+        m.resid_gain.len(),
+        sig(f64::from(m.resid_limit))
+    )
 }
