@@ -222,27 +222,24 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
     }
     let center: Vec<f64> = moments.iter().map(|w| w.mean()).collect();
     let spread: Vec<f64> = moments.iter().map(|w| w.sample_variance().sqrt()).collect();
-    // 2. Tails of the standardised EWMAs, and the level of each log.
+    // 2. The level of each log, then each feature's EWMA tail (one feature
+    // at a time: n values held at once, not n × d).
     let warmup = r.warmup as usize;
-    let mut tails: Vec<Vec<f32>> = vec![Vec::new(); d];
+    let w = |j: usize, v: f32| {
+        let s = spread[j];
+        if s > 0.0 {
+            (f64::from(v) - center[j]) / s
+        } else {
+            0.0
+        }
+    };
     let mut levels: Vec<Vec<f64>> = vec![Vec::new(); d];
     for log in r.logs() {
         let rows = log.len();
-        let mut e = vec![0.0f64; d];
         let mut sum = vec![0.0f64; d];
-        for (i, row) in log.enumerate() {
-            for (j, v) in r.row(row).iter().enumerate() {
-                let s = spread[j];
-                let w = if s > 0.0 {
-                    (f64::from(*v) - center[j]) / s
-                } else {
-                    0.0
-                };
-                sum[j] += w;
-                e[j] += lambda * (w - e[j]);
-                if i >= warmup {
-                    tails[j].push(e[j].abs() as f32);
-                }
+        for row in log {
+            for (j, (acc, v)) in sum.iter_mut().zip(r.row(row)).enumerate() {
+                *acc += w(j, *v);
             }
         }
         if rows > 0 {
@@ -251,12 +248,26 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
             }
         }
     }
-    let eligible = tails.first().map_or(0, Vec::len);
+    let eligible: usize = r.logs().map(|l| l.len().saturating_sub(warmup)).sum();
     if eligible == 0 {
         return Err(Error::input(
             "no held-out row after the warm-up: cannot calibrate the residual chart",
         ));
     }
+    let mut tail = Vec::with_capacity(eligible);
+    let mut row_tail = |j: usize, level: f64| -> f64 {
+        tail.clear();
+        for log in r.logs() {
+            let mut e = 0.0f64;
+            for (i, row) in log.enumerate() {
+                e += lambda * (w(j, r.row(row)[j]) - e);
+                if i >= warmup {
+                    tail.push(e.abs() as f32);
+                }
+            }
+        }
+        quantile_type1(&mut tail, level)
+    };
     let tail_level = (1.0 - TAIL_ROWS / eligible as f64).max(0.5);
     let logs = levels.first().map_or(0, Vec::len);
     let level_t = if logs >= 2 {
@@ -275,7 +286,7 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
     };
     let features: Vec<FeatureResidual> = (0..d)
         .map(|j| {
-            let row_tail = quantile_type1(&mut tails[j], tail_level);
+            let row_tail = row_tail(j, tail_level);
             let level_bound = level_bound(&levels[j]);
             let tail = row_tail.max(level_bound);
             let g = 1.0 / (spread[j] * tail);
@@ -298,7 +309,6 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
         .iter()
         .filter(|f| f.level_bound > f.row_tail)
         .count();
-    drop(tails);
     model.resid_center = center.iter().map(|c| *c as f32).collect();
     model.resid_gain = features.iter().map(|f| f.gain).collect();
     model.resid_limit = LIMIT_FLOOR;
