@@ -717,24 +717,7 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
     }
 
     // EWMA: through each column's extremes.
-    let mut pts = String::new();
-    let mut prev = f64::NAN;
-    for (ci, b) in cols.iter().enumerate() {
-        let Some(b) = b else { continue };
-        let e = b.ewma[si];
-        if e.is_empty() {
-            continue;
-        }
-        let x = xc(ci);
-        let (a, z) = near_first(prev, ys.at(f64::from(e.lo)), ys.at(f64::from(e.hi)));
-        prev = z;
-        let sep = if pts.is_empty() { "M" } else { "L" };
-        if (a - z).abs() < 0.5 {
-            let _ = write!(pts, "{sep}{} {}", pt(x), pt(a));
-        } else {
-            let _ = write!(pts, "{sep}{} {}V{}", pt(x), pt(a), pt(z));
-        }
-    }
+    let pts = extremes_path(&cols, xc, |v| ys.at(v), |b| b.ewma[si]);
     let _ = write!(o, r#"<path class="ewma" d="{pts}"/>"#);
     if !off.is_empty() {
         let _ = write!(o, r#"<path class="off" d="{off}"/>"#);
@@ -747,28 +730,7 @@ fn timeline(o: &mut String, c: &Collected<'_>, li: usize, si: usize) {
     line(o, ML, cs.at(1.0), ML + PW, cs.at(1.0), "lim-l");
     let cf = f64::from(mp.clear_fraction);
     line(o, ML, cs.at(cf), ML + PW, cs.at(cf), "lim-c");
-    let mut pts = String::new();
-    let mut prev = f64::NAN;
-    for (ci, b) in cols.iter().enumerate() {
-        let Some(b) = b else { continue };
-        let e = b.cusum[si];
-        if e.is_empty() {
-            continue;
-        }
-        let x = xc(ci);
-        let (a, z) = near_first(
-            prev,
-            cs.clamped(f64::from(e.lo)),
-            cs.clamped(f64::from(e.hi)),
-        );
-        prev = z;
-        let sep = if pts.is_empty() { "M" } else { "L" };
-        if (a - z).abs() < 0.5 {
-            let _ = write!(pts, "{sep}{} {}", pt(x), pt(a));
-        } else {
-            let _ = write!(pts, "{sep}{} {}V{}", pt(x), pt(a), pt(z));
-        }
-    }
+    let pts = extremes_path(&cols, xc, |v| cs.clamped(v), |b| b.cusum[si]);
     let _ = write!(o, r#"<path class="cus" d="{pts}"/>"#);
     text(o, ML - 5.0, cs.at(1.0) + 3.5, "s", "end", "h");
     text(o, ML - 5.0, cs.at(0.0) + 3.5, "s", "end", "0");
@@ -982,26 +944,11 @@ fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
     );
 
     // The peak: through each column's extremes.
-    let mut pts = String::new();
-    let mut prev = f64::NAN;
+    let pts = extremes_path(&cols, xc, |v| ys.at(v), |b| b.resid);
     let mut faults = String::new();
     for (ci, b) in cols.iter().enumerate() {
-        let Some(b) = b else { continue };
-        let x = xc(ci);
-        if b.faults > 0 {
-            let _ = write!(faults, "M{} {}v-7", pt(x), pt(MT + MH));
-        }
-        let e = b.resid;
-        if e.is_empty() {
-            continue;
-        }
-        let (a, z) = near_first(prev, ys.at(f64::from(e.lo)), ys.at(f64::from(e.hi)));
-        prev = z;
-        let sep = if pts.is_empty() { "M" } else { "L" };
-        if (a - z).abs() < 0.5 {
-            let _ = write!(pts, "{sep}{} {}", pt(x), pt(a));
-        } else {
-            let _ = write!(pts, "{sep}{} {}V{}", pt(x), pt(a), pt(z));
+        if b.as_ref().is_some_and(|b| b.faults > 0) {
+            let _ = write!(faults, "M{} {}v-7", pt(xc(ci)), pt(MT + MH));
         }
     }
     let _ = write!(o, r#"<path class="ewma" d="{pts}"/>"#);
@@ -1018,6 +965,36 @@ fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
 
 /// A column's two extremes, the one nearer the previous point first, so a
 /// reduced line stays a line.
+/// An SVG path through each column's extremes of one series (`span` of the
+/// column's bucket, placed by `y`): a vertical stroke per column from the end
+/// nearer the previous column's, so the line stays continuous.
+fn extremes_path(
+    cols: &[Option<Bucket>],
+    xc: impl Fn(usize) -> f64,
+    y: impl Fn(f64) -> f64,
+    span: impl Fn(&Bucket) -> Span,
+) -> String {
+    let mut pts = String::new();
+    let mut prev = f64::NAN;
+    for (ci, b) in cols.iter().enumerate() {
+        let Some(b) = b else { continue };
+        let e = span(b);
+        if e.is_empty() {
+            continue;
+        }
+        let x = xc(ci);
+        let (a, z) = near_first(prev, y(f64::from(e.lo)), y(f64::from(e.hi)));
+        prev = z;
+        let sep = if pts.is_empty() { "M" } else { "L" };
+        if (a - z).abs() < 0.5 {
+            let _ = write!(pts, "{sep}{} {}", pt(x), pt(a));
+        } else {
+            let _ = write!(pts, "{sep}{} {}V{}", pt(x), pt(a), pt(z));
+        }
+    }
+    pts
+}
+
 fn near_first(prev: f64, a: f64, b: f64) -> (f64, f64) {
     if (prev - b).abs() < (prev - a).abs() {
         (b, a)
