@@ -142,17 +142,7 @@ fn replay_is_the_firmware_detector() {
     let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
     let mut det = Detector::new(file.model.to_device().unwrap()).unwrap();
     let text = std::fs::read_to_string(&log).unwrap();
-    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
-    let cols: Vec<usize> = file
-        .labels
-        .iter()
-        .map(|l| {
-            header
-                .iter()
-                .position(|h| h.split('[').next() == Some(l.name.as_str()))
-                .unwrap()
-        })
-        .collect();
+    let cols = common::model_columns(&file.labels, text.lines().next().unwrap());
     let traced = std::fs::read_to_string(&trace).unwrap();
     assert!(
         traced.starts_with("log,sample,t,spe,t2,nll"),

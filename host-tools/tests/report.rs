@@ -275,17 +275,7 @@ fn flag_rows<'a>(html: &'a str, name: &str) -> Vec<&'a str> {
 fn resid_at_raises(file: &ModelFile, log: &Path) -> Vec<Option<usize>> {
     let mut det = Detector::new(file.model.to_device().unwrap()).unwrap();
     let text = std::fs::read_to_string(log).unwrap();
-    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
-    let cols: Vec<usize> = file
-        .labels
-        .iter()
-        .map(|l| {
-            header
-                .iter()
-                .position(|h| h.split('[').next() == Some(l.name.as_str()))
-                .unwrap()
-        })
-        .collect();
+    let cols = common::model_columns(&file.labels, text.lines().next().unwrap());
     let mut out = Vec::new();
     for row in text.lines().skip(1) {
         let cells: Vec<&str> = row.split(',').collect();
@@ -461,17 +451,7 @@ fn contributions_sum_to_the_detector_spe() {
     let d = file.model.mean.len();
     let text = std::fs::read_to_string(demo("drift/loose_mount.csv")).unwrap();
     let (mut z, mut r2) = (vec![0f64; d], vec![0f64; d]);
-    let header: Vec<&str> = text.lines().next().unwrap().split(',').collect();
-    let cols: Vec<usize> = file
-        .labels
-        .iter()
-        .map(|l| {
-            header
-                .iter()
-                .position(|h| h.split('[').next() == Some(l.name.as_str()))
-                .unwrap()
-        })
-        .collect();
+    let cols = common::model_columns(&file.labels, text.lines().next().unwrap());
     for row in text.lines().skip(1).step_by(97).take(60) {
         let cells: Vec<&str> = row.split(',').collect();
         let x: Vec<f32> = cols

@@ -117,3 +117,18 @@ pub fn demo(rel: &str) -> PathBuf {
         .join("../demo-logs")
         .join(rel)
 }
+
+/// For each label of a model file, the position of its column in a log's
+/// header line (`name[unit]` or `name`); panics when one is missing.
+pub fn model_columns(labels: &[plumb_model::file::Label], header_line: &str) -> Vec<usize> {
+    let header: Vec<&str> = header_line.split(',').collect();
+    labels
+        .iter()
+        .map(|l| {
+            header
+                .iter()
+                .position(|h| h.split('[').next() == Some(l.name.as_str()))
+                .unwrap_or_else(|| panic!("no column {} in {header_line}", l.name))
+        })
+        .collect()
+}
