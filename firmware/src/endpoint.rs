@@ -80,7 +80,7 @@ pub use slots::{
 
 use ring::FrameRing;
 
-use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
+use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet, Scores};
 use core::borrow::BorrowMut;
 use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
 use embedded_io::{ErrorType, Read, ReadReady, Write};
@@ -90,7 +90,7 @@ use plumb_model::wire::{
     self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, EchoValues, FaultKind, FaultTally,
     FeatureEcho, Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal,
     Request, ResendDone, ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State,
-    Statistic, Status, ECHO_CHUNK, MAX_DEVICE_FRAME,
+    Statistic, Status, ECHO_CHUNK, MAX_CROSSINGS, MAX_DEVICE_FRAME,
 };
 use plumb_model::{Capacity, ModelError, ScoreLimits, MAX_FEATURES};
 
@@ -852,72 +852,11 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         }
     }
 
-    fn limits(&self, s: Score) -> ScoreLimits {
-        let mp = &self.running().model().monitor;
-        match s {
-            Score::Spe => mp.spe,
-            Score::T2 => mp.t2,
-            Score::Nll => mp.nll,
-        }
-    }
-
-    /// The drift raised message for `o`: every chart of a driving score
-    /// over its limit, SPE before T² before NLL and per score EWMA, CUSUM,
-    /// per-sample limit (the order of [`Statistic::ALL`]), the SPE's residual
-    /// chart after its other three.
+    /// The drift raised message for `o`: the charts over their limits
+    /// ([`crossings`]), the scores and the top contributions.
     fn raised(&self, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
         let scores = o.scores.unwrap_or_default();
-        let mut crossed = heapless::Vec::new();
-        for s in drivers.iter() {
-            let t = self.running().track(s);
-            let lim = self.limits(s);
-            let raw = match s {
-                Score::Spe => scores.spe,
-                Score::T2 => scores.t2,
-                Score::Nll => scores.nll,
-            };
-            for statistic in Statistic::ALL {
-                // Over or not as the detector decides (the per-sample limit
-                // on the standardised scale); the per-sample crossing is
-                // reported in the score's own units.
-                let (over, value, limit) = match statistic {
-                    Statistic::Ewma => {
-                        let v = t.ewma.value();
-                        (v > lim.ewma_limit, v, lim.ewma_limit)
-                    }
-                    Statistic::Cusum => {
-                        let v = t.cusum.value();
-                        (v > lim.cusum_limit, v, lim.cusum_limit)
-                    }
-                    Statistic::Sample => (t.last_u > t.sample_u, raw, lim.sample_limit),
-                    // Not in `Statistic::ALL`: listed after the loop.
-                    Statistic::Residual { .. } => (false, 0.0, 0.0),
-                };
-                if over {
-                    let c = Crossing {
-                        score: wire_score(s),
-                        statistic,
-                        value,
-                        limit,
-                    };
-                    // At most 3 scores × 3 charts and the residual chart =
-                    // MAX_CROSSINGS: always fits.
-                    let _ = crossed.push(c);
-                }
-            }
-            let chart = self.running().residual_chart();
-            let resid_limit = self.running().model().resid_limit;
-            if s == Score::Spe && chart.peak > resid_limit {
-                let _ = crossed.push(Crossing {
-                    score: ScoreKind::Spe,
-                    statistic: Statistic::Residual {
-                        feature: chart.peak_feature,
-                    },
-                    value: chart.peak,
-                    limit: resid_limit,
-                });
-            }
-        }
+        let crossed = crossings(self.running(), &scores, drivers);
         DriftRaised {
             sample: o.index,
             drivers: drivers.0,
@@ -940,7 +879,7 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         let mut hot = ScoreSet::EMPTY;
         for (level, s) in levels.iter_mut().zip(Score::ALL) {
             let t = self.running().track(s);
-            let lim = self.limits(s);
+            let lim = limits(self.running(), s);
             *level = Level {
                 ewma: t.ewma.value(),
                 cusum: t.cusum.value(),
@@ -1157,6 +1096,81 @@ pub fn wire_state(s: DriftState) -> State {
         DriftState::Priming => State::Priming,
         DriftState::Watching => State::Watching,
         DriftState::Drifting => State::Drifting,
+    }
+}
+/// Every chart of a driving score over its limit after `det` took the sample
+/// scored `scores`, as a drift raised message lists them: SPE before T² before NLL,
+/// per score EWMA, CUSUM, per-sample limit (the order of
+/// [`Statistic::ALL`]), and the SPE's residual chart after its other three.
+/// `drivers` is the set the raised event named. The host's replay lists a
+/// flag's charts through this function too.
+#[inline(always)]
+pub fn crossings(
+    det: &Detector,
+    scores: &Scores,
+    drivers: ScoreSet,
+) -> heapless::Vec<Crossing, MAX_CROSSINGS> {
+    let mut crossed = heapless::Vec::new();
+    for s in drivers.iter() {
+        let t = det.track(s);
+        let lim = limits(det, s);
+        let raw = match s {
+            Score::Spe => scores.spe,
+            Score::T2 => scores.t2,
+            Score::Nll => scores.nll,
+        };
+        for statistic in Statistic::ALL {
+            // Over or not as the detector decides (the per-sample limit
+            // on the standardised scale); the per-sample crossing is
+            // reported in the score's own units.
+            let (over, value, limit) = match statistic {
+                Statistic::Ewma => {
+                    let v = t.ewma.value();
+                    (v > lim.ewma_limit, v, lim.ewma_limit)
+                }
+                Statistic::Cusum => {
+                    let v = t.cusum.value();
+                    (v > lim.cusum_limit, v, lim.cusum_limit)
+                }
+                Statistic::Sample => (t.last_u > t.sample_u, raw, lim.sample_limit),
+                // Not in `Statistic::ALL`: listed after the loop.
+                Statistic::Residual { .. } => (false, 0.0, 0.0),
+            };
+            if over {
+                let c = Crossing {
+                    score: wire_score(s),
+                    statistic,
+                    value,
+                    limit,
+                };
+                // At most 3 scores × 3 charts and the residual chart =
+                // MAX_CROSSINGS: always fits.
+                let _ = crossed.push(c);
+            }
+        }
+        let chart = det.residual_chart();
+        let resid_limit = det.model().resid_limit;
+        if s == Score::Spe && chart.peak > resid_limit {
+            let _ = crossed.push(Crossing {
+                score: ScoreKind::Spe,
+                statistic: Statistic::Residual {
+                    feature: chart.peak_feature,
+                },
+                value: chart.peak,
+                limit: resid_limit,
+            });
+        }
+    }
+    crossed
+}
+
+/// The running model's limits of score `s`.
+fn limits(det: &Detector, s: Score) -> ScoreLimits {
+    let mp = &det.model().monitor;
+    match s {
+        Score::Spe => mp.spe,
+        Score::T2 => mp.t2,
+        Score::Nll => mp.nll,
     }
 }
 

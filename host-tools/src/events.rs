@@ -38,6 +38,7 @@ use plumb_model::wire::{
     Ack, Crossing, DeviceMsg, FaultKind, Greeting, Request, ScoreKind, ScoreTriple, Slot, State,
     Statistic, Status,
 };
+use serde::Serialize;
 use serde_json::{json, Value};
 use std::io::Write;
 
@@ -311,19 +312,52 @@ pub fn fault_parts(f: FaultKind) -> (&'static str, Option<u8>, Option<u16>) {
     }
 }
 
+/// One chart over its limit, with the feature's name where it has one: what
+/// event lines, JSON and `plumb replay` print of a drift raised message's
+/// crossings.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ChartCrossing {
+    /// `spe`, `t2` or `nll`.
+    pub score: &'static str,
+    /// `ewma`, `cusum`, `per-sample` or `residual`.
+    pub statistic: &'static str,
+    /// The residual chart's feature, by name.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub feature: Option<String>,
+    /// The residual chart's feature, by index in model order.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub index: Option<u8>,
+    /// The chart's value.
+    pub value: f32,
+    /// Its limit.
+    pub limit: f32,
+}
+
+impl ChartCrossing {
+    /// Names a crossing.
+    pub fn new(c: &Crossing, names: &Names) -> Self {
+        let index = crossing_feature(c);
+        Self {
+            score: score_name(c.score),
+            statistic: statistic_name(c.statistic),
+            feature: index.map(|i| names.feature(i)),
+            index,
+            value: c.value,
+            limit: c.limit,
+        }
+    }
+}
+
 /// `spe/ewma:7.5>3.25`; the residual chart names its feature:
 /// `spe/residual(vib_band6):1.2>1`.
-fn crossing_text(c: &Crossing, names: &Names) -> String {
-    let feature = crossing_feature(c)
-        .map(|i| format!("({})", names.feature(i)))
-        .unwrap_or_default();
-    format!(
-        "{}/{}{feature}:{}>{}",
-        score_name(c.score),
-        statistic_name(c.statistic),
-        c.value,
-        c.limit
-    )
+impl std::fmt::Display for ChartCrossing {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{}/{}", self.score, self.statistic)?;
+        if let Some(name) = &self.feature {
+            write!(f, "({name})")?;
+        }
+        write!(f, ":{}>{}", self.value, self.limit)
+    }
 }
 
 fn greeting_text(g: &Greeting) -> String {
@@ -390,7 +424,11 @@ pub fn text_line(r: &Received, names: &Names) -> String {
                 .filter(|s| s.feature != u8::MAX)
                 .map(|s| format!("{}:{}", names.feature(s.feature), s.value))
                 .collect();
-            let crossed: Vec<String> = d.crossed.iter().map(|c| crossing_text(c, names)).collect();
+            let crossed: Vec<String> = d
+                .crossed
+                .iter()
+                .map(|c| ChartCrossing::new(c, names).to_string())
+                .collect();
             format!(
                 "raised seq={seq} sample={} drivers={} {} top={} crossed={}",
                 d.sample,
@@ -519,16 +557,8 @@ pub fn json_line(r: &Received, names: &Names) -> Value {
             "top": d.top.iter().filter(|s| s.feature != u8::MAX)
                 .map(|s| json!({"feature": names.feature(s.feature), "index": s.feature, "value": s.value}))
                 .collect::<Vec<_>>(),
-            "crossed": d.crossed.iter().map(|c| {
-                let mut j = json!({
-                    "score": score_name(c.score), "statistic": statistic_name(c.statistic),
-                    "value": c.value, "limit": c.limit});
-                if let Some(i) = crossing_feature(c) {
-                    j["feature"] = json!(names.feature(i));
-                    j["index"] = json!(i);
-                }
-                j
-            }).collect::<Vec<_>>(),
+            "crossed": d.crossed.iter().map(|c| ChartCrossing::new(c, names))
+                .collect::<Vec<_>>(),
         }),
         DeviceMsg::DriftCleared(c) => json!({"event": "cleared", "seq": seq, "sample": c.sample}),
         DeviceMsg::SensorFault(f) => {

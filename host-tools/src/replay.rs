@@ -7,8 +7,10 @@
 //! reach the detector and are counted per log.
 
 use crate::error::{Error, Location, Result};
+use crate::events::{ChartCrossing, Names};
 use crate::logs::{BadCells, LogSet, ReadOptions, Selection};
 use crate::progress::Stage;
+use plumb_firmware::endpoint::crossings;
 use plumb_firmware::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
 use plumb_model::file::ModelFile;
 use serde::Serialize;
@@ -55,6 +57,10 @@ pub struct Flag {
     pub cleared_at: Option<u64>,
     /// The scores whose limits were crossed when it rose.
     pub scores: Vec<&'static str>,
+    /// Every chart of those scores over its limit when it rose, as the board
+    /// lists them in its drift raised message (the residual chart with its
+    /// feature).
+    pub crossed: Vec<ChartCrossing>,
     /// Score values of the sample that raised it.
     pub values: ScoreValues,
     /// Largest SPE contributions of that sample.
@@ -158,6 +164,7 @@ pub fn replay(
     }
     let set = LogSet::open_for_labels(paths, &file.labels, read)?;
     let names: Vec<String> = file.labels.iter().map(|l| l.name.clone()).collect();
+    let feature_names = Names::from_labels(&file.labels);
     let time_scale = set.time_unit_us().map(|us| us / 1e6);
     let mut out = Vec::with_capacity(paths.len());
     let mut x = vec![0f32; set.features()];
@@ -202,6 +209,10 @@ pub fn replay(
                             raised_at: o.index,
                             cleared_at: None,
                             scores: score_names(drivers),
+                            crossed: crossings(&det, &s, drivers)
+                                .iter()
+                                .map(|c| ChartCrossing::new(c, &feature_names))
+                                .collect(),
                             values: ScoreValues {
                                 spe: s.spe,
                                 t2: s.t2,

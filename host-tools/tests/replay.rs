@@ -76,8 +76,20 @@ fn step_drift_is_flagged_after_onset_with_the_documented_json() {
             f["cleared_at"].is_null()
                 || f["cleared_at"].as_u64().unwrap() > f["raised_at"].as_u64().unwrap()
         );
-        assert!(!f["scores"].as_array().unwrap().is_empty());
+        let scores = f["scores"].as_array().unwrap();
+        assert!(!scores.is_empty());
         assert_eq!(f["top_features"].as_array().unwrap().len(), 3);
+        // The charts that raised it: each of a driving score, over its
+        // limit; a residual chart names a feature of the model.
+        let crossed = f["crossed"].as_array().unwrap();
+        assert!(!crossed.is_empty(), "{f}");
+        for c in crossed {
+            assert!(scores.contains(&c["score"]), "{f}");
+            assert!(c["value"].as_f64().unwrap() > c["limit"].as_f64().unwrap());
+            let residual = c["statistic"] == "residual";
+            assert_eq!(c["feature"].is_string(), residual, "{c}");
+            assert_eq!(c["index"].as_u64().is_some_and(|i| i < 24), residual, "{c}");
+        }
     }
 }
 

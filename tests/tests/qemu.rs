@@ -29,11 +29,12 @@ use plumb::link::{Chunk, ExecTransport, Link, LinkStats, Received, Transport};
 use plumb::logs::{BadCells, LogSet, ReadOptions, Selection};
 use plumb::progress::Stage;
 use plumb::rng::Rng;
+use plumb_firmware::endpoint::crossings;
 use plumb_firmware::{Detector, DriftState, Event, Fault};
 use plumb_model::file::ModelFile;
 use plumb_model::wire::{
-    Ack, DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, HostMsg, Reason, Request, Slot,
-    State, Statistic,
+    Ack, Crossing, DeviceFrame, DeviceFrameDecoder, DeviceMsg, FaultKind, HostMsg, Reason, Request,
+    Slot, State,
 };
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -356,17 +357,15 @@ fn expected(model: &[u8], samples: &[Vec<f32>]) -> Expected {
             Some(Event::Raised { drivers }) => {
                 let s = o.scores.unwrap_or_default();
                 let top: Vec<u8> = o.top.iter().map(|c| c.feature).collect();
-                // The SPE's residual chart, when it is over its limit: its
-                // peak's bits and feature (PROTOCOL.md, `Residual`).
-                let chart = det.residual_chart();
-                let resid = (drivers.contains(plumb_firmware::Score::Spe)
-                    && chart.peak > det.model().resid_limit)
-                    .then(|| format!("{:08x}@{}", chart.peak.to_bits(), chart.peak_feature));
+                // Every chart over its limit, the residual chart's feature
+                // included, value and limit to the bit (PROTOCOL.md,
+                // `Crossing`), as the host's replay lists them.
+                let crossed = crossings_text(&crossings(&det, &s, drivers));
                 e.events.push((
                     "raised",
                     o.index,
                     format!(
-                        "drivers={} bits={:08x}/{:08x}/{:08x} top={top:?} residual={resid:?}",
+                        "drivers={} bits={:08x}/{:08x}/{:08x} top={top:?} crossed={crossed}",
                         drivers.0,
                         s.spe.to_bits(),
                         s.t2.to_bits(),
@@ -379,6 +378,23 @@ fn expected(model: &[u8], samples: &[Vec<f32>]) -> Expected {
         }
     }
     e
+}
+
+/// A drift raised message's crossings with their values and limits as bits.
+fn crossings_text(crossed: &[Crossing]) -> String {
+    let c: Vec<String> = crossed
+        .iter()
+        .map(|c| {
+            format!(
+                "{:?}/{:?}:{:08x}>{:08x}",
+                c.score,
+                c.statistic,
+                c.value.to_bits(),
+                c.limit.to_bits()
+            )
+        })
+        .collect();
+    c.join(",")
 }
 
 /// What the board said, in the same shape (`base`: its first sample index).
@@ -402,17 +418,12 @@ fn observed(frames: &[Received], base: u64, n: usize) -> Expected {
             }
             DeviceMsg::DriftRaised(d) => {
                 let top: Vec<u8> = d.top.iter().map(|s| s.feature).collect();
-                let resid = d.crossed.iter().find_map(|c| match c.statistic {
-                    Statistic::Residual { feature } => {
-                        Some(format!("{:08x}@{feature}", c.value.to_bits()))
-                    }
-                    _ => None,
-                });
+                let crossed = crossings_text(&d.crossed);
                 e.events.push((
                     "raised",
                     d.sample - base,
                     format!(
-                        "drivers={} bits={:08x}/{:08x}/{:08x} top={top:?} residual={resid:?}",
+                        "drivers={} bits={:08x}/{:08x}/{:08x} top={top:?} crossed={crossed}",
                         d.drivers,
                         d.scores.spe.to_bits(),
                         d.scores.t2.to_bits(),
@@ -545,7 +556,7 @@ fn board_agrees_with_the_host_bit_for_bit() {
             assert!(
                 got.events
                     .iter()
-                    .any(|(k, _, d)| *k == "raised" && d.contains("residual=Some")),
+                    .any(|(k, _, d)| *k == "raised" && d.contains("Spe/Residual {")),
                 "{log}: a flag raised by the residual chart: {:?}",
                 got.events
             );
@@ -600,6 +611,23 @@ fn board_agrees_with_the_host_bit_for_bit() {
                 detail.contains(&bits),
                 "{log}: raised scores {detail} vs replay {bits}"
             );
+            // The replay names the board's crossings: same count, same values
+            // and limits to the bit (the residual chart's feature too).
+            let crossed = f["crossed"].as_array().unwrap();
+            assert_eq!(
+                crossed.len(),
+                detail.matches('>').count(),
+                "{log}: {detail}"
+            );
+            for c in crossed {
+                let b = |k: &str| (c[k].as_f64().unwrap() as f32).to_bits();
+                let feature = c["index"]
+                    .as_u64()
+                    .map(|i| format!(" {{ feature: {i} }}"))
+                    .unwrap_or_default();
+                let one = format!("{feature}:{:08x}>{:08x}", b("value"), b("limit"));
+                assert!(detail.contains(&one), "{log}: {detail} vs replay {one}");
+            }
         }
         eprintln!(
             "{log} rows {rows:?}: {} samples, {} events, {} faulted samples; identical bits",

@@ -17,8 +17,13 @@ use std::path::{Path, PathBuf};
 pub const LONG_ABOUT: &str = "\
 Run logs through the very same detector the boards run (the firmware crate, built for
 the host), sample by sample, and report every drift flag: when it rose and cleared
-(0-based sample index and log time), which scores drove it, and the features with the
-largest residual share. Each log starts from a fresh detector, warm-up included.
+(0-based sample index and log time), which scores drove it and which of their charts
+were over their limits (`spe/residual(vib_band6):2.08>2.05`: score, chart, value, limit,
+as a board's drift raised message lists them; the SPE's residual chart names its feature),
+and the features with the largest residual share. Each log starts from a fresh detector,
+warm-up included. With --json: `logs`, one per log with `path`, `samples`, `faults` and
+`flags` (`raised_at`, `cleared_at` (null while still raised), `scores`, `crossed`,
+`values`, `top_features`).
 Empty or NaN cells are passed to the detector, which counts them as sensor faults (as a
 board does); --skip-bad-rows leaves such rows out instead: they never reach the detector,
 are counted per log (`skipped`), and sample indices then count the rows replayed.
@@ -144,11 +149,19 @@ pub fn text(reps: &[LogReplay]) -> String {
                 .iter()
                 .map(|c| format!("{} {:.3}", c.name, c.value))
                 .collect();
+            // The charts over their limits (`spe/residual(vib_band6):2.08>2.05`),
+            // as `plumb listen` prints them; the scores alone if none is listed.
+            let by = if f.crossed.is_empty() {
+                f.scores.join("+")
+            } else {
+                let c: Vec<String> = f.crossed.iter().map(ToString::to_string).collect();
+                c.join(", ")
+            };
             s.push_str(&format!(
                 "  flag {}: raised at {} by {}; {}; top residuals: {}\n",
                 i + 1,
                 fmt_at(f.raised_at, f.raised_t),
-                f.scores.join("+"),
+                by,
                 cleared,
                 top.join(", ")
             ));
@@ -513,6 +526,7 @@ fn run_compare(args: ReplayArgs) -> Result<u8> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::events::ChartCrossing;
     use crate::replay::{Faults, ScoreValues};
 
     fn flag(raised: u64, cleared: Option<u64>, scores: &[&'static str]) -> Flag {
@@ -520,6 +534,7 @@ mod tests {
             raised_at: raised,
             cleared_at: cleared,
             scores: scores.to_vec(),
+            crossed: Vec::new(),
             values: ScoreValues {
                 spe: 0.0,
                 t2: 0.0,
@@ -560,6 +575,37 @@ mod tests {
         );
         assert!(
             text.ends_with("1 of 1 logs raised a drift flag\n"),
+            "{text}"
+        );
+    }
+
+    #[test]
+    fn the_table_names_the_charts_that_raised_a_flag() {
+        let mut f = flag(40, None, &["spe"]);
+        f.crossed = vec![
+            ChartCrossing {
+                score: "spe",
+                statistic: "ewma",
+                feature: None,
+                index: None,
+                value: 7.5,
+                limit: 3.25,
+            },
+            ChartCrossing {
+                score: "spe",
+                statistic: "residual",
+                feature: Some("vib_band6".into()),
+                index: Some(17),
+                value: 2.5,
+                limit: 2.0,
+            },
+        ];
+        let text = text(&[rep(vec![f])]);
+        assert!(
+            text.contains(
+                "flag 1: raised at 40 by spe/ewma:7.5>3.25, spe/residual(vib_band6):2.5>2; \
+                 still raised"
+            ),
             "{text}"
         );
     }
