@@ -32,7 +32,7 @@ Steps (float64, numpy and scipy):
    each drift log's delay from the onset (row 3000) to the first alarm at or
    after it; a scheme of the three charts at 3 calibration alarms each.
 
-usage (from the repository root, after `./scripts/demo.sh` wrote the
+usage (from the repository root, after `./scripts/demo.sh --nominal-rows 1000000` wrote the
 calibration and evaluation logs):
   nice -n 10 .venv/bin/python bench/log_features.py [--out bench/log_features.out.md]
 """

@@ -40,7 +40,7 @@ Steps (float64, numpy, scipy and scikit-learn):
    calibration logs, the lag-1 autocorrelation of u and of v, and the
    99.9 % quantile and maximum of each.
 
-usage (from the repository root, after `./scripts/demo.sh` wrote the
+usage (from the repository root, after `./scripts/demo.sh --nominal-rows 1000000` wrote the
 calibration and evaluation logs):
   nice -n 10 .venv/bin/python bench/mode_charts.py [--out bench/mode_charts.out.md]
 """

@@ -42,7 +42,8 @@ Steps (all float64, numpy and scipy only):
    spread of 2000-sample block means of u_i, and the mean shift of u for
    motor_current_left in gain_change (rows 3000–5000 against 1000–3000).
 
-usage (from the repository root):
+usage (from the repository root, after ./scripts/demo.sh --nominal-rows 1000000
+has generated the sets at the size these figures were measured at):
   nice -n 10 .venv/bin/python bench/residual_charts.py [--plumb target/release/plumb]
         [--out bench/residual_charts.out.md]
 """

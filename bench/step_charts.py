@@ -30,7 +30,8 @@ Reported: the limit, alarms on the evaluation set, and the delay from the
 onset (row 3000, demo-logs/truth.csv) to the first alarm at or after it on
 each drift log.
 
-usage (repository root, after ./scripts/demo.sh):
+usage (repository root, after ./scripts/demo.sh --nominal-rows 1000000, the
+size these figures were measured at):
   nice -n 10 .venv/bin/python bench/step_charts.py [--plumb target/release/plumb]
         [--model out/demo/tugger.plumb]
 """

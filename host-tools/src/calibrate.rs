@@ -1008,7 +1008,7 @@ pub fn calibrate(
     if chart_budget < 1.0 {
         warnings.push(format!(
             "the held-out data are too few to hold each chart to its share of the target on \
-             new data: a chart may raise {chart_budget:.3} false alarms in its {chart_samples} \
+             new data: a chart may raise {chart_budget:.4} false alarms in its {chart_samples} \
              samples, but its limit can only sit at its highest held-out peak, which new data \
              of that length exceed about once. Expect up to about one false alarm per chart \
              per {chart_samples} samples, or hold out at least {:.0} rows",

@@ -1,6 +1,6 @@
 //! `plumb demo`, the README's main command, end to end on a copy of the
-//! committed demo logs with small generated sets (the real run uses 10⁶ rows
-//! each; `scripts/demo.sh` runs it in CI).
+//! committed demo logs with small generated sets (the real run uses 2 × 10⁶
+//! rows each; `scripts/demo.sh` runs it in CI).
 
 mod common;
 
@@ -20,7 +20,8 @@ fn copy_demo(to: &Path) {
     std::fs::copy(demo("truth.csv"), to.join("truth.csv")).unwrap();
 }
 
-fn run_demo(logs: &Path, out: &Path, train_rows: &str) -> Value {
+/// The JSON summary and what went to standard error.
+fn run_demo(logs: &Path, out: &Path, train_rows: &str) -> (Value, String) {
     let o = plumb(&[
         "demo",
         "--logs",
@@ -40,7 +41,10 @@ fn run_demo(logs: &Path, out: &Path, train_rows: &str) -> Value {
         "plumb demo failed: {}",
         String::from_utf8_lossy(&o.stderr)
     );
-    serde_json::from_slice(&o.stdout).expect("demo --json prints JSON")
+    (
+        serde_json::from_slice(&o.stdout).expect("demo --json prints JSON"),
+        String::from_utf8_lossy(&o.stderr).into_owned(),
+    )
 }
 
 fn scenario<'a>(r: &'a Value, name: &str) -> &'a Value {
@@ -58,7 +62,22 @@ fn demo_fits_replays_and_reports_every_scenario() {
     let logs = dir.path("logs");
     copy_demo(&logs);
     let out = dir.path("out");
-    let r = run_demo(&logs, &out, "20000");
+    let (r, stderr) = run_demo(&logs, &out, "20000");
+
+    // 40 000 held-out rows are far too few for ten charts at 10⁻⁵ (a budget
+    // of 0.04 alarms each): the fit's warning is said, not swallowed.
+    let warnings = r["warnings"].as_array().unwrap();
+    assert!(
+        warnings.iter().any(|w| w
+            .as_str()
+            .unwrap()
+            .starts_with("the held-out data are too few")),
+        "{warnings:?}"
+    );
+    assert!(
+        stderr.contains("demo: warning: the held-out data are too few"),
+        "{stderr}"
+    );
 
     // The model is written and readable.
     let model = out.join("tugger.plumb");
@@ -130,7 +149,7 @@ fn demo_without_generated_training_rows_uses_the_committed_logs_alone() {
     let logs = dir.path("logs");
     copy_demo(&logs);
     let out = dir.path("out");
-    let r = run_demo(&logs, &out, "0");
+    let (r, _) = run_demo(&logs, &out, "0");
     assert!(!logs.join("generated/training").exists());
     let file =
         plumb_model::file::ModelFile::from_bytes(&std::fs::read(out.join("tugger.plumb")).unwrap())

@@ -46,8 +46,9 @@ pub struct DemoArgs {
     pub out: PathBuf,
 
     /// Rows of generated nominal data for calibration, and as many again for counting false
-    /// alarms (at least 1000)
-    #[arg(long, value_name = "N", default_value_t = 1_000_000, value_parser = parse_nominal_rows)]
+    /// alarms (at least 1000). The default is the fewest `plumb fit` asks for at the target
+    /// rate: each of its ten charts then has a budget of at least one false alarm in them
+    #[arg(long, value_name = "N", default_value_t = DEFAULT_NOMINAL_ROWS, value_parser = parse_nominal_rows)]
     pub nominal_rows: usize,
 
     /// Rows of generated nominal training data fitted together with demo-logs/train (0: the
@@ -62,6 +63,12 @@ pub struct DemoArgs {
     #[command(flatten)]
     pub output: OutputArgs,
 }
+
+/// Default `--nominal-rows`: `2 × CHARTS / rate` at the default target rate of
+/// 10⁻⁵, the held-out size below which `plumb fit` warns that its charts'
+/// limits cannot hold their share of the rate (BENCHMARKS.md, "Detection on
+/// the demo scenario", for the figures at 10⁶, 2 × 10⁶ and 4 × 10⁶ rows).
+pub const DEFAULT_NOMINAL_ROWS: usize = 2_000_000;
 
 /// Fewest `--nominal-rows`: calibration needs the warm-up plus 100 scored
 /// rows at the very least, and a few hundred more to set limits on.
@@ -152,6 +159,8 @@ pub struct DemoResult {
     pub nominal: Vec<NominalResult>,
     /// Scenarios.
     pub scenarios: Vec<ScenarioResult>,
+    /// The fit's warnings (as `plumb fit` prints them).
+    pub warnings: Vec<String>,
 }
 
 fn say(quiet: bool, msg: &str) {
@@ -308,6 +317,14 @@ pub fn run(args: DemoArgs) -> Result<u8> {
         .to_bytes()
         .map_err(|e| Error::input(format!("the fitted model does not encode: {e}")))?;
     fit::write_atomic(&model_path, &bytes)?;
+    // What `plumb fit` would warn of (too few held-out rows, say) is said
+    // here too: on standard error unless --quiet, and in the JSON.
+    if !args.output.quiet {
+        for w in &outcome.report.warnings {
+            eprintln!("demo: warning: {w}");
+        }
+    }
+    let warnings = outcome.report.warnings;
     let file = outcome.file;
     let target = cfg.calib.false_alarm_rate;
 
@@ -390,6 +407,7 @@ pub fn run(args: DemoArgs) -> Result<u8> {
         baseline_spe_limit: baseline,
         nominal,
         scenarios,
+        warnings,
     };
     if args.output.json {
         crate::outln!(
