@@ -80,7 +80,7 @@ pub use slots::{
 
 use ring::FrameRing;
 
-use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet, Scores};
+use crate::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
 use core::borrow::BorrowMut;
 use embedded_hal::digital::{Error as _, ErrorKind as PinErrorKind, OutputPin};
 use embedded_io::{ErrorType, Read, ReadReady, Write};
@@ -90,7 +90,7 @@ use plumb_model::wire::{
     self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, EchoValues, FaultKind, FaultTally,
     FeatureEcho, Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal,
     Request, ResendDone, ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State,
-    Statistic, Status, ECHO_CHUNK, MAX_CROSSINGS, MAX_DEVICE_FRAME,
+    Statistic, Status, ECHO_CHUNK, MAX_DEVICE_FRAME,
 };
 use plumb_model::{Capacity, ModelError, ScoreLimits, MAX_FEATURES};
 
@@ -852,25 +852,9 @@ impl<S: ModelSlots, P: OutputPin, const R: usize, D: BorrowMut<Places<R>>> Endpo
         }
     }
 
-    /// The drift raised message for `o`: the charts over their limits
-    /// ([`crossings`]), the scores and the top contributions.
+    /// The drift raised message for `o` ([`drift_raised`]).
     fn raised(&self, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
-        let scores = o.scores.unwrap_or_default();
-        let crossed = crossings(self.running(), &scores, drivers);
-        DriftRaised {
-            sample: o.index,
-            drivers: drivers.0,
-            scores: ScoreTriple {
-                spe: scores.spe,
-                t2: scores.t2,
-                nll: scores.nll,
-            },
-            crossed,
-            top: o.top.map(|c| Share {
-                feature: c.feature,
-                value: c.value,
-            }),
-        }
+        drift_raised(self.running(), o, drivers)
     }
 
     /// The status message as it would be sent now.
@@ -1098,18 +1082,15 @@ pub fn wire_state(s: DriftState) -> State {
         DriftState::Drifting => State::Drifting,
     }
 }
-/// Every chart of a driving score over its limit after `det` took the sample
-/// scored `scores`, as a drift raised message lists them: SPE before T² before NLL,
-/// per score EWMA, CUSUM, per-sample limit (the order of
-/// [`Statistic::ALL`]), and the SPE's residual chart after its other three.
-/// `drivers` is the set the raised event named. The host's replay lists a
-/// flag's charts through this function too.
+/// The drift raised message `det` sends after it took the sample of `o`
+/// and raised a flag driven by `drivers`: the scores, the top contributions
+/// and every chart of a driving score over its limit, SPE before T² before
+/// NLL and per score EWMA, CUSUM, per-sample limit (the order of
+/// [`Statistic::ALL`]), the SPE's residual chart after its other three.
+/// The host's replay lists a flag's charts through this function too.
 #[inline(always)]
-pub fn crossings(
-    det: &Detector,
-    scores: &Scores,
-    drivers: ScoreSet,
-) -> heapless::Vec<Crossing, MAX_CROSSINGS> {
+pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
+    let scores = o.scores.unwrap_or_default();
     let mut crossed = heapless::Vec::new();
     for s in drivers.iter() {
         let t = det.track(s);
@@ -1161,7 +1142,20 @@ pub fn crossings(
             });
         }
     }
-    crossed
+    DriftRaised {
+        sample: o.index,
+        drivers: drivers.0,
+        scores: ScoreTriple {
+            spe: scores.spe,
+            t2: scores.t2,
+            nll: scores.nll,
+        },
+        crossed,
+        top: o.top.map(|c| Share {
+            feature: c.feature,
+            value: c.value,
+        }),
+    }
 }
 
 /// The running model's limits of score `s`.

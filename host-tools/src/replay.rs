@@ -10,7 +10,7 @@ use crate::error::{Error, Location, Result};
 use crate::events::{ChartCrossing, Names};
 use crate::logs::{BadCells, LogSet, ReadOptions, Selection};
 use crate::progress::Stage;
-use plumb_firmware::endpoint::crossings;
+use plumb_firmware::endpoint::drift_raised;
 use plumb_firmware::{Detector, DriftState, Event, Fault, Outcome, Score, ScoreSet};
 use plumb_model::file::ModelFile;
 use serde::Serialize;
@@ -205,11 +205,12 @@ pub fn replay(
                 match o.event {
                     Some(Event::Raised { drivers }) => {
                         let s = o.scores.unwrap_or_default();
+                        let crossed = drift_raised(&det, &o, drivers).crossed;
                         rep.flags.push(Flag {
                             raised_at: o.index,
                             cleared_at: None,
                             scores: score_names(drivers),
-                            crossed: crossings(&det, &s, drivers)
+                            crossed: crossed
                                 .iter()
                                 .map(|c| ChartCrossing::new(c, &feature_names))
                                 .collect(),

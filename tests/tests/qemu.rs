@@ -29,7 +29,7 @@ use plumb::link::{Chunk, ExecTransport, Link, LinkStats, Received, Transport};
 use plumb::logs::{BadCells, LogSet, ReadOptions, Selection};
 use plumb::progress::Stage;
 use plumb::rng::Rng;
-use plumb_firmware::endpoint::crossings;
+use plumb_firmware::endpoint::drift_raised;
 use plumb_firmware::{Detector, DriftState, Event, Fault};
 use plumb_model::file::ModelFile;
 use plumb_model::wire::{
@@ -360,7 +360,7 @@ fn expected(model: &[u8], samples: &[Vec<f32>]) -> Expected {
                 // Every chart over its limit, the residual chart's feature
                 // included, value and limit to the bit (PROTOCOL.md,
                 // `Crossing`), as the host's replay lists them.
-                let crossed = crossings_text(&crossings(&det, &s, drivers));
+                let crossed = crossings_text(&drift_raised(&det, &o, drivers).crossed);
                 e.events.push((
                     "raised",
                     o.index,
