@@ -191,10 +191,7 @@ def main():
               + " | ".join(f"`{s}`" for s in rc.SCENARIOS) + " |",
               "|---" * (2 + len(rc.SCENARIOS)) + "|",
               f"| three charts | {per:.2f} | " + " | ".join(cells) + " |"]
-    lines += ["", f"Run time {time.perf_counter() - t0:.0f} s."]
-    with open(args.out, "w") as fh:
-        fh.write("\n".join(lines) + "\n")
-    print("\n".join(lines))
+    rc.write_report(lines, t0, args.out)
 
 
 if __name__ == "__main__":

@@ -115,6 +115,14 @@ def read_study_logs():
     return names, np.vstack(train), cal, ev, drift
 
 
+def write_report(lines, t0, path):
+    """Prints the study's markdown lines with its run time and writes them to `path`."""
+    text = "\n".join(lines + ["", f"Run time {time.perf_counter() - t0:.0f} s."]) + "\n"
+    print(text)
+    with open(path, "w", encoding="utf-8") as f:
+        f.write(text)
+
+
 def truth_features():
     """Scenario → set of features it changes (demo-logs/truth.csv); for labelling only."""
     out = {}

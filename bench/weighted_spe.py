@@ -87,11 +87,7 @@ def main():
     lines += ["", "`loose_mount`, the ten samples from the onset:", "",
               "| statistic | calibration 99.9 % quantile | calibration maximum | values |",
               "|---|---|---|---|"] + firsts
-    lines += ["", f"({time.perf_counter() - t0:.0f} s)"]
-    text = "\n".join(lines) + "\n"
-    print(text)
-    with open(args.out, "w", encoding="utf-8") as f:
-        f.write(text)
+    rc.write_report(lines, t0, args.out)
 
 
 if __name__ == "__main__":

@@ -164,11 +164,7 @@ def main():
     lines += ["", "`gain_change`, `motor_current_left` (unit spread on the calibration logs):", "",
               "| chart input | shift after the onset | spread of per-log means (range) | lag-1 autocorrelation |",
               "|---|---|---|---|"] + diag
-    lines += ["", f"({time.perf_counter() - t0:.0f} s)"]
-    text = "\n".join(lines) + "\n"
-    print(text)
-    with open(args.out, "w", encoding="utf-8") as f:
-        f.write(text)
+    rc.write_report(lines, t0, args.out)
 
 
 if __name__ == "__main__":
