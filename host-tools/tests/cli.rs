@@ -3,7 +3,7 @@
 
 mod common;
 
-use common::{demo, join, lines, log_text, plumb, Scratch};
+use common::{demo, join, lines, log_text, plumb, plumb_ok, Scratch};
 use std::path::{Path, PathBuf};
 use std::process::Output;
 
@@ -126,7 +126,7 @@ fn skip_bad_rows_counts_them() {
     ls[900] = set_field(&ls[900], 2, "");
     let p = d.write("a.csv", &join(&ls));
     let out = d.path("m.plumb");
-    let o = plumb(&[
+    let o = plumb_ok(&[
         "fit",
         s(&p),
         "--out",
@@ -138,7 +138,6 @@ fn skip_bad_rows_counts_them() {
         "--skip-bad-rows",
         "--json",
     ]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(v["fit"]["rows"]["train_skipped"], 1);
     assert_eq!(v["fit"]["rows"]["holdout_skipped"], 1);
@@ -346,7 +345,7 @@ fn fit_is_byte_identical_and_inspectable() {
     let m1 = d.path("m1.plumb");
     let m2 = d.path("m2.plumb");
     for (out, threads) in [(&m1, "2"), (&m2, "1")] {
-        let o = plumb(&[
+        plumb_ok(&[
             "fit",
             s(&a),
             s(&b),
@@ -360,13 +359,11 @@ fn fit_is_byte_identical_and_inspectable() {
             "--threads",
             threads,
         ]);
-        assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     }
     let (x, y) = (std::fs::read(&m1).unwrap(), std::fs::read(&m2).unwrap());
     assert_eq!(x, y, "same logs and seed must give the same bytes");
 
-    let o = plumb(&["inspect", s(&m1), "--json"]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let o = plumb_ok(&["inspect", s(&m1), "--json"]);
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(v["model"]["d"], 5);
     assert_eq!(v["model"]["sample_period_us"], 10_000);
@@ -396,7 +393,7 @@ fn holdout_logs_and_units_sidecar() {
     let h = d.write("h.csv", &join(&ls));
     let units = d.write("units.csv", "name,unit\nx1,mV\n");
     let out = d.path("m.plumb");
-    let o = plumb(&[
+    let o = plumb_ok(&[
         "fit",
         s(&a),
         "--holdout",
@@ -409,7 +406,6 @@ fn holdout_logs_and_units_sidecar() {
         "--units",
         s(&units),
     ]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(v["model"]["train_rows"], 800);
     assert_eq!(v["model"]["calib_rows"], 400);
@@ -430,8 +426,7 @@ fn inspect_refuses_bad_files() {
     // A real model with one byte flipped: CRC mismatch.
     let a = d.write("a.csv", &log_text(4, 1000, 1));
     let m = d.path("m.plumb");
-    let o = plumb(&["fit", s(&a), "--out", s(&m), "--mixture", "1", "--quiet"]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    plumb_ok(&["fit", s(&a), "--out", s(&m), "--mixture", "1", "--quiet"]);
     let mut bytes = std::fs::read(&m).unwrap();
     bytes[20] ^= 0x40;
     std::fs::write(&m, &bytes).unwrap();
@@ -448,8 +443,7 @@ fn model_id_is_the_crc_of_the_payload_with_id_zero() {
     let d = Scratch::new("id");
     let a = d.write("a.csv", &log_text(4, 1000, 1));
     let m = d.path("m.plumb");
-    let o = plumb(&["fit", s(&a), "--out", s(&m), "--mixture", "1", "--quiet"]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    plumb_ok(&["fit", s(&a), "--out", s(&m), "--mixture", "1", "--quiet"]);
     let bytes = std::fs::read(&m).unwrap();
     let mut file = plumb_model::file::ModelFile::from_bytes(&bytes).unwrap();
     let id = file.model.meta.id;
@@ -475,7 +469,7 @@ fn no_device_check_writes_a_host_only_model() {
     let d = Scratch::new("hostonly");
     let p = d.write("a.csv", &log_text(66, 1000, 1));
     let m = d.path("m.plumb");
-    let o = plumb(&[
+    let o = plumb_ok(&[
         "fit",
         s(&p),
         "--out",
@@ -485,7 +479,6 @@ fn no_device_check_writes_a_host_only_model() {
         "--no-device-check",
         "--json",
     ]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(v["model"]["d"], 66);
     assert_eq!(v["fit"]["calibration"]["end_to_end"], false);
@@ -494,8 +487,7 @@ fn no_device_check_writes_a_host_only_model() {
         warnings.contains("end-to-end detector check did not run"),
         "{warnings}"
     );
-    let o = plumb(&["inspect", s(&m)]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    plumb_ok(&["inspect", s(&m)]);
     // Replay and report run the boards' detector: refused, naming the model.
     let html = d.path("r.html");
     for args in [
@@ -575,8 +567,7 @@ fn calibration_reports_every_chart() {
     // The text summary (no --quiet) shows the per-chart table.
     let mut args = vec!["fit", s(&a), s(&b), "--out", s(&out)];
     args.extend(&FAST[..4]);
-    let o = plumb(&args);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let o = plumb_ok(&args);
     let text = String::from_utf8_lossy(&o.stdout);
     for needle in ["CUSUM h by reference value k", "EWMA L iid", "limit search"] {
         assert!(text.contains(needle), "{needle}: {text}");
@@ -613,7 +604,7 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
     let b = d.write("b.csv", &log_text(4, 1000, 2));
     let c = d.write("c.csv", &log_text(4, 1200, 3));
     let base = d.path("base.plumb");
-    let o = plumb(&[
+    plumb_ok(&[
         "fit",
         s(&a),
         s(&b),
@@ -623,7 +614,6 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
         "--mixture",
         "2",
     ]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let new = d.path("new.plumb");
     let refit = |extra: &[&str]| {
         let mut args = vec!["fit", s(&c), "--base", s(&base), "--out", s(&new)];
@@ -800,8 +790,7 @@ fn spill_file_spares_a_parse_and_changes_nothing() {
         let out = d.path(out);
         let mut args = vec!["fit", s(&a), s(&b), "--out", s(&out), "--quiet", "--json"];
         args.extend_from_slice(extra);
-        let o = plumb(&args);
-        assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+        let o = plumb_ok(&args);
         let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
         (
             std::fs::read(&out).unwrap(),
@@ -834,7 +823,7 @@ fn spe_by_mode_is_the_held_out_moments_of_each_mode() {
     let a = dir.write("a.csv", &log_text(5, 1500, 1));
     let h = dir.write("h.csv", &log_text(5, 2000, 7));
     let out = dir.path("m.plumb");
-    let o = plumb(&[
+    plumb_ok(&[
         "fit",
         s(&a),
         "--holdout",
@@ -848,7 +837,6 @@ fn spe_by_mode_is_the_held_out_moments_of_each_mode() {
         "--quiet",
         "--threads=2",
     ]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let file = plumb_model::file::ModelFile::from_bytes(&std::fs::read(&out).unwrap()).unwrap();
     let md = &file.model;
     let (d, m, k) = (
@@ -937,8 +925,7 @@ fn format_1_and_2_models_are_read_by_the_host_and_refused_for_a_board() {
     let v3 = dir.path("v3.plumb");
     let mut args = vec!["fit", s(&a), "--out", s(&v3)];
     args.extend(FAST); // --mixture 2
-    let o = plumb(&args);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    plumb_ok(&args);
     let bytes = std::fs::read(&v3).unwrap();
     let word = |at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap()) as usize;
     let (payload, labels) = (word(8), word(12));
@@ -987,8 +974,7 @@ fn format_1_and_2_models_are_read_by_the_host_and_refused_for_a_board() {
         let same = dir.path(&format!("same{version}.plumb"));
         std::fs::write(&same, file.to_bytes().unwrap()).unwrap();
 
-        let o = plumb(&["inspect", s(&old)]);
-        assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+        let o = plumb_ok(&["inspect", s(&old)]);
         let text = String::from_utf8_lossy(&o.stdout);
         assert!(text.contains(&format!("format {version})")), "{text}");
         assert!(text.contains("residual chart off"), "{text}");
@@ -1028,7 +1014,7 @@ fn listen_for_takes_a_sane_number_of_seconds() {
             &["--for", "expected"],
         );
     }
-    let o = plumb(&[
+    plumb_ok(&[
         "listen",
         "--exec",
         "cat",
@@ -1037,7 +1023,6 @@ fn listen_for_takes_a_sane_number_of_seconds() {
         "--for",
         "0.2",
     ]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
 }
 
 #[test]
@@ -1275,7 +1260,7 @@ fn a_failed_replay_or_feed_leaves_an_existing_output_as_it_was() {
     assert_eq!(std::fs::read_to_string(&keep).unwrap(), "old\n");
     // Image: written whole.
     let img = d.write("slot.hex", "old\n");
-    let o = plumb(&[
+    plumb_ok(&[
         "image",
         s(&m),
         "--board",
@@ -1285,7 +1270,6 @@ fn a_failed_replay_or_feed_leaves_an_existing_output_as_it_was() {
         "--out",
         s(&img),
     ]);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     assert!(std::fs::read_to_string(&img).unwrap().starts_with(':'));
     no_temporaries(&d);
 }
@@ -1434,8 +1418,7 @@ fn the_residual_chart_is_off_with_one_held_out_log_and_on_with_two() {
     let one = dir.path("one.plumb");
     let mut args = vec!["fit", s(&a), "--holdout", s(&h1), "--out", s(&one)];
     args.extend(opts);
-    let o = plumb(&args);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let o = plumb_ok(&args);
     assert!(
         said(&o).contains("held-out rows come from one log, so the SPE's residual chart is off"),
         "{}",
@@ -1456,8 +1439,7 @@ fn the_residual_chart_is_off_with_one_held_out_log_and_on_with_two() {
     let two = dir.path("two.plumb");
     let mut args = vec!["fit", s(&a), "--holdout", s(&held), "--out", s(&two)];
     args.extend(opts);
-    let o = plumb(&args);
-    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let o = plumb_ok(&args);
     assert!(!said(&o).contains("residual chart is off"), "{}", said(&o));
     assert!(
         said(&o).contains("from the 2 held-out logs"),

@@ -3,7 +3,7 @@
 
 mod common;
 
-use common::{demo, plumb, Scratch};
+use common::{demo, plumb, plumb_ok, Scratch};
 
 use plumb_firmware::Detector;
 use plumb_model::file::ModelFile;
@@ -22,7 +22,7 @@ fn model() -> &'static Path {
         let nominal = dir.path("nominal");
         plumb_scenario::write_bulk_holdout(&nominal, 1001, 300_000, 3).unwrap();
         let out = dir.path("tugger.plumb");
-        let o = plumb(&[
+        plumb_ok(&[
             "fit",
             demo("train").to_str().unwrap(),
             "--holdout",
@@ -35,12 +35,6 @@ fn model() -> &'static Path {
             "1",
             "--quiet",
         ]);
-        assert_eq!(
-            o.status.code(),
-            Some(0),
-            "{}",
-            String::from_utf8_lossy(&o.stderr)
-        );
         (dir, out)
     })
     .1
@@ -232,7 +226,7 @@ fn compare_shows_both_models_side_by_side() {
     // fewer rows): another model id, other limits.
     let dir = Scratch::new("compare");
     let new = dir.path("refit.plumb");
-    let o = plumb(&[
+    plumb_ok(&[
         "fit",
         demo("train/robot1_day1.csv").to_str().unwrap(),
         demo("train/robot2_day1.csv").to_str().unwrap(),
@@ -246,12 +240,6 @@ fn compare_shows_both_models_side_by_side() {
         "1",
         "--quiet",
     ]);
-    assert_eq!(
-        o.status.code(),
-        Some(0),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
     let drift = demo("drift/loose_mount.csv");
     let nominal = demo("holdout/robot4_day1.csv");
     let args = |json: bool| {

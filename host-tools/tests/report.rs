@@ -12,7 +12,7 @@
 
 mod common;
 
-use common::{demo, log_text, plumb, Scratch};
+use common::{demo, log_text, plumb, plumb_ok, Scratch};
 use plumb_firmware::{Detector, Event};
 use plumb_model::file::ModelFile;
 use std::path::{Path, PathBuf};
@@ -30,7 +30,7 @@ fn model() -> &'static Path {
     &DIR.get_or_init(|| {
         let dir = Scratch::new("report-model");
         let out = dir.path("tugger.plumb");
-        let o = plumb(&[
+        plumb_ok(&[
             "fit",
             s(&demo("train")),
             "--out",
@@ -41,12 +41,6 @@ fn model() -> &'static Path {
             "1",
             "--quiet",
         ]);
-        assert_eq!(
-            o.status.code(),
-            Some(0),
-            "{}",
-            String::from_utf8_lossy(&o.stderr)
-        );
         (dir, out)
     })
     .1
@@ -392,13 +386,7 @@ fn clean_log_exits_0_and_bad_input_exits_2_without_output() {
     let text = std::fs::read_to_string(demo("holdout/robot4_day1.csv")).unwrap();
     let head: Vec<&str> = text.lines().take(rows + 1).collect();
     let short = dir.write("short.csv", &(head.join("\n") + "\n"));
-    let o = plumb(&["report", s(model()), s(&short), "--out", s(&out), "--quiet"]);
-    assert_eq!(
-        o.status.code(),
-        Some(0),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
+    plumb_ok(&["report", s(model()), s(&short), "--out", s(&out), "--quiet"]);
     let html = std::fs::read_to_string(&out).unwrap();
     assert_balanced(&html);
     assert!(html.contains("No drift flag was raised."));
@@ -475,7 +463,7 @@ fn a_million_samples_stay_under_two_megabytes() {
     let dir = Scratch::new("big");
     let train = dir.write("train.csv", &log_text(4, 3000, 11));
     let model = dir.path("small.plumb");
-    let o = plumb(&[
+    plumb_ok(&[
         "fit",
         s(&train),
         "--out",
@@ -486,12 +474,6 @@ fn a_million_samples_stay_under_two_megabytes() {
         "1",
         "--quiet",
     ]);
-    assert_eq!(
-        o.status.code(),
-        Some(0),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
     let big = dir.write("big.csv", &log_text(4, 1_000_000, 12));
     let out = dir.path("big.html");
     let o = plumb(&[

@@ -111,6 +111,20 @@ pub fn plumb(args: &[&str]) -> std::process::Output {
         .expect("run plumb")
 }
 
+/// Runs `plumb` with `args` and asserts that it succeeded (exit 0), showing
+/// its standard error otherwise.
+pub fn plumb_ok(args: &[&str]) -> std::process::Output {
+    let o = plumb(args);
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "plumb {}: {}",
+        args.join(" "),
+        String::from_utf8_lossy(&o.stderr)
+    );
+    o
+}
+
 /// A path inside the committed demo logs.
 pub fn demo(rel: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
