@@ -593,3 +593,18 @@ pub fn text(r: &DemoResult) -> String {
     }
     s
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::calibrate::{CalibConfig, CHARTS};
+
+    #[test]
+    fn the_default_calibration_set_is_as_large_as_fit_asks() {
+        // plumb fit warns below 2 × CHARTS / rate held-out rows (each chart's
+        // budget under one alarm once the warm-up rows are left out); the
+        // demo's default must not be a case it warns about.
+        let rate = CalibConfig::default().false_alarm_rate;
+        assert!(DEFAULT_NOMINAL_ROWS as f64 >= 2.0 * CHARTS as f64 / rate);
+    }
+}
