@@ -20,8 +20,11 @@ training standardisation, PCA at 95 % explained variance):
     one sensor against Gaussian residuals with covariance S (unit variance on
     the calibration logs);
   * then the shipped chart's calibration, unchanged: an EWMA per feature with
-    the shipped lambda = 0.1, each feature's |EWMA| scaled by its own quantile
-    with 100 calibration rows beyond it, one limit L at the highest scaled
+    the shipped lambda = 0.1, each feature's |EWMA| scaled by the larger of its
+    own quantile with 100 calibration rows beyond it and the prediction bound
+    on a new log's level (host-tools/src/residual.rs: |mean| + t * sd *
+    sqrt(1 + 1/L) of the L per-log means, t the Student quantile at
+    1 - 0.01 / (2 d) with L - 1 degrees of freedom), one limit L at the highest scaled
     value on the calibration logs (the allowance of 0 alarms the ten charts
     get on 2 x 10^6 rows), raised after 3 samples over L, cleared after 50
     below L / 2 and at least 100 raised (the shipped monitor settings).
@@ -46,12 +49,14 @@ import time
 
 import numpy as np
 from scipy.signal import lfilter
+from scipy.stats import t as student_t
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 import residual_charts as rc  # noqa: E402  (the shared fit and log readers)
 
 LAMBDA = 0.1  # the shipped EWMA constant
-TAIL_ROWS = 100  # the shipped scale rule (host-tools/src/residual.rs)
+TAIL_ROWS = 100  # the shipped scale rules (host-tools/src/residual.rs)
+LEVEL_ALPHA = 0.01
 DWELL, CALM, MIN_UP, CLEAR = 3, 50, 100, 0.5  # the shipped monitor settings
 
 
@@ -102,7 +107,12 @@ def run(kind, cal_r, ev_r, drift_r, names, truth):
     stat = kind(cal_r)
     e_cal = [ewma_abs(stat(r)) for r in cal_r]
     n = sum(len(e) for e in e_cal)
-    scale = np.quantile(np.vstack(e_cal), 1 - TAIL_ROWS / n, axis=0)
+    tail = np.quantile(np.vstack(e_cal), 1 - TAIL_ROWS / n, axis=0)
+    levels = np.array([stat(r).mean(axis=0) for r in cal_r])
+    logs, d = levels.shape
+    t = student_t.ppf(1 - LEVEL_ALPHA / (2 * d), logs - 1)
+    bound = np.abs(levels.mean(axis=0)) + t * levels.std(axis=0, ddof=1) * np.sqrt(1 + 1 / logs)
+    scale = np.maximum(tail, bound)
     limit = max(float((e / scale).max()) for e in e_cal)
     del e_cal
     ev_flags = sum(len(flags((ewma_abs(stat(r)) / scale).max(axis=1), limit)) for r in ev_r)
