@@ -1082,6 +1082,7 @@ pub fn wire_state(s: DriftState) -> State {
         DriftState::Drifting => State::Drifting,
     }
 }
+
 /// The drift raised message `det` sends after it took the sample of `o`
 /// and raised a flag driven by `drivers`: the scores, the top contributions
 /// and every chart of a driving score over its limit, SPE before T² before

@@ -65,9 +65,10 @@ pub struct DemoArgs {
 }
 
 /// Default `--nominal-rows`: `2 × CHARTS / rate` at the default target rate of
-/// 10⁻⁵, the held-out size below which `plumb fit` warns that its charts'
-/// limits cannot hold their share of the rate (BENCHMARKS.md, "Detection on
-/// the demo scenario", for the figures at 10⁶, 2 × 10⁶ and 4 × 10⁶ rows).
+/// 10⁻⁵, the held-out size `plumb fit` asks for when it warns that a chart's
+/// budget is under one alarm (as it is at 10⁶ rows less the warm-up);
+/// BENCHMARKS.md, "Detection on the demo scenario", has the figures at 10⁶,
+/// 2 × 10⁶ and 4 × 10⁶ rows.
 pub const DEFAULT_NOMINAL_ROWS: usize = 2_000_000;
 
 /// Fewest `--nominal-rows`: calibration needs the warm-up plus 100 scored
