@@ -113,6 +113,19 @@ fn demo_fits_replays_and_reports_every_scenario() {
     assert!(delay < 100, "loose_mount delay {delay}");
     assert_eq!(lm["false_alarms"], 0);
     assert!(lm["drivers"].as_array().unwrap().iter().any(|d| d == "spe"));
+    // The charts that raised it, each of a driving score and over its limit.
+    let crossed = lm["crossed"].as_array().unwrap();
+    assert!(!crossed.is_empty(), "{lm}");
+    for c in crossed {
+        assert!(
+            lm["drivers"].as_array().unwrap().contains(&c["score"]),
+            "{c}"
+        );
+        assert!(
+            c["value"].as_f64().unwrap() > c["limit"].as_f64().unwrap(),
+            "{c}"
+        );
+    }
     assert!(lm["top_in_truth"].as_u64().unwrap() >= 1, "{lm}");
     // The Lorden bound is ln(ARL0) / (δ²/2) with ARL0 = 1 / target rate
     // and δ the shift the output reports (Lorden 1971; KL divergence δ²/2 of

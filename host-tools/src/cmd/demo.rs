@@ -2,6 +2,7 @@
 
 use crate::cli::OutputArgs;
 use crate::error::{Error, Result, EXIT_CLEAN};
+use crate::events::ChartCrossing;
 use crate::fit::{self, FitConfig, Holdout, MixtureChoice};
 use crate::logs::{self, BadCells, LogSet, ReadOptions};
 use crate::progress::Progress;
@@ -114,6 +115,9 @@ pub struct ScenarioResult {
     pub faults: u64,
     /// Scores that drove the first flag.
     pub drivers: Vec<&'static str>,
+    /// The charts over their limits when the first flag rose (as `plumb
+    /// replay` and a board's drift raised message list them).
+    pub crossed: Vec<ChartCrossing>,
     /// Features with the largest residual share at the first flag.
     pub top_features: Vec<String>,
     /// How many of those are among the features the scenario changes.
@@ -453,17 +457,18 @@ fn scenario_row(
         .iter()
         .filter(|f| fault || f.raised_at < onset)
         .count();
-    let (first_flag, delay, drivers, top) = match (first, fault) {
+    let (first_flag, delay, drivers, crossed, top) = match (first, fault) {
         (Some(f), false) => (
             Some(f.raised_at),
             Some(f.raised_at - onset),
             f.scores.clone(),
+            f.crossed.clone(),
             f.top_features
                 .iter()
                 .map(|c| c.name.clone())
                 .collect::<Vec<_>>(),
         ),
-        _ => (None, None, Vec::new(), Vec::new()),
+        _ => (None, None, Vec::new(), Vec::new(), Vec::new()),
     };
     let top_in_truth = top.iter().filter(|n| t.features.contains(n)).count();
     let on = onset as usize;
@@ -502,6 +507,7 @@ fn scenario_row(
         false_alarms,
         faults: rep.faults,
         drivers,
+        crossed,
         top_features: top,
         top_in_truth,
         changed_features: t.features.clone(),
@@ -587,6 +593,20 @@ pub fn text(r: &DemoResult) -> String {
                 top.join(", ")
             }
         ));
+    }
+    // Which charts raised each first flag (`spe/residual(vib_band6):1.89>1.83`).
+    let raised: Vec<String> = r
+        .scenarios
+        .iter()
+        .filter(|c| !c.crossed.is_empty())
+        .map(|c| {
+            let charts: Vec<String> = c.crossed.iter().map(ToString::to_string).collect();
+            format!("  {:<15} {}\n", c.scenario, charts.join(", "))
+        })
+        .collect();
+    if !raised.is_empty() {
+        s.push_str("\nCharts over their limits at each first flag\n");
+        s.push_str(&raised.concat());
     }
     s.push_str(&format!("\nmodel: {}\n", r.model.display()));
     if let Some(p) = &r.report {
