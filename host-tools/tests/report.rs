@@ -289,6 +289,53 @@ fn resid_at_raises(file: &ModelFile, log: &Path) -> Vec<Option<usize>> {
 }
 
 #[test]
+fn each_flag_caption_names_the_charts_that_raised_it() {
+    // The first log's flags (bearing wear): each caption lists the score
+    // charts over their limits as replay's `crossed` has them (the
+    // residual chart is named by its own note, tested below).
+    let (_dir, html, _out, v) = drift_report();
+    let flags = v["logs"][0]["flags"].as_array().unwrap();
+    assert!(!flags.is_empty());
+    let mut listed = 0;
+    for (fi, f) in flags.iter().enumerate() {
+        let caption = html
+            .split(&format!("<figcaption><b>Flag {}</b>", fi + 1))
+            .nth(1)
+            .expect("its contribution chart");
+        let caption = &caption[..caption.find("</figcaption>").unwrap()];
+        let charts: Vec<&serde_json::Value> = f["crossed"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|c| c["statistic"] != "residual")
+            .collect();
+        assert_eq!(
+            caption.contains("class=\"charts muted\""),
+            !charts.is_empty(),
+            "{caption}"
+        );
+        for c in charts {
+            let score = match c["score"].as_str().unwrap() {
+                "spe" => "SPE",
+                "t2" => "T²",
+                _ => "NLL",
+            };
+            let chart = match c["statistic"].as_str().unwrap() {
+                "ewma" => "EWMA",
+                "cusum" => "CUSUM",
+                _ => "per-sample limit",
+            };
+            assert!(
+                caption.contains(&format!("{score} {chart} ")),
+                "{caption} lacks {c}"
+            );
+            listed += 1;
+        }
+    }
+    assert!(listed > 0, "no flag of this log raised by a score chart");
+}
+
+#[test]
 fn flags_the_residual_chart_raised_name_its_feature() {
     let (_dir, html, _out, v) = drift_report();
     let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();

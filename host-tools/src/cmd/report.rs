@@ -28,8 +28,9 @@ samples included).
 
 For each flag, the features behind it: the mean squared residual r² of every feature over
 the first 50 scored samples from the raise, with the training mean beside it (--train);
-a flag raised while the residual chart was over its limit also names the chart and the
-feature of its largest EWMA. Then the latent plane (t1, t2) of training rows (--train)
+its caption lists the score charts that were over their limits as it rose (as `plumb
+replay` and the board's drift raised message list them), and a flag raised while the
+residual chart was over its limit also names the chart and the feature of its largest EWMA. Then the latent plane (t1, t2) of training rows (--train)
 and field rows, coloured by the detector's state, with each mixture component's 1σ and
 2σ ellipse; the explained variance per component; and tables of flags and faults.
 

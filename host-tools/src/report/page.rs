@@ -219,6 +219,43 @@ fn driver_chips(f: &Flag) -> String {
         .join("")
 }
 
+/// The charts of the scores over their limits when flag `f` rose, as the
+/// board's drift raised message lists them (`plumb replay`'s `crossed`):
+/// "SPE per-sample limit 50 > 42.9, SPE EWMA 3.1 > 2.9". The residual
+/// chart is left to [`resid_note`], which gives its signed EWMA.
+fn charts_note(f: &Flag) -> String {
+    let parts: Vec<String> = f
+        .crossed
+        .iter()
+        .filter(|c| c.statistic != "residual")
+        .map(|c| {
+            let i = Score::ALL
+                .iter()
+                .position(|x| x.name() == c.score)
+                .unwrap_or(0);
+            let chart = match c.statistic {
+                "ewma" => "EWMA",
+                "cusum" => "CUSUM",
+                "per-sample" => "per-sample limit",
+                other => other,
+            };
+            format!(
+                "{} {chart} {} > {}",
+                SCORE_SHORT[i],
+                sig(f64::from(c.value)),
+                sig(f64::from(c.limit))
+            )
+        })
+        .collect();
+    if parts.is_empty() {
+        return String::new();
+    }
+    format!(
+        " <span class=\"charts muted\">({})</span>",
+        esc(&parts.join(", "))
+    )
+}
+
 fn header(o: &mut String, c: &Collected<'_>) {
     let m = &c.file.model;
     let meta = &m.meta;
@@ -1127,10 +1164,11 @@ fn contrib_chart(
     o.push_str("</svg>\n");
     let _ = writeln!(
         o,
-        "<figcaption><b>Flag {}</b> raised at sample {} by {}{} · mean over {} sample{}</figcaption></figure>",
+        "<figcaption><b>Flag {}</b> raised at sample {} by {}{}{} · mean over {} sample{}</figcaption></figure>",
         fi + 1,
         at(f.raised_at, f.raised_t),
         driver_chips(f),
+        charts_note(f),
         resid_note(c, li, fi),
         fc.samples,
         if fc.samples == 1 { "" } else { "s" }
