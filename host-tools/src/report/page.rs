@@ -211,12 +211,18 @@ fn at(idx: u64, t: Option<f64>) -> String {
 fn driver_chips(f: &Flag) -> String {
     f.scores
         .iter()
-        .map(|s| {
-            let i = Score::ALL.iter().position(|x| x.name() == *s).unwrap_or(0);
-            format!("<span class=\"chip up\">{}</span>", SCORE_SHORT[i])
-        })
+        .map(|s| format!("<span class=\"chip up\">{}</span>", score_short(s)))
         .collect::<Vec<_>>()
         .join("")
+}
+
+/// The short label of a score named as in replay's output (`spe` → `SPE`).
+fn score_short(name: &str) -> &'static str {
+    let i = Score::ALL
+        .iter()
+        .position(|x| x.name() == name)
+        .unwrap_or(0);
+    SCORE_SHORT[i]
 }
 
 /// The charts of the scores over their limits when flag `f` rose, as the
@@ -229,10 +235,6 @@ fn charts_note(f: &Flag) -> String {
         .iter()
         .filter(|c| c.statistic != "residual")
         .map(|c| {
-            let i = Score::ALL
-                .iter()
-                .position(|x| x.name() == c.score)
-                .unwrap_or(0);
             let chart = match c.statistic {
                 "ewma" => "EWMA",
                 "cusum" => "CUSUM",
@@ -241,7 +243,7 @@ fn charts_note(f: &Flag) -> String {
             };
             format!(
                 "{} {chart} {} > {}",
-                SCORE_SHORT[i],
+                score_short(c.score),
                 sig(f64::from(c.value)),
                 sig(f64::from(c.limit))
             )
