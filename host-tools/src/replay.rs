@@ -163,8 +163,7 @@ pub fn replay(
         read.bad_cells = BadCells::PassAsNan;
     }
     let set = LogSet::open_for_labels(paths, &file.labels, read)?;
-    let names: Vec<String> = file.labels.iter().map(|l| l.name.clone()).collect();
-    let feature_names = Names::from_labels(&file.labels);
+    let names = Names::from_labels(&file.labels);
     let time_scale = set.time_unit_us().map(|us| us / 1e6);
     let mut out = Vec::with_capacity(paths.len());
     let mut x = vec![0f32; set.features()];
@@ -212,7 +211,7 @@ pub fn replay(
                             scores: score_names(drivers),
                             crossed: crossed
                                 .iter()
-                                .map(|c| ChartCrossing::new(c, &feature_names))
+                                .map(|c| ChartCrossing::new(c, &names))
                                 .collect(),
                             values: ScoreValues {
                                 spe: s.spe,
@@ -223,7 +222,7 @@ pub fn replay(
                                 .top
                                 .iter()
                                 .filter_map(|c| {
-                                    names.get(usize::from(c.feature)).map(|n| FeatureShare {
+                                    names.0.get(usize::from(c.feature)).map(|n| FeatureShare {
                                         name: n.clone(),
                                         value: c.value,
                                     })
