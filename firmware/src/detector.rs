@@ -257,10 +257,12 @@ pub struct Detector {
 }
 
 /// The SPE's residual chart: one EWMA per feature of
-/// `(r_i − resid_center_i) · resid_gain_i`, `r_i` the feature's PCA residual,
-/// hot when any of them is beyond `resid_limit` in absolute value. The model's
-/// gains scale each feature's smoothed residual to its own nominal tail, so one
-/// limit serves features of any memory (`plumb fit`'s calibration sets both).
+/// `(v_i − resid_center_i) · resid_gain_i`, hot when any of them is beyond
+/// `resid_limit` in absolute value. `v_i` is the feature's PCA residual `r_i`,
+/// or with the model's whitening matrix `W` the whitened residual
+/// `Σ_j W_ij r_j` ([`score::chart_input`]). The model's gains scale each
+/// feature's smoothed input to its own nominal tail, so one limit serves
+/// features of any memory (`plumb fit`'s calibration sets them all).
 #[derive(Debug, Clone, Copy, PartialEq)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub struct ResidualChart {
@@ -504,17 +506,16 @@ impl Detector {
         x: &[f32],
         resid: &mut [f32; MAX_FEATURES],
     ) -> Result<score::Scored, Fault> {
-        score::score(&self.model, &self.derived, x, resid, score::Residuals::Keep)
+        score::score(&self.model, &self.derived, x, resid)
     }
 
     /// Feeds one sample: score it, update the statistics, step the states.
     pub fn update(&mut self, x: &[f32]) -> Outcome {
         let index = self.index;
         self.index = self.index.wrapping_add(1);
-        // The standardised sample, then the residual chart's next values.
+        // The standardised sample, then its residuals.
         let mut buf = [0.0f32; MAX_FEATURES];
-        let chart = score::Residuals::Step(&self.resid.ewma);
-        let scored = match score::score(&self.model, &self.derived, x, &mut buf, chart) {
+        let scored = match score::score(&self.model, &self.derived, x, &mut buf) {
             Ok(s) => s,
             Err(fault) => return self.faulted(index, fault),
         };
@@ -546,13 +547,11 @@ impl Detector {
         if !ewmas.iter().all(|e| e.value().is_finite()) {
             return self.faulted(index, Fault::Overflow);
         }
-        // The residual chart's next values (`score` checked them finite).
-        let d = usize::from(self.model.dims.features);
-        if let (Some(to), Some(from)) = (self.resid.ewma.get_mut(..d), buf.get(..d)) {
-            to.copy_from_slice(from);
-        }
-        self.resid.peak = scored.chart.peak;
-        self.resid.peak_feature = scored.chart.feature;
+        // The sample is kept: the residual chart steps in place (its values
+        // cannot leave the f32 range, `score::chart_step`).
+        let chart = score::chart_step(&self.model, &buf, &mut self.resid.ewma);
+        self.resid.peak = chart.peak;
+        self.resid.peak_feature = chart.feature;
         self.valid += 1;
         self.window_len += 1;
         let roll = self.window_len >= WINDOW;

@@ -69,8 +69,6 @@ pub struct Scored {
     /// The most likely mixture component (the sample's operating mode): the
     /// first of the largest `ln π_c + ln N(t; ν_c, v_c)`.
     pub mode: usize,
-    /// The residual chart's step (see [`Residuals`]).
-    pub chart: ChartStep,
 }
 
 /// Constants derived from a model at load time, so the per-sample path does
@@ -186,39 +184,91 @@ fn input_fault(x: &[f32], at: usize) -> Fault {
     }
 }
 
-/// What [`score`] does with each feature's PCA residual `r_i = z_i − (P t)_i`.
-#[derive(Debug, Clone, Copy)]
-pub enum Residuals<'a> {
-    /// Leave `r_i` in `buf[i]` (calibration).
-    Keep,
-    /// One step of the SPE's residual chart from these EWMA values: leave
-    /// each feature's next value `e_i + λ ((r_i − center_i) · gain_i − e_i)`
-    /// in `buf[i]` and the largest in absolute value in
-    /// [`Scored::chart`]. The detector keeps them only if the sample is not
-    /// a fault.
-    Step(&'a [f32; MAX_FEATURES]),
-}
-
-/// One feature's residual chart EWMA after residual `r`:
-/// `e + λ ((r − center) · gain − e)`. The detector ([`score`]) and the host
-/// calibration both step the chart through this function.
+/// One feature's residual chart EWMA after input `v`:
+/// `e + λ ((v − center) · gain − e)`. The detector ([`chart_step`]) and the
+/// host calibration both step the chart through this function.
 #[inline(always)]
-pub fn chart_next(e: f32, r: f32, center: f32, gain: f32, lambda: f32) -> f32 {
-    e + lambda * ((r - center) * gain - e)
+pub fn chart_next(e: f32, v: f32, center: f32, gain: f32, lambda: f32) -> f32 {
+    e + lambda * ((v - center) * gain - e)
 }
 
-/// The residual chart's step on a scored sample (see [`Residuals::Step`]).
+/// The residual chart's input for feature `i` from the residuals `r` (the
+/// first `d` of a scored sample's): `v_i = Σ_j W_ij r_j`, summed in index
+/// order, with the model's whitening matrix `W` (`d × d`, row-major), or
+/// `r_i` itself when the model has none. 0 for an `i` out of range. The
+/// detector and the host calibration both compute it here.
+#[inline(always)]
+pub fn chart_input(whiten: &[f32], r: &[f32], i: usize) -> f32 {
+    let d = r.len();
+    if whiten.is_empty() {
+        return r.get(i).copied().unwrap_or(0.0);
+    }
+    let mut v = 0.0f32;
+    if let Some(row) = whiten.get(i * d..(i + 1) * d) {
+        for (w, rj) in row.iter().zip(r) {
+            v += w * rj;
+        }
+    }
+    v
+}
+
+/// The residual chart's step on a scored sample (see [`chart_step`]).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct ChartStep {
-    /// The largest `|next EWMA|` over the features (0 for [`Residuals::Keep`]).
+    /// The largest `|next EWMA|` over the features.
     pub peak: f32,
     /// Its feature (the first of equal ones).
     pub feature: u8,
 }
 
+/// Steps the SPE's residual chart in place: each `ewma[i]` (the first `d`)
+/// becomes [`chart_next`] of its [`chart_input`] from the sample's residuals
+/// `r` (the first `d` values [`score`] left in its buffer). Call it only for
+/// a scored sample (every `r_i` finite and `r_i²` within `f32::MAX`): the
+/// model's validation then keeps every input and every EWMA value finite
+/// ([`plumb_model::CHART_INPUT_MAX`]), which is why the step needs no check
+/// and no second buffer.
+///
+/// The peak is found on the bit patterns of the absolute values, whose
+/// integer order is the order of the values for every non-negative float:
+/// one integer comparison per feature.
+#[inline(always)]
+pub fn chart_step(model: &Model, r: &[f32], ewma: &mut [f32; MAX_FEATURES]) -> ChartStep {
+    let d = usize::from(model.dims.features).min(r.len());
+    let r = r.get(..d).unwrap_or(&[]);
+    let lambda = model.monitor.ewma_lambda;
+    let mut peak_bits = 0u32;
+    let mut at = 0usize;
+    for (i, ((e, center), gain)) in ewma
+        .iter_mut()
+        .zip(model.resid_center.iter())
+        .zip(model.resid_gain.iter())
+        .enumerate()
+    {
+        let next = chart_next(
+            *e,
+            chart_input(&model.resid_whiten, r, i),
+            *center,
+            *gain,
+            lambda,
+        );
+        *e = next;
+        let bits = next.to_bits() & 0x7fff_ffff;
+        if bits > peak_bits {
+            peak_bits = bits;
+            at = i;
+        }
+    }
+    ChartStep {
+        peak: f32::from_bits(peak_bits),
+        feature: at as u8,
+    }
+}
+
 /// Scores one sample. `x` must have `d` features in model order. `buf` is
-/// the working space of the standardised sample, then holds what `resid`
-/// asks for in its first `d` values (on a fault, whatever was reached).
+/// the working space of the standardised sample, then holds each feature's
+/// PCA residual `r_i = z_i − (P t)_i` in its first `d` values (on a fault,
+/// whatever was reached).
 ///
 /// Operation order is fixed (sums run in index order, no fused multiply-add),
 /// so the host and the board produce the same bits.
@@ -227,7 +277,6 @@ pub fn score(
     derived: &Derived,
     x: &[f32],
     buf: &mut [f32; MAX_FEATURES],
-    resid: Residuals<'_>,
 ) -> Result<Scored, Fault> {
     let d = usize::from(model.dims.features);
     let m = usize::from(model.dims.components);
@@ -321,7 +370,7 @@ pub fn score(
     let t = &latent[..m];
 
     // r = z − P t; SPE = Σ r_i²; keep the top contributions; the residual
-    // chart's step or the residual itself goes where z_i was.
+    // goes where z_i was.
     let mut spe = 0.0f32;
     // Sentinel below any real contribution; slots still unused after the loop
     // (only when d < TOP_FEATURES) name feature NO_FEATURE with value 0.
@@ -376,38 +425,6 @@ pub fn score(
         residual(i, zi, a);
     }
 
-    // The residual chart's step, in place: each r_i becomes its feature's
-    // next EWMA value. The peak is found on the bit patterns of the absolute
-    // values, whose integer order is the order of the values for every
-    // non-negative float, and above every finite one for infinity and NaN:
-    // one integer comparison per feature finds the largest and tells
-    // whether all are finite.
-    let mut peak_bits = 0u32;
-    let mut at = 0usize;
-    if let Residuals::Step(old) = resid {
-        let lambda = model.monitor.ewma_lambda;
-        for (i, (((v, e), center), gain)) in buf
-            .iter_mut()
-            .zip(old)
-            .zip(model.resid_center.iter())
-            .zip(model.resid_gain.iter())
-            .enumerate()
-        {
-            let next = chart_next(*e, *v, *center, *gain, lambda);
-            *v = next;
-            let bits = next.to_bits() & 0x7fff_ffff;
-            if bits > peak_bits {
-                peak_bits = bits;
-                at = i;
-            }
-        }
-    }
-    let finite = peak_bits < f32::INFINITY.to_bits();
-    let chart = ChartStep {
-        peak: f32::from_bits(peak_bits),
-        feature: at as u8,
-    };
-
     for c in top.iter_mut().filter(|c| c.feature == NO_FEATURE) {
         c.value = 0.0;
     }
@@ -447,7 +464,7 @@ pub fn score(
     let nll = -(best + math::ln(sum));
 
     let scores = Scores { spe, t2, nll };
-    if !(spe.is_finite() && t2.is_finite() && nll.is_finite() && finite) {
+    if !(spe.is_finite() && t2.is_finite() && nll.is_finite()) {
         return Err(Fault::Overflow);
     }
     Ok(Scored {
@@ -456,6 +473,5 @@ pub fn score(
         m,
         latent,
         mode,
-        chart,
     })
 }

@@ -658,8 +658,9 @@ fn one_sample_over_the_per_sample_limit_raises_at_once() {
 }
 
 /// The SPE's residual chart: one EWMA per feature of
-/// `(r_i − center_i) · gain_i`, `r_i = z_i − (P Pᵀ z)_i` (Roberts 1959 for
-/// the EWMA), against an f64 recursion written from that definition, with a
+/// `(v_i − center_i) · gain_i`, `v_i = r_i` or with a whitening matrix
+/// `v_i = Σ_j W_ij r_j`, `r_i = z_i − (P Pᵀ z)_i` (Roberts 1959 for the
+/// EWMA), against an f64 recursion written from that definition, with a
 /// first-order a-priori bound on the f32 error carried through the same
 /// recursion (Higham §3.1, u = 2⁻²⁴):
 ///
@@ -667,7 +668,9 @@ fn one_sample_over_the_per_sample_limit_raises_at_once() {
 /// * `t_j`: within `δ_j = γ_{d+3} Σ_i |z_i p_ij|` (as for the scores);
 /// * `(P t)_i`: within `γ_m Σ_j |p_ij t_j| + Σ_j |p_ij| δ_j`;
 /// * `r_i`: the sum of those and `u |r_i|` for the subtraction;
-/// * `w_i = (r_i − c_i) g_i`: `g_i (Δr_i + γ₂ |r_i − c_i|)`;
+/// * `v_i`: `Δr_i`, or whitened `γ_d Σ_j |W_ij r_j| + Σ_j |W_ij| Δr_j`
+///   (an inner product of inexact inputs);
+/// * `w_i = (v_i − c_i) g_i`: `g_i (Δv_i + γ₂ |v_i − c_i|)`;
 /// * the EWMA averages the errors of its inputs and adds `γ₃ (|e| + |w|)`
 ///   of its own per step: `b ← (1 − λ) b + λ Δw + γ₃ (|e| + λ |w|)`.
 ///
@@ -677,8 +680,29 @@ fn one_sample_over_the_per_sample_limit_raises_at_once() {
 fn residual_chart_is_an_ewma_of_each_scaled_residual() {
     use scores::{gamma, U};
     let mut worst = 0.0f64;
-    for (d, m, k, seed) in [(12, 3, 3, 5), (32, 8, 4, 2), (64, 16, 8, 1)] {
-        let model = example_model(d, m, k, seed);
+    let cases = [(12, 3, 3, 5), (32, 8, 4, 2), (64, 16, 8, 1)];
+    for ((d, m, k, seed), whiten) in cases.into_iter().flat_map(|c| [(c, false), (c, true)]) {
+        let mut model = example_model(d, m, k, seed);
+        if whiten {
+            // A dense matrix: unit diagonal, off-diagonal N(0, 0.3²).
+            let mut rng = Rng(77 + seed);
+            model.resid_whiten = (0..d * d)
+                .map(|ij| {
+                    if ij / d == ij % d {
+                        1.0
+                    } else {
+                        0.3 * rng.normal() as f32
+                    }
+                })
+                .collect();
+        }
+        let w_at = |i: usize, j: usize| -> f64 {
+            if model.resid_whiten.is_empty() {
+                f64::from(u8::from(i == j))
+            } else {
+                model.resid_whiten[i * d + j] as f64
+            }
+        };
         let lambda = model.monitor.ewma_lambda as f64;
         let mut det = Detector::new(model.to_device().unwrap()).unwrap();
         let mut rng = Rng(31 + seed);
@@ -697,16 +721,26 @@ fn residual_chart_is_an_ewma_of_each_scaled_residual() {
             assert!(out.scores.is_some(), "sample {n}");
             let chart = det.residual_chart();
             let mut peak = (0.0f64, 0usize);
+            let (mut r, mut dr) = (vec![0.0f64; d], vec![0.0f64; d]);
             for i in 0..d {
                 let recon: f64 = (0..m).map(|j| p(i, j) * t[j]).sum();
-                let r = z[i] - recon;
-                let dr = gamma(3) * z[i].abs()
+                r[i] = z[i] - recon;
+                dr[i] = gamma(3) * z[i].abs()
                     + gamma(m) * (0..m).map(|j| (p(i, j) * t[j]).abs()).sum::<f64>()
                     + (0..m).map(|j| p(i, j).abs() * delta[j]).sum::<f64>()
-                    + U * r.abs();
+                    + U * r[i].abs();
+            }
+            for i in 0..d {
+                let v: f64 = (0..d).map(|j| w_at(i, j) * r[j]).sum();
+                let dv = if model.resid_whiten.is_empty() {
+                    dr[i]
+                } else {
+                    gamma(d) * (0..d).map(|j| (w_at(i, j) * r[j]).abs()).sum::<f64>()
+                        + (0..d).map(|j| w_at(i, j).abs() * dr[j]).sum::<f64>()
+                };
                 let (c, g) = (model.resid_center[i] as f64, model.resid_gain[i] as f64);
-                let w = (r - c) * g;
-                let dw = g * (dr + gamma(2) * (r - c).abs());
+                let w = (v - c) * g;
+                let dw = g * (dv + gamma(2) * (v - c).abs());
                 b[i] = (1.0 - lambda) * b[i]
                     + lambda * dw
                     + gamma(3) * (e[i].abs() + lambda * w.abs());
@@ -715,7 +749,7 @@ fn residual_chart_is_an_ewma_of_each_scaled_residual() {
                 let err = (got - e[i]).abs();
                 assert!(
                     err <= b[i],
-                    "(d {d}) sample {n}, feature {i}: EWMA {got} vs {} (error {err:e} > bound {:e})",
+                    "(d {d}, whitened {whiten}) sample {n}, feature {i}: EWMA {got} vs {} (error {err:e} > bound {:e})",
                     e[i],
                     b[i]
                 );
@@ -793,4 +827,48 @@ fn a_shift_in_one_residual_raises_the_residual_chart() {
     let mut off = model.clone();
     off.resid_gain.iter_mut().for_each(|g| *g = 0.0);
     assert_eq!(run(&off), (None, None));
+}
+
+/// The residual chart's range check (`plumb_model::CHART_INPUT_MAX`): a
+/// model whose whitening matrix is as large as validation lets it be,
+/// fed samples whose residuals are as large as a finite SPE allows, keeps
+/// every chart value finite and faults no sample; a matrix 10 % larger is
+/// refused. The residual is `r = (1.2e19, −1.2e19)` (SPE 2.9e38, just under
+/// `f32::MAX`; T² 0 since `r` is orthogonal to the loadings), and row `i`
+/// of `W` is `±a (1, −1)`, so `v = ±2.4e19 · a`.
+#[test]
+fn the_residual_chart_stays_finite_at_the_edge_of_the_range_check() {
+    let s = std::f32::consts::FRAC_1_SQRT_2;
+    let mut model = example_model(2, 1, 1, 3);
+    model.mean = vec![0.0, 0.0];
+    model.scale = vec![1.0, 1.0];
+    model.loadings = vec![s, s];
+    model.monitor.fault_z = 2e19;
+    model.resid_center = vec![0.0, 0.0];
+    model.resid_gain = vec![1.0, 1.0];
+    // Reach Σ_j |W_ij| · 1.845e19 = 2a · 1.845e19 ≤ 1e37.
+    let a = 2.7e17f32;
+    model.resid_whiten = vec![a, -a, -a, a];
+    let mut det = Detector::new(model.to_device().unwrap()).unwrap();
+    for n in 0..2000 {
+        // Blocks of 50 samples of one sign: each block's EWMA swings by the
+        // full 2 · 6.5e36.
+        let sign = if (n / 50) % 2 == 0 { 1.0 } else { -1.0 };
+        let out = det.update(&[1.2e19 * sign, -1.2e19 * sign]);
+        assert!(out.fault.is_none(), "sample {n}: {:?}", out.fault);
+        let chart = det.residual_chart();
+        assert!(chart.ewma[..2].iter().all(|e| e.is_finite()), "sample {n}");
+        assert!(chart.peak.is_finite(), "sample {n}");
+        if n % 50 == 49 {
+            assert!(chart.peak > 6e36, "sample {n}: {}", chart.peak);
+        }
+    }
+    let b = 1.1 * a;
+    model.resid_whiten = vec![b, -b, -b, b];
+    assert_eq!(
+        model.to_device().map(|_| ()),
+        Err(ModelError::OutOfRange {
+            field: plumb_model::Field::ResidualChart
+        })
+    );
 }

@@ -148,6 +148,7 @@ fn model(id: u32, mean_shift: f32) -> ModelOwned {
         resid_center: vec![0.0; 4],
         resid_gain: vec![0.0; 4],
         resid_limit: 1.0,
+        resid_whiten: Vec::new(),
     }
 }
 

@@ -130,6 +130,19 @@ pub struct CalibConfig {
     pub fault_z: f64,
     /// Threads for the limit searches (1 or 2); results do not depend on it.
     pub threads: usize,
+    /// What the SPE's residual chart smooths.
+    pub residual_input: ResidualInput,
+}
+
+/// What the SPE's residual chart smooths ([`crate::residual`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ResidualInput {
+    /// Each feature's residual whitened by the residuals' nominal
+    /// covariance (model format 4's matrix).
+    Whitened,
+    /// Each feature's residual as it is (no matrix; format 3's chart).
+    Plain,
 }
 
 impl Default for CalibConfig {
@@ -146,6 +159,7 @@ impl Default for CalibConfig {
             clear_fraction: 0.5,
             fault_z: 50.0,
             threads: 2,
+            residual_input: ResidualInput::Whitened,
         }
     }
 }
@@ -1161,13 +1175,31 @@ pub fn calibrate(
     // A chart of each feature's level needs more than one log to see how the
     // levels differ between logs (robots, days): with one, it stays off.
     let mut residual = if device && starts.len() >= 2 {
-        let r = crate::residual::Residuals {
-            d,
-            rows: &resid_rows,
-            starts: &starts,
-            warmup: cfg.warmup,
-            dwell: cfg.raise_dwell,
+        fn rows<'a>(
+            d: usize,
+            rows: &'a [f32],
+            starts: &'a [usize],
+            cfg: &CalibConfig,
+        ) -> crate::residual::Residuals<'a> {
+            crate::residual::Residuals {
+                d,
+                rows,
+                starts,
+                warmup: cfg.warmup,
+                dwell: cfg.raise_dwell,
+            }
+        }
+        // The whitening matrix, then the rows whitened in place.
+        model.resid_whiten = match cfg.residual_input {
+            ResidualInput::Whitened => {
+                crate::residual::whitening(&rows(d, &resid_rows, &starts, cfg))
+            }
+            ResidualInput::Plain => Vec::new(),
         };
+        if !model.resid_whiten.is_empty() {
+            crate::residual::whiten_rows(&mut resid_rows, d, &model.resid_whiten);
+        }
+        let r = rows(d, &resid_rows, &starts, cfg);
         Some(crate::residual::calibrate(model, &r, allowed_per_chart)?)
     } else {
         if device {

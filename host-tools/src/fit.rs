@@ -636,6 +636,7 @@ pub fn fit(
         resid_center: Vec::new(),
         resid_gain: Vec::new(),
         resid_limit: 0.0,
+        resid_whiten: Vec::new(),
     };
     let device = Capacity::DEVICE.admits(&dims).is_ok();
     let calib_stage = |label: &str, total: u64| progress.stage(label, total, true);

@@ -52,6 +52,26 @@
 //!
 //! On the demo scenario this chart flags `bearing_wear` and `new_floor` far
 //! sooner than the SPE's own charts (BENCHMARKS.md, "Detection", attempt 9).
+//!
+//! **Whitening** (model format 4, the default; `--residual-input plain`
+//! turns it off). The nominal residuals move together: the operating modes
+//! push both motor currents, the bus current and the duty cycles at once, so
+//! each feature's residual alone wanders with that common part, and a change
+//! that breaks a correlation (a rattling sensor pod) hides under it. Before
+//! steps 1–4 each row's residuals become `v = W r` with
+//! `W_ij = S⁺_ij / √S⁺_ii` ([`whitening`]), `S⁺` the pseudo-inverse of the
+//! residuals' covariance `S` (ddof = 0) on the held-out rows: `v_i` is the
+//! standardised statistic of a bias in sensor `i` alone against Gaussian
+//! residuals of covariance `S` (the generalised likelihood ratio test of one
+//! sensor's bias on a linear model's residuals, e.g. Gertler, *Fault
+//! Detection and Diagnosis in Engineering Systems*, 1998; reference from
+//! memory). `S` has rank `d − m` (the residuals lie in the complement of the
+//! PCA plane); eigenvalues under [`PINV_RCOND`] of the largest are dropped.
+//! Steps 1–4 then run on `v` unchanged, so the centre, gains and limit are
+//! those of `v`. The rows are whitened with the detector's own arithmetic
+//! ([`plumb_firmware::score::chart_input`]), so calibration and device
+//! agree bit for bit. On the demo this flags `loose_mount` in 3 samples
+//! instead of 8 (BENCHMARKS.md, "Detection", attempt 11).
 
 use crate::calibrate::quantile_type1;
 use crate::error::{Error, Result};
@@ -68,6 +88,66 @@ pub const LEVEL_ALPHA: f64 = 0.01;
 /// Lowest limit: each feature's EWMA reaches 1 on its [`TAIL_ROWS`] most
 /// extreme held-out rows, so a lower limit would alarm on every one of them.
 pub const LIMIT_FLOOR: f32 = 1.0;
+
+/// Eigenvalues of the residuals' covariance under this fraction of the
+/// largest are dropped from its pseudo-inverse (as numpy's `pinv(rcond=…)`;
+/// on the demo the `m` null directions of the PCA plane sit near 1e-13 of
+/// the largest, f32 residuals being what they are, and the smallest real one
+/// near 3e-4; our choice, as in the study of BENCHMARKS.md attempt 11).
+pub const PINV_RCOND: f64 = 1e-8;
+
+/// The residual chart's whitening matrix from the held-out residuals,
+/// `d × d` row-major in f32: `W_ij = S⁺_ij / √S⁺_ii` (module docs), `S` in
+/// f64. A feature whose residual never varies (`S⁺_ii = 0`) gets a row of
+/// zeros, so its input is 0 and step 3 turns its chart off.
+pub fn whitening(r: &Residuals<'_>) -> Vec<f32> {
+    let d = r.d;
+    // The covariance, a block of rows at a time (the moments merge).
+    let mut moments = crate::pca::Moments::new(d);
+    let mut block = Vec::with_capacity(4096 * d);
+    for chunk in r.rows.chunks(4096 * d.max(1)) {
+        block.clear();
+        block.extend(chunk.iter().map(|v| f64::from(*v)));
+        moments.merge(&crate::pca::Moments::from_rows(&block, d));
+    }
+    let (values, vectors) = crate::pca::symmetric_eigen(&moments.covariance(0), d);
+    let largest = values.first().copied().unwrap_or(0.0);
+    let mut pinv = vec![0.0f64; d * d];
+    for (k, &l) in values.iter().enumerate() {
+        if !(l > PINV_RCOND * largest) {
+            continue;
+        }
+        for i in 0..d {
+            let vi = vectors[i * d + k] / l;
+            for j in 0..d {
+                pinv[i * d + j] += vi * vectors[j * d + k];
+            }
+        }
+    }
+    let mut w = vec![0.0f32; d * d];
+    for i in 0..d {
+        let diag = pinv[i * d + i];
+        if diag > 0.0 && diag.is_finite() {
+            let norm = diag.sqrt();
+            for j in 0..d {
+                w[i * d + j] = (pinv[i * d + j] / norm) as f32;
+            }
+        }
+    }
+    w
+}
+
+/// Replaces each row's residuals by the chart's input `v_i` under the
+/// matrix `whiten` (`d × d`), as the detector computes it.
+pub fn whiten_rows(rows: &mut [f32], d: usize, whiten: &[f32]) {
+    let mut r = vec![0.0f32; d];
+    for row in rows.chunks_exact_mut(d.max(1)) {
+        r.copy_from_slice(row);
+        for (i, v) in row.iter_mut().enumerate() {
+            *v = plumb_firmware::score::chart_input(whiten, &r, i);
+        }
+    }
+}
 
 /// One feature's part of the residual chart.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -347,6 +427,7 @@ pub fn off(model: &mut ModelOwned) {
     model.resid_center = vec![0.0; d];
     model.resid_gain = vec![0.0; d];
     model.resid_limit = LIMIT_FLOOR;
+    model.resid_whiten = Vec::new();
 }
 
 #[cfg(test)]
@@ -405,6 +486,7 @@ mod tests {
             resid_center: vec![0.0; d],
             resid_gain: vec![0.0; d],
             resid_limit: 1.0,
+            resid_whiten: Vec::new(),
         }
     }
 

@@ -185,6 +185,9 @@ pub struct Summary {
     pub limits: Vec<LimitRow>,
     /// Limit of the SPE's residual chart on `|EWMA|` of every feature.
     pub resid_limit: f32,
+    /// Whether the residual chart smooths whitened residuals (the model has
+    /// a whitening matrix, format 4).
+    pub resid_whitened: bool,
     /// Jackson–Mudholkar SPE limit at α = 0.001 from θ (None if θ1 = 0).
     pub spe_limit_jm: Option<f64>,
     /// Sizes.
@@ -323,6 +326,7 @@ impl Summary {
                 fault_z: mp.fault_z,
             },
             resid_limit: model.resid_limit,
+            resid_whitened: !model.resid_whiten.is_empty(),
             limits: vec![
                 LimitRow {
                     score: "spe",
@@ -376,16 +380,19 @@ impl Summary {
             mi.id, mi.schema, mi.format_version
         );
         if mi.format_version < plumb_model::file::FORMAT_VERSION {
+            let how = match mi.format_version {
+                1 => {
+                    "with every mode at the global SPE centre and spread and with the SPE's \
+                     residual chart off"
+                }
+                2 => "with the SPE's residual chart off",
+                _ => "with the SPE's residual chart on unwhitened residuals",
+            };
             let _ = writeln!(
                 o,
-                "  format {} file: read {}with the SPE's residual chart off (it flags as it did); \
-                 boards read format {} only: refit it (plumb fit --base)",
+                "  format {} file: read {how} (it flags as it did); boards read format {} only: \
+                 refit it (plumb fit --base)",
                 mi.format_version,
-                if mi.format_version == 1 {
-                    "with every mode at the global SPE centre and spread and "
-                } else {
-                    ""
-                },
                 plumb_model::file::FORMAT_VERSION
             );
         }
@@ -413,7 +420,12 @@ impl Summary {
         let _ = writeln!(
             o,
             "\nFeatures (standardised with these means and scales; the SPE's residual chart \
-             smooths (r - centre) x gain, r the feature's PCA residual)"
+             smooths (v - centre) x gain, v the feature's PCA residual{})",
+            if self.resid_whitened {
+                " whitened by the residuals' nominal covariance"
+            } else {
+                ""
+            }
         );
         let width = self
             .features

@@ -912,13 +912,14 @@ fn spe_by_mode_is_the_held_out_moments_of_each_mode() {
     assert!(own >= 2, "at least two modes hold rows: {acc:?}");
 }
 
-/// Format 1 and 2 files (FORMAT.md, history): the host reads them, says so,
-/// and replays each exactly as the same model written in the current format
-/// with the residual chart off (and, for format 1, every mode at the global
-/// SPE centre and spread); `plumb upload` refuses them before sending, since
-/// boards read the current format only.
+/// Format 1, 2 and 3 files (FORMAT.md, history): the host reads them, says
+/// so, and replays each exactly as the same model written in the current
+/// format with the residual chart off (format 3: without a whitening matrix;
+/// format 1: every mode at the global SPE centre and spread too); `plumb
+/// upload` refuses them before sending, since boards read the current
+/// format only.
 #[test]
-fn format_1_and_2_models_are_read_by_the_host_and_refused_for_a_board() {
+fn format_1_2_and_3_models_are_read_by_the_host_and_refused_for_a_board() {
     let dir = Scratch::new("format1");
     let a = dir.write("a.csv", &log_text(4, 1200, 1));
     let b = dir.write("b.csv", &log_text(4, 1200, 2));
@@ -929,9 +930,10 @@ fn format_1_and_2_models_are_read_by_the_host_and_refused_for_a_board() {
     let bytes = std::fs::read(&v3).unwrap();
     let word = |at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap()) as usize;
     let (payload, labels) = (word(8), word(12));
-    // Downgrade: drop fields 30–32 (d = 4: two × (length byte + 4 f32) and
-    // one f32) for version 2, and fields 28–29 too (k = 2: two × (length
-    // byte + 2 f32)) for version 1.
+    // Downgrade: drop field 33 (one log: the chart off, no matrix, a length
+    // byte) for version 3, fields 30–32 too (d = 4: two × (length byte + 4
+    // f32) and one f32) for version 2, and fields 28–29 too (k = 2: two ×
+    // (length byte + 2 f32)) for version 1.
     let older = |version: u8, cut: usize| {
         let body = &bytes[16..16 + payload - cut];
         let mut out = b"PLMD".to_vec();
@@ -957,7 +959,7 @@ fn format_1_and_2_models_are_read_by_the_host_and_refused_for_a_board() {
         assert!(o.status.code() == Some(1), "{}", stderr(&o));
         String::from_utf8_lossy(&o.stdout).into_owned()
     };
-    for (version, cut) in [(1u8, 38 + 18), (2, 38)] {
+    for (version, cut) in [(1u8, 1 + 38 + 18), (2, 1 + 38), (3, 1)] {
         let old_bytes = older(version, cut);
         let old = dir.path(&format!("v{version}.plumb"));
         std::fs::write(&old, &old_bytes).unwrap();
@@ -977,8 +979,13 @@ fn format_1_and_2_models_are_read_by_the_host_and_refused_for_a_board() {
         let o = plumb_ok(&["inspect", s(&old)]);
         let text = String::from_utf8_lossy(&o.stdout);
         assert!(text.contains(&format!("format {version})")), "{text}");
-        assert!(text.contains("residual chart off"), "{text}");
-        assert!(text.contains("boards read format 3 only"), "{text}");
+        let how = if version == 3 {
+            "residual chart on unwhitened residuals"
+        } else {
+            "residual chart off"
+        };
+        assert!(text.contains(how), "{text}");
+        assert!(text.contains("boards read format 4 only"), "{text}");
 
         assert_eq!(replay(&old), replay(&same), "version {version}");
 

@@ -11,16 +11,18 @@ use std::path::{Path, PathBuf};
 use std::process::Output;
 use std::sync::OnceLock;
 
-/// One model fitted on the demo training logs and calibrated on 3 × 10⁵
-/// generated nominal rows (the 20 % tail of the training logs is too short
-/// to hold the per-sample limits to the target rate on new data), shared by
-/// the tests.
+/// One model fitted on the demo training logs and calibrated on 10⁶
+/// generated nominal rows in 3 logs, robots 1–3 (the 20 % tail of the
+/// training logs is too short to hold the per-sample limits to the target
+/// rate on new data), shared by the tests. Until model format 4 these were
+/// 3 × 10⁵ rows; the whitened residual chart calibrated on so few raised a
+/// flag on robot 4's committed log (BENCHMARKS.md, "Detection", attempt 12).
 fn model() -> &'static Path {
     static DIR: OnceLock<(Scratch, PathBuf)> = OnceLock::new();
     &DIR.get_or_init(|| {
         let dir = Scratch::new("replay");
         let nominal = dir.path("nominal");
-        plumb_scenario::write_bulk_holdout(&nominal, 1001, 300_000, 3).unwrap();
+        plumb_scenario::write_bulk_holdout(&nominal, 1001, 1_000_000, 3).unwrap();
         let out = dir.path("tugger.plumb");
         plumb_ok(&[
             "fit",

@@ -21,7 +21,7 @@ use crate::{Capacity, Dims, Model, ModelMeta};
 /// The four bytes every model file starts with.
 pub const MAGIC: [u8; 4] = *b"PLMD";
 /// The model format version this crate reads and writes.
-pub const FORMAT_VERSION: u16 = 3;
+pub const FORMAT_VERSION: u16 = 4;
 /// Header length in bytes.
 pub const HEADER_LEN: usize = 16;
 /// CRC trailer length in bytes.
@@ -87,8 +87,9 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
 
 /// Format versions the host reads ([`ModelFile::from_bytes`]; a version 1
 /// file gets the global SPE centre and spread for every mode, versions 1 and
-/// 2 the residual chart off). Devices read [`FORMAT_VERSION`] only.
-pub const HOST_VERSIONS: [u16; 3] = [1, 2, FORMAT_VERSION];
+/// 2 the residual chart off, version 3 no whitening matrix). Devices read
+/// [`FORMAT_VERSION`] only.
+pub const HOST_VERSIONS: [u16; 4] = [1, 2, 3, FORMAT_VERSION];
 
 /// [`split`] for a host reader: any of [`HOST_VERSIONS`].
 pub fn split_host(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
@@ -166,7 +167,7 @@ pub fn peek(payload: &[u8]) -> Result<(ModelMeta, Dims), ModelError> {
 /// Decodes a model file into fixed-capacity storage and validates it, refusing
 /// a model over `cap`. Never panics, for any input.
 ///
-/// Returns the model by value (about 6 KiB): convenient on a host. A device
+/// Returns the model by value (about 22 KiB): convenient on a host. A device
 /// decodes into a place it already has with [`decode_into`].
 pub fn decode(bytes: &[u8], cap: &Capacity) -> Result<Model, ModelError> {
     let mut model = Model::EMPTY;
@@ -319,6 +320,29 @@ mod owned {
         spe_spread_by_mode: Vec<f32>,
     }
 
+    /// The payload of format version 3: version 2 and the residual chart,
+    /// without its whitening matrix. Read by the host only.
+    #[derive(Deserialize)]
+    struct ModelV3 {
+        v2: ModelV2,
+        resid_center: Vec<f32>,
+        resid_gain: Vec<f32>,
+        resid_limit: f32,
+    }
+
+    impl ModelV3 {
+        /// No whitening matrix (the identity): the chart smooths each raw
+        /// residual, as a version 3 detector did, bit for bit.
+        fn upgrade(self) -> ModelOwned {
+            ModelOwned {
+                resid_center: self.resid_center,
+                resid_gain: self.resid_gain,
+                resid_limit: self.resid_limit,
+                ..self.v2.upgrade()
+            }
+        }
+    }
+
     impl ModelV1 {
         /// Every mode with the global SPE centre and spread: the SPE's EWMA
         /// then sees exactly the values a version 1 detector smoothed, so
@@ -359,6 +383,7 @@ mod owned {
                 resid_center: alloc::vec![0.0; d],
                 resid_gain: alloc::vec![0.0; d],
                 resid_limit: 1.0,
+                resid_whiten: Vec::new(),
             }
         }
     }
@@ -393,10 +418,10 @@ mod owned {
         }
 
         /// Decodes and validates a model file without device capacity limits.
-        /// Version 1 and 2 files are read too, a version 1 file with every
+        /// Version 1, 2 and 3 files are read too, a version 1 file with every
         /// mode at the global SPE centre and spread, both with the residual
-        /// chart off (each then flags as it did); devices read only
-        /// [`FORMAT_VERSION`].
+        /// chart off, a version 3 file with the chart unwhitened (each then
+        /// flags as it did); devices read only [`FORMAT_VERSION`].
         pub fn from_bytes(bytes: &[u8]) -> Result<ModelFile, ModelError> {
             let sections = split_host(bytes)?;
             fn whole<T: serde::de::DeserializeOwned>(b: &[u8]) -> Result<T, ModelError> {
@@ -409,6 +434,8 @@ mod owned {
                 whole::<ModelV1>(sections.payload)?.upgrade()
             } else if sections.version == 2 {
                 whole::<ModelV2>(sections.payload)?.upgrade()
+            } else if sections.version == 3 {
+                whole::<ModelV3>(sections.payload)?.upgrade()
             } else {
                 whole::<ModelOwned>(sections.payload)?
             };

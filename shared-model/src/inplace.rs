@@ -47,6 +47,7 @@ const FIELDS: &[&str] = &[
     "resid_center",
     "resid_gain",
     "resid_limit",
+    "resid_whiten",
 ];
 
 impl<'de> Visitor<'de> for ModelSeed<'_> {
@@ -76,24 +77,26 @@ impl<'de> Visitor<'de> for ModelSeed<'_> {
             resid_center,
             resid_gain,
             resid_limit,
+            resid_whiten,
         } = self.0;
         let mut at = 0usize;
         field(&mut seq, &mut at, Assign(meta))?;
         field(&mut seq, &mut at, Assign(dims))?;
-        field(&mut seq, &mut at, Fill(mean))?;
-        field(&mut seq, &mut at, Fill(scale))?;
-        field(&mut seq, &mut at, Fill(loadings))?;
-        field(&mut seq, &mut at, Fill(eigenvalues))?;
+        field(&mut seq, &mut at, Fill::new(mean))?;
+        field(&mut seq, &mut at, Fill::new(scale))?;
+        field(&mut seq, &mut at, Fill::new(loadings))?;
+        field(&mut seq, &mut at, Fill::new(eigenvalues))?;
         field(&mut seq, &mut at, Assign(theta))?;
-        field(&mut seq, &mut at, Fill(weights))?;
-        field(&mut seq, &mut at, Fill(mix_means))?;
-        field(&mut seq, &mut at, Fill(mix_variances))?;
+        field(&mut seq, &mut at, Fill::new(weights))?;
+        field(&mut seq, &mut at, Fill::new(mix_means))?;
+        field(&mut seq, &mut at, Fill::new(mix_variances))?;
         field(&mut seq, &mut at, Assign(monitor))?;
-        field(&mut seq, &mut at, Fill(spe_center_by_mode))?;
-        field(&mut seq, &mut at, Fill(spe_spread_by_mode))?;
-        field(&mut seq, &mut at, Fill(resid_center))?;
-        field(&mut seq, &mut at, Fill(resid_gain))?;
+        field(&mut seq, &mut at, Fill::new(spe_center_by_mode))?;
+        field(&mut seq, &mut at, Fill::new(spe_spread_by_mode))?;
+        field(&mut seq, &mut at, Fill::new(resid_center))?;
+        field(&mut seq, &mut at, Fill::new(resid_gain))?;
         field(&mut seq, &mut at, Assign(resid_limit))?;
+        field(&mut seq, &mut at, Fill::new(resid_whiten))?;
         Ok(())
     }
 }
@@ -124,10 +127,18 @@ impl<'de, T: Deserialize<'de>> DeserializeSeed<'de> for Assign<'_, T> {
 
 /// A fixed-capacity vector of `f32`: cleared, then filled one element at a
 /// time. More elements than its capacity is an error, as with the derived
-/// decoder.
-struct Fill<'a, const N: usize>(&'a mut heapless::Vec<f32, N>);
+/// decoder. Held as a view (capacity known at run time), so the vectors of
+/// every capacity share one decoder: on a board each capacity of its own
+/// cost a copy of this code.
+struct Fill<'a>(&'a mut heapless::vec::VecView<f32>);
 
-impl<'de, const N: usize> DeserializeSeed<'de> for Fill<'_, N> {
+impl<'a> Fill<'a> {
+    fn new<const N: usize>(v: &'a mut heapless::Vec<f32, N>) -> Self {
+        Fill(v.as_mut_view())
+    }
+}
+
+impl<'de> DeserializeSeed<'de> for Fill<'_> {
     type Value = ();
 
     fn deserialize<D: Deserializer<'de>>(self, d: D) -> Result<(), D::Error> {
@@ -135,18 +146,18 @@ impl<'de, const N: usize> DeserializeSeed<'de> for Fill<'_, N> {
     }
 }
 
-impl<'de, const N: usize> Visitor<'de> for Fill<'_, N> {
+impl<'de> Visitor<'de> for Fill<'_> {
     type Value = ();
 
     fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "at most {N} numbers")
+        write!(f, "at most {} numbers", self.0.capacity())
     }
 
     fn visit_seq<A: SeqAccess<'de>>(self, mut seq: A) -> Result<(), A::Error> {
         self.0.clear();
         while let Some(v) = seq.next_element_seed(PhantomData::<f32>)? {
             if self.0.push(v).is_err() {
-                return Err(de::Error::invalid_length(N + 1, &self));
+                return Err(de::Error::invalid_length(self.0.capacity() + 1, &self));
             }
         }
         Ok(())

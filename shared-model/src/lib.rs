@@ -45,6 +45,8 @@ pub const MAX_MIXTURE: usize = 8;
 pub const MAX_LOADINGS: usize = MAX_FEATURES * MAX_COMPONENTS;
 /// Capacity of the mixture means and variances (`k × m`, row-major).
 pub const MAX_MIX_PARAMS: usize = MAX_MIXTURE * MAX_COMPONENTS;
+/// Capacity of the residual chart's whitening matrix (`d × d`, row-major).
+pub const MAX_WHITEN: usize = MAX_FEATURES * MAX_FEATURES;
 
 /// The dimensions a reader can hold. A model over any of them is refused with
 /// [`ModelError::OverCapacity`].

@@ -7,7 +7,7 @@
 //! two give the same bytes. Validation is written once, on [`ModelView`].
 
 use crate::error::{Field, ModelError};
-use crate::{MAX_COMPONENTS, MAX_FEATURES, MAX_LOADINGS, MAX_MIXTURE, MAX_MIX_PARAMS};
+use crate::{MAX_COMPONENTS, MAX_FEATURES, MAX_LOADINGS, MAX_MIXTURE, MAX_MIX_PARAMS, MAX_WHITEN};
 use serde::{Deserialize, Serialize};
 
 /// Identity and provenance of a model. Encoded first, so a reader can learn
@@ -136,7 +136,23 @@ pub struct ModelView<'a> {
     pub resid_gain: &'a [f32],
     /// Limit of the residual chart.
     pub resid_limit: f32,
+    /// The residual chart's whitening matrix, `d × d` row-major, or empty
+    /// (the identity).
+    pub resid_whiten: &'a [f32],
 }
+
+/// Largest `|r_i|` of a feature's PCA residual in a sample the detector
+/// scores: its square is a term of the SPE, which the detector requires
+/// finite, so `r_i² ≤ f32::MAX` and `|r_i| ≤ √f32::MAX ≈ 1.8447e19` (rounded
+/// up here).
+pub const RESIDUAL_MAX: f32 = 1.845e19;
+
+/// Largest value validation lets the residual chart's input `v_i` and its
+/// scaled form `(v_i − center_i) · gain_i` reach for any residual within
+/// [`RESIDUAL_MAX`] (see [`ModelView::validate`]): far under `f32::MAX`
+/// (3.4e38), so the chart's EWMA, a convex combination of such values, stays
+/// finite and the detector can step it in place without a check.
+pub const CHART_INPUT_MAX: f32 = 1e37;
 
 fn check_len(field: Field, slice: &[f32], expected: usize) -> Result<(), ModelError> {
     if slice.len() != expected {
@@ -275,7 +291,37 @@ impl ModelView<'_> {
                 field: Field::ResidualChart,
             });
         }
-        check_positive(Field::ResidualChart, &[self.resid_limit])
+        check_positive(Field::ResidualChart, &[self.resid_limit])?;
+        // The whitening matrix: none (the identity) or d × d, finite.
+        if !self.resid_whiten.is_empty() {
+            check_len(Field::ResidualChart, self.resid_whiten, d * d)?;
+            check_finite(Field::ResidualChart, self.resid_whiten)?;
+        }
+        // The chart's input for feature i is v_i = Σ_j W_ij r_j (r_i without
+        // a matrix), summed in f32; with every |r_j| ≤ RESIDUAL_MAX, |v_i| is
+        // at most Σ_j |W_ij| · RESIDUAL_MAX up to rounding (a relative
+        // d·ε ≈ 4e-6 at 64 features, far inside the bound's margin). The
+        // model is refused unless that bound plus |center_i|, and the same
+        // times gain_i, stay within CHART_INPUT_MAX: then no sample can take
+        // the chart out of the f32 range (a non-finite sum of |W_ij| fails
+        // the comparison too).
+        let rows = self.resid_whiten.chunks_exact(d.max(1));
+        let identity = self.resid_whiten.is_empty();
+        let mut rows = rows.map(|row| row.iter().map(|w| w.abs()).sum::<f32>());
+        for (c, g) in self.resid_center.iter().zip(self.resid_gain) {
+            let reach = if identity {
+                1.0
+            } else {
+                rows.next().unwrap_or(f32::INFINITY)
+            };
+            let v = reach * RESIDUAL_MAX + c.abs();
+            if !(v <= CHART_INPUT_MAX && v * g <= CHART_INPUT_MAX) {
+                return Err(ModelError::OutOfRange {
+                    field: Field::ResidualChart,
+                });
+            }
+        }
+        Ok(())
     }
 }
 
@@ -283,7 +329,8 @@ macro_rules! model_type {
     (
         $(#[$attr:meta])*
         $name:ident,
-        feat = $feat:ty, load = $load:ty, comp = $comp:ty, mix = $mix:ty, mixp = $mixp:ty
+        feat = $feat:ty, load = $load:ty, comp = $comp:ty, mix = $mix:ty, mixp = $mixp:ty,
+        whiten = $whiten:ty
     ) => {
         $(#[$attr])*
         #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -333,6 +380,14 @@ macro_rules! model_type {
             /// Limit on the absolute value of every feature's residual EWMA
             /// (> 0).
             pub resid_limit: f32,
+            /// The residual chart's whitening matrix W, `d × d` row-major,
+            /// or empty for the identity (format 3's chart). The chart of
+            /// feature `i` then smooths `(v_i − center_i) · gain_i` with
+            /// `v_i = Σ_j W_ij r_j` (the sum in index order): with
+            /// `W_ij = S⁺_ij / √S⁺_ii`, `S⁺` the pseudo-inverse of the
+            /// residuals' nominal covariance, `v_i` is the standardised test
+            /// statistic of a bias in sensor `i` alone (format 4).
+            pub resid_whiten: $whiten,
         }
 
         impl $name {
@@ -355,6 +410,7 @@ macro_rules! model_type {
                     resid_center: &self.resid_center,
                     resid_gain: &self.resid_gain,
                     resid_limit: self.resid_limit,
+                    resid_whiten: &self.resid_whiten,
                 }
             }
 
@@ -375,7 +431,8 @@ model_type!(
     load = heapless::Vec<f32, MAX_LOADINGS>,
     comp = heapless::Vec<f32, MAX_COMPONENTS>,
     mix = heapless::Vec<f32, MAX_MIXTURE>,
-    mixp = heapless::Vec<f32, MAX_MIX_PARAMS>
+    mixp = heapless::Vec<f32, MAX_MIX_PARAMS>,
+    whiten = heapless::Vec<f32, MAX_WHITEN>
 );
 
 impl ModelMeta {
@@ -450,9 +507,10 @@ impl Model {
         resid_center: heapless::Vec::new(),
         resid_gain: heapless::Vec::new(),
         resid_limit: 0.0,
+        resid_whiten: heapless::Vec::new(),
     };
 
-    /// Returns to [`Model::EMPTY`] in place (no 6 KiB value is built).
+    /// Returns to [`Model::EMPTY`] in place (no 22 KiB value is built).
     pub fn clear(&mut self) {
         let Model {
             meta,
@@ -471,6 +529,7 @@ impl Model {
             resid_center,
             resid_gain,
             resid_limit,
+            resid_whiten,
         } = self;
         *meta = ModelMeta::ZERO;
         *dims = Dims::ZERO;
@@ -488,6 +547,7 @@ impl Model {
         resid_center.clear();
         resid_gain.clear();
         *resid_limit = 0.0;
+        resid_whiten.clear();
     }
 
     /// Whether this is [`Model::EMPTY`]'s state: no features.
@@ -505,7 +565,8 @@ model_type!(
     load = alloc::vec::Vec<f32>,
     comp = alloc::vec::Vec<f32>,
     mix = alloc::vec::Vec<f32>,
-    mixp = alloc::vec::Vec<f32>
+    mixp = alloc::vec::Vec<f32>,
+    whiten = alloc::vec::Vec<f32>
 );
 
 #[cfg(feature = "alloc")]
@@ -536,6 +597,7 @@ impl ModelOwned {
             resid_center: copy(&self.resid_center),
             resid_gain: copy(&self.resid_gain),
             resid_limit: self.resid_limit,
+            resid_whiten: copy(&self.resid_whiten),
         })
     }
 }
@@ -560,6 +622,7 @@ impl From<&Model> for ModelOwned {
             resid_center: m.resid_center.to_vec(),
             resid_gain: m.resid_gain.to_vec(),
             resid_limit: m.resid_limit,
+            resid_whiten: m.resid_whiten.to_vec(),
         }
     }
 }

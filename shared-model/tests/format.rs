@@ -58,6 +58,7 @@ fn tiny() -> ModelOwned {
         resid_center: vec![0.25, -0.5],
         resid_gain: vec![2.0, 0.0],
         resid_limit: 1.5,
+        resid_whiten: vec![1.0, -0.5, -0.25, 2.0],
     }
 }
 
@@ -88,9 +89,9 @@ fn tiny_model_exact_bytes() {
     }
     .to_bytes()
     .unwrap();
-    // Header (FORMAT.md): magic, version 3, flags 0, payload length, labels length 0.
+    // Header (FORMAT.md): magic, version 4, flags 0, payload length, labels length 0.
     assert_eq!(&bytes[0..4], b"PLMD");
-    assert_eq!(&bytes[4..8], &[3, 0, 0, 0]);
+    assert_eq!(&bytes[4..8], &[4, 0, 0, 0]);
     let payload_len = u32::from_le_bytes(bytes[8..12].try_into().unwrap()) as usize;
     assert_eq!(&bytes[12..16], &[0, 0, 0, 0]);
     assert_eq!(bytes.len(), HEADER_LEN + payload_len + 4);
@@ -138,14 +139,16 @@ fn tiny_model_exact_bytes() {
     f(&[0.25, -0.5], true, &mut expect);
     f(&[2.0, 0.0], true, &mut expect);
     f(&[1.5], false, &mut expect);
+    // Its whitening matrix, 2 × 2 row-major (format 4).
+    f(&[1.0, -0.5, -0.25, 2.0], true, &mut expect);
     assert_eq!(&bytes[HEADER_LEN..HEADER_LEN + payload_len], &expect[..]);
     // And the whole file, pinned: any change to the layout shows up here.
     let crc = u32::from_le_bytes(bytes[bytes.len() - 4..].try_into().unwrap());
     assert_eq!(crc, crc32(&bytes[..bytes.len() - 4]));
-    assert_eq!(payload_len, 191);
+    assert_eq!(payload_len, 208);
     // Also computed with Python's zlib.crc32 over the bytes written out by
     // hand from FORMAT.md (header, then the payload listed above).
-    assert_eq!(crc, 0x8e3e_3c87, "pinned CRC of the tiny model file");
+    assert_eq!(crc, 0xb1b6_e38d, "pinned CRC of the tiny model file");
 }
 
 #[test]
@@ -159,7 +162,7 @@ fn host_and_device_encode_the_same_bytes() {
         .to_bytes()
         .unwrap();
         let device = owned.to_device().unwrap();
-        let mut buf = vec![0u8; 16 * 1024];
+        let mut buf = vec![0u8; 32 * 1024];
         let n = file::encode_into(&device, &mut buf).unwrap();
         assert_eq!(&buf[..n], &host[..]);
         let back = decode(&host).unwrap();
@@ -212,11 +215,11 @@ fn each_framing_error_is_distinct() {
     assert_eq!(decode(&b), Err(ModelError::BadMagic));
 
     let mut b = good.clone();
-    b[4] = 4;
-    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 4 }));
-    // Versions 1 (before the SPE by mode) and 2 (before the residual chart)
-    // are refused, not misread.
-    for old in [1u8, 2] {
+    b[4] = 5;
+    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 5 }));
+    // Versions 1 (before the SPE by mode), 2 (before the residual chart)
+    // and 3 (before its whitening matrix) are refused, not misread.
+    for old in [1u8, 2, 3] {
         let mut b = good.clone();
         b[4] = old;
         assert_eq!(
@@ -780,9 +783,11 @@ fn older_file(current: &[u8], version: u16, cut: usize) -> Vec<u8> {
     out
 }
 
-/// Bytes of the tiny model's fields added by version 3 (d = 2: two vectors
-/// of a length byte and two f32, and one f32) and by version 2 (k = 1: two
-/// vectors of a length byte and one f32).
+/// Bytes of the tiny model's fields added by version 4 (d = 2: a length
+/// byte and four f32), by version 3 (two vectors of a length byte and two
+/// f32, and one f32) and by version 2 (k = 1: two vectors of a length byte
+/// and one f32).
+const V4_FIELDS: usize = 1 + 16;
 const V3_FIELDS: usize = 2 * (1 + 8) + 4;
 const V2_FIELDS: usize = 2 * (1 + 4);
 
@@ -793,6 +798,7 @@ fn tiny_chart_off() -> ModelOwned {
     want.resid_center = vec![0.0, 0.0];
     want.resid_gain = vec![0.0, 0.0];
     want.resid_limit = 1.0;
+    want.resid_whiten = vec![];
     want
 }
 
@@ -804,21 +810,21 @@ fn tiny_chart_off() -> ModelOwned {
 /// it.
 #[test]
 fn a_version_1_file_reads_on_the_host_with_the_global_spe() {
-    let v3 = ModelFile {
+    let v4 = ModelFile {
         model: tiny(),
         labels: vec![],
     }
     .to_bytes()
     .unwrap();
-    let v1 = older_file(&v3, 1, V3_FIELDS + V2_FIELDS);
+    let v1 = older_file(&v4, 1, V4_FIELDS + V3_FIELDS + V2_FIELDS);
     let read = ModelFile::from_bytes(&v1).unwrap().model;
     let mut want = tiny_chart_off();
     want.spe_center_by_mode = vec![want.monitor.spe.center];
     want.spe_spread_by_mode = vec![want.monitor.spe.spread];
     assert_eq!(read, want);
     assert_eq!(decode(&v1), Err(ModelError::UnknownVersion { found: 1 }));
-    // A version 1 header over a version 3 payload does not decode.
-    let mut wrong = v3.clone();
+    // A version 1 header over a version 4 payload does not decode.
+    let mut wrong = v4.clone();
     wrong[4] = 1;
     fix_crc(&mut wrong);
     assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
@@ -828,24 +834,106 @@ fn a_version_1_file_reads_on_the_host_with_the_global_spe() {
 /// residual chart off and everything else as stored; a device refuses it.
 #[test]
 fn a_version_2_file_reads_on_the_host_with_the_residual_chart_off() {
-    let v3 = ModelFile {
+    let v4 = ModelFile {
         model: tiny(),
         labels: vec![],
     }
     .to_bytes()
     .unwrap();
-    let v2 = older_file(&v3, 2, V3_FIELDS);
+    let v2 = older_file(&v4, 2, V4_FIELDS + V3_FIELDS);
     assert_eq!(ModelFile::from_bytes(&v2).unwrap().model, tiny_chart_off());
     assert_eq!(decode(&v2), Err(ModelError::UnknownVersion { found: 2 }));
     // Off means off: a chart with every gain 0 validates.
     tiny_chart_off().validate().unwrap();
     // Version headers over the wrong payloads do not decode.
-    let mut wrong = v3.clone();
+    let mut wrong = v4.clone();
     wrong[4] = 2;
     fix_crc(&mut wrong);
     assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
     let mut wrong = v2.clone();
-    wrong[4] = 3;
+    wrong[4] = 4;
     fix_crc(&mut wrong);
     assert_eq!(decode(&wrong), Err(ModelError::Undecodable));
+}
+
+/// A version 3 file (before field 33) is read by the host with no whitening
+/// matrix, so its chart smooths the raw residuals as a version 3 detector
+/// did; a device refuses it.
+#[test]
+fn a_version_3_file_reads_on_the_host_without_whitening() {
+    let v4 = ModelFile {
+        model: tiny(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .unwrap();
+    let v3 = older_file(&v4, 3, V4_FIELDS);
+    let mut want = tiny();
+    want.resid_whiten = vec![];
+    assert_eq!(ModelFile::from_bytes(&v3).unwrap().model, want);
+    assert_eq!(decode(&v3), Err(ModelError::UnknownVersion { found: 3 }));
+    // A version 3 header over a version 4 payload leaves bytes over; a
+    // version 4 header over a version 3 payload lacks the matrix.
+    let mut wrong = v4.clone();
+    wrong[4] = 3;
+    fix_crc(&mut wrong);
+    assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
+    let mut wrong = v3.clone();
+    wrong[4] = 4;
+    fix_crc(&mut wrong);
+    assert_eq!(decode(&wrong), Err(ModelError::Undecodable));
+}
+
+/// Field 33's checks: its length (0 or d²), finite values, and the chart's
+/// range check on the matrix and on the gains (FORMAT.md).
+#[test]
+fn the_whitening_matrix_is_checked() {
+    let check = |f: &dyn Fn(&mut ModelOwned)| {
+        let mut m = tiny();
+        f(&mut m);
+        m.validate()
+    };
+    let field = Field::ResidualChart;
+    assert_eq!(check(&|_| ()), Ok(()));
+    assert_eq!(check(&|m| m.resid_whiten.clear()), Ok(()));
+    assert_eq!(
+        check(&|m| m.resid_whiten.truncate(3)),
+        Err(ModelError::Inconsistent {
+            field,
+            expected: 4,
+            found: 3
+        })
+    );
+    assert_eq!(
+        check(&|m| m.resid_whiten[2] = f32::NAN),
+        Err(ModelError::NonFinite { field, index: 2 })
+    );
+    // Row 1 reaches (0.25 + w) · 1.845e19: within 1e37 up to w ≈ 5.4e17.
+    assert_eq!(check(&|m| m.resid_whiten[3] = 5e17), Ok(()));
+    assert_eq!(
+        check(&|m| m.resid_whiten[3] = 6e17),
+        Err(ModelError::OutOfRange { field })
+    );
+    // Row sums that overflow are refused, even for a feature whose chart
+    // is off (gain 0: ∞ · 0 would be NaN on the device).
+    assert_eq!(
+        check(&|m| m.resid_whiten[2] = f32::MAX),
+        Err(ModelError::OutOfRange { field })
+    );
+    // Without a matrix the gain is held: (1.845e19 + 0.25) · 2e17 fits,
+    // · 1e18 does not.
+    assert_eq!(
+        check(&|m| {
+            m.resid_whiten.clear();
+            m.resid_gain[0] = 2e17;
+        }),
+        Ok(())
+    );
+    assert_eq!(
+        check(&|m| {
+            m.resid_whiten.clear();
+            m.resid_gain[0] = 1e18;
+        }),
+        Err(ModelError::OutOfRange { field })
+    );
 }

@@ -76,6 +76,7 @@ fn raw_pca_model(rows: &[f64], d: usize, m: usize) -> (ModelOwned, Vec<f64>) {
         resid_center: vec![0.0; d],
         resid_gain: vec![0.0; d],
         resid_limit: 1.0,
+        resid_whiten: Vec::new(),
     };
     (model, values)
 }

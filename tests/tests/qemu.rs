@@ -270,9 +270,9 @@ fn default_model() -> Vec<u8> {
     std::fs::read(board_dir().join("default.plumb")).expect("read default.plumb")
 }
 
-/// A second model: the default with every CUSUM and EWMA limit halved, the
-/// SPE's and T²'s per-sample limits halved too, and its own id, so it flags
-/// earlier and the greeting tells them apart.
+/// A second model: the default with every CUSUM and EWMA limit and the
+/// residual chart's halved, the SPE's and T²'s per-sample limits halved too,
+/// and its own id, so it flags earlier and the greeting tells them apart.
 fn second_model() -> Vec<u8> {
     let mut f = ModelFile::from_bytes(&default_model()).expect("default model");
     f.model.meta.id ^= 0x5a5a_5a5a;
@@ -284,6 +284,7 @@ fn second_model() -> Vec<u8> {
     for lim in [&mut m.spe, &mut m.t2] {
         lim.sample_limit *= 0.5;
     }
+    f.model.resid_limit *= 0.5;
     f.to_bytes().expect("encode the second model")
 }
 

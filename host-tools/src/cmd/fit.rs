@@ -230,6 +230,18 @@ pub struct FitArgs {
     )]
     pub design_shift: f64,
 
+    /// What the SPE's residual chart smooths: each feature's residual
+    /// whitened by the residuals' nominal covariance (model format 4), or
+    /// as it is
+    #[arg(
+        long,
+        value_enum,
+        value_name = "INPUT",
+        default_value_t = calibrate::ResidualInput::Whitened,
+        help_heading = "Calibration"
+    )]
+    pub residual_input: calibrate::ResidualInput,
+
     /// EWMA smoothing constant λ in (0, 1]
     #[arg(
         long,
@@ -340,6 +352,7 @@ impl FitArgs {
                 clear_fraction: self.clear_fraction,
                 fault_z: self.fault_z,
                 threads: usize::from(self.read.threads),
+                residual_input: self.residual_input,
             },
             device_check: !self.no_device_check,
             threads: usize::from(self.read.threads),

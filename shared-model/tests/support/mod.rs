@@ -115,5 +115,6 @@ pub fn example_model(d: usize, m: usize, k: usize, seed: u64) -> ModelOwned {
             .map(|i| if i == 1 { 0.0 } else { 0.5 + i as f32 * 0.05 })
             .collect(),
         resid_limit: 1.75,
+        resid_whiten: Vec::new(),
     }
 }

@@ -101,6 +101,7 @@ fn synthetic(d: usize, m: usize, k: usize) -> Option<Model> {
         resid_center: heapless::Vec::new(),
         resid_gain: heapless::Vec::new(),
         resid_limit: 3.0,
+        resid_whiten: heapless::Vec::new(),
     };
     for _ in 0..d {
         model.mean.push(rng.next() * 0.1).ok()?;
