@@ -370,6 +370,23 @@ impl Detector {
         decoded
     }
 
+    /// [`Detector::load`] for a model built rather than read: `fill` writes
+    /// it into this detector's own model, from [`Model::EMPTY`], then it is
+    /// checked and the statistics start with warm-up. No model-sized value
+    /// (22 KiB at the capacities) is built on the stack. On error the
+    /// detector is [`Detector::EMPTY`], as after a failed load.
+    pub fn load_with(&mut self, fill: impl FnOnce(&mut Model)) -> Result<(), ModelError> {
+        self.model.clear();
+        fill(&mut self.model);
+        let loaded = self.check();
+        if loaded.is_ok() {
+            self.reset();
+        } else {
+            self.unload();
+        }
+        loaded
+    }
+
     /// Drops the model: back to [`Detector::EMPTY`], in place.
     pub fn unload(&mut self) {
         self.model.clear();

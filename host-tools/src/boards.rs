@@ -48,8 +48,8 @@ impl BoardMap {
 pub const BOARDS: [BoardMap; 2] = [
     BoardMap {
         name: "mps2-an386",
-        regions: [0x0004_0000, 0x0004_2000],
-        region_len: 0x2000,
+        regions: [0x0004_0000, 0x0004_8000],
+        region_len: 0x8000,
         erased: 0x00,
         how: "qemu-system-arm ... -device loader,file=IMAGE.hex -kernel plumb-board-mps2 \
               (a .bin image: -device loader,file=IMAGE.bin,addr=BASE,force-raw=on)",
@@ -220,7 +220,7 @@ mod tests {
     #[test]
     fn oversize_and_unknown_board_are_refused() {
         let b = board("mps2-an386").unwrap();
-        assert!(SlotImage::new(b, Slot::A, &vec![1u8; 0x2000], 1).is_err());
+        assert!(SlotImage::new(b, Slot::A, &vec![1u8; 0x8000], 1).is_err());
         assert!(board("nope").is_err());
     }
 }

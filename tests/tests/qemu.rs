@@ -718,14 +718,14 @@ fn uploads_switch_only_after_every_check() {
     still_old(&mut board, "a bad CRC");
 
     // Over capacity: larger than a slot, and a mixture the board cannot hold.
-    let (req, reason) = refused(up(&mut board, &vec![0x55; 9000], cfg));
+    let (req, reason) = refused(up(&mut board, &vec![0x55; 40_000], cfg));
     assert_eq!(
         (req, reason),
         (
             Request::UploadBegin,
             Reason::TooLarge {
-                total: 9000,
-                max: 7936
+                total: 40_000,
+                max: 32_512
             }
         )
     );

@@ -39,7 +39,7 @@ pub fn endpoint_places() -> Option<&'static mut Places> {
 /// `SLOT_B` right after it, in `memory.x`).
 pub const SLOT_MEMORY_BASE: usize = 0x0004_0000;
 /// Bytes of both regions together.
-pub const SLOT_MEMORY_LEN: usize = 0x4000;
+pub const SLOT_MEMORY_LEN: usize = 0x1_0000;
 
 /// The model-slot regions of code memory, owned: the emulated board's
 /// flash for models. Code memory on the MPS2 (and in QEMU) is SSRAM the

@@ -4,8 +4,8 @@
 //!
 //! | region | address | bytes | record (16 B) | model file |
 //! | --- | --- | --- | --- | --- |
-//! | `SLOT_A` | `0x0004_0000` | 8 KiB | `+0x000` | `+0x100`, at most 7936 B |
-//! | `SLOT_B` | `0x0004_2000` | 8 KiB | `+0x000` | `+0x100`, at most 7936 B |
+//! | `SLOT_A` | `0x0004_0000` | 32 KiB | `+0x000` | `+0x100`, at most 32,512 B |
+//! | `SLOT_B` | `0x0004_8000` | 32 KiB | `+0x000` | `+0x100`, at most 32,512 B |
 //!
 //! The layout, the order of writes and the read-back checks are
 //! [`FlashSlots`]'s, the same as on the flash boards (tested in the
@@ -35,7 +35,7 @@ use plumb_firmware::plumb_model::wire::Slot;
 use crate::mmio::{SlotMemory, SLOT_MEMORY_BASE};
 
 /// Size of one slot region in code memory.
-pub const REGION_LEN: usize = 0x2000;
+pub const REGION_LEN: usize = 0x8000;
 /// Offset of the model file in a region (the record is at offset 0).
 pub const DATA_OFFSET: usize = FILE_OFFSET;
 /// Bytes one slot holds.
