@@ -17,7 +17,9 @@
 //!
 //! * Nothing panics; `Detector::new` on a decoded model never panics either.
 //! * A sample that is not a fault has finite scores, bit-equal to
-//!   `Detector::score`, and leaves every EWMA and CUSUM a number (not NaN).
+//!   `Detector::score`, and leaves every EWMA and CUSUM a number (not NaN)
+//!   and every value of the residual chart finite (it steps in place, kept
+//!   in range by the model's validation).
 //! * A fault touches no statistic; `score` finds the same fault, except an
 //!   overflow of a standardised score, which only `update` computes.
 #![no_main]
@@ -109,6 +111,13 @@ fuzz_target!(|data: &[u8]| {
                     let (e, c) = (f32::from_bits(ewma), f32::from_bits(cusum));
                     assert!(!e.is_nan() && !c.is_nan(), "{s:?}: EWMA {e}, CUSUM {c}");
                 }
+                // The residual chart steps in place without a check: the
+                // model's range check must keep every value finite.
+                let chart = det.residual_chart();
+                assert!(
+                    chart.ewma.iter().all(|e| e.is_finite()) && chart.peak.is_finite(),
+                    "residual chart left the f32 range: {chart:?}"
+                );
             }
             other => panic!("fault and scores disagree: {other:?}"),
         }

@@ -17,15 +17,30 @@ use std::collections::VecDeque;
 use std::convert::Infallible;
 
 /// The model every endpoint run boots on, and the fallback of the detector
-/// target: d = 4, m = 2, k = 2.
+/// target: d = 4, m = 2, k = 2, with a whitening matrix (format 4).
 pub fn builtin_model() -> ModelOwned {
-    support::example_model(4, 2, 2, 7)
+    whitened(support::example_model(4, 2, 2, 7))
 }
 
 /// A second valid model (another id, mean and mixture) to upload.
 pub fn other_model(id: u32) -> ModelOwned {
-    let mut m = support::example_model(4, 2, 2, 11);
+    let mut m = whitened(support::example_model(4, 2, 2, 11));
     m.meta.id = id;
+    m
+}
+
+/// `m` with a dense whitening matrix: unit diagonal, off-diagonal entries
+/// of ±0.25 and ±0.5, so the fuzzer starts from models whose chart mixes
+/// every residual.
+fn whitened(mut m: ModelOwned) -> ModelOwned {
+    let d = usize::from(m.dims.features);
+    m.resid_whiten = (0..d * d)
+        .map(|ij| match (ij / d, ij % d) {
+            (i, j) if i == j => 1.0,
+            (i, j) if (i + j) % 2 == 0 => 0.25,
+            _ => -0.5,
+        })
+        .collect();
     m
 }
 
