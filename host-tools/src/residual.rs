@@ -1,7 +1,9 @@
-//! Calibration of the SPE's residual chart (model format 3).
+//! Calibration of the SPE's residual chart (model formats 3 and 4).
 //!
 //! The chart keeps one EWMA per feature of that feature's PCA residual
-//! `r_i = z_i − (P Pᵀ z)_i` ([`plumb_firmware::ResidualChart`]). A shift in one
+//! `r_i = z_i − (P Pᵀ z)_i` ([`plumb_firmware::ResidualChart`]), whitened
+//! first by default (format 4, "Whitening" below: steps 1–4 then read `r_i`
+//! as the whitened `v_i`). A shift in one
 //! sensor's relation to the others shows in its own residual long before it
 //! moves the sum of all squared residuals (the SPE), but the features differ
 //! in memory: a temperature's residual wanders for thousands of samples, a

@@ -368,13 +368,15 @@ macro_rules! model_type {
             /// `(g(SPE) − center_c) / spread_c`, `c` the sample's most likely
             /// component.
             pub spe_spread_by_mode: $mix,
-            /// Centre of each feature's residual `r_i = z_i − (P Pᵀ z)_i` on
-            /// the calibration samples, `d` values.
+            /// Centre of each feature's chart input `v_i` on the calibration
+            /// samples, `d` values: `v_i` is the residual
+            /// `r_i = z_i − (P Pᵀ z)_i`, whitened when the model has a
+            /// matrix (`resid_whiten`).
             pub resid_center: $feat,
             /// Gain of each feature's residual chart, `d` values, ≥ 0: the
-            /// chart of feature `i` smooths `(r_i − center_i) · gain_i` by
+            /// chart of feature `i` smooths `(v_i − center_i) · gain_i` by
             /// an EWMA (the monitor's λ). The gain scales each feature's
-            /// smoothed residual to its own nominal tail, so one limit serves
+            /// smoothed input to its own nominal tail, so one limit serves
             /// features of any memory; 0 turns that feature's chart off.
             pub resid_gain: $feat,
             /// Limit on the absolute value of every feature's residual EWMA
