@@ -342,3 +342,78 @@ fn array_logs_written_by_numpy_read_as_their_csv() {
     }
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+#[test]
+fn residual_whitening_matches_numpy_pinv() {
+    // The residual chart's whitening matrix (`plumb::residual::whitening`,
+    // model format 4) against numpy's `pinv(S, rcond=1e-8, hermitian=True)`
+    // on the same float32 residuals (tests/python/ref_whiten.py): the
+    // residuals of a PCA keeping m components, so S has rank d − m and the
+    // pseudo-inverse must drop exactly the m null directions.
+    //
+    // Tolerance, from the method. Both sides form S in f64 from the same
+    // rows; each entry is a sum of n products, so ‖ΔS‖₂ ≤ ‖ΔS‖_F ≤
+    // E = 2·d·n·ε·s_max (both sides' summation errors; s_max the largest
+    // variance). To first order the pseudo-inverse on the kept subspace
+    // moves by ‖ΔS⁺‖ ≤ 3·E / λ_min² (the inverse of the kept eigenvalues,
+    // and the tilt of the null space by E / λ_min; Stewart & Sun,
+    // *Matrix Perturbation Theory*, 1990, ch. III; reference from memory),
+    // λ_min the smallest kept eigenvalue. Then W_ij = S⁺_ij / √a_i,
+    // a_i = S⁺_ii, moves by at most ‖ΔS⁺‖ (1/√a_i + |S⁺_ij| / (2 a_i^{3/2}))
+    // = ‖ΔS⁺‖ (1 + |W_ij| / (2 √a_i)) / √a_i, and plumb stores W in f32
+    // (2⁻²⁴ relative).
+    let mut worst = 0.0f64;
+    for (set, m) in [("wine", 3usize), ("breast_cancer", 6)] {
+        let r = reference("ref_whiten.py", &json!({ "dataset": set, "components": m }));
+        let (rows, d) = rows_of(&r["residuals"]);
+        let n = rows.len() / d;
+        let w_ref: Vec<f64> = r["w"].as_array().unwrap().iter().flat_map(floats).collect();
+        let eig = floats(&r["eigenvalues"]);
+        assert_eq!(w_ref.len(), d * d);
+        // The m null directions are dropped, the d − m real ones kept: the
+        // check is not degenerate.
+        let lambda_min = eig[d - m - 1];
+        assert!(
+            eig[d - m] < 1e-8 * eig[0] && lambda_min > 1e-8 * eig[0],
+            "{set}: {eig:?}"
+        );
+        // The residuals are float32 values; JSON carries them as decimals,
+        // which serde_json reads to within an f64 ulp, so rounding to f32
+        // gives back the values numpy used.
+        let rows32: Vec<f32> = rows.iter().map(|v| *v as f32).collect();
+        assert!(rows32
+            .iter()
+            .zip(&rows)
+            .all(|(a, b)| (f64::from(*a) - b).abs() <= 2.0 * f64::EPSILON * b.abs()));
+        let starts = [0usize];
+        let res = plumb::residual::Residuals {
+            d,
+            rows: &rows32,
+            starts: &starts,
+            warmup: 0,
+            dwell: 1,
+        };
+        let w = plumb::residual::whitening(&res);
+        let s_max = (0..d)
+            .map(|j| (0..n).map(|i| rows[i * d + j].powi(2)).sum::<f64>() / n as f64)
+            .fold(0.0, f64::max);
+        let e = 2.0 * (d * n) as f64 * f64::EPSILON * s_max;
+        let dsp = 3.0 * e / (lambda_min * lambda_min);
+        for i in 0..d {
+            // √a_i from the reference: W_ii = a_i / √a_i.
+            let sqrt_a = w_ref[i * d + i];
+            for j in 0..d {
+                let (ours, theirs) = (f64::from(w[i * d + j]), w_ref[i * d + j]);
+                let bound = dsp * (1.0 + theirs.abs() / (2.0 * sqrt_a)) / sqrt_a
+                    + theirs.abs() * 2f64.powi(-24);
+                let err = (ours - theirs).abs();
+                assert!(
+                    err <= bound,
+                    "{set} W[{i}][{j}]: {ours} vs {theirs} (error {err:e} > bound {bound:e})"
+                );
+                worst = worst.max(err / bound);
+            }
+        }
+    }
+    println!("whitening: worst error / bound {worst:.2e}");
+}
