@@ -587,10 +587,16 @@ impl Summary {
         } else {
             let _ = writeln!(
                 o,
-                "  spe residual chart: hot when any feature's EWMA of (r - centre) x gain is \
-                 beyond {:.4} in absolute value ({on} of {} features on; Features above)",
+                "  spe residual chart: hot when any feature's EWMA of (v - centre) x gain is \
+                 beyond {:.4} in absolute value ({on} of {} features on; v the {} residual; \
+                 Features above)",
                 self.resid_limit,
-                self.features.len()
+                self.features.len(),
+                if self.resid_whitened {
+                    "whitened"
+                } else {
+                    "plain"
+                }
             );
         }
         match self.spe_limit_jm {
@@ -696,10 +702,11 @@ impl Summary {
             if let Some(r) = &c.residual {
                 let _ = writeln!(
                     o,
-                    "  spe residual chart: each feature's standardised residual EWMA scaled to its \
+                    "  spe residual chart: each feature's standardised {}residual EWMA scaled to its \
                      {:.6} quantile on the held-out rows, or to the 99% prediction bound of a new \
                      log's level from the {} held-out logs (t = {:.3}) where that is larger \
                      ({} feature{}); limit {:.4}{} ({} alarm{})",
+                    if self.resid_whitened { "whitened " } else { "" },
                     r.tail_level,
                     r.logs,
                     r.level_t,
@@ -852,9 +859,10 @@ pub struct ModelDiff {
     pub weights: Pair<Vec<f32>>,
     /// Limits per score.
     pub limits: Vec<LimitChange>,
-    /// The SPE's residual chart: its limit, and how many features have it
+    /// The SPE's residual chart: its limit, how many features have it on,
+    /// and whether it smooths whitened residuals.
     /// on (gain > 0).
-    pub residual_chart: Pair<(f32, usize)>,
+    pub residual_chart: Pair<(f32, usize, bool)>,
     /// State-machine settings.
     pub monitor: Pair<MonitorInfo>,
     /// Standardisation per feature, in model order.
@@ -894,7 +902,7 @@ impl ModelDiff {
                 .collect(),
             residual_chart: [old, new].map(|s| {
                 let on = s.features.iter().filter(|f| f.resid_gain > 0.0).count();
-                (s.resid_limit, on)
+                (s.resid_limit, on, s.resid_whitened)
             }),
             monitor: [old.monitor.clone(), new.monitor.clone()],
             features: old
@@ -988,11 +996,12 @@ impl ModelDiff {
                 format!("{:.4} -> {:.4}", a.ewma_limit, b.ewma_limit)
             );
         }
-        let chart = |(limit, on): (f32, usize)| {
+        let chart = |(limit, on, whitened): (f32, usize, bool)| {
             if on == 0 {
                 "off".to_string()
             } else {
-                format!("limit {limit:.4} on {on} features")
+                let input = if whitened { "whitened" } else { "plain" };
+                format!("limit {limit:.4} on {on} features, {input}")
             }
         };
         let _ = writeln!(

@@ -657,6 +657,7 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
         .filter(|f| f["resid_gain"].as_f64().unwrap() > 0.0)
         .count();
     assert_eq!(ch["residual_chart"][1][1].as_u64(), Some(on as u64));
+    assert_eq!(ch["residual_chart"][1][2], v["resid_whitened"]);
     // The text ends with the changes.
     let o = refit(&[]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
@@ -1454,4 +1455,30 @@ fn the_residual_chart_is_off_with_one_held_out_log_and_on_with_two() {
         said(&o)
     );
     assert!(gains(&two).iter().any(|g| *g > 0.0), "{:?}", gains(&two));
+    // On by default, the chart smooths whitened residuals (format 4: a 4 × 4
+    // matrix); `--residual-input plain` keeps format 3's chart (no matrix).
+    let matrix = |out: &Path| {
+        let file = plumb_model::file::ModelFile::from_bytes(&std::fs::read(out).unwrap()).unwrap();
+        file.model.resid_whiten
+    };
+    assert_eq!(matrix(&two).len(), 16);
+    let text = String::from_utf8_lossy(&plumb_ok(&["inspect", s(&two)]).stdout).into_owned();
+    assert!(text.contains("v the whitened residual"), "{text}");
+    let plain = dir.path("plain.plumb");
+    let mut args = vec!["fit", s(&a), "--holdout", s(&held), "--out", s(&plain)];
+    args.extend(opts);
+    args.extend(["--residual-input", "plain"]);
+    plumb_ok(&args);
+    assert!(matrix(&plain).is_empty());
+    assert!(
+        gains(&plain).iter().any(|g| *g > 0.0),
+        "{:?}",
+        gains(&plain)
+    );
+    let text = String::from_utf8_lossy(&plumb_ok(&["inspect", s(&plain)]).stdout).into_owned();
+    assert!(text.contains("v the plain residual"), "{text}");
+    refused(
+        &["fit", s(&a), "--residual-input", "sideways"],
+        &["--residual-input", "sideways"],
+    );
 }
