@@ -1025,8 +1025,16 @@ pub fn calibrate(
              new data: a chart may raise {chart_budget:.4} false alarms in its {chart_samples} \
              samples, but its limit can only sit at its highest held-out peak, which new data \
              of that length exceed about once. Expect up to about one false alarm per chart \
-             per {chart_samples} samples, or hold out at least {:.0} rows",
-            2.0 * CHARTS as f64 / cfg.false_alarm_rate
+             per {chart_samples} samples, or hold out at least {:.0} rows{}",
+            2.0 * CHARTS as f64 / cfg.false_alarm_rate,
+            if cfg.residual_input == ResidualInput::Whitened {
+                ". The whitened residual chart leans most on what the held-out rows show: \
+                 calibrated on 3 x 10^5 rows of three robots it flagged a fourth robot's \
+                 nominal log (BENCHMARKS.md, Detection, attempt 12); `--residual-input plain` \
+                 is less sensitive and less specific to the robots held out"
+            } else {
+                ""
+            }
         ));
     }
     // Work items: the EWMA design, then the CUSUM design for each k.
