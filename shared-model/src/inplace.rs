@@ -2,8 +2,8 @@
 //!
 //! `postcard::from_bytes::<Model>` builds the whole model (about 22 KiB, most
 //! of it the 16 KiB whitening matrix and the 4 KiB loadings vector) as a value
-//! and moves it through several
-//! frames on its way out, which costs a device tens of KiB of stack. The seed
+//! and moves it through several frames on its way out, which costs a device
+//! tens of KiB of stack. The seed
 //! here writes every field where it already lives instead: small fields
 //! (identity, dimensions, θ, monitor parameters) are decoded as values and
 //! assigned; each `heapless::Vec<f32, N>` is cleared and filled element by
