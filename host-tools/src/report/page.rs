@@ -398,12 +398,18 @@ fn legend(o: &mut String, c: &Collected<'_>) {
         let _ = writeln!(
             o,
             "<p>Below the three scores, the {RESID_NAME}: one EWMA per feature (the same λ) of \
-             (<i>r<sub>i</sub></i> − centre<sub><i>i</i></sub>) · gain<sub><i>i</i></sub>, \
-             <i>r<sub>i</sub></i> the feature's PCA residual, each gain scaling the feature to its \
+             (<i>v<sub>i</sub></i> − centre<sub><i>i</i></sub>) · gain<sub><i>i</i></sub>, \
+             <i>v<sub>i</sub></i> the feature's PCA residual{}, each gain scaling the feature to its \
              own nominal tail. The line is the largest |EWMA| over the features; above the limit \
              <i>L</i> = {} the chart is hot and makes the SPE a driver. A flag raised while it was \
              hot is labelled in that panel, and in the tables, with the feature of the largest \
              EWMA.</p>",
+            if c.file.model.resid_whiten.is_empty() {
+                ""
+            } else {
+                " whitened by the residuals' nominal covariance (it stands for a bias in that \
+                 sensor alone)"
+            },
             sig(f64::from(c.file.model.resid_limit))
         );
     } else {
