@@ -246,29 +246,22 @@ impl Residuals<'_> {
         let mut highest = f32::NEG_INFINITY;
         for log in self.logs() {
             let mut ewma = vec![0.0f32; self.d];
-            let mut next = vec![0.0f32; self.d];
             let mut run = 0u32;
             for (i, row) in log.enumerate() {
-                // As the detector steps the chart (`score`): the next values,
-                // kept only when all are finite, and the largest |value|.
+                // As the detector steps the chart, in place
+                // (`score::chart_step`; the rows are its inputs, already
+                // whitened), and the largest |value|. The model's range check
+                // keeps every value finite, so no sample is dropped here.
                 let mut peak = 0.0f32;
-                let mut finite = true;
-                for ((((o, e), r), c), g) in next
+                for (((e, r), c), g) in ewma
                     .iter_mut()
-                    .zip(&ewma)
                     .zip(self.row(row))
                     .zip(&model.resid_center)
                     .zip(&model.resid_gain)
                 {
-                    *o = chart_next(*e, *r, *c, *g, lambda);
-                    finite &= o.abs() < f32::INFINITY;
-                    peak = peak.max(o.abs());
+                    *e = chart_next(*e, *r, *c, *g, lambda);
+                    peak = peak.max(e.abs());
                 }
-                if !finite {
-                    // The detector faults such a sample; so do we.
-                    continue;
-                }
-                std::mem::swap(&mut ewma, &mut next);
                 if i < warmup {
                     continue;
                 }
