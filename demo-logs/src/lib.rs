@@ -51,7 +51,18 @@ pub struct Config {
     pub drift_rows: usize,
     /// 0-based data row at which every drift or fault starts.
     pub drift_onset: usize,
+    /// The `gain_change` scenario's change of the left motor current's gain,
+    /// in hundredths of a percent (400: the reading becomes 1.04 times the
+    /// current). Only that log depends on it.
+    pub gain_change_bp: i32,
 }
+
+/// The committed demo's gain change: +4 %.
+pub const DEMO_GAIN_CHANGE_BP: i32 = 400;
+
+/// Gain changes [`Config::validate`] accepts, in hundredths of a percent:
+/// from −50 % to +100 %, not 0.
+pub const GAIN_CHANGE_BP_RANGE: core::ops::RangeInclusive<i32> = -5000..=10000;
 
 /// Seed of the committed demo set.
 pub const DEMO_SEED: u64 = 424_242;
@@ -66,6 +77,7 @@ impl Default for Config {
             holdout_rows_per_log: 6000,
             drift_rows: 8000,
             drift_onset: 3000,
+            gain_change_bp: DEMO_GAIN_CHANGE_BP,
         }
     }
 }
@@ -86,7 +98,22 @@ impl Config {
                 self.drift_onset, self.drift_rows
             ));
         }
+        if self.gain_change_bp == 0 || !GAIN_CHANGE_BP_RANGE.contains(&self.gain_change_bp) {
+            return bad(format!(
+                "gain_change_bp ({}) must be from {} to {} and not 0",
+                self.gain_change_bp,
+                GAIN_CHANGE_BP_RANGE.start(),
+                GAIN_CHANGE_BP_RANGE.end()
+            ));
+        }
         Ok(())
+    }
+
+    /// The factor the `gain_change` scenario multiplies its reading by:
+    /// `(10000 + gain_change_bp) / 10000`, correctly rounded (1.04 for the
+    /// committed demo, the same double as the literal).
+    pub fn gain_change_factor(&self) -> f64 {
+        f64::from(10_000 + self.gain_change_bp) / 10_000.0
     }
 }
 
@@ -276,6 +303,7 @@ pub fn write_demo(dir: &Path, cfg: &Config) -> io::Result<Manifest> {
             d.drift,
             cfg.drift_onset,
         );
+        sim.set_gain_change(cfg.gain_change_factor());
         csv::write_log(&path, &mut sim, cfg.drift_rows)?;
         table.push_str(d.scenario);
         table.push_str(",drift/");

@@ -4,7 +4,7 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 use std::time::Instant;
 
-use plumb_scenario::{write_bulk_holdout, write_demo, Config};
+use plumb_scenario::{write_bulk_holdout, write_demo, Config, GAIN_CHANGE_BP_RANGE};
 
 const USAGE: &str = "\
 plumb-scenario: write the plumbline demo logs (invented warehouse tugger drive module)
@@ -24,6 +24,8 @@ OPTIONS:
     --holdout-log-rows <N>   Rows per committed held-out log [default: 6000]
     --drift-rows <N>         Rows per drift log [default: 8000]
     --drift-onset <N>        0-based row where drifts and faults start [default: 3000]
+    --gain-change <PERCENT>  Gain change of the gain_change log's current reading,
+                             from -50 to 100, not 0, in steps of 0.01 [default: 4]
     --holdout-rows <N>       Also write N rows of extra nominal held-out data
     --holdout-out <DIR>      Folder for that data [default: <out>/generated]
     --holdout-files <N>      Number of files to split it into
@@ -46,6 +48,40 @@ fn parse_count(flag: &str, value: &str) -> Result<usize, String> {
     cleaned
         .parse::<usize>()
         .map_err(|_| format!("{flag} expects a non-negative whole number, got `{value}`"))
+}
+
+/// A percentage with at most two decimals, in hundredths of a percent
+/// (`4` → 400, `-2.5` → -250), within [`GAIN_CHANGE_BP_RANGE`] and not 0.
+fn parse_percent(flag: &str, value: &str) -> Result<i32, String> {
+    let (lo, hi) = (GAIN_CHANGE_BP_RANGE.start(), GAIN_CHANGE_BP_RANGE.end());
+    let expected = || {
+        format!(
+            "{flag} expects a percentage from {} to {}, not 0, with at most two decimals, got `{value}`",
+            lo / 100,
+            hi / 100
+        )
+    };
+    let (neg, digits) = match value.strip_prefix('-') {
+        Some(rest) => (true, rest),
+        None => (false, value.strip_prefix('+').unwrap_or(value)),
+    };
+    let (whole, frac) = digits.split_once('.').unwrap_or((digits, ""));
+    let all_digits = |s: &str| s.bytes().all(|b| b.is_ascii_digit());
+    if whole.is_empty()
+        || whole.len() > 3
+        || frac.len() > 2
+        || !all_digits(whole)
+        || !all_digits(frac)
+    {
+        return Err(expected());
+    }
+    let whole: i32 = whole.parse().map_err(|_| expected())?;
+    let frac: i32 = format!("{frac:0<2}").parse().map_err(|_| expected())?;
+    let bp = (whole * 100 + frac) * if neg { -1 } else { 1 };
+    if bp == 0 || !GAIN_CHANGE_BP_RANGE.contains(&bp) {
+        return Err(expected());
+    }
+    Ok(bp)
 }
 
 fn parse_args(mut it: impl Iterator<Item = String>) -> Result<Option<Args>, String> {
@@ -87,6 +123,7 @@ fn parse_args(mut it: impl Iterator<Item = String>) -> Result<Option<Args>, Stri
             }
             "--drift-rows" => a.cfg.drift_rows = parse_count(&flag, &value(&flag)?)?,
             "--drift-onset" => a.cfg.drift_onset = parse_count(&flag, &value(&flag)?)?,
+            "--gain-change" => a.cfg.gain_change_bp = parse_percent(&flag, &value(&flag)?)?,
             "--holdout-rows" => a.holdout_rows = Some(parse_count(&flag, &value(&flag)?)?),
             "--holdout-out" => a.holdout_out = Some(PathBuf::from(value(&flag)?)),
             "--holdout-files" => a.holdout_files = Some(parse_count(&flag, &value(&flag)?)?),
@@ -275,5 +312,36 @@ mod tests {
             assert!(!e.contains("_per_log"), "{e}");
         }
         assert!(parse_args(["--out", "d"].iter().map(|s| s.to_string())).is_ok());
+    }
+
+    #[test]
+    fn gain_change_is_read_in_hundredths_of_a_percent() {
+        let bp = |v: &str| parse_percent("--gain-change", v);
+        assert_eq!(bp("4"), Ok(400));
+        assert_eq!(bp("+4"), Ok(400));
+        assert_eq!(bp("6.5"), Ok(650));
+        assert_eq!(bp("0.01"), Ok(1));
+        assert_eq!(bp("-2.25"), Ok(-225));
+        assert_eq!(bp("100"), Ok(10_000));
+        assert_eq!(bp("-50"), Ok(-5_000));
+        for bad in [
+            "0", "0.00", "-0", "100.01", "-50.5", "1.234", "", ".5", "4%", "1e1", "--4", "x",
+        ] {
+            let e = bp(bad).unwrap_err();
+            assert!(
+                e.contains("--gain-change expects a percentage from -50 to 100"),
+                "{bad}: {e}"
+            );
+        }
+        let a = parse_args(
+            ["--out", "d", "--gain-change=10"]
+                .iter()
+                .map(|s| s.to_string()),
+        )
+        .unwrap()
+        .unwrap();
+        assert_eq!(a.cfg.gain_change_bp, 1_000);
+        assert_eq!(a.cfg.gain_change_factor(), 1.1);
+        assert_eq!(Config::default().gain_change_factor(), 1.04);
     }
 }

@@ -144,6 +144,8 @@ pub(crate) struct Sim {
     sensor: Rng,
     drift_rng: Rng,
     drift: Drift,
+    /// Factor on the left motor current's reading under [`Drift::GainChange`].
+    gain_change: f64,
     onset: usize,
     rows: usize,
     row: usize,
@@ -213,6 +215,7 @@ impl Sim {
             sensor,
             drift_rng,
             drift,
+            gain_change: 1.04,
             onset,
             rows,
             row: 0,
@@ -241,6 +244,13 @@ impl Sim {
         // Start somewhere inside an idle period.
         sim.dwell = sim.sample_dwell(Mode::Idle) * sim.process.uniform();
         sim
+    }
+
+    /// Sets the factor [`Drift::GainChange`] multiplies the left motor
+    /// current's reading by from the onset on (1.04 unless set). Draws no
+    /// random number: the log is otherwise the same.
+    pub(crate) fn set_gain_change(&mut self, factor: f64) {
+        self.gain_change = factor;
     }
 
     fn sample_dwell(&mut self, mode: Mode) -> f64 {
@@ -534,7 +544,7 @@ impl Sim {
         // ---- sensor-side drift and faults ---------------------------------
         if active {
             match self.drift {
-                Drift::GainChange => out[I_L] *= 1.04,
+                Drift::GainChange => out[I_L] *= self.gain_change,
                 Drift::SensorDropout => {
                     // The IMU drops off its bus in bursts.
                     if self.row == self.onset {

@@ -105,6 +105,7 @@ fn same_seed_gives_identical_bytes_and_other_seed_differs() {
         holdout_rows_per_log: 500,
         drift_rows: 900,
         drift_onset: 400,
+        gain_change_bp: 400,
     };
     let a = scratch("det-a");
     let b = scratch("det-b");
@@ -140,6 +141,89 @@ fn same_seed_gives_identical_bytes_and_other_seed_differs() {
         }
     }
     for d in [a, b, c] {
+        fs::remove_dir_all(d).unwrap();
+    }
+}
+
+/// The gain change option changes the one log it names, and only after its
+/// onset, by the factor asked for: each reading after the onset is the
+/// default log's times 1.10 / 1.04, within the rounding of the written
+/// values (three decimals: ±0.0005 on each side).
+#[test]
+fn the_gain_change_option_scales_one_reading_after_the_onset() {
+    let small = Config {
+        seed: 5,
+        train_rows_per_log: 50,
+        holdout_rows_per_log: 50,
+        drift_rows: 900,
+        drift_onset: 400,
+        ..Config::default()
+    };
+    let a = scratch("gain-a");
+    let b = scratch("gain-b");
+    write_demo(&a, &small).unwrap();
+    write_demo(
+        &b,
+        &Config {
+            gain_change_bp: 1_000,
+            ..small.clone()
+        },
+    )
+    .unwrap();
+    for p in all_files(&a) {
+        let rel = p.strip_prefix(&a).unwrap();
+        if !rel.ends_with("gain_change.csv") {
+            assert_eq!(
+                fs::read(&p).unwrap(),
+                fs::read(b.join(rel)).unwrap(),
+                "{}",
+                rel.display()
+            );
+        }
+    }
+    let rows = |dir: &std::path::Path| -> Vec<Vec<String>> {
+        fs::read_to_string(dir.join("drift").join("gain_change.csv"))
+            .unwrap()
+            .lines()
+            .map(|l| l.split(',').map(str::to_string).collect())
+            .collect()
+    };
+    let (ra, rb) = (rows(&a), rows(&b));
+    let col = ra[0]
+        .iter()
+        .position(|c| c == "motor_current_left[A]")
+        .unwrap();
+    assert_eq!(ra.len(), 901);
+    let ratio = 1.10 / 1.04;
+    let mut checked = 0;
+    for (i, (x, y)) in ra.iter().zip(&rb).enumerate().skip(1) {
+        let row = i - 1;
+        for (j, (u, v)) in x.iter().zip(y).enumerate() {
+            if j != col || row < small.drift_onset {
+                assert_eq!(u, v, "row {row} column {j}");
+            }
+        }
+        if row >= small.drift_onset {
+            let (u, v): (f64, f64) = (x[col].parse().unwrap(), y[col].parse().unwrap());
+            // |v - ratio u| <= 0.0005 (v's rounding) + ratio * 0.0005 (u's).
+            assert!(
+                (v - ratio * u).abs() <= 0.0005 * (1.0 + ratio) + 1e-12,
+                "row {row}: {u} {v}"
+            );
+            checked += usize::from(u > 1.0);
+        }
+    }
+    assert!(checked > 50, "only {checked} rows with a current above 1 A");
+    let e = write_demo(
+        &a,
+        &Config {
+            gain_change_bp: 0,
+            ..small.clone()
+        },
+    )
+    .unwrap_err();
+    assert!(e.to_string().contains("gain_change_bp (0)"), "{e}");
+    for d in [a, b] {
         fs::remove_dir_all(d).unwrap();
     }
 }
