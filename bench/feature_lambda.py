@@ -97,20 +97,7 @@ def evaluate(lams, cal_g, ev_g, drift_g, names, truth):
     s = scales(cal_g, lams)
     limit = max(float((ewma_abs(g, lams) / s).max()) for g in cal_g)
     ev_flags = sum(len(wr.flags((ewma_abs(g, lams) / s).max(axis=1), limit)) for g in ev_g)
-    cells = []
-    for sc_name in rc.SCENARIOS:
-        sc = ewma_abs(drift_g[sc_name], lams) / s
-        fl = wr.flags(sc.max(axis=1), limit)
-        early = [f for f in fl if f < rc.ONSET]
-        late = [f for f in fl if f >= rc.ONSET]
-        if late:
-            feat = names[int(np.argmax(sc[late[0]]))]
-            cell = f"{late[0] - rc.ONSET} ({feat}{'★' if feat in truth[sc_name] else ''})"
-        else:
-            cell = "none"
-        if early:
-            cell += f"; {len(early)} before the onset"
-        cells.append(cell)
+    cells = wr.drift_cells(lambda name: ewma_abs(drift_g[name], lams) / s, limit, names, truth)
     return limit, ev_flags, sum(len(g) for g in ev_g), cells
 
 
@@ -122,13 +109,7 @@ def main():
     args = ap.parse_args()
     CANDIDATES[:] = args.candidates
     t0 = time.perf_counter()
-    names, train, cal, ev, drift = rc.read_study_logs()
-    truth = rc.truth_features()
-    model = rc.Residuals(train)
-    sets = {"calibration": [model.residual(x) for x in cal],
-            "evaluation": [model.residual(x) for x in ev]}
-    drift_r = {s: model.residual(x) for s, x in drift.items()}
-    del cal, ev
+    names, truth, model, sets, drift_r = wr.residual_sets()
     lines = ["# A smoothing constant per feature for the whitened residual chart "
              "(`bench/feature_lambda.py`)", "",
              f"m = {model.m}; calibration {sum(len(r) for r in sets['calibration'])} rows in "

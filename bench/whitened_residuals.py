@@ -116,9 +116,17 @@ def run(kind, cal_r, ev_r, drift_r, names, truth):
     limit = max(float((e / scale).max()) for e in e_cal)
     del e_cal
     ev_flags = sum(len(flags((ewma_abs(stat(r)) / scale).max(axis=1), limit)) for r in ev_r)
+    cells = drift_cells(lambda s: ewma_abs(stat(drift_r[s])) / scale, limit, names, truth)
+    return stat, limit, ev_flags, sum(len(r) for r in ev_r), cells
+
+
+def drift_cells(scaled, limit, names, truth):
+    """One table cell per scenario: the delay of the first flag at or after the onset and the
+    feature furthest over at it (★: one the scenario changes), and the flags before the onset.
+    `scaled(s)` gives the chart's scaled |EWMA| rows (samples × features) on scenario s's log."""
     cells = []
     for s in rc.SCENARIOS:
-        sc = ewma_abs(stat(drift_r[s])) / scale
+        sc = scaled(s)
         fl = flags(sc.max(axis=1), limit)
         early = [f for f in fl if f < rc.ONSET]
         late = [f for f in fl if f >= rc.ONSET]
@@ -130,7 +138,19 @@ def run(kind, cal_r, ev_r, drift_r, names, truth):
         if early:
             cell += f"; {len(early)} before the onset"
         cells.append(cell)
-    return stat, limit, ev_flags, sum(len(r) for r in ev_r), cells
+    return cells
+
+
+def residual_sets():
+    """The study's inputs: feature names, the scenarios' changed features, the PCA fitted on
+    the training logs, its residuals on the calibration and evaluation sets ({name: [per log]})
+    and on each drift log ({scenario: residuals})."""
+    names, train, cal, ev, drift = rc.read_study_logs()
+    model = rc.Residuals(train)
+    sets = {"calibration": [model.residual(x) for x in cal],
+            "evaluation": [model.residual(x) for x in ev]}
+    drift_r = {s: model.residual(x) for s, x in drift.items()}
+    return names, rc.truth_features(), model, sets, drift_r
 
 
 def main():
@@ -138,13 +158,7 @@ def main():
     ap.add_argument("--out", default=os.path.join(rc.HERE, "whitened_residuals.out.md"))
     args = ap.parse_args()
     t0 = time.perf_counter()
-    names, train, cal, ev, drift = rc.read_study_logs()
-    truth = rc.truth_features()
-    model = rc.Residuals(train)
-    sets = {"calibration": [model.residual(x) for x in cal],
-            "evaluation": [model.residual(x) for x in ev]}
-    drift_r = {s: model.residual(x) for s, x in drift.items()}
-    del cal, ev
+    names, truth, model, sets, drift_r = residual_sets()
     lines = ["# The residual chart on whitened residuals (`bench/whitened_residuals.py`)", "",
              f"m = {model.m}; calibration {sum(len(r) for r in sets['calibration'])} rows in "
              f"{len(sets['calibration'])} logs, evaluation "
