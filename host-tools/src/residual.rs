@@ -79,7 +79,7 @@ use crate::calibrate::quantile_type1;
 use crate::error::{Error, Result};
 use plumb_firmware::score::chart_next;
 use plumb_firmware::stats::Welford;
-use plumb_model::{Model, ModelOwned};
+use plumb_model::{Model, ModelOwned, ModelView};
 use serde::Serialize;
 
 /// Held-out rows beyond each feature's tail quantile (step 2).
@@ -415,6 +415,70 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
     })
 }
 
+/// The residual chart's steady response to a bias on one feature: entry
+/// `j` of `response(model, i)` is how far chart `j`'s EWMA moves, in the
+/// units of its limit, per unit of a constant bias added to feature `i`
+/// alone (in that feature's own units), once the EWMA has settled.
+///
+/// In exact arithmetic (every step of the detector is linear in the sample
+/// until the absolute value): a bias `b` moves `z_i` by `b / scale_i`, the
+/// residual by `u = (I − P Pᵀ) e_i · b / scale_i` (`P` the loadings), the
+/// chart's input by `W u` (`u` itself without a whitening matrix), and chart
+/// `j`'s smoothed value `gain_j ((W r)_j − centre_j)` by `gain_j (W u)_j`: an
+/// EWMA of a constant step settles at the step. Computed in f64 from the
+/// model's f32 values. Empty for an `i` out of range.
+pub fn bias_response(model: &ModelView<'_>, i: usize) -> Vec<f64> {
+    let d = usize::from(model.dims.features);
+    let m = usize::from(model.dims.components);
+    let (Some(scale), Some(row_i)) = (model.scale.get(i), model.loadings.get(i * m..(i + 1) * m))
+    else {
+        return Vec::new();
+    };
+    // u = (I − P Pᵀ) e_i, per unit of z_i.
+    let u: Vec<f64> = (0..d)
+        .map(|k| {
+            let pk = &model.loadings[k * m..(k + 1) * m];
+            let ppt: f64 = pk
+                .iter()
+                .zip(row_i)
+                .map(|(a, b)| f64::from(*a) * f64::from(*b))
+                .sum();
+            f64::from(u8::from(k == i)) - ppt
+        })
+        .collect();
+    let w = model.resid_whiten;
+    (0..d)
+        .map(|j| {
+            let v = if w.is_empty() {
+                u[j]
+            } else {
+                w[j * d..(j + 1) * d]
+                    .iter()
+                    .zip(&u)
+                    .map(|(a, b)| f64::from(*a) * b)
+                    .sum()
+            };
+            f64::from(model.resid_gain[j]) * v / f64::from(*scale)
+        })
+        .collect()
+}
+
+/// The constant bias on feature `i` alone, in its own units, that moves the
+/// residual chart's settled value to its limit: `limit / max_j
+/// |bias_response(model, i)_j|`. A bias this large or larger takes the
+/// chart's mean over the limit, so it is flagged within a few multiples of
+/// `1/λ` samples; a smaller one only when the nominal wander adds the rest,
+/// which on the demo happens down to about a quarter of it
+/// (`bench/gain_sweep.py`, BENCHMARKS.md). `None` when no chart moves (the
+/// chart off, or the feature's residual never reaches an input).
+pub fn bias_at_limit(model: &ModelView<'_>, i: usize) -> Option<f64> {
+    let peak = bias_response(model, i)
+        .iter()
+        .fold(0.0f64, |a, r| a.max(r.abs()));
+    let limit = f64::from(model.resid_limit);
+    (peak > 0.0 && limit > 0.0).then(|| limit / peak)
+}
+
 /// The residual chart off (a model over the device capacities, which the
 /// host calibrates without the device detector): every gain 0.
 pub fn off(model: &mut ModelOwned) {
@@ -667,5 +731,99 @@ mod tests {
         let g = c.features[1];
         assert!(g.row_tail > g.level_bound && g.tail == g.row_tail, "{g:?}");
         assert_eq!(c.level_bound_features, 1);
+    }
+}
+
+/// [`bias_response`] against the detector itself: the committed demo board
+/// model (fitted on the demo's training logs, whitened), fed a constant
+/// sample at the feature means and the same sample with a bias on one
+/// feature through the firmware's own `score` and `chart_step` until both
+/// charts have settled; the settled difference divided by the bias is the
+/// response. Tolerance: each settled value is an f32 sum of about 50
+/// rounded operations on terms of magnitude at most `g` (the largest
+/// settled `|gain_j ((W r)_j − centre_j)|` of the two samples, about 6
+/// here), so it is off by at most about 50 · 2⁻²⁴ · g; the check allows
+/// twice that on the difference of the two (about 3.5e-5; the worst error
+/// seen is printed). A response without the whitening
+/// matrix, the loadings or the scale is off by far more (checked below).
+#[cfg(test)]
+mod bias_tests {
+    use super::*;
+    use plumb_firmware::score::{chart_step, score, Derived};
+    use plumb_model::file::ModelFile;
+    use plumb_model::MAX_FEATURES;
+
+    const MODEL: &[u8] = include_bytes!("../../firmware/boards/mps2-an386/default.plumb");
+
+    fn settled(model: &Model, derived: &Derived, x: &[f32]) -> [f32; MAX_FEATURES] {
+        let mut buf = [0.0f32; MAX_FEATURES];
+        let mut ewma = [0.0f32; MAX_FEATURES];
+        for _ in 0..2000 {
+            score(model, derived, x, &mut buf).expect("scored");
+            chart_step(model, &buf, &mut ewma);
+        }
+        ewma
+    }
+
+    #[test]
+    fn the_bias_response_is_what_the_detector_does() {
+        let file = ModelFile::from_bytes(MODEL).expect("model");
+        let owned = &file.model;
+        let model = &owned.to_device().expect("within the device capacities");
+        assert!(
+            !model.resid_whiten.is_empty(),
+            "the fixture should be whitened"
+        );
+        let derived = Derived::new(model).expect("derived");
+        let d = usize::from(model.dims.features);
+        let x0: Vec<f32> = model.mean.to_vec();
+        let e0 = settled(model, &derived, &x0);
+        let view = owned.view();
+        let mut worst = 0.0f64;
+        for i in 0..d {
+            let b = 0.25 * f64::from(model.scale[i]);
+            let mut x = x0.clone();
+            x[i] += b as f32;
+            let b = f64::from(x[i]) - f64::from(x0[i]); // the bias the f32 sample carries
+            let e = settled(model, &derived, &x);
+            let g = e.iter().chain(&e0).fold(1.0f32, |a, v| a.max(v.abs()));
+            let tol = 2.0 * 50.0 * f64::from(f32::EPSILON) / 2.0 * f64::from(g);
+            let want = bias_response(&view, i);
+            assert_eq!(want.len(), d);
+            for j in 0..d {
+                let got = (f64::from(e[j]) - f64::from(e0[j])) / b;
+                let err = (got - want[j]).abs() * b;
+                worst = worst.max(err);
+                assert!(
+                    err <= tol,
+                    "feature {i}, chart {j}: detector {got}, formula {}",
+                    want[j]
+                );
+            }
+            let peak = want.iter().fold(0.0f64, |a, r| a.max(r.abs()));
+            let sure = bias_at_limit(&view, i).expect("every feature is seen");
+            assert!((sure * peak - f64::from(model.resid_limit)).abs() < 1e-9 * sure * peak);
+        }
+        eprintln!("worst settled difference off by {worst:.2e}");
+        // The formula's parts matter: without the whitening matrix the
+        // responses are off by far more than the tolerance.
+        let mut plain = owned.clone();
+        plain.resid_whiten.clear();
+        let off = (0..d)
+            .flat_map(|i| {
+                let a = bias_response(&view, i);
+                let p = bias_response(&plain.view(), i);
+                let b = 0.25 * f64::from(owned.scale[i]);
+                a.into_iter()
+                    .zip(p)
+                    .map(|(x, y)| (x - y).abs() * b)
+                    .collect::<Vec<_>>()
+            })
+            .fold(0.0f64, f64::max);
+        // 100 times the tolerance above at its largest (about 3.5e-5).
+        assert!(
+            off > 3.5e-3,
+            "without W the settled differences move by only {off}"
+        );
     }
 }

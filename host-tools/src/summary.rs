@@ -60,6 +60,11 @@ pub struct FeatureRow {
     pub resid_center: f32,
     /// Gain of the feature's residual chart (0: off).
     pub resid_gain: f32,
+    /// The constant bias on this feature alone, in its own units, that moves
+    /// the residual chart's settled value to its limit: flagged within about
+    /// `1/λ` samples from this size on ([`crate::residual::bias_at_limit`]);
+    /// `None` when no chart sees it.
+    pub bias_at_limit: Option<f64>,
 }
 
 /// One kept component.
@@ -209,6 +214,14 @@ fn fmt_arl(a: f64) -> String {
     }
 }
 
+/// `bias` as a percentage of `|mean|`, for a feature whose mean is at
+/// least one scale from 0 (a reading whose gain change is a bias of about
+/// the change times its mean); `None` otherwise.
+pub fn percent_of_mean(bias: f64, mean: f32, scale: f32) -> Option<f64> {
+    let mean = f64::from(mean).abs();
+    (mean >= f64::from(scale) && mean > 0.0).then(|| 100.0 * bias / mean)
+}
+
 /// `YYYY-MM-DD hh:mm:ss` (UTC) for seconds since the epoch, by the civil
 /// calendar algorithm of Hinnant ("days_from_civil", public domain).
 pub fn utc_string(secs: u64) -> String {
@@ -284,6 +297,7 @@ impl Summary {
                 scale: model.scale[i],
                 resid_center: model.resid_center[i],
                 resid_gain: model.resid_gain[i],
+                bias_at_limit: crate::residual::bias_at_limit(&model.view(), i),
             })
             .collect();
         let mixture = (0..k)
@@ -436,8 +450,15 @@ impl Summary {
             .max(7);
         let _ = writeln!(
             o,
-            "  {:>4}  {:<width$}  {:>12}  {:>12}  {:>12}  {:>12}",
-            "#", "feature", "mean", "scale", "resid centre", "resid gain"
+            "  {:>4}  {:<width$}  {:>12}  {:>12}  {:>12}  {:>12}  {:>13}  {:>9}",
+            "#",
+            "feature",
+            "mean",
+            "scale",
+            "resid centre",
+            "resid gain",
+            "bias at limit",
+            "of mean"
         );
         for (i, f) in self.features.iter().enumerate() {
             let label = if f.unit.is_empty() {
@@ -445,9 +466,17 @@ impl Summary {
             } else {
                 format!("{}[{}]", f.name, f.unit)
             };
+            let (bias, share) = match f.bias_at_limit {
+                Some(b) => (
+                    format!("{b:>13.5}"),
+                    percent_of_mean(b, f.mean, f.scale)
+                        .map_or_else(|| format!("{:>9}", "-"), |p| format!("{p:>8.1}%")),
+                ),
+                None => (format!("{:>13}", "-"), format!("{:>9}", "-")),
+            };
             let _ = writeln!(
                 o,
-                "  {:>4}  {:<width$}  {:>12.5}  {:>12.5}  {:>12.5}  {:>12.5}",
+                "  {:>4}  {:<width$}  {:>12.5}  {:>12.5}  {:>12.5}  {:>12.5}  {bias}  {share}",
                 i + 1,
                 label,
                 f.mean,
@@ -456,6 +485,14 @@ impl Summary {
                 f.resid_gain
             );
         }
+        let _ = writeln!(
+            o,
+            "  (bias at limit: a constant bias on that feature alone, in its units, that moves the \
+             residual chart's settled value to its limit, so it is flagged within about 1/lambda \
+             samples; smaller ones only when the nominal wander adds the rest. Of mean: the same as \
+             a share of the mean, about the gain change of that size, where the mean is at least one \
+             scale from 0)"
+        );
 
         let _ = writeln!(o, "\nPrincipal components (standardised features)");
         let _ = writeln!(

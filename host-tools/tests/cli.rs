@@ -658,11 +658,21 @@ fn refit_keeps_the_base_schema_and_reports_changes() {
         .count();
     assert_eq!(ch["residual_chart"][1][1].as_u64(), Some(on as u64));
     assert_eq!(ch["residual_chart"][1][2], v["resid_whitened"]);
+    // Each feature a chart watches says which constant bias moves the chart
+    // to its limit (`residual::bias_at_limit`, checked against the detector
+    // in its own test).
+    for f in v["features"].as_array().unwrap() {
+        if f["resid_gain"].as_f64().unwrap() > 0.0 {
+            let b = f["bias_at_limit"].as_f64();
+            assert!(b.is_some_and(|b| b > 0.0 && b.is_finite()), "{f}");
+        }
+    }
     // The text ends with the changes.
     let o = refit(&[]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let text = String::from_utf8_lossy(&o.stdout);
     for needle in [
+        "bias at limit",
         "Changes from the base model",
         "kept (4 features, same names, order and units)",
         "old explained",
