@@ -416,7 +416,7 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
 }
 
 /// The residual chart's steady response to a bias on one feature: entry
-/// `j` of `response(model, i)` is how far chart `j`'s EWMA moves, in the
+/// `j` of `bias_response(model, i)` is how far chart `j`'s EWMA moves, in the
 /// units of its limit, per unit of a constant bias added to feature `i`
 /// alone (in that feature's own units), once the EWMA has settled.
 ///
@@ -426,12 +426,20 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
 /// chart's input by `W u` (`u` itself without a whitening matrix), and chart
 /// `j`'s smoothed value `gain_j ((W r)_j − centre_j)` by `gain_j (W u)_j`: an
 /// EWMA of a constant step settles at the step. Computed in f64 from the
-/// model's f32 values. Empty for an `i` out of range.
+/// model's f32 values. Empty for an `i` out of range or a model whose
+/// vectors are shorter than its dimensions say (never a validated one).
 pub fn bias_response(model: &ModelView<'_>, i: usize) -> Vec<f64> {
     let d = usize::from(model.dims.features);
     let m = usize::from(model.dims.components);
-    let (Some(scale), Some(row_i)) = (model.scale.get(i), model.loadings.get(i * m..(i + 1) * m))
-    else {
+    let w = model.resid_whiten;
+    let sized = model.loadings.len() >= d * m
+        && model.resid_gain.len() >= d
+        && (w.is_empty() || w.len() >= d * d);
+    let (true, Some(scale), Some(row_i)) = (
+        sized,
+        model.scale.get(i),
+        model.loadings.get(i * m..(i + 1) * m),
+    ) else {
         return Vec::new();
     };
     // u = (I − P Pᵀ) e_i, per unit of z_i.
@@ -446,7 +454,6 @@ pub fn bias_response(model: &ModelView<'_>, i: usize) -> Vec<f64> {
             f64::from(u8::from(k == i)) - ppt
         })
         .collect();
-    let w = model.resid_whiten;
     (0..d)
         .map(|j| {
             let v = if w.is_empty() {
@@ -744,8 +751,8 @@ mod tests {
 /// settled `|gain_j ((W r)_j − centre_j)|` of the two samples, about 6
 /// here), so it is off by at most about 50 · 2⁻²⁴ · g; the check allows
 /// twice that on the difference of the two (about 3.5e-5; the worst error
-/// seen is printed). A response without the whitening
-/// matrix, the loadings or the scale is off by far more (checked below).
+/// seen is printed). A response that leaves out the whitening matrix is off
+/// by far more (checked at the end).
 #[cfg(test)]
 mod bias_tests {
     use super::*;

@@ -61,8 +61,8 @@ pub struct FeatureRow {
     /// Gain of the feature's residual chart (0: off).
     pub resid_gain: f32,
     /// The constant bias on this feature alone, in its own units, that moves
-    /// the residual chart's settled value to its limit: flagged within about
-    /// `1/λ` samples from this size on ([`crate::residual::bias_at_limit`]);
+    /// the residual chart's settled value to its limit: flagged within a few
+    /// times `1/λ` samples from this size on ([`crate::residual::bias_at_limit`]);
     /// `None` when no chart sees it.
     pub bias_at_limit: Option<f64>,
 }
@@ -488,8 +488,8 @@ impl Summary {
         let _ = writeln!(
             o,
             "  (bias at limit: a constant bias on that feature alone, in its units, that moves the \
-             residual chart's settled value to its limit, so it is flagged within about 1/lambda \
-             samples; smaller ones only when the nominal wander adds the rest. Of mean: the same as \
+             residual chart's settled value to its limit, so it is flagged within a few times \
+             1/lambda samples; smaller ones only when the nominal wander adds the rest. Of mean: the same as \
              a share of the mean, about the gain change of that size, where the mean is at least one \
              scale from 0)"
         );

@@ -13,8 +13,8 @@ pub const LONG_ABOUT: &str = "\
 Print what a model file holds: identity, features, PCA, mixture, limits and sizes (the
 same summary `plumb fit` prints, minus what only the fit knew), and whether it is signed
 and by which key id. Per feature it also gives the constant bias on that feature alone that
-moves the SPE's residual chart to its limit (flagged within about 1/lambda samples from
-that size on; smaller ones only when the nominal wander adds the rest), and that bias as
+moves the SPE's residual chart to its limit (flagged within a few times 1/lambda samples
+from that size on; smaller ones only when the nominal wander adds the rest), and that bias as
 a share of the feature's mean: about what a sensor offset or gain change must reach to
 be flagged promptly. A damaged or foreign file is refused with the reason (bad magic,
 unknown version, CRC mismatch, ...). With --trust KEY.pub the signature is checked too:
