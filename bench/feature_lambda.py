@@ -112,13 +112,9 @@ def main():
     names, truth, model, sets, drift_r = wr.residual_sets()
     lines = ["# A smoothing constant per feature for the whitened residual chart "
              "(`bench/feature_lambda.py`)", "",
-             f"m = {model.m}; calibration {sum(len(r) for r in sets['calibration'])} rows in "
-             f"{len(sets['calibration'])} logs, evaluation "
-             f"{sum(len(r) for r in sets['evaluation'])} rows; candidates {CANDIDATES}; design "
-             f"shift {DELTA} spread, limit prior {L0}; delays in samples after the onset.", "",
-             "| constants | calibrated on | limit | flags on the other set | "
-             + " | ".join(f"`{s}`" for s in rc.SCENARIOS) + " |",
-             "|---" * (4 + len(rc.SCENARIOS)) + "|"]
+             f"{wr.sizes(model, sets)}; candidates {CANDIDATES}; design "
+             f"shift {DELTA} spread, limit prior {L0}; delays in samples after the onset.", ""]
+    lines += wr.table_head("constants")
     chosen = []
     for a, b in [("calibration", "evaluation"), ("evaluation", "calibration")]:
         w = wr.Whitened(sets[a])

@@ -153,6 +153,20 @@ def residual_sets():
     return names, rc.truth_features(), model, sets, drift_r
 
 
+def sizes(model, sets):
+    """The report's line on the fit and the two sets' sizes."""
+    return (f"m = {model.m}; calibration {sum(len(r) for r in sets['calibration'])} rows in "
+            f"{len(sets['calibration'])} logs, evaluation "
+            f"{sum(len(r) for r in sets['evaluation'])} rows")
+
+
+def table_head(first):
+    """The two header lines of a table of charts against the scenarios."""
+    return ["| " + first + " | calibrated on | limit | flags on the other set | "
+            + " | ".join(f"`{s}`" for s in rc.SCENARIOS) + " |",
+            "|---" * (4 + len(rc.SCENARIOS)) + "|"]
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--out", default=os.path.join(rc.HERE, "whitened_residuals.out.md"))
@@ -160,13 +174,9 @@ def main():
     t0 = time.perf_counter()
     names, truth, model, sets, drift_r = residual_sets()
     lines = ["# The residual chart on whitened residuals (`bench/whitened_residuals.py`)", "",
-             f"m = {model.m}; calibration {sum(len(r) for r in sets['calibration'])} rows in "
-             f"{len(sets['calibration'])} logs, evaluation "
-             f"{sum(len(r) for r in sets['evaluation'])} rows; lambda = {LAMBDA}; delays in "
-             f"samples after the onset, flag raised after {DWELL} samples over the limit.", "",
-             "| chart input | calibrated on | limit | flags on the other set | "
-             + " | ".join(f"`{s}`" for s in rc.SCENARIOS) + " |",
-             "|---" * (4 + len(rc.SCENARIOS)) + "|"]
+             f"{sizes(model, sets)}; lambda = {LAMBDA}; delays in "
+             f"samples after the onset, flag raised after {DWELL} samples over the limit.", ""]
+    lines += table_head("chart input")
     diag = []
     imc = names.index("motor_current_left")
     for label, kind in [("u (shipped: per feature)", PerFeature), ("g (whitened)", Whitened)]:
