@@ -80,26 +80,15 @@ def chart(lams, cal_g, ev_g, drift_g):
     return limit, ev, {k: fl.ewma_abs(g, lams) / s for k, g in drift_g.items()}
 
 
-def first(scaled, limit, names, sc_name):
-    """(delay of the first flag at or after the onset or None, its feature, flags before the onset)."""
-    sc = scaled[sc_name]
-    f = wr.flags(sc.max(axis=1), limit)
-    early = [x for x in f if x < rc.ONSET]
-    late = [x for x in f if x >= rc.ONSET]
-    if not late:
-        return None, None, len(early)
-    return late[0] - rc.ONSET, names[int(np.argmax(sc[late[0]]))], len(early)
-
-
 def cells(charts, names, truth, scenarios):
     """The delays of the earliest of `charts` ([(scaled, limit)]) on each scenario."""
     out = []
     for sc_name in scenarios:
-        got = [first(scaled, limit, names, sc_name) for scaled, limit in charts]
+        got = [wr.first_flag(scaled[sc_name], limit, names) for scaled, limit in charts]
         hits = [g for g in got if g[0] is not None]
         if hits:
             delay, feat, _ = min(hits, key=lambda g: g[0])
-            c = f"`{sc_name}` {delay} ({feat}{'★' if feat in truth[sc_name] else ''})"
+            c = f"`{sc_name}` " + wr.delay_text(delay, feat, truth[sc_name])
         else:
             c = f"`{sc_name}` none"
         early = sum(g[2] for g in got)

@@ -120,23 +120,33 @@ def run(kind, cal_r, ev_r, drift_r, names, truth):
     return stat, limit, ev_flags, sum(len(r) for r in ev_r), cells
 
 
+def first_flag(sc, limit, names):
+    """On one log's scaled |EWMA| rows `sc` (samples × features) under `limit`: the delay of the
+    first flag at or after the onset (None without one), the feature furthest over at it, and
+    the number of flags before the onset."""
+    fl = flags(sc.max(axis=1), limit)
+    early = [f for f in fl if f < rc.ONSET]
+    late = [f for f in fl if f >= rc.ONSET]
+    if not late:
+        return None, None, len(early)
+    return late[0] - rc.ONSET, names[int(np.argmax(sc[late[0]]))], len(early)
+
+
+def delay_text(delay, feat, changed):
+    """`delay (feature)`, the feature starred when the scenario changes it."""
+    return f"{delay} ({feat}{'★' if feat in changed else ''})"
+
+
 def drift_cells(scaled, limit, names, truth):
     """One table cell per scenario: the delay of the first flag at or after the onset and the
     feature furthest over at it (★: one the scenario changes), and the flags before the onset.
     `scaled(s)` gives the chart's scaled |EWMA| rows (samples × features) on scenario s's log."""
     cells = []
     for s in rc.SCENARIOS:
-        sc = scaled(s)
-        fl = flags(sc.max(axis=1), limit)
-        early = [f for f in fl if f < rc.ONSET]
-        late = [f for f in fl if f >= rc.ONSET]
-        if late:
-            feat = names[int(np.argmax(sc[late[0]]))]
-            cell = f"{late[0] - rc.ONSET} ({feat}{'★' if feat in truth[s] else ''})"
-        else:
-            cell = "none"
+        delay, feat, early = first_flag(scaled(s), limit, names)
+        cell = "none" if delay is None else delay_text(delay, feat, truth[s])
         if early:
-            cell += f"; {len(early)} before the onset"
+            cell += f"; {early} before the onset"
         cells.append(cell)
     return cells
 
