@@ -1116,7 +1116,7 @@ pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRais
                 }
                 Statistic::Sample => (t.last_u > t.sample_u, raw, lim.sample_limit),
                 // Not in `Statistic::ALL`: listed after the loop.
-                Statistic::Residual { .. } => (false, 0.0, 0.0),
+                Statistic::Residual { .. } | Statistic::Slow { .. } => (false, 0.0, 0.0),
             };
             if over {
                 let c = Crossing {
@@ -1131,16 +1131,33 @@ pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRais
             }
         }
         let chart = det.residual_chart();
-        let resid_limit = det.model().resid_limit;
-        if s == Score::Spe && chart.peak > resid_limit {
-            let _ = crossed.push(Crossing {
-                score: ScoreKind::Spe,
-                statistic: Statistic::Residual {
-                    feature: chart.peak_feature,
-                },
-                value: chart.peak,
-                limit: resid_limit,
-            });
+        let model = det.model();
+        if s == Score::Spe {
+            for (value, limit, statistic) in [
+                (
+                    chart.peak,
+                    model.resid_limit,
+                    Statistic::Residual {
+                        feature: chart.peak_feature,
+                    },
+                ),
+                (
+                    chart.slow_peak,
+                    model.slow_limit,
+                    Statistic::Slow {
+                        feature: chart.slow_peak_feature,
+                    },
+                ),
+            ] {
+                if value > limit {
+                    let _ = crossed.push(Crossing {
+                        score: ScoreKind::Spe,
+                        statistic,
+                        value,
+                        limit,
+                    });
+                }
+            }
         }
     }
     DriftRaised {

@@ -1,7 +1,10 @@
 //! Per-sample scores: standardise, project, reconstruct, SPE, T², mixture NLL.
 
 use crate::math;
-use plumb_model::{Model, ModelError, MAX_COMPONENTS, MAX_FEATURES, MAX_MIXTURE, MAX_MIX_PARAMS};
+use plumb_model::{
+    Model, ModelError, MAX_COMPONENTS, MAX_FEATURES, MAX_MIXTURE, MAX_MIX_PARAMS, MAX_SLOW,
+    SLOW_PARAMS,
+};
 
 /// How many features the residual contributions name.
 pub const TOP_FEATURES: usize = 3;
@@ -219,49 +222,78 @@ pub struct ChartStep {
     pub peak: f32,
     /// Its feature (the first of equal ones).
     pub feature: u8,
+    /// The largest `|next EWMA|` over the slow charts (0 without any).
+    pub slow_peak: f32,
+    /// Its feature (the first of equal ones).
+    pub slow_feature: u8,
 }
 
 /// Steps the SPE's residual chart in place: each `ewma[i]` (the first `d`)
 /// becomes [`chart_next`] of its [`chart_input`] from the sample's residuals
-/// `r` (the first `d` values [`score`] left in its buffer). Call it only for
-/// a scored sample (every `r_i` finite and `r_i²` within `f32::MAX`): the
-/// model's validation then keeps every input and every EWMA value finite
+/// `r` (the first `d` values [`score`] left in its buffer); and each slow
+/// chart `slow[s]` (model format 5: the model's `slow_charts`, in feature
+/// order) becomes [`chart_next`] of the same input
+/// with its own constant, centre and gain. Call it only for a scored sample
+/// (every `r_i` finite and `r_i²` within `f32::MAX`): the model's validation
+/// then keeps every input and every EWMA value finite
 /// ([`plumb_model::CHART_INPUT_MAX`]), which is why the step needs no check
 /// and no second buffer.
 ///
-/// The peak is found on the bit patterns of the absolute values, whose
+/// The peaks are found on the bit patterns of the absolute values, whose
 /// integer order is the order of the values for every non-negative float:
-/// one integer comparison per feature.
+/// one integer comparison per chart.
 #[inline(always)]
-pub fn chart_step(model: &Model, r: &[f32], ewma: &mut [f32; MAX_FEATURES]) -> ChartStep {
+pub fn chart_step(
+    model: &Model,
+    r: &[f32],
+    ewma: &mut [f32; MAX_FEATURES],
+    slow: &mut [f32; MAX_SLOW],
+) -> ChartStep {
     let d = usize::from(model.dims.features).min(r.len());
     let r = r.get(..d).unwrap_or(&[]);
     let lambda = model.monitor.ewma_lambda;
-    let mut peak_bits = 0u32;
-    let mut at = 0usize;
+    let mut peak = [0u32; 2];
+    let mut at = [0usize; 2];
+    // The next slow chart's state and parameters (feature, λ, centre, gain).
+    let mut slow = slow
+        .iter_mut()
+        .zip(model.slow_charts.chunks_exact(SLOW_PARAMS));
+    let mut next_slow = slow.next();
     for (i, ((e, center), gain)) in ewma
         .iter_mut()
         .zip(model.resid_center.iter())
         .zip(model.resid_gain.iter())
         .enumerate()
     {
-        let next = chart_next(
-            *e,
-            chart_input(&model.resid_whiten, r, i),
-            *center,
-            *gain,
-            lambda,
-        );
+        let v = chart_input(&model.resid_whiten, r, i);
+        let next = chart_next(*e, v, *center, *gain, lambda);
         *e = next;
-        let bits = next.to_bits() & 0x7fff_ffff;
-        if bits > peak_bits {
-            peak_bits = bits;
-            at = i;
+        keep_peak(&mut peak[0], &mut at[0], next, i);
+        if let Some((e, &[f, l, c, g])) = &mut next_slow {
+            if f == i as f32 {
+                let next = chart_next(**e, v, c, g, l);
+                **e = next;
+                keep_peak(&mut peak[1], &mut at[1], next, i);
+                next_slow = slow.next();
+            }
         }
     }
     ChartStep {
-        peak: f32::from_bits(peak_bits),
-        feature: at as u8,
+        peak: f32::from_bits(peak[0]),
+        feature: at[0] as u8,
+        slow_peak: f32::from_bits(peak[1]),
+        slow_feature: at[1] as u8,
+    }
+}
+
+/// Keeps `|value|`'s bits and `i` when they beat `peak` (strictly: ties keep
+/// the first).
+#[inline(always)]
+fn keep_peak(peak: &mut u32, at: &mut usize, value: f32, i: usize) {
+    let bits = value.to_bits() & 0x7fff_ffff;
+    if bits > *peak {
+        *peak = bits;
+        *at = i;
     }
 }
 

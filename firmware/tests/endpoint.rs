@@ -149,6 +149,8 @@ fn model(id: u32, mean_shift: f32) -> ModelOwned {
         resid_gain: vec![0.0; 4],
         resid_limit: 1.0,
         resid_whiten: Vec::new(),
+        slow_charts: Vec::new(),
+        slow_limit: 1.0,
     }
 }
 

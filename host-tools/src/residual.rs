@@ -553,6 +553,8 @@ mod tests {
             resid_gain: vec![0.0; d],
             resid_limit: 1.0,
             resid_whiten: Vec::new(),
+            slow_charts: Vec::new(),
+            slow_limit: 1.0,
         }
     }
 
@@ -767,7 +769,7 @@ mod bias_tests {
         let mut ewma = [0.0f32; MAX_FEATURES];
         for _ in 0..2000 {
             score(model, derived, x, &mut buf).expect("scored");
-            chart_step(model, &buf, &mut ewma);
+            chart_step(model, &buf, &mut ewma, &mut [0.0; plumb_model::MAX_SLOW]);
         }
         ewma
     }

@@ -30,7 +30,7 @@ use crate::MAX_FEATURES;
 
 /// Version of this protocol, sent in every [`Greeting`]. Bumped by any change
 /// that an older peer would misread (see `PROTOCOL.md`, "Stability").
-pub const PROTOCOL_VERSION: u16 = 4;
+pub const PROTOCOL_VERSION: u16 = 5;
 
 /// Bytes of CRC after each message.
 pub const CRC_LEN: usize = 4;

@@ -59,6 +59,8 @@ fn tiny() -> ModelOwned {
         resid_gain: vec![2.0, 0.0],
         resid_limit: 1.5,
         resid_whiten: vec![1.0, -0.5, -0.25, 2.0],
+        slow_charts: vec![1.0, 0.005, -0.125, 0.5],
+        slow_limit: 1.5,
     }
 }
 

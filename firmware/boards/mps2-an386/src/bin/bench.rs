@@ -104,6 +104,8 @@ fn synthetic(model: &mut Model, d: usize, m: usize, k: usize, whiten: bool) -> O
         resid_gain: heapless::Vec::new(),
         resid_limit: 3.0,
         resid_whiten: heapless::Vec::new(),
+        slow_charts: heapless::Vec::new(),
+        slow_limit: 1.0,
     };
     for _ in 0..d {
         model.mean.push(rng.next() * 0.1).ok()?;
