@@ -217,12 +217,12 @@ pub struct Residuals<'a> {
 }
 
 impl Residuals<'_> {
-    fn n(&self) -> usize {
+    pub(crate) fn n(&self) -> usize {
         self.rows.len() / self.d.max(1)
     }
 
     /// Row ranges of the logs.
-    fn logs(&self) -> impl Iterator<Item = std::ops::Range<usize>> + '_ {
+    pub(crate) fn logs(&self) -> impl Iterator<Item = std::ops::Range<usize>> + '_ {
         let n = self.n();
         (0..self.starts.len()).map(move |i| {
             let a = self.starts[i].min(n);
@@ -231,7 +231,7 @@ impl Residuals<'_> {
         })
     }
 
-    fn row(&self, i: usize) -> &[f32] {
+    pub(crate) fn row(&self, i: usize) -> &[f32] {
         &self.rows[i * self.d..(i + 1) * self.d]
     }
 
@@ -282,12 +282,23 @@ impl Residuals<'_> {
     }
 }
 
-/// Sets `model.resid_center`, `resid_gain` and `resid_limit` from the
-/// held-out residuals (steps 1–4 above); `allowed` alarms on them.
-pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Result<ResidualCalib> {
+/// Each feature's centre, spread and scale (steps 1–3 above) for an EWMA
+/// constant `lambda`.
+pub struct Scales {
+    /// Per feature, in model order.
+    pub features: Vec<FeatureResidual>,
+    /// The quantile level of step 2.
+    pub tail_level: f64,
+    /// Held-out logs.
+    pub logs: usize,
+    /// Student's t quantile of the level bound (0 with fewer than two logs).
+    pub level_t: f64,
+}
+
+/// Steps 1–3 above with the EWMA constant `lambda`.
+pub fn scales(r: &Residuals<'_>, lambda: f64) -> Result<Scales> {
     let d = r.d;
     let n = r.n();
-    let lambda = f64::from(model.monitor.ewma_lambda);
     // 1. Centre and spread.
     let mut moments = vec![Welford::<f64>::new(); d];
     for i in 0..n {
@@ -380,11 +391,28 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
             }
         })
         .collect();
+    Ok(Scales {
+        features,
+        tail_level,
+        logs,
+        level_t,
+    })
+}
+
+/// Sets `model.resid_center`, `resid_gain` and `resid_limit` from the
+/// held-out residuals (steps 1–4 above); `allowed` alarms on them.
+pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Result<ResidualCalib> {
+    let Scales {
+        features,
+        tail_level,
+        logs,
+        level_t,
+    } = scales(r, f64::from(model.monitor.ewma_lambda))?;
     let level_bound_features = features
         .iter()
         .filter(|f| f.level_bound > f.row_tail)
         .count();
-    model.resid_center = center.iter().map(|c| *c as f32).collect();
+    model.resid_center = features.iter().map(|f| f.center as f32).collect();
     model.resid_gain = features.iter().map(|f| f.gain).collect();
     model.resid_limit = LIMIT_FLOOR;
     let dev = model
