@@ -90,7 +90,7 @@ use plumb_model::wire::{
     self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, EchoValues, FaultKind, FaultTally,
     FeatureEcho, Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal,
     Request, ResendDone, ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State,
-    Statistic, Status, ECHO_CHUNK, MAX_DEVICE_FRAME,
+    Statistic, Status, ECHO_CHUNK, MAX_CROSSINGS, MAX_DEVICE_FRAME,
 };
 use plumb_model::{Capacity, ModelError, ScoreLimits, MAX_FEATURES};
 
@@ -1083,11 +1083,31 @@ pub fn wire_state(s: DriftState) -> State {
     }
 }
 
+/// Lists one of the SPE's per-feature charts (`statistic`) when `value`
+/// is over `limit`. Out of line: the residual and slow charts share it.
+#[inline(never)]
+fn spe_chart(
+    crossed: &mut heapless::Vec<Crossing, MAX_CROSSINGS>,
+    statistic: Statistic,
+    value: f32,
+    limit: f32,
+) {
+    if value > limit {
+        let _ = crossed.push(Crossing {
+            score: ScoreKind::Spe,
+            statistic,
+            value,
+            limit,
+        });
+    }
+}
+
 /// The drift raised message `det` sends after it took the sample of `o`
 /// and raised a flag driven by `drivers`: the scores, the top contributions
 /// and every chart of a driving score over its limit, SPE before T² before
 /// NLL and per score EWMA, CUSUM, per-sample limit (the order of
-/// [`Statistic::ALL`]), the SPE's residual chart after its other three.
+/// [`Statistic::ALL`]), the SPE's residual and slow charts after its other
+/// three.
 /// The host's replay lists a flag's charts through this function too.
 #[inline(always)]
 pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
@@ -1133,31 +1153,24 @@ pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRais
         let chart = det.residual_chart();
         let model = det.model();
         if s == Score::Spe {
-            for (value, limit, statistic) in [
-                (
-                    chart.peak,
-                    model.resid_limit,
-                    Statistic::Residual {
-                        feature: chart.peak_feature,
-                    },
-                ),
-                (
-                    chart.slow_peak,
-                    model.slow_limit,
-                    Statistic::Slow {
-                        feature: chart.slow_peak_feature,
-                    },
-                ),
-            ] {
-                if value > limit {
-                    let _ = crossed.push(Crossing {
-                        score: ScoreKind::Spe,
-                        statistic,
-                        value,
-                        limit,
-                    });
-                }
-            }
+            spe_chart(
+                &mut crossed,
+                Statistic::Residual {
+                    feature: chart.peak_feature,
+                },
+                chart.peak,
+                model.resid_limit,
+            );
+            // At most 10 crossings (MAX_CROSSINGS): with every other chart
+            // over, the slow charts' crossing is the one left out.
+            spe_chart(
+                &mut crossed,
+                Statistic::Slow {
+                    feature: chart.slow_peak_feature,
+                },
+                chart.slow_peak,
+                model.slow_limit,
+            );
         }
     }
     DriftRaised {

@@ -252,8 +252,7 @@ pub fn chart_step(
     let d = usize::from(model.dims.features).min(r.len());
     let r = r.get(..d).unwrap_or(&[]);
     let lambda = model.monitor.ewma_lambda;
-    let mut peak = [0u32; 2];
-    let mut at = [0usize; 2];
+    let (mut peak, mut at, mut slow_peak, mut slow_at) = (0u32, 0usize, 0u32, 0usize);
     // The next slow chart's state and parameters (feature, λ, centre, gain).
     let mut slow = slow
         .iter_mut()
@@ -266,23 +265,21 @@ pub fn chart_step(
         .enumerate()
     {
         let v = chart_input(&model.resid_whiten, r, i);
-        let next = chart_next(*e, v, *center, *gain, lambda);
-        *e = next;
-        keep_peak(&mut peak[0], &mut at[0], next, i);
+        *e = chart_next(*e, v, *center, *gain, lambda);
+        keep_peak(&mut peak, &mut at, *e, i);
         if let Some((e, &[f, l, c, g])) = &mut next_slow {
             if f == i as f32 {
-                let next = chart_next(**e, v, c, g, l);
-                **e = next;
-                keep_peak(&mut peak[1], &mut at[1], next, i);
+                **e = chart_next(**e, v, c, g, l);
+                keep_peak(&mut slow_peak, &mut slow_at, **e, i);
                 next_slow = slow.next();
             }
         }
     }
     ChartStep {
-        peak: f32::from_bits(peak[0]),
-        feature: at[0] as u8,
-        slow_peak: f32::from_bits(peak[1]),
-        slow_feature: at[1] as u8,
+        peak: f32::from_bits(peak),
+        feature: at as u8,
+        slow_peak: f32::from_bits(slow_peak),
+        slow_feature: slow_at as u8,
     }
 }
 

@@ -313,44 +313,45 @@ impl ModelView<'_> {
         // times gain_i, stay within CHART_INPUT_MAX: then no sample can take
         // the chart out of the f32 range (a non-finite sum of |W_ij| fails
         // the comparison too).
-        // Σ_j |W_ij| of row i (1 for the identity; ∞ for a missing row).
-        let reach = |i: usize| -> f32 {
-            if self.resid_whiten.is_empty() {
-                return 1.0;
-            }
-            self.resid_whiten
-                .chunks_exact(d.max(1))
-                .nth(i)
-                .map_or(f32::INFINITY, |row| row.iter().map(|w| w.abs()).sum())
-        };
-        for (i, (c, g)) in self.resid_center.iter().zip(self.resid_gain).enumerate() {
-            in_range(reach(i), *c, *g)?;
-        }
-        // The slow charts (format 5): whole quadruples, each a feature
-        // index (an integer, ascending, under d), a constant in (0, 1], a
-        // finite centre and a gain ≥ 0 with the same range check on the same
-        // input as that feature's residual chart.
+        //
+        // The slow charts (format 5) are checked in the same pass: whole
+        // quadruples (feature, λ, centre, gain), each met at its feature, so
+        // the features must be integers under d in ascending order (one that
+        // is not, a repeat or NaN is never met and is refused after the
+        // pass); λ in (0, 1], gain ≥ 0, and the same range check on the
+        // same input as that feature's residual chart.
         check_positive(Field::ResidualChart, &[self.slow_limit])?;
-        let charts = self.slow_charts.chunks_exact(SLOW_PARAMS);
         let bad = Err(ModelError::OutOfRange {
             field: Field::ResidualChart,
         });
-        if !charts.remainder().is_empty() {
+        let mut slow = self.slow_charts.chunks_exact(SLOW_PARAMS);
+        if !slow.remainder().is_empty() {
             return bad;
         }
-        let mut next = 0.0f32;
-        for c in charts {
-            let [f, l, center, gain] = [c[0], c[1], c[2], c[3]];
-            // NaN fails every comparison, so each test is written to fail
-            // on it.
-            if !(f >= next && f < d as f32 && f == f as u8 as f32)
-                || !(l > 0.0 && l <= 1.0)
-                || !(gain >= 0.0)
-            {
-                return bad;
+        let mut next_slow = slow.next();
+        let mut rows = self
+            .resid_whiten
+            .chunks_exact(d.max(1))
+            .map(|row| row.iter().map(|w| w.abs()).sum::<f32>());
+        for (i, (c, g)) in self.resid_center.iter().zip(self.resid_gain).enumerate() {
+            let reach = if self.resid_whiten.is_empty() {
+                1.0
+            } else {
+                rows.next().unwrap_or(f32::INFINITY)
+            };
+            in_range(reach, *c, *g)?;
+            if let Some(&[f, l, sc, sg]) = next_slow {
+                if f == i as f32 {
+                    if !(l > 0.0 && l <= 1.0 && sg >= 0.0) {
+                        return bad;
+                    }
+                    in_range(reach, sc, sg)?;
+                    next_slow = slow.next();
+                }
             }
-            next = f + 1.0;
-            in_range(reach(f as usize), center, gain)?;
+        }
+        if next_slow.is_some() {
+            return bad;
         }
         Ok(())
     }
