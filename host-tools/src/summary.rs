@@ -400,12 +400,13 @@ impl Summary {
                      residual chart off"
                 }
                 2 => "with the SPE's residual chart off",
-                _ => "with the SPE's residual chart on unwhitened residuals",
+                3 => "with the SPE's residual chart on unwhitened residuals",
+                _ => "without slow charts",
             };
             let _ = writeln!(
                 o,
                 "  format {} file: read {how} (it flags as it did); boards read format {} only: \
-                 refit it (plumb fit --base)",
+                 refit it (plumb fit --base) or write it again (plumb tailor)",
                 mi.format_version,
                 plumb_model::file::FORMAT_VERSION
             );

@@ -115,6 +115,8 @@ pub struct TailorReport {
     pub budget: f64,
     /// Whether the limit is the floor (1).
     pub at_floor: bool,
+    /// What the user should know (too few rows, nothing chosen).
+    pub warnings: Vec<String>,
 }
 
 /// Design delay `n(λ)` of step 3 (`None`: never crosses).
@@ -176,6 +178,8 @@ pub fn tailor(
     if !(cfg.shift > 0.0 && cfg.shift.is_finite()) {
         return Err(Error::input("--design-shift must be a positive number"));
     }
+    let paths = crate::logs::expand_paths(paths)?;
+    let paths = &paths[..];
     let model = &mut file.model;
     model.slow_charts.clear();
     model.slow_limit = 1.0;
@@ -289,6 +293,22 @@ pub fn tailor(
         );
         (s.limit, s.alarms, s.at_floor)
     };
+    let mut warnings = Vec::new();
+    if wanted.is_empty() {
+        warnings.push(
+            "no feature crosses sooner with a slower chart on these logs: the model gets no \
+             slow chart"
+                .to_string(),
+        );
+    } else if budget < 1.0 {
+        warnings.push(format!(
+            "the slow charts' budget on {n} rows is {budget:.2} false alarms (under one): their \
+             limit is the highest value these rows reach, and other logs of the robot may cross \
+             it more often than the target rate; give about {} rows of the robot's own logs \
+             (BENCHMARKS.md, Detection, attempt 15)",
+            (10.0 / cfg.rate).ceil() as u64
+        ));
+    }
     model.slow_charts = charts;
     model.slow_limit = limit;
     model
@@ -304,5 +324,6 @@ pub fn tailor(
         allowed,
         budget,
         at_floor,
+        warnings,
     })
 }

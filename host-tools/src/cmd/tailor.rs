@@ -91,6 +91,9 @@ pub fn run(args: TailorArgs) -> Result<u8> {
         &stage,
     )?;
     drop(stage);
+    for w in &report.warnings {
+        eprintln!("tailor: warning: {w}");
+    }
     file.model.meta.id = crate::fit::model_id(&file)?;
     let bytes = file
         .to_bytes()
