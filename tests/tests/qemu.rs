@@ -289,12 +289,13 @@ fn second_model() -> Vec<u8> {
     f.model.resid_limit *= 0.5;
     // Slow charts on three of the features `new_floor` moves (its truth
     // row), each at its residual chart's centre and gain, with constants of
-    // 0.05, 0.02 and 0.01 and the default's residual limit.
+    // 0.2, 0.1 and 0.05 and half the (halved) residual limit, so they cross
+    // before the residual chart does.
     let index = |name: &str| f.labels.iter().position(|l| l.name == name).unwrap() as f32;
     let mut slow: Vec<(f32, f32)> = vec![
-        (index("vib_band1"), 0.05),
-        (index("vib_band2"), 0.02),
-        (index("jerk_rms"), 0.01),
+        (index("vib_band1"), 0.2),
+        (index("vib_band2"), 0.1),
+        (index("jerk_rms"), 0.05),
     ];
     slow.sort_by(|a, b| a.0.total_cmp(&b.0));
     let m = &mut f.model;
@@ -302,7 +303,7 @@ fn second_model() -> Vec<u8> {
         .iter()
         .flat_map(|&(i, l)| [i, l, m.resid_center[i as usize], m.resid_gain[i as usize]])
         .collect();
-    m.slow_limit = 2.0 * m.resid_limit;
+    m.slow_limit = 0.5 * m.resid_limit;
     f.to_bytes().expect("encode the second model")
 }
 
