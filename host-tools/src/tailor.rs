@@ -201,11 +201,11 @@ pub fn tailor(
         if starts.len() <= step.log {
             starts.push(rows.len() / d.max(1));
         }
-        if step.outcome.scores.is_some() {
-            if step.detector.score_residuals(step.x, &mut resid).is_ok() {
-                let r = &resid[..d];
-                rows.extend((0..d).map(|i| chart_input(&whiten, r, i)));
-            }
+        if step.outcome.scores.is_some()
+            && step.detector.score_residuals(step.x, &mut resid).is_ok()
+        {
+            let r = &resid[..d];
+            rows.extend((0..d).map(|i| chart_input(&whiten, r, i)));
         }
         Ok(())
     })?;

@@ -138,11 +138,11 @@ fn tailoring_refuses_what_it_cannot_use() {
             .to_string()
     };
     let cfg = TailorConfig::default();
-    let e = run(&mut fleet(), &[one.clone()], &cfg);
+    let e = run(&mut fleet(), std::slice::from_ref(&one), &cfg);
     assert!(e.contains("several logs"), "{e}");
     let mut off = fleet();
     off.model.resid_gain.iter_mut().for_each(|g| *g = 0.0);
-    let e = run(&mut off, &[one.clone()], &cfg);
+    let e = run(&mut off, std::slice::from_ref(&one), &cfg);
     assert!(e.contains("residual chart is off"), "{e}");
     let bad = dir.write("bad.csv", "t[s],speed[m/s]\n0,1\n");
     let e = run(&mut fleet(), &[bad], &cfg);
@@ -157,7 +157,7 @@ fn tailoring_refuses_what_it_cannot_use() {
             ..cfg.clone()
         },
     ] {
-        let e = run(&mut fleet(), &[one.clone()], &cfg);
+        let e = run(&mut fleet(), std::slice::from_ref(&one), &cfg);
         assert!(e.contains("--"), "{e}");
     }
 }

@@ -342,7 +342,9 @@ impl ModelView<'_> {
             in_range(reach, *c, *g)?;
             if let Some(&[f, l, sc, sg]) = next_slow {
                 if f == i as f32 {
-                    if !(l > 0.0 && l <= 1.0 && sg >= 0.0) {
+                    // Written so that NaN fails.
+                    let in_bounds = l > 0.0 && l <= 1.0 && sg >= 0.0;
+                    if !in_bounds {
                         return bad;
                     }
                     in_range(reach, sc, sg)?;

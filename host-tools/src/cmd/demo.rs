@@ -1134,6 +1134,7 @@ mod tests {
                 allowed: 0,
                 budget: 0.02,
                 at_floor: false,
+                warnings: Vec::new(),
             },
             nominal: NominalResult {
                 name: "robot 2, other days (tailored)".into(),
