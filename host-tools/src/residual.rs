@@ -297,6 +297,13 @@ pub struct Scales {
 
 /// Steps 1–3 above with the EWMA constant `lambda`.
 pub fn scales(r: &Residuals<'_>, lambda: f64) -> Result<Scales> {
+    let mut all = scales_for(r, &[lambda])?;
+    Ok(all.remove(0))
+}
+
+/// [`scales`] for each constant of `lambdas`, in one pass over each
+/// feature's column for all of them (the same arithmetic per constant).
+pub fn scales_for(r: &Residuals<'_>, lambdas: &[f64]) -> Result<Vec<Scales>> {
     let d = r.d;
     let n = r.n();
     // 1. Centre and spread.
@@ -340,19 +347,29 @@ pub fn scales(r: &Residuals<'_>, lambda: f64) -> Result<Scales> {
             "no held-out row after the warm-up: cannot calibrate the residual chart",
         ));
     }
-    let mut tail = Vec::with_capacity(eligible);
-    let mut row_tail = |j: usize, level: f64| -> f64 {
-        tail.clear();
+    let mut tails: Vec<Vec<f32>> = lambdas
+        .iter()
+        .map(|_| Vec::with_capacity(eligible))
+        .collect();
+    // Each constant's tail quantile for feature `j`.
+    let mut row_tails = |j: usize, level: f64| -> Vec<f64> {
+        tails.iter_mut().for_each(Vec::clear);
+        let mut e = vec![0.0f64; lambdas.len()];
         for log in r.logs() {
-            let mut e = 0.0f64;
+            e.iter_mut().for_each(|e| *e = 0.0);
             for (i, row) in log.enumerate() {
-                e += lambda * (w(j, r.row(row)[j]) - e);
+                let x = w(j, r.row(row)[j]);
+                for (e, lambda) in e.iter_mut().zip(lambdas) {
+                    *e += lambda * (x - *e);
+                }
                 if i >= warmup {
-                    tail.push(e.abs() as f32);
+                    for (t, e) in tails.iter_mut().zip(&e) {
+                        t.push(e.abs() as f32);
+                    }
                 }
             }
         }
-        quantile_type1(&mut tail, level)
+        tails.iter_mut().map(|t| quantile_type1(t, level)).collect()
     };
     let tail_level = (1.0 - TAIL_ROWS / eligible as f64).max(0.5);
     let logs = levels.first().map_or(0, Vec::len);
@@ -370,10 +387,11 @@ pub fn scales(r: &Residuals<'_>, lambda: f64) -> Result<Scales> {
         let sd = (l.iter().map(|m| (m - mean).powi(2)).sum::<f64>() / (k - 1.0)).sqrt();
         mean.abs() + level_t * sd * (1.0 + 1.0 / k).sqrt()
     };
-    let features: Vec<FeatureResidual> = (0..d)
-        .map(|j| {
-            let row_tail = row_tail(j, tail_level);
-            let level_bound = level_bound(&levels[j]);
+    let mut features: Vec<Vec<FeatureResidual>> =
+        lambdas.iter().map(|_| Vec::with_capacity(d)).collect();
+    for j in 0..d {
+        let level_bound = level_bound(&levels[j]);
+        for (out, row_tail) in features.iter_mut().zip(row_tails(j, tail_level)) {
             let tail = row_tail.max(level_bound);
             let g = 1.0 / (spread[j] * tail);
             let gain = if g.is_finite() && g > 0.0 {
@@ -381,22 +399,25 @@ pub fn scales(r: &Residuals<'_>, lambda: f64) -> Result<Scales> {
             } else {
                 0.0
             };
-            FeatureResidual {
+            out.push(FeatureResidual {
                 center: center[j],
                 spread: spread[j],
                 tail,
                 row_tail,
                 level_bound,
                 gain,
-            }
+            });
+        }
+    }
+    Ok(features
+        .into_iter()
+        .map(|features| Scales {
+            features,
+            tail_level,
+            logs,
+            level_t,
         })
-        .collect();
-    Ok(Scales {
-        features,
-        tail_level,
-        logs,
-        level_t,
-    })
+        .collect())
 }
 
 /// Sets `model.resid_center`, `resid_gain` and `resid_limit` from the

@@ -225,10 +225,12 @@ pub fn tailor(
         ));
     }
     // 2. Scales per candidate; 3. the choice per feature.
-    let mut by_lambda = Vec::new();
-    for lam in CANDIDATES {
-        by_lambda.push((lam, crate::residual::scales(&r, lam)?.features));
-    }
+    let by_lambda: Vec<(f64, Vec<crate::residual::FeatureResidual>)> = CANDIDATES
+        .iter()
+        .copied()
+        .zip(crate::residual::scales_for(&r, &CANDIDATES)?)
+        .map(|(lam, s)| (lam, s.features))
+        .collect();
     let names: Vec<String> = file.labels.iter().map(|l| l.name.clone()).collect();
     let mut wanted: Vec<SlowChoice> = Vec::new();
     for i in 0..d {
