@@ -145,10 +145,12 @@ impl Track {
 /// plus a constant; it is first shifted by `nll_floor`, the smallest NLL the
 /// model can give (see [`Detector::nll_floor`]), then takes the cube root too.
 pub fn transform(score: Score, value: f32, nll_floor: f32) -> f32 {
-    match score {
-        Score::Spe | Score::T2 => crate::math::cbrt(value),
-        Score::Nll => crate::math::cbrt(value - nll_floor),
-    }
+    // One cube root for all three (one copy of its code).
+    let shifted = match score {
+        Score::Spe | Score::T2 => value,
+        Score::Nll => value - nll_floor,
+    };
+    crate::math::cbrt(shifted)
 }
 
 /// The monitored value of a score: `u = (g(value) − center) / spread`, with
