@@ -363,8 +363,11 @@ impl Detector {
     /// gives the same model and constants bit for bit, and the detector goes
     /// on exactly as if the candidate had never been decoded.
     pub fn decode_model(&mut self, bytes: &[u8]) -> Result<(), ModelError> {
+        // `decode_into` with the device capacities has admitted the
+        // dimensions (the same bytes `check` would read again) and validated
+        // the model, so of `check` only the constants are left to derive.
         let decoded = plumb_model::file::decode_into(bytes, &Capacity::DEVICE, &mut self.model)
-            .and_then(|()| self.check());
+            .and_then(|()| self.derived.compute(&self.model));
         if decoded.is_err() {
             self.model.clear();
             self.derived = Derived::ZERO;
