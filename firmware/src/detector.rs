@@ -145,10 +145,12 @@ impl Track {
 /// plus a constant; it is first shifted by `nll_floor`, the smallest NLL the
 /// model can give (see [`Detector::nll_floor`]), then takes the cube root too.
 pub fn transform(score: Score, value: f32, nll_floor: f32) -> f32 {
-    match score {
-        Score::Spe | Score::T2 => crate::math::cbrt(value),
-        Score::Nll => crate::math::cbrt(value - nll_floor),
-    }
+    // One cube root for all three (one copy of its code).
+    let shifted = match score {
+        Score::Spe | Score::T2 => value,
+        Score::Nll => value - nll_floor,
+    };
+    crate::math::cbrt(shifted)
 }
 
 /// The monitored value of a score: `u = (g(value) − center) / spread`, with
@@ -387,8 +389,11 @@ impl Detector {
     /// gives the same model and constants bit for bit, and the detector goes
     /// on exactly as if the candidate had never been decoded.
     pub fn decode_model(&mut self, bytes: &[u8]) -> Result<(), ModelError> {
+        // `decode_into` with the device capacities has admitted the
+        // dimensions (the same bytes `check` would read again) and validated
+        // the model, so of `check` only the constants are left to derive.
         let decoded = plumb_model::file::decode_into(bytes, &Capacity::DEVICE, &mut self.model)
-            .and_then(|()| self.check());
+            .and_then(|()| self.derived.compute(&self.model));
         if decoded.is_err() {
             self.model.clear();
             self.derived = Derived::ZERO;

@@ -387,15 +387,7 @@ pub fn score(
         }
         j += 4;
     }
-    for (jj, tj) in latent.iter_mut().enumerate().take(m).skip(j) {
-        let mut a = 0.0f32;
-        for (zi, row) in z.iter().zip(model.loadings.chunks_exact(m)) {
-            if let Some(p) = row.get(jj) {
-                a += zi * p;
-            }
-        }
-        *tj = a;
-    }
+    latent_tail(z, &model.loadings, m, &mut latent, j);
     let t = &latent[..m];
 
     // r = z − P t; SPE = Σ r_i²; keep the top contributions; the residual
@@ -503,4 +495,26 @@ pub fn score(
         latent,
         mode,
     })
+}
+
+/// The latent scores `t_j` for `j` in `from..m` (those the groups of eight
+/// and four left), each summed over the features in index order. Out of
+/// line: a call here keeps the scoring loops' registers as they were, and
+/// the columns go by a subslice (`enumerate().take(m).skip(from)` linked a
+/// 104-byte `Take::nth`).
+#[inline(never)]
+fn latent_tail(z: &[f32], loadings: &[f32], m: usize, latent: &mut [f32], from: usize) {
+    // (With no column left, `m` may be 0, which `chunks_exact` refuses.)
+    let Some(rest) = latent.get_mut(from..m).filter(|r| !r.is_empty()) else {
+        return;
+    };
+    for (jj, tj) in (from..).zip(rest) {
+        let mut a = 0.0f32;
+        for (zi, row) in z.iter().zip(loadings.chunks_exact(m)) {
+            if let Some(p) = row.get(jj) {
+                a += zi * p;
+            }
+        }
+        *tj = a;
+    }
 }

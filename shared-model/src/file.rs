@@ -192,6 +192,11 @@ pub fn decode_payload(payload: &[u8], cap: &Capacity) -> Result<Model, ModelErro
 /// [`Model::EMPTY`] (whatever it held before, and whatever part of the
 /// payload was read, is gone): it fails validation, so it cannot be run by
 /// mistake.
+//
+// Out of line: inlined into `Detector::decode_model` it was compiled with
+// the caller's crate settings (the boards build this crate at
+// `opt-level = "z"` and the firmware crate at "s"), 124 bytes more.
+#[inline(never)]
 pub fn decode_into(bytes: &[u8], cap: &Capacity, model: &mut Model) -> Result<(), ModelError> {
     match split(bytes) {
         Ok(sections) => decode_payload_into(sections.payload, cap, model),

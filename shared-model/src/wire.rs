@@ -22,7 +22,10 @@ mod ser;
 
 #[cfg(feature = "alloc")]
 pub use frame::encode_frame_vec;
-pub use frame::{decode_frame, encode_frame, max_frame_len, EncodeError, FrameDecoder, FrameError};
+pub use frame::{
+    decode_frame, encode_device_frame, encode_frame, max_frame_len, EncodeError, FrameDecoder,
+    FrameError,
+};
 pub use message::*;
 pub use reason::{dim_code, dim_from_code, field_code, field_from_code, Reason, FIELDS};
 
