@@ -253,26 +253,26 @@ pub fn chart_step(
     let r = r.get(..d).unwrap_or(&[]);
     let lambda = model.monitor.ewma_lambda;
     let (mut peak, mut at, mut slow_peak, mut slow_at) = (0u32, 0usize, 0u32, 0usize);
-    // The next slow chart's state and parameters (feature, λ, centre, gain).
-    let mut slow = slow
-        .iter_mut()
-        .zip(model.slow_charts.chunks_exact(SLOW_PARAMS));
-    let mut next_slow = slow.next();
     for (i, ((e, center), gain)) in ewma
         .iter_mut()
         .zip(model.resid_center.iter())
         .zip(model.resid_gain.iter())
         .enumerate()
     {
-        let v = chart_input(&model.resid_whiten, r, i);
-        *e = chart_next(*e, v, *center, *gain, lambda);
+        *e = chart_next(*e, chart_input(&model.resid_whiten, r, i), *center, *gain, lambda);
         keep_peak(&mut peak, &mut at, *e, i);
-        if let Some((e, &[f, l, c, g])) = &mut next_slow {
-            if f == i as f32 {
-                **e = chart_next(**e, v, c, g, l);
-                keep_peak(&mut slow_peak, &mut slow_at, **e, i);
-                next_slow = slow.next();
-            }
+    }
+    // The slow charts (feature, λ, centre, gain), after: each input is
+    // computed again, the same sum in the same order, so the same bits, and
+    // a model without slow charts pays nothing per feature.
+    for (e, p) in slow
+        .iter_mut()
+        .zip(model.slow_charts.chunks_exact(SLOW_PARAMS))
+    {
+        if let &[f, l, c, g] = p {
+            let i = f as usize;
+            *e = chart_next(*e, chart_input(&model.resid_whiten, r, i), c, g, l);
+            keep_peak(&mut slow_peak, &mut slow_at, *e, i);
         }
     }
     ChartStep {
