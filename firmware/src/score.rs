@@ -259,7 +259,13 @@ pub fn chart_step(
         .zip(model.resid_gain.iter())
         .enumerate()
     {
-        *e = chart_next(*e, chart_input(&model.resid_whiten, r, i), *center, *gain, lambda);
+        *e = chart_next(
+            *e,
+            chart_input(&model.resid_whiten, r, i),
+            *center,
+            *gain,
+            lambda,
+        );
         keep_peak(&mut peak, &mut at, *e, i);
     }
     // The slow charts (feature, λ, centre, gain), after: each input is
