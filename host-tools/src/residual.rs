@@ -240,28 +240,47 @@ impl Residuals<'_> {
     /// alarm (the second value).
     fn alarms(&self, model: &Model, limit: f32) -> (u64, f32) {
         let lambda = model.monitor.ewma_lambda;
+        self.chart_alarms(limit, self.d, |ewma, row| {
+            // As the detector steps the chart, in place
+            // (`score::chart_step`; the rows are its inputs, already
+            // whitened), and the largest |value|. The model's range check
+            // keeps every value finite, so no sample is dropped here.
+            let mut peak = 0.0f32;
+            for (((e, r), c), g) in ewma
+                .iter_mut()
+                .zip(row)
+                .zip(&model.resid_center)
+                .zip(&model.resid_gain)
+            {
+                *e = chart_next(*e, *r, *c, *g, lambda);
+                peak = peak.max(e.abs());
+            }
+            peak
+        })
+    }
+
+    /// Alarms of one chart alone with `limit`, as calibration counts them:
+    /// its `n` EWMA values from 0 at each log's start, `step` moving them
+    /// with a row and giving their peak, no alarm in the warm-up, `dwell`
+    /// rows over the limit make an alarm, and the values restart from 0
+    /// after one. With `limit` = ∞ also the highest peak at a row that may
+    /// alarm (the second value).
+    pub(crate) fn chart_alarms(
+        &self,
+        limit: f32,
+        n: usize,
+        mut step: impl FnMut(&mut [f32], &[f32]) -> f32,
+    ) -> (u64, f32) {
         let warmup = self.warmup as usize;
         let dwell = u32::from(self.dwell.max(1));
         let mut alarms = 0;
         let mut highest = f32::NEG_INFINITY;
+        let mut ewma = vec![0.0f32; n];
         for log in self.logs() {
-            let mut ewma = vec![0.0f32; self.d];
+            ewma.iter_mut().for_each(|e| *e = 0.0);
             let mut run = 0u32;
             for (i, row) in log.enumerate() {
-                // As the detector steps the chart, in place
-                // (`score::chart_step`; the rows are its inputs, already
-                // whitened), and the largest |value|. The model's range check
-                // keeps every value finite, so no sample is dropped here.
-                let mut peak = 0.0f32;
-                for (((e, r), c), g) in ewma
-                    .iter_mut()
-                    .zip(self.row(row))
-                    .zip(&model.resid_center)
-                    .zip(&model.resid_gain)
-                {
-                    *e = chart_next(*e, *r, *c, *g, lambda);
-                    peak = peak.max(e.abs());
-                }
+                let peak = step(&mut ewma, self.row(row));
                 if i < warmup {
                     continue;
                 }

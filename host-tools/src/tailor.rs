@@ -129,38 +129,14 @@ pub fn design_delay(limit: f64, scale: f64, shift: f64, lambda: f64) -> Option<f
 /// with `limit`, in the detector's arithmetic; with `limit` = ∞ also the
 /// highest peak at a row that may alarm.
 fn slow_alarms(r: &Residuals<'_>, charts: &[f32], limit: f32) -> (u64, f32) {
-    let warmup = r.warmup as usize;
-    let dwell = u32::from(r.dwell.max(1));
-    let n = charts.len() / SLOW_PARAMS;
-    let mut alarms = 0;
-    let mut highest = f32::NEG_INFINITY;
-    for log in r.logs() {
-        let mut e = vec![0.0f32; n];
-        let mut run = 0u32;
-        for (i, row) in log.enumerate() {
-            let v = r.row(row);
-            let mut peak = 0.0f32;
-            for (e, c) in e.iter_mut().zip(charts.chunks_exact(SLOW_PARAMS)) {
-                *e = chart_next(*e, v[c[0] as usize], c[2], c[3], c[1]);
-                peak = peak.max(e.abs());
-            }
-            if i < warmup {
-                continue;
-            }
-            highest = highest.max(peak);
-            if peak > limit {
-                run += 1;
-                if run >= dwell {
-                    alarms += 1;
-                    e.iter_mut().for_each(|x| *x = 0.0);
-                    run = 0;
-                }
-            } else {
-                run = 0;
-            }
+    r.chart_alarms(limit, charts.len() / SLOW_PARAMS, |e, v| {
+        let mut peak = 0.0f32;
+        for (e, c) in e.iter_mut().zip(charts.chunks_exact(SLOW_PARAMS)) {
+            *e = chart_next(*e, v[c[0] as usize], c[2], c[3], c[1]);
+            peak = peak.max(e.abs());
         }
-    }
-    (alarms, highest)
+        peak
+    })
 }
 
 /// Adds slow charts to `file`'s model from the robot's own nominal logs

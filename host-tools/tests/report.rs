@@ -47,36 +47,40 @@ fn model() -> &'static Path {
     .1
 }
 
-/// The report over two drift logs with truth and training rows: (folder,
-/// HTML text, path, replay JSON).
+/// The report of `model` over two drift logs with truth and training rows:
+/// (folder, HTML text, path, replay JSON). A flag rises in bearing_wear, so
+/// the command exits 1.
+fn report_of(model: &Path, tag: &str) -> (Scratch, String, PathBuf, serde_json::Value) {
+    let dir = Scratch::new(tag);
+    let out = dir.path("report.html");
+    let o = plumb(&[
+        "report",
+        s(model),
+        s(&demo("drift/bearing_wear.csv")),
+        s(&demo("drift/sensor_dropout.csv")),
+        "--out",
+        s(&out),
+        "--train",
+        s(&demo("train")),
+        "--truth",
+        s(&demo("truth.csv")),
+        "--json",
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(1),
+        "a flag rose in bearing_wear: exit 1; stderr: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON on stdout");
+    let html = std::fs::read_to_string(&out).expect("report written");
+    (dir, html, out, v)
+}
+
+/// The report of the fitted model ([`report_of`]).
 fn drift_report() -> &'static (Scratch, String, PathBuf, serde_json::Value) {
     static R: OnceLock<(Scratch, String, PathBuf, serde_json::Value)> = OnceLock::new();
-    R.get_or_init(|| {
-        let dir = Scratch::new("report");
-        let out = dir.path("report.html");
-        let o = plumb(&[
-            "report",
-            s(model()),
-            s(&demo("drift/bearing_wear.csv")),
-            s(&demo("drift/sensor_dropout.csv")),
-            "--out",
-            s(&out),
-            "--train",
-            s(&demo("train")),
-            "--truth",
-            s(&demo("truth.csv")),
-            "--json",
-        ]);
-        assert_eq!(
-            o.status.code(),
-            Some(1),
-            "a flag rose in bearing_wear: exit 1; stderr: {}",
-            String::from_utf8_lossy(&o.stderr)
-        );
-        let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON on stdout");
-        let html = std::fs::read_to_string(&out).expect("report written");
-        (dir, html, out, v)
-    })
+    R.get_or_init(|| report_of(model(), "report"))
 }
 
 /// Checks that elements nest properly: every start tag is closed in order
@@ -455,36 +459,10 @@ fn slow_model() -> &'static (Scratch, PathBuf, ModelFile) {
     })
 }
 
-/// The report of [`drift_report`] with the slow model: (folder, HTML text,
-/// path, replay JSON).
+/// The report of [`drift_report`] with the slow model ([`report_of`]).
 fn slow_report() -> &'static (Scratch, String, PathBuf, serde_json::Value) {
     static R: OnceLock<(Scratch, String, PathBuf, serde_json::Value)> = OnceLock::new();
-    R.get_or_init(|| {
-        let dir = Scratch::new("report-slow");
-        let out = dir.path("report.html");
-        let o = plumb(&[
-            "report",
-            s(&slow_model().1),
-            s(&demo("drift/bearing_wear.csv")),
-            s(&demo("drift/sensor_dropout.csv")),
-            "--out",
-            s(&out),
-            "--train",
-            s(&demo("train")),
-            "--truth",
-            s(&demo("truth.csv")),
-            "--json",
-        ]);
-        assert_eq!(
-            o.status.code(),
-            Some(1),
-            "stderr: {}",
-            String::from_utf8_lossy(&o.stderr)
-        );
-        let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON on stdout");
-        let html = std::fs::read_to_string(&out).expect("report written");
-        (dir, html, out, v)
-    })
+    R.get_or_init(|| report_of(&slow_model().1, "report-slow"))
 }
 
 /// A count as the report writes it: narrow no-break spaces between
