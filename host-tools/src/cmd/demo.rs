@@ -155,21 +155,9 @@ pub struct ScenarioResult {
     pub file: PathBuf,
     /// Ground-truth onset (0-based sample).
     pub onset: u64,
-    /// First flag at or after the onset.
-    pub first_flag: Option<u64>,
-    /// Delay in samples.
-    pub delay: Option<u64>,
-    /// Delay in seconds.
-    pub delay_s: Option<f64>,
-    /// Flags raised before the onset (or, for a fault scenario, at all).
-    pub false_alarms: usize,
-    /// Sensor faults counted.
-    pub faults: u64,
-    /// Scores that drove the first flag.
-    pub drivers: Vec<&'static str>,
-    /// The charts over their limits when the first flag rose (as `plumb
-    /// replay` and a board's drift raised message list them).
-    pub crossed: Vec<ChartCrossing>,
+    /// The first flag after the onset (fields of their own in JSON).
+    #[serde(flatten)]
+    pub flag: FirstFlag,
     /// Features with the largest residual share at the first flag.
     pub top_features: Vec<String>,
     /// How many of those are among the features the scenario changes.
@@ -196,7 +184,15 @@ pub struct ScenarioResult {
 pub struct TailoredResult {
     /// The tailored model.
     pub model: PathBuf,
-    /// First flag at or after the onset.
+    /// The first flag after the onset (fields of their own in JSON).
+    #[serde(flatten)]
+    pub flag: FirstFlag,
+}
+
+/// A scenario's log through one model: its first flag after the onset.
+#[derive(Debug, Clone, Serialize)]
+pub struct FirstFlag {
+    /// First flag at or after the onset (none for a fault scenario).
     pub first_flag: Option<u64>,
     /// Delay in samples.
     pub delay: Option<u64>,
@@ -208,9 +204,39 @@ pub struct TailoredResult {
     pub faults: u64,
     /// Scores that drove the first flag.
     pub drivers: Vec<&'static str>,
-    /// The charts over their limits when the first flag rose (statistic
+    /// The charts over their limits when the first flag rose (as `plumb
+    /// replay` and a board's drift raised message list them; statistic
     /// `slow` for a slow chart).
     pub crossed: Vec<ChartCrossing>,
+}
+
+impl FirstFlag {
+    /// The first flag of `rep` at or after `t`'s onset, and the flags
+    /// before it (a fault scenario: no first flag, every flag counted).
+    fn of<'a>(t: &Truth, rep: &'a LogReplay) -> (Self, Option<&'a replay::Flag>) {
+        let onset = t.onset_row as u64;
+        let fault = t.kind == TruthKind::Fault;
+        let first = rep
+            .flags
+            .iter()
+            .find(|f| f.raised_at >= onset)
+            .filter(|_| !fault);
+        let delay = first.map(|f| f.raised_at - onset);
+        let flag = FirstFlag {
+            first_flag: first.map(|f| f.raised_at),
+            delay,
+            delay_s: delay.map(|d| d as f64 * SAMPLE_PERIOD_S),
+            false_alarms: rep
+                .flags
+                .iter()
+                .filter(|f| fault || f.raised_at < onset)
+                .count(),
+            faults: rep.faults,
+            drivers: first.map(|f| f.scores.clone()).unwrap_or_default(),
+            crossed: first.map(|f| f.crossed.clone()).unwrap_or_default(),
+        };
+        (flag, first)
+    }
 }
 
 /// One robot's tailored model.
@@ -735,26 +761,9 @@ fn tailor_robot(
 
 /// A scenario's log through a tailored model.
 fn tailored_row(t: &Truth, rep: &LogReplay, model: &Path) -> TailoredResult {
-    let onset = t.onset_row as u64;
-    let fault = t.kind == TruthKind::Fault;
-    let first = rep
-        .flags
-        .iter()
-        .find(|f| f.raised_at >= onset)
-        .filter(|_| !fault);
     TailoredResult {
         model: model.to_path_buf(),
-        first_flag: first.map(|f| f.raised_at),
-        delay: first.map(|f| f.raised_at - onset),
-        delay_s: first.map(|f| (f.raised_at - onset) as f64 * SAMPLE_PERIOD_S),
-        false_alarms: rep
-            .flags
-            .iter()
-            .filter(|f| fault || f.raised_at < onset)
-            .count(),
-        faults: rep.faults,
-        drivers: first.map(|f| f.scores.clone()).unwrap_or_default(),
-        crossed: first.map(|f| f.crossed.clone()).unwrap_or_default(),
+        flag: FirstFlag::of(t, rep).0,
     }
 }
 
@@ -784,25 +793,10 @@ fn scenario_row(
 ) -> ScenarioResult {
     let onset = t.onset_row as u64;
     let fault = t.kind == TruthKind::Fault;
-    let first = rep.flags.iter().find(|f| f.raised_at >= onset);
-    let false_alarms = rep
-        .flags
-        .iter()
-        .filter(|f| fault || f.raised_at < onset)
-        .count();
-    let (first_flag, delay, drivers, crossed, top) = match (first, fault) {
-        (Some(f), false) => (
-            Some(f.raised_at),
-            Some(f.raised_at - onset),
-            f.scores.clone(),
-            f.crossed.clone(),
-            f.top_features
-                .iter()
-                .map(|c| c.name.clone())
-                .collect::<Vec<_>>(),
-        ),
-        _ => (None, None, Vec::new(), Vec::new(), Vec::new()),
-    };
+    let (flag, first) = FirstFlag::of(t, rep);
+    let top: Vec<String> = first
+        .map(|f| f.top_features.iter().map(|c| c.name.clone()).collect())
+        .unwrap_or_default();
     let top_in_truth = top.iter().filter(|n| t.features.contains(n)).count();
     let on = onset as usize;
     let baseline_delay = (!fault)
@@ -817,7 +811,8 @@ fn scenario_row(
     let baseline_false_alarms = tr.spe.iter().take(on).filter(|s| **s > baseline).count() as u64;
     // δ: mean shift of u for the first driving score over 500 samples after
     // the onset against 500 before, in spreads (u is standardised).
-    let score = drivers
+    let score = flag
+        .drivers
         .first()
         .and_then(|d| Score::ALL.into_iter().find(|s| s.name() == *d));
     let shift = score.and_then(|s| {
@@ -834,13 +829,7 @@ fn scenario_row(
         kind: t.kind.as_str(),
         file: t.file.clone(),
         onset,
-        first_flag,
-        delay,
-        delay_s: delay.map(|d| d as f64 * SAMPLE_PERIOD_S),
-        false_alarms,
-        faults: rep.faults,
-        drivers,
-        crossed,
+        flag,
         top_features: top,
         top_in_truth,
         changed_features: t.features.clone(),
@@ -894,7 +883,7 @@ pub fn text(r: &DemoResult) -> String {
         "top features at the flag (★ = changed by the scenario)"
     ));
     for c in &r.scenarios {
-        let delay = match (c.delay, c.delay_s) {
+        let delay = match (c.flag.delay, c.flag.delay_s) {
             (Some(d), Some(sec)) => format!("{d} ({sec:.1} s)"),
             _ => "-".into(),
         };
@@ -914,10 +903,10 @@ pub fn text(r: &DemoResult) -> String {
             c.scenario,
             c.kind,
             c.onset,
-            opt(c.first_flag),
+            opt(c.flag.first_flag),
             delay,
-            c.false_alarms,
-            c.faults,
+            c.flag.false_alarms,
+            c.flag.faults,
             opt(c.baseline_delay),
             c.lorden_bound
                 .map(|b| format!("{b:.1}"))
@@ -933,9 +922,9 @@ pub fn text(r: &DemoResult) -> String {
     let raised: Vec<String> = r
         .scenarios
         .iter()
-        .filter(|c| !c.crossed.is_empty())
+        .filter(|c| !c.flag.crossed.is_empty())
         .map(|c| {
-            let charts: Vec<String> = c.crossed.iter().map(ToString::to_string).collect();
+            let charts: Vec<String> = c.flag.crossed.iter().map(ToString::to_string).collect();
             format!("  {:<15} {}\n", c.scenario, charts.join(", "))
         })
         .collect();
@@ -1023,17 +1012,17 @@ fn robots_text(r: &DemoResult) -> String {
     ));
     for c in &r.scenarios {
         let Some(t) = &c.tailored else { continue };
-        let charts: Vec<String> = t.crossed.iter().map(ToString::to_string).collect();
+        let charts: Vec<String> = t.flag.crossed.iter().map(ToString::to_string).collect();
         s.push_str(&format!(
             "  {:<15} {:>5} {:>6} {:>10} {:>7} {:>10} {:>7} {:>6} {:>9}  {}\n",
             c.scenario,
             opt(c.robot),
             c.onset,
-            opt(c.first_flag),
-            opt(c.delay),
-            opt(t.first_flag),
-            opt(t.delay),
-            t.false_alarms,
+            opt(c.flag.first_flag),
+            opt(c.flag.delay),
+            opt(t.flag.first_flag),
+            opt(t.flag.delay),
+            t.flag.false_alarms,
             opt(c.baseline_delay),
             if charts.is_empty() {
                 "-".to_string()
@@ -1088,26 +1077,30 @@ mod tests {
     fn result(robots: bool) -> DemoResult {
         let tailored = TailoredResult {
             model: "out/robot2.plumb".into(),
-            first_flag: Some(3090),
-            delay: Some(90),
-            delay_s: Some(9.0),
-            false_alarms: 0,
-            faults: 0,
-            drivers: vec!["spe"],
-            crossed: vec![crossing("slow", "motor_current_left")],
+            flag: FirstFlag {
+                first_flag: Some(3090),
+                delay: Some(90),
+                delay_s: Some(9.0),
+                false_alarms: 0,
+                faults: 0,
+                drivers: vec!["spe"],
+                crossed: vec![crossing("slow", "motor_current_left")],
+            },
         };
         let scenario = ScenarioResult {
             scenario: "gain_change".into(),
             kind: "drift",
             file: "drift/gain_change.csv".into(),
             onset: 3000,
-            first_flag: None,
-            delay: None,
-            delay_s: None,
-            false_alarms: 0,
-            faults: 0,
-            drivers: Vec::new(),
-            crossed: Vec::new(),
+            flag: FirstFlag {
+                first_flag: None,
+                delay: None,
+                delay_s: None,
+                false_alarms: 0,
+                faults: 0,
+                drivers: Vec::new(),
+                crossed: Vec::new(),
+            },
             top_features: Vec::new(),
             top_in_truth: 0,
             changed_features: vec!["motor_current_left".into()],
