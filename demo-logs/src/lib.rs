@@ -7,6 +7,8 @@
 //! * [`write_demo`] writes the committed demo set (`train/`, `holdout/`,
 //!   `drift/`, and `truth.csv` giving each drift onset);
 //! * [`write_bulk_holdout`] writes any amount of extra nominal data;
+//! * [`write_robot_logs`] writes nominal logs of one robot on days of its
+//!   own, and [`drift_robot`] tells which robot a scenario's log comes from;
 //! * [`read_truth`] parses the ground-truth table;
 //! * [`feature_table`] lists the columns.
 //!
@@ -367,6 +369,54 @@ pub fn write_bulk_holdout(
         let robot = 1 + (i % 4) as u32;
         let day = BULK_FIRST_DAY + i as u32;
         let path = dir.join(format!("holdout_{i:03}_robot{robot}_day{day}.csv"));
+        nominal_log(&path, seed, robot, day, rows)?;
+        out.push(path);
+    }
+    Ok(out)
+}
+
+/// The robot whose log a drift or fault scenario of [`write_demo`] is
+/// (`bearing_wear` → 1), or `None` for a name that is not a scenario.
+pub fn drift_robot(scenario: &str) -> Option<u32> {
+    DRIFT_LOGS
+        .iter()
+        .find(|d| d.scenario == scenario)
+        .map(|d| d.robot)
+}
+
+/// Writes `total_rows` rows of nominal data of robot `robot` alone, one log
+/// per day of `days` (in order), split as evenly as possible (the first logs
+/// take one row more), named `robot{r}_day{d}.csv` in `dir` (created if
+/// needed). A log is the one [`write_demo`] or [`write_bulk_holdout`] writes
+/// for the same seed, robot, day and row count; the caller picks days no
+/// other set of the same seed uses. Returns the paths in day order.
+pub fn write_robot_logs(
+    dir: &Path,
+    seed: u64,
+    robot: u32,
+    days: core::ops::Range<u32>,
+    total_rows: usize,
+) -> io::Result<Vec<PathBuf>> {
+    let bad = |msg: String| Err(io::Error::new(io::ErrorKind::InvalidInput, msg));
+    if robot == 0 {
+        return bad("robots are numbered from 1; robot 0 does not exist".into());
+    }
+    if days.is_empty() {
+        return bad(format!(
+            "the range of days {}..{} is empty (one log per day: give at least one day)",
+            days.start, days.end
+        ));
+    }
+    let files = (days.end - days.start) as usize;
+    if total_rows < files {
+        return bad(format!(
+            "{total_rows} rows cannot fill {files} logs (one per day, each needs at least one row)"
+        ));
+    }
+    let mut out = Vec::with_capacity(files);
+    for (i, day) in days.enumerate() {
+        let rows = total_rows / files + usize::from(i < total_rows % files);
+        let path = dir.join(format!("robot{robot}_day{day}.csv"));
         nominal_log(&path, seed, robot, day, rows)?;
         out.push(path);
     }

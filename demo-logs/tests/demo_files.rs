@@ -5,8 +5,8 @@ use std::fs;
 use std::path::{Path, PathBuf};
 
 use plumb_scenario::{
-    feature_table, header_line, read_truth, write_bulk_holdout, write_demo, Config, Manifest,
-    TruthKind, SAMPLE_PERIOD_S,
+    drift_robot, feature_table, header_line, read_truth, write_bulk_holdout, write_demo,
+    write_robot_logs, Config, Manifest, TruthKind, DEMO_SEED, SAMPLE_PERIOD_S,
 };
 
 fn scratch(name: &str) -> PathBuf {
@@ -436,6 +436,130 @@ fn bulk_holdout_splits_rows_and_rejects_bad_sizes() {
     let err = write_bulk_holdout(&dir, 5, 10, 0).unwrap_err();
     assert_eq!(err.kind(), std::io::ErrorKind::InvalidInput);
     assert!(write_bulk_holdout(&dir, 5, 2, 3).is_err());
+    fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn robot_logs_are_that_robots_logs_on_those_days() {
+    let dir = scratch("robot");
+    // One log per day, in day order, named by robot and day; rows split as
+    // evenly as possible.
+    let paths = write_robot_logs(&dir.join("a"), 5, 2, 1001..1004, 1001).unwrap();
+    let names: Vec<&str> = paths
+        .iter()
+        .map(|p| p.file_name().unwrap().to_str().unwrap())
+        .collect();
+    assert_eq!(
+        names,
+        [
+            "robot2_day1001.csv",
+            "robot2_day1002.csv",
+            "robot2_day1003.csv"
+        ]
+    );
+    let counts: Vec<usize> = paths.iter().map(|p| read_log(p).rows.len()).collect();
+    assert_eq!(counts, [334, 334, 333]);
+    // Deterministic for the seed, and the seed matters.
+    let again = write_robot_logs(&dir.join("b"), 5, 2, 1001..1004, 1001).unwrap();
+    let other = write_robot_logs(&dir.join("c"), 6, 2, 1001..1004, 1001).unwrap();
+    for ((p, q), r) in paths.iter().zip(&again).zip(&other) {
+        assert_eq!(
+            fs::read(p).unwrap(),
+            fs::read(q).unwrap(),
+            "{}",
+            q.display()
+        );
+        assert_ne!(
+            fs::read(p).unwrap(),
+            fs::read(r).unwrap(),
+            "{}",
+            r.display()
+        );
+    }
+    // The same log as the bulk held-out set's for that robot and day: its
+    // second file (4 files of 334 rows) is robot 2 on day 1001.
+    let bulk = write_bulk_holdout(&dir.join("bulk"), 5, 4 * 334, 4).unwrap();
+    assert!(bulk[1].ends_with("holdout_001_robot2_day1001.csv"));
+    assert_eq!(fs::read(&bulk[1]).unwrap(), fs::read(&paths[0]).unwrap());
+    // And the committed held-out log of robot 1 on day 3 (6000 rows).
+    let committed = Path::new(env!("CARGO_MANIFEST_DIR")).join("holdout/robot1_day3.csv");
+    if committed.exists() {
+        let p = write_robot_logs(&dir.join("d"), DEMO_SEED, 1, 3..4, 6000).unwrap();
+        assert_eq!(fs::read(&p[0]).unwrap(), fs::read(&committed).unwrap());
+    }
+    fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn robot_logs_refuse_bad_arguments_and_write_nothing() {
+    let dir = scratch("robot-bad");
+    let out = dir.join("out");
+    for (robot, days, rows, says) in [
+        (0, 2000..2002, 100, "robot 0"),
+        (1, 2000..2000, 100, "empty"),
+        (
+            1,
+            std::ops::Range {
+                start: 2001,
+                end: 2000,
+            },
+            100,
+            "empty",
+        ),
+        (3, 2000..2004, 3, "3 rows cannot fill 4 logs"),
+    ] {
+        let e = write_robot_logs(&out, 7, robot, days.clone(), rows).unwrap_err();
+        assert_eq!(e.kind(), std::io::ErrorKind::InvalidInput, "{e}");
+        assert!(e.to_string().contains(says), "{robot} {days:?} {rows}: {e}");
+        assert!(!out.exists(), "{robot} {days:?} {rows}: wrote something");
+    }
+    fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn drift_robot_names_the_robot_whose_nominal_log_the_drift_log_starts_as() {
+    // Before its onset a drift log is its robot's nominal log of that day
+    // (row for row): find, among robots 1-4 on the drift logs' days, the one
+    // log each scenario's first rows are, and compare its robot.
+    let dir = scratch("drift-robot");
+    let cfg = Config::default();
+    let m = write_demo(&dir.join("demo"), &cfg).unwrap();
+    let mut twins = Vec::new();
+    for robot in 1..=4 {
+        let p = write_robot_logs(
+            &dir.join("twins"),
+            cfg.seed,
+            robot,
+            4..6,
+            2 * cfg.drift_rows,
+        )
+        .unwrap();
+        for path in p {
+            let text = fs::read_to_string(&path).unwrap();
+            let head: Vec<String> = text
+                .lines()
+                .take(1 + cfg.drift_onset)
+                .map(str::to_string)
+                .collect();
+            twins.push((robot, head));
+        }
+    }
+    for t in &m.drift {
+        let text = fs::read_to_string(&t.file).unwrap();
+        let head: Vec<String> = text
+            .lines()
+            .take(1 + t.onset_row)
+            .map(str::to_string)
+            .collect();
+        let found: Vec<u32> = twins
+            .iter()
+            .filter(|(_, h)| *h == head)
+            .map(|(r, _)| *r)
+            .collect();
+        assert_eq!(found.len(), 1, "{}: twins {found:?}", t.scenario);
+        assert_eq!(drift_robot(&t.scenario), Some(found[0]), "{}", t.scenario);
+    }
+    assert_eq!(drift_robot("no_such_scenario"), None);
     fs::remove_dir_all(&dir).unwrap();
 }
 

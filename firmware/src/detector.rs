@@ -2,7 +2,7 @@
 
 use crate::score::{self, Contribution, Derived, Fault, Scores, TOP_FEATURES};
 use crate::stats::{Cusum, Ewma, Welford};
-use plumb_model::{Capacity, Model, ModelError, ScoreLimits, MAX_FEATURES};
+use plumb_model::{Capacity, Model, ModelError, ScoreLimits, MAX_FEATURES, MAX_SLOW};
 
 /// The three monitored scores.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -145,10 +145,12 @@ impl Track {
 /// plus a constant; it is first shifted by `nll_floor`, the smallest NLL the
 /// model can give (see [`Detector::nll_floor`]), then takes the cube root too.
 pub fn transform(score: Score, value: f32, nll_floor: f32) -> f32 {
-    match score {
-        Score::Spe | Score::T2 => crate::math::cbrt(value),
-        Score::Nll => crate::math::cbrt(value - nll_floor),
-    }
+    // One cube root for all three (one copy of its code).
+    let shifted = match score {
+        Score::Spe | Score::T2 => value,
+        Score::Nll => value - nll_floor,
+    };
+    crate::math::cbrt(shifted)
 }
 
 /// The monitored value of a score: `u = (g(value) − center) / spread`, with
@@ -263,6 +265,11 @@ pub struct Detector {
 /// `Σ_j W_ij r_j` ([`score::chart_input`]). The model's gains scale each
 /// feature's smoothed input to its own nominal tail, so one limit serves
 /// features of any memory (`plumb fit`'s calibration sets them all).
+///
+/// Beside it, the slow charts (model format 5, `plumb tailor`): for each
+/// feature the model names in `slow_charts`, a second EWMA of the same `v_i`
+/// with a constant, centre and gain of its own, set on one robot's own
+/// nominal logs; hot when any is beyond `slow_limit` in absolute value.
 #[derive(Debug, Clone, Copy, PartialEq)]
 #[cfg_attr(feature = "defmt", derive(defmt::Format))]
 pub struct ResidualChart {
@@ -272,6 +279,14 @@ pub struct ResidualChart {
     pub peak: f32,
     /// The feature of `peak` (the first of equal ones).
     pub peak_feature: u8,
+    /// Each slow chart's EWMA, in feature order (the first
+    /// `slow_charts.len() / SLOW_PARAMS` values).
+    pub slow: [f32; MAX_SLOW],
+    /// The largest `|slow_s|` after the last scored sample (0 without slow
+    /// charts).
+    pub slow_peak: f32,
+    /// The feature of `slow_peak` (the first of equal ones).
+    pub slow_peak_feature: u8,
 }
 
 impl ResidualChart {
@@ -280,7 +295,20 @@ impl ResidualChart {
         ewma: [0.0; MAX_FEATURES],
         peak: 0.0,
         peak_feature: 0,
+        slow: [0.0; MAX_SLOW],
+        slow_peak: 0.0,
+        slow_peak_feature: 0,
     };
+
+    /// Whether a chart is over its limit.
+    fn hot(&self, model: &Model) -> bool {
+        self.peak > model.resid_limit || self.slow_peak > model.slow_limit
+    }
+
+    /// Whether every chart is at or below `f` times its limit.
+    fn calm(&self, model: &Model, f: f32) -> bool {
+        self.peak <= f * model.resid_limit && self.slow_peak <= f * model.slow_limit
+    }
 }
 
 /// Samples per telemetry window of [`Track::window`].
@@ -361,8 +389,11 @@ impl Detector {
     /// gives the same model and constants bit for bit, and the detector goes
     /// on exactly as if the candidate had never been decoded.
     pub fn decode_model(&mut self, bytes: &[u8]) -> Result<(), ModelError> {
+        // `decode_into` with the device capacities has admitted the
+        // dimensions (the same bytes `check` would read again) and validated
+        // the model, so of `check` only the constants are left to derive.
         let decoded = plumb_model::file::decode_into(bytes, &Capacity::DEVICE, &mut self.model)
-            .and_then(|()| self.check());
+            .and_then(|()| self.derived.compute(&self.model));
         if decoded.is_err() {
             self.model.clear();
             self.derived = Derived::ZERO;
@@ -566,9 +597,16 @@ impl Detector {
         }
         // The sample is kept: the residual chart steps in place (its values
         // cannot leave the f32 range, `score::chart_step`).
-        let chart = score::chart_step(&self.model, &buf, &mut self.resid.ewma);
+        let chart = score::chart_step(
+            &self.model,
+            &buf,
+            &mut self.resid.ewma,
+            &mut self.resid.slow,
+        );
         self.resid.peak = chart.peak;
         self.resid.peak_feature = chart.feature;
+        self.resid.slow_peak = chart.slow_peak;
+        self.resid.slow_peak_feature = chart.slow_feature;
         self.valid += 1;
         self.window_len += 1;
         let roll = self.window_len >= WINDOW;
@@ -639,7 +677,7 @@ impl Detector {
                 set.insert(which);
             }
         }
-        if self.resid.peak > self.model.resid_limit {
+        if self.resid.hot(&self.model) {
             set.insert(Score::Spe);
         }
         set
@@ -649,7 +687,7 @@ impl Detector {
         let mp = &self.model.monitor;
         let f = mp.clear_fraction;
         let limits = [&mp.spe, &mp.t2, &mp.nll];
-        self.resid.peak <= f * self.model.resid_limit
+        self.resid.calm(&self.model, f)
             && self.tracks.iter().zip(limits).all(|(track, lim)| {
                 track.cusum.value() <= f * lim.cusum_limit
                     && track.ewma.value() <= f * lim.ewma_limit

@@ -90,7 +90,7 @@ use plumb_model::wire::{
     self, Ack, Crossing, DeviceMsg, DriftCleared, DriftRaised, EchoValues, FaultKind, FaultTally,
     FeatureEcho, Greeting, HostFrameDecoder, HostMsg, Level, LinkCounters, Reason, Refusal,
     Request, ResendDone, ScoreKind, ScoreReport, ScoreTriple, SensorFault, Share, Slot, State,
-    Statistic, Status, ECHO_CHUNK, MAX_DEVICE_FRAME,
+    Statistic, Status, ECHO_CHUNK, MAX_CROSSINGS, MAX_DEVICE_FRAME,
 };
 use plumb_model::{Capacity, ModelError, ScoreLimits, MAX_FEATURES};
 
@@ -263,8 +263,11 @@ fn encode<'b, E>(
     msg: &DeviceMsg,
     buf: &'b mut [u8; MAX_DEVICE_FRAME],
 ) -> Result<&'b [u8], Error<E>> {
-    // (seq, msg) encodes exactly like `DeviceFrame { seq, msg }`.
-    let n = wire::encode_frame(&(seq, msg), buf).map_err(|_| Error::Encode)?;
+    // (seq, msg) encodes exactly like `DeviceFrame { seq, msg }`. The
+    // encoder is not generic: it is compiled in `plumb-model`, with that
+    // crate's settings (`opt-level = "z"` on the boards), 284 bytes less
+    // than a copy instantiated here.
+    let n = wire::encode_device_frame(seq, msg, buf).map_err(|_| Error::Encode)?;
     buf.get(..n).ok_or(Error::Encode)
 }
 
@@ -1083,11 +1086,31 @@ pub fn wire_state(s: DriftState) -> State {
     }
 }
 
+/// Lists one of the SPE's per-feature charts (`statistic`) when `value`
+/// is over `limit`. Out of line: the residual and slow charts share it.
+#[inline(never)]
+fn spe_chart(
+    crossed: &mut heapless::Vec<Crossing, MAX_CROSSINGS>,
+    statistic: Statistic,
+    value: f32,
+    limit: f32,
+) {
+    if value > limit {
+        let _ = crossed.push(Crossing {
+            score: ScoreKind::Spe,
+            statistic,
+            value,
+            limit,
+        });
+    }
+}
+
 /// The drift raised message `det` sends after it took the sample of `o`
 /// and raised a flag driven by `drivers`: the scores, the top contributions
 /// and every chart of a driving score over its limit, SPE before T² before
 /// NLL and per score EWMA, CUSUM, per-sample limit (the order of
-/// [`Statistic::ALL`]), the SPE's residual chart after its other three.
+/// [`Statistic::ALL`]), the SPE's residual and slow charts after its other
+/// three.
 /// The host's replay lists a flag's charts through this function too.
 #[inline(always)]
 pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRaised {
@@ -1116,7 +1139,7 @@ pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRais
                 }
                 Statistic::Sample => (t.last_u > t.sample_u, raw, lim.sample_limit),
                 // Not in `Statistic::ALL`: listed after the loop.
-                Statistic::Residual { .. } => (false, 0.0, 0.0),
+                Statistic::Residual { .. } | Statistic::Slow { .. } => (false, 0.0, 0.0),
             };
             if over {
                 let c = Crossing {
@@ -1131,16 +1154,26 @@ pub fn drift_raised(det: &Detector, o: &Outcome, drivers: ScoreSet) -> DriftRais
             }
         }
         let chart = det.residual_chart();
-        let resid_limit = det.model().resid_limit;
-        if s == Score::Spe && chart.peak > resid_limit {
-            let _ = crossed.push(Crossing {
-                score: ScoreKind::Spe,
-                statistic: Statistic::Residual {
+        let model = det.model();
+        if s == Score::Spe {
+            spe_chart(
+                &mut crossed,
+                Statistic::Residual {
                     feature: chart.peak_feature,
                 },
-                value: chart.peak,
-                limit: resid_limit,
-            });
+                chart.peak,
+                model.resid_limit,
+            );
+            // At most 10 crossings (MAX_CROSSINGS): with every other chart
+            // over, the slow charts' crossing is the one left out.
+            spe_chart(
+                &mut crossed,
+                Statistic::Slow {
+                    feature: chart.slow_peak_feature,
+                },
+                chart.slow_peak,
+                model.slow_limit,
+            );
         }
     }
     DriftRaised {

@@ -1,7 +1,10 @@
 //! Per-sample scores: standardise, project, reconstruct, SPE, T², mixture NLL.
 
 use crate::math;
-use plumb_model::{Model, ModelError, MAX_COMPONENTS, MAX_FEATURES, MAX_MIXTURE, MAX_MIX_PARAMS};
+use plumb_model::{
+    Model, ModelError, MAX_COMPONENTS, MAX_FEATURES, MAX_MIXTURE, MAX_MIX_PARAMS, MAX_SLOW,
+    SLOW_PARAMS,
+};
 
 /// How many features the residual contributions name.
 pub const TOP_FEATURES: usize = 3;
@@ -219,49 +222,81 @@ pub struct ChartStep {
     pub peak: f32,
     /// Its feature (the first of equal ones).
     pub feature: u8,
+    /// The largest `|next EWMA|` over the slow charts (0 without any).
+    pub slow_peak: f32,
+    /// Its feature (the first of equal ones).
+    pub slow_feature: u8,
 }
 
 /// Steps the SPE's residual chart in place: each `ewma[i]` (the first `d`)
 /// becomes [`chart_next`] of its [`chart_input`] from the sample's residuals
-/// `r` (the first `d` values [`score`] left in its buffer). Call it only for
-/// a scored sample (every `r_i` finite and `r_i²` within `f32::MAX`): the
-/// model's validation then keeps every input and every EWMA value finite
+/// `r` (the first `d` values [`score`] left in its buffer); and each slow
+/// chart `slow[s]` (model format 5: the model's `slow_charts`, in feature
+/// order) becomes [`chart_next`] of the same input
+/// with its own constant, centre and gain. Call it only for a scored sample
+/// (every `r_i` finite and `r_i²` within `f32::MAX`): the model's validation
+/// then keeps every input and every EWMA value finite
 /// ([`plumb_model::CHART_INPUT_MAX`]), which is why the step needs no check
 /// and no second buffer.
 ///
-/// The peak is found on the bit patterns of the absolute values, whose
+/// The peaks are found on the bit patterns of the absolute values, whose
 /// integer order is the order of the values for every non-negative float:
-/// one integer comparison per feature.
+/// one integer comparison per chart.
 #[inline(always)]
-pub fn chart_step(model: &Model, r: &[f32], ewma: &mut [f32; MAX_FEATURES]) -> ChartStep {
+pub fn chart_step(
+    model: &Model,
+    r: &[f32],
+    ewma: &mut [f32; MAX_FEATURES],
+    slow: &mut [f32; MAX_SLOW],
+) -> ChartStep {
     let d = usize::from(model.dims.features).min(r.len());
     let r = r.get(..d).unwrap_or(&[]);
     let lambda = model.monitor.ewma_lambda;
-    let mut peak_bits = 0u32;
-    let mut at = 0usize;
+    let (mut peak, mut at, mut slow_peak, mut slow_at) = (0u32, 0usize, 0u32, 0usize);
     for (i, ((e, center), gain)) in ewma
         .iter_mut()
         .zip(model.resid_center.iter())
         .zip(model.resid_gain.iter())
         .enumerate()
     {
-        let next = chart_next(
+        *e = chart_next(
             *e,
             chart_input(&model.resid_whiten, r, i),
             *center,
             *gain,
             lambda,
         );
-        *e = next;
-        let bits = next.to_bits() & 0x7fff_ffff;
-        if bits > peak_bits {
-            peak_bits = bits;
-            at = i;
+        keep_peak(&mut peak, &mut at, *e, i);
+    }
+    // The slow charts (feature, λ, centre, gain), after: each input is
+    // computed again, the same sum in the same order, so the same bits, and
+    // a model without slow charts pays nothing per feature.
+    for (e, p) in slow
+        .iter_mut()
+        .zip(model.slow_charts.chunks_exact(SLOW_PARAMS))
+    {
+        if let &[f, l, c, g] = p {
+            let i = f as usize;
+            *e = chart_next(*e, chart_input(&model.resid_whiten, r, i), c, g, l);
+            keep_peak(&mut slow_peak, &mut slow_at, *e, i);
         }
     }
     ChartStep {
-        peak: f32::from_bits(peak_bits),
+        peak: f32::from_bits(peak),
         feature: at as u8,
+        slow_peak: f32::from_bits(slow_peak),
+        slow_feature: slow_at as u8,
+    }
+}
+
+/// Keeps `|value|`'s bits and `i` when they beat `peak` (strictly: ties keep
+/// the first).
+#[inline(always)]
+fn keep_peak(peak: &mut u32, at: &mut usize, value: f32, i: usize) {
+    let bits = value.to_bits() & 0x7fff_ffff;
+    if bits > *peak {
+        *peak = bits;
+        *at = i;
     }
 }
 
@@ -358,15 +393,7 @@ pub fn score(
         }
         j += 4;
     }
-    for (jj, tj) in latent.iter_mut().enumerate().take(m).skip(j) {
-        let mut a = 0.0f32;
-        for (zi, row) in z.iter().zip(model.loadings.chunks_exact(m)) {
-            if let Some(p) = row.get(jj) {
-                a += zi * p;
-            }
-        }
-        *tj = a;
-    }
+    latent_tail(z, &model.loadings, m, &mut latent, j);
     let t = &latent[..m];
 
     // r = z − P t; SPE = Σ r_i²; keep the top contributions; the residual
@@ -474,4 +501,26 @@ pub fn score(
         latent,
         mode,
     })
+}
+
+/// The latent scores `t_j` for `j` in `from..m` (those the groups of eight
+/// and four left), each summed over the features in index order. Out of
+/// line: a call here keeps the scoring loops' registers as they were, and
+/// the columns go by a subslice (`enumerate().take(m).skip(from)` linked a
+/// 104-byte `Take::nth`).
+#[inline(never)]
+fn latent_tail(z: &[f32], loadings: &[f32], m: usize, latent: &mut [f32], from: usize) {
+    // (With no column left, `m` may be 0, which `chunks_exact` refuses.)
+    let Some(rest) = latent.get_mut(from..m).filter(|r| !r.is_empty()) else {
+        return;
+    };
+    for (jj, tj) in (from..).zip(rest) {
+        let mut a = 0.0f32;
+        for (zi, row) in z.iter().zip(loadings.chunks_exact(m)) {
+            if let Some(p) = row.get(jj) {
+                a += zi * p;
+            }
+        }
+        *tj = a;
+    }
 }

@@ -17,7 +17,7 @@ pub trait Real: Copy + PartialOrd {
 }
 
 macro_rules! real {
-    ($t:ty) => {
+    ($t:ty, $from_count:path) => {
         impl Real for $t {
             const ZERO: Self = 0.0;
             #[inline]
@@ -38,22 +38,60 @@ macro_rules! real {
             }
             #[inline]
             fn from_count(n: u64) -> Self {
-                // u32 → float is one instruction on a Cortex-M4F; u64 → float
-                // is a library call (about 33 instructions). Same value either
-                // way, which is why the optimiser merges the two arms back
-                // into the library call unless the u32 goes through
-                // `black_box` (a store and a load).
-                if n <= u64::from(u32::MAX) {
-                    core::hint::black_box(n as u32) as $t
-                } else {
-                    n as $t
-                }
+                $from_count(n)
             }
         }
     };
 }
-real!(f32);
-real!(f64);
+real!(f32, count_f32);
+real!(f64, count_f64);
+
+/// `n as f32`, the same value, without the library's u64 → f32 routine.
+///
+/// u32 → f32 is one instruction on a Cortex-M4F; u64 → f32 is a library
+/// call (about 33 instructions, 106 bytes of code). A count that fits u32
+/// (always, short of 2³² samples) converts in one instruction. A larger one
+/// is cut to its top 32 bits with a sticky bit (bit 0 set when any bit cut
+/// off is set), converted, and scaled by the exact power of two: the 32-bit
+/// value rounds to 24 bits exactly where `n` does (the round bit is kept
+/// and the sticky bit is below it), so the result is `n as f32`, correctly
+/// rounded, bit for bit (`count_f32_is_the_cast` checks it).
+#[inline]
+fn count_f32(n: u64) -> f32 {
+    let hi = (n >> 32) as u32;
+    let lo = n as u32;
+    if hi == 0 {
+        lo as f32
+    } else {
+        wide_count_f32(hi, lo)
+    }
+}
+
+/// [`count_f32`] of `hi · 2³² + lo` with `hi ≠ 0`.
+#[inline(never)]
+#[cold]
+fn wide_count_f32(hi: u32, lo: u32) -> f32 {
+    // s in 0..=31: the top set bit of `hi` moves to bit 31.
+    let s = hi.leading_zeros();
+    let top = (hi << s) | ((lo >> 1) >> (31 - s));
+    let sticky = u32::from(lo << s != 0);
+    // 2^(32 − s), exact.
+    let scale = f32::from_bits((127 + 32 - s) << 23);
+    (top | sticky) as f32 * scale
+}
+
+/// `n as f64`. u32 → float is one instruction on a Cortex-M4F; u64 → float
+/// is a library call. Same value either way, which is why the optimiser
+/// merges the two arms back into the library call unless the u32 goes
+/// through `black_box` (a store and a load).
+#[inline]
+fn count_f64(n: u64) -> f64 {
+    if n <= u64::from(u32::MAX) {
+        core::hint::black_box(n as u32) as f64
+    } else {
+        n as f64
+    }
+}
 
 /// Running mean and variance by Welford's method (Welford 1962,
 /// Technometrics 4(3)), stable where the textbook sum-of-squares formula
@@ -233,6 +271,48 @@ mod tests {
         let ss: f64 = xs.iter().map(|x| x * x).sum();
         let naive = (ss - s * s / n) / (n - 1.0);
         assert!((naive - 30.0).abs() > 100.0, "naive formula {naive}");
+    }
+
+    #[test]
+    fn count_f32_is_the_cast() {
+        let check = |n: u64| {
+            assert_eq!(count_f32(n).to_bits(), (n as f32).to_bits(), "n = {n:#x}");
+        };
+        for n in [
+            0u64,
+            1,
+            u64::from(u32::MAX),
+            1 << 32,
+            (1 << 32) + 1,
+            u64::MAX,
+            u64::MAX - 1,
+            (1 << 63) + (1 << 39) + 1,
+            (1 << 63) + (1 << 39),
+            (1 << 63) + (1 << 40) + (1 << 39),
+            (1 << 56) + (1 << 32) + 1,
+        ] {
+            check(n);
+        }
+        // Every top bit position, with round and sticky bits around the
+        // cut (the 24th significant bit and below).
+        for top in 32u32..64 {
+            let base = 1u64 << top;
+            let cut = top - 23;
+            for low in [0u64, 1, 0x7f, 0x80, 0x81, 0xff, 0x100, 0x17f, 0x180, 0x181] {
+                check(base | (low << (cut - 1)));
+                check(base | (low << (cut - 1)) | 1);
+                check(base | (low << cut));
+                check((base | (base - 1)) ^ low);
+            }
+        }
+        // And a pseudo-random sweep of every magnitude.
+        let mut x = 0x9e37_79b9_7f4a_7c15u64;
+        for _ in 0..200_000 {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            check(x >> (x % 32));
+        }
     }
 
     #[test]

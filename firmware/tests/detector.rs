@@ -674,6 +674,9 @@ fn one_sample_over_the_per_sample_limit_raises_at_once() {
 /// * the EWMA averages the errors of its inputs and adds `γ₃ (|e| + |w|)`
 ///   of its own per step: `b ← (1 − λ) b + λ Δw + γ₃ (|e| + λ |w|)`.
 ///
+/// The slow charts (model format 5) are held to the same recursion and
+/// bound with their own constant, centre and gain on the same `v_i`.
+///
 /// A chart off by 1e-4 of its limit would fail; the measured worst error
 /// over its bound is printed.
 #[test]
@@ -696,6 +699,29 @@ fn residual_chart_is_an_ewma_of_each_scaled_residual() {
                 })
                 .collect();
         }
+        // Slow charts on three features: a slow, a middling and a
+        // memoryless constant, centres and gains of their own.
+        model.slow_charts = vec![
+            1.0,
+            0.005,
+            0.25,
+            1.5, //
+            (d / 2) as f32,
+            0.05,
+            -0.5,
+            0.75, //
+            (d - 1) as f32,
+            1.0,
+            0.0,
+            2.0,
+        ];
+        let slow: Vec<(usize, f64, f64, f64)> = model
+            .slow_charts
+            .chunks_exact(4)
+            .map(|c| (c[0] as usize, c[1] as f64, c[2] as f64, c[3] as f64))
+            .collect();
+        let mut se = vec![0.0f64; slow.len()];
+        let mut sb = vec![0.0f64; slow.len()];
         let w_at = |i: usize, j: usize| -> f64 {
             if model.resid_whiten.is_empty() {
                 f64::from(u8::from(i == j))
@@ -738,6 +764,21 @@ fn residual_chart_is_an_ewma_of_each_scaled_residual() {
                     gamma(d) * (0..d).map(|j| (w_at(i, j) * r[j]).abs()).sum::<f64>()
                         + (0..d).map(|j| w_at(i, j).abs() * dr[j]).sum::<f64>()
                 };
+                for (s, &(f, sl, sc, sg)) in slow.iter().enumerate().filter(|(_, c)| c.0 == i) {
+                    let w = (v - sc) * sg;
+                    let dw = sg * (dv + gamma(2) * (v - sc).abs());
+                    sb[s] = (1.0 - sl) * sb[s] + sl * dw + gamma(3) * (se[s].abs() + sl * w.abs());
+                    se[s] += sl * (w - se[s]);
+                    let got = chart.slow[s] as f64;
+                    let err = (got - se[s]).abs();
+                    assert!(
+                        err <= sb[s],
+                        "(d {d}, whitened {whiten}) sample {n}, slow chart {s} (feature {f}): {got} vs {} (error {err:e} > bound {:e})",
+                        se[s],
+                        sb[s]
+                    );
+                    worst = worst.max(err / sb[s]);
+                }
                 let (c, g) = (model.resid_center[i] as f64, model.resid_gain[i] as f64);
                 let w = (v - c) * g;
                 let dw = g * (dv + gamma(2) * (v - c).abs());
@@ -767,6 +808,19 @@ fn residual_chart_is_an_ewma_of_each_scaled_residual() {
                 chart.ewma[usize::from(chart.peak_feature)].abs(),
                 chart.peak
             );
+            // The slow peak: the largest |slow EWMA| and its feature.
+            let (got_slow, at) = chart.slow[..slow.len()].iter().zip(&slow).fold(
+                (0.0f32, 0usize),
+                |(a, at), (v, c)| {
+                    if v.abs() > a {
+                        (v.abs(), c.0)
+                    } else {
+                        (a, at)
+                    }
+                },
+            );
+            assert_eq!(chart.slow_peak, got_slow, "sample {n}");
+            assert_eq!(usize::from(chart.slow_peak_feature), at, "sample {n}");
         }
     }
     println!("residual chart: worst error / bound {worst:.2e}");
@@ -827,6 +881,46 @@ fn a_shift_in_one_residual_raises_the_residual_chart() {
     let mut off = model.clone();
     off.resid_gain.iter_mut().for_each(|g| *g = 0.0);
     assert_eq!(run(&off), (None, None));
+    // The same shift seen by a slow chart alone (format 5): every residual
+    // chart off, a slow chart on the feature (λ 0.05, its residual chart's
+    // centre and gain) raises later than the λ 0.1 chart did, its peak
+    // names the feature, and the flag clears after the shift.
+    let mut slow = off.clone();
+    slow.slow_charts = vec![
+        feature as f32,
+        0.05,
+        model.resid_center[feature],
+        model.resid_gain[feature],
+    ];
+    slow.slow_limit = model.resid_limit;
+    let mut det = Detector::new(slow.to_device().unwrap()).unwrap();
+    let mut rng = Rng(99);
+    let (mut slow_raised, mut slow_cleared) = (None, None);
+    for n in 0..1500 {
+        let mut x = draw(&slow, &mut rng, 0.05);
+        if (300..600).contains(&n) {
+            x[feature] += 5.0 * slow.scale[feature] as f64;
+        }
+        let xf: Vec<f32> = x.iter().map(|v| *v as f32).collect();
+        match det.update(&xf).event {
+            Some(Event::Raised { drivers }) if slow_raised.is_none() => {
+                assert!(drivers.contains(Score::Spe), "{drivers:?}");
+                let chart = det.residual_chart();
+                assert!(chart.slow_peak > det.model().slow_limit);
+                assert!(chart.peak <= det.model().resid_limit);
+                assert_eq!(usize::from(chart.slow_peak_feature), feature);
+                slow_raised = Some(n);
+            }
+            Some(Event::Cleared) if slow_raised.is_some() => slow_cleared = Some(n),
+            _ => {}
+        }
+    }
+    let slow_raised = slow_raised.expect("the slow chart raises a flag");
+    assert!(
+        slow_raised > raised && slow_raised < 600,
+        "slow chart raised at {slow_raised}, the λ 0.1 chart at {raised}"
+    );
+    assert!(slow_cleared.expect("and the flag clears") > 600);
 }
 
 /// The residual chart's range check (`plumb_model::CHART_INPUT_MAX`): a

@@ -149,6 +149,8 @@ fn model(id: u32, mean_shift: f32) -> ModelOwned {
         resid_gain: vec![0.0; 4],
         resid_limit: 1.0,
         resid_whiten: Vec::new(),
+        slow_charts: Vec::new(),
+        slow_limit: 1.0,
     }
 }
 
@@ -803,6 +805,50 @@ mod scoring {
         );
         // The chart's value is the detector's, bit for bit.
         assert_eq!(r.crossed[1].value.to_bits(), chart.peak.to_bits());
+    }
+
+    #[test]
+    fn the_slow_chart_crossing_follows_the_residual_charts_and_names_its_feature() {
+        // As above, with slow charts (format 5) on features 1 and 3 (λ 1,
+        // so one spike sample moves each to its full scaled input; feature
+        // 3's gain larger) and their limit 0.2: listed after the residual
+        // chart, with the slow peak and its feature.
+        let spe = ScoreLimits {
+            sample_limit: 3.0,
+            cusum_limit: 40.0,
+            ewma_limit: 40.0,
+            ..limits(0.2, 0.1)
+        };
+        let mut m = chart_model(spe, 50.0);
+        m.resid_gain = vec![1.0, 1.0, 2.0, 1.0];
+        m.resid_limit = 0.2;
+        m.slow_charts = vec![1.0, 1.0, 0.0, 1.0, 3.0, 1.0, 0.0, 3.0];
+        m.slow_limit = 0.2;
+        let spike = Lcg(5).drifted();
+        let (r, reference) = raise_with(&m, &spike);
+        assert_eq!(r.drivers, 0b001, "{r:?}");
+        let chart = reference.residual_chart();
+        assert_eq!(chart.slow_peak_feature, 3, "{chart:?}");
+        assert!(chart.slow_peak > 0.2, "{chart:?}");
+        let tail: Vec<Statistic> = r.crossed.iter().map(|c| c.statistic).collect();
+        assert_eq!(
+            tail,
+            [
+                Statistic::Sample,
+                Statistic::Residual { feature: 2 },
+                Statistic::Slow { feature: 3 }
+            ]
+        );
+        assert_eq!(
+            r.crossed[2],
+            Crossing {
+                score: ScoreKind::Spe,
+                statistic: Statistic::Slow { feature: 3 },
+                value: chart.slow_peak,
+                limit: 0.2,
+            }
+        );
+        assert_eq!(r.crossed[2].value.to_bits(), chart.slow_peak.to_bits());
     }
 
     #[test]

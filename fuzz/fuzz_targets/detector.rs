@@ -18,8 +18,8 @@
 //! * Nothing panics; `Detector::new` on a decoded model never panics either.
 //! * A sample that is not a fault has finite scores, bit-equal to
 //!   `Detector::score`, and leaves every EWMA and CUSUM a number (not NaN)
-//!   and every value of the residual chart finite (it steps in place, kept
-//!   in range by the model's validation).
+//!   and every value of the residual chart and of the slow charts finite
+//!   (they step in place, kept in range by the model's validation).
 //! * A fault touches no statistic; `score` finds the same fault, except an
 //!   overflow of a standardised score, which only `update` computes.
 #![no_main]
@@ -115,8 +115,11 @@ fuzz_target!(|data: &[u8]| {
                 // model's range check must keep every value finite.
                 let chart = det.residual_chart();
                 assert!(
-                    chart.ewma.iter().all(|e| e.is_finite()) && chart.peak.is_finite(),
-                    "residual chart left the f32 range: {chart:?}"
+                    chart.ewma.iter().all(|e| e.is_finite())
+                        && chart.peak.is_finite()
+                        && chart.slow.iter().all(|e| e.is_finite())
+                        && chart.slow_peak.is_finite(),
+                    "residual or slow chart left the f32 range: {chart:?}"
                 );
             }
             other => panic!("fault and scores disagree: {other:?}"),

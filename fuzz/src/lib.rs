@@ -17,7 +17,8 @@ use std::collections::VecDeque;
 use std::convert::Infallible;
 
 /// The model every endpoint run boots on, and the fallback of the detector
-/// target: d = 4, m = 2, k = 2, with a whitening matrix (format 4).
+/// target: d = 4, m = 2, k = 2, with a whitening matrix (format 4) and two
+/// slow charts (format 5).
 pub fn builtin_model() -> ModelOwned {
     whitened(support::example_model(4, 2, 2, 7))
 }
@@ -31,7 +32,8 @@ pub fn other_model(id: u32) -> ModelOwned {
 
 /// `m` with a dense whitening matrix: unit diagonal, off-diagonal entries
 /// of ±0.25 and ±0.5, so the fuzzer starts from models whose chart mixes
-/// every residual.
+/// every residual; and slow charts on features 1 and 3 (λ 0.05 and 0.5,
+/// each at its residual chart's centre and twice its gain).
 fn whitened(mut m: ModelOwned) -> ModelOwned {
     let d = usize::from(m.dims.features);
     m.resid_whiten = (0..d * d)
@@ -41,6 +43,11 @@ fn whitened(mut m: ModelOwned) -> ModelOwned {
             _ => -0.5,
         })
         .collect();
+    m.slow_charts = [(1usize, 0.05f32), (3, 0.5)]
+        .iter()
+        .flat_map(|&(i, l)| [i as f32, l, m.resid_center[i], 2.0 * m.resid_gain[i]])
+        .collect();
+    m.slow_limit = m.resid_limit;
     m
 }
 

@@ -91,6 +91,9 @@ pub enum Command {
     /// Run logs through the firmware detector on the host and report drift flags.
     #[command(long_about = cmd::replay::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Replay(cmd::replay::ReplayArgs),
+    /// Add slow charts to a model, set on one robot's own nominal logs.
+    #[command(long_about = cmd::tailor::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
+    Tailor(cmd::tailor::TailorArgs),
     /// Replay logs and write one self-contained HTML report with plots.
     #[command(long_about = cmd::report::LONG_ABOUT, after_help = SAFETY, after_long_help = SAFETY)]
     Report(cmd::report::ReportArgs),
@@ -109,6 +112,7 @@ pub fn run(cli: Cli) -> Result<u8> {
         Command::Upload(args) => cmd::upload::run(args),
         Command::Sign(args) => cmd::sign::run(args),
         Command::Replay(args) => cmd::replay::run(args),
+        Command::Tailor(args) => cmd::tailor::run(args),
         Command::Report(args) => cmd::report::run(args),
     }
 }

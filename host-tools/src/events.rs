@@ -252,21 +252,23 @@ fn score_name(s: ScoreKind) -> &'static str {
 }
 
 /// Name of a chart in lines and JSON: `ewma`, `cusum`, `per-sample` (the
-/// per-sample limit on the raw score) or `residual` (the SPE's residual
-/// chart; its feature is given beside it).
+/// per-sample limit on the raw score), `residual` (the SPE's residual
+/// chart; its feature is given beside it) or `slow` (the SPE's slow charts,
+/// model format 5; the same).
 fn statistic_name(s: Statistic) -> &'static str {
     match s {
         Statistic::Ewma => "ewma",
         Statistic::Cusum => "cusum",
         Statistic::Sample => "per-sample",
         Statistic::Residual { .. } => "residual",
+        Statistic::Slow { .. } => "slow",
     }
 }
 
-/// The feature a crossing names (the residual chart's), if any.
+/// The feature a crossing names (the residual or slow chart's), if any.
 fn crossing_feature(c: &Crossing) -> Option<u8> {
     match c.statistic {
-        Statistic::Residual { feature } => Some(feature),
+        Statistic::Residual { feature } | Statistic::Slow { feature } => Some(feature),
         _ => None,
     }
 }

@@ -637,6 +637,9 @@ pub fn fit(
         resid_gain: Vec::new(),
         resid_limit: 0.0,
         resid_whiten: Vec::new(),
+        // `plumb tailor` adds slow charts; a fitted model has none.
+        slow_charts: Vec::new(),
+        slow_limit: 1.0,
     };
     let device = Capacity::DEVICE.admits(&dims).is_ok();
     let calib_stage = |label: &str, total: u64| progress.stage(label, total, true);

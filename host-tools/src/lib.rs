@@ -63,3 +63,4 @@ pub mod residual;
 pub mod rng;
 pub mod simd;
 pub mod summary;
+pub mod tailor;

@@ -320,6 +320,9 @@ pub struct ModelInfo {
     /// The residual chart's limit (`None` when the chart is off: a model
     /// of format 1 or 2).
     pub resid_limit: Option<f32>,
+    /// The slow charts' limit (`None` without slow charts: a model not
+    /// tailored, or of format 1–4).
+    pub slow_limit: Option<f32>,
 }
 
 impl ModelInfo {
@@ -334,6 +337,7 @@ impl ModelInfo {
                 .iter()
                 .any(|g| *g > 0.0)
                 .then_some(m.resid_limit),
+            slow_limit: (!m.slow_charts.is_empty()).then_some(m.slow_limit),
         }
     }
 }
@@ -388,7 +392,7 @@ pub struct LiveState {
     reports: u64,
     /// Limits learnt from crossings: `[score][chart]` (EWMA, CUSUM,
     /// per-sample).
-    seen_limits: [[Option<f32>; 4]; 3],
+    seen_limits: [[Option<f32>; 5]; 3],
     host: LinkStats,
     frames: u64,
     last_frame: Option<Duration>,
@@ -422,6 +426,7 @@ fn statistic_label(s: Statistic) -> &'static str {
         Statistic::Cusum => "CUSUM",
         Statistic::Sample => "per-sample",
         Statistic::Residual { .. } => "residual",
+        Statistic::Slow { .. } => "slow",
     }
 }
 
@@ -431,6 +436,7 @@ fn statistic_index(s: Statistic) -> usize {
         Statistic::Cusum => 1,
         Statistic::Sample => 2,
         Statistic::Residual { .. } => 3,
+        Statistic::Slow { .. } => 4,
     }
 }
 
@@ -490,7 +496,7 @@ impl LiveState {
             fault_events: 0,
             scores: VecDeque::new(),
             reports: 0,
-            seen_limits: [[None; 4]; 3],
+            seen_limits: [[None; 5]; 3],
             host: LinkStats::default(),
             frames: 0,
             last_frame: None,
@@ -540,6 +546,7 @@ impl LiveState {
                 Statistic::Cusum => Some(l.cusum_limit),
                 Statistic::Sample => Some(l.sample_limit),
                 Statistic::Residual { .. } => info.resid_limit,
+                Statistic::Slow { .. } => info.slow_limit,
             };
         }
         self.seen_limits[score_index(score)][statistic_index(stat)]
@@ -1335,9 +1342,9 @@ impl LiveState {
                     .crossed
                     .iter()
                     .map(|c| {
-                        // The residual chart names its feature.
+                        // The residual and slow charts name their feature.
                         let feature = match c.statistic {
-                            Statistic::Residual { feature } => {
+                            Statistic::Residual { feature } | Statistic::Slow { feature } => {
                                 format!(" ({})", self.names.feature(feature))
                             }
                             _ => String::new(),

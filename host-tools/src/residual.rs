@@ -217,12 +217,12 @@ pub struct Residuals<'a> {
 }
 
 impl Residuals<'_> {
-    fn n(&self) -> usize {
+    pub(crate) fn n(&self) -> usize {
         self.rows.len() / self.d.max(1)
     }
 
     /// Row ranges of the logs.
-    fn logs(&self) -> impl Iterator<Item = std::ops::Range<usize>> + '_ {
+    pub(crate) fn logs(&self) -> impl Iterator<Item = std::ops::Range<usize>> + '_ {
         let n = self.n();
         (0..self.starts.len()).map(move |i| {
             let a = self.starts[i].min(n);
@@ -231,7 +231,7 @@ impl Residuals<'_> {
         })
     }
 
-    fn row(&self, i: usize) -> &[f32] {
+    pub(crate) fn row(&self, i: usize) -> &[f32] {
         &self.rows[i * self.d..(i + 1) * self.d]
     }
 
@@ -240,28 +240,47 @@ impl Residuals<'_> {
     /// alarm (the second value).
     fn alarms(&self, model: &Model, limit: f32) -> (u64, f32) {
         let lambda = model.monitor.ewma_lambda;
+        self.chart_alarms(limit, self.d, |ewma, row| {
+            // As the detector steps the chart, in place
+            // (`score::chart_step`; the rows are its inputs, already
+            // whitened), and the largest |value|. The model's range check
+            // keeps every value finite, so no sample is dropped here.
+            let mut peak = 0.0f32;
+            for (((e, r), c), g) in ewma
+                .iter_mut()
+                .zip(row)
+                .zip(&model.resid_center)
+                .zip(&model.resid_gain)
+            {
+                *e = chart_next(*e, *r, *c, *g, lambda);
+                peak = peak.max(e.abs());
+            }
+            peak
+        })
+    }
+
+    /// Alarms of one chart alone with `limit`, as calibration counts them:
+    /// its `n` EWMA values from 0 at each log's start, `step` moving them
+    /// with a row and giving their peak, no alarm in the warm-up, `dwell`
+    /// rows over the limit make an alarm, and the values restart from 0
+    /// after one. With `limit` = ∞ also the highest peak at a row that may
+    /// alarm (the second value).
+    pub(crate) fn chart_alarms(
+        &self,
+        limit: f32,
+        n: usize,
+        mut step: impl FnMut(&mut [f32], &[f32]) -> f32,
+    ) -> (u64, f32) {
         let warmup = self.warmup as usize;
         let dwell = u32::from(self.dwell.max(1));
         let mut alarms = 0;
         let mut highest = f32::NEG_INFINITY;
+        let mut ewma = vec![0.0f32; n];
         for log in self.logs() {
-            let mut ewma = vec![0.0f32; self.d];
+            ewma.iter_mut().for_each(|e| *e = 0.0);
             let mut run = 0u32;
             for (i, row) in log.enumerate() {
-                // As the detector steps the chart, in place
-                // (`score::chart_step`; the rows are its inputs, already
-                // whitened), and the largest |value|. The model's range check
-                // keeps every value finite, so no sample is dropped here.
-                let mut peak = 0.0f32;
-                for (((e, r), c), g) in ewma
-                    .iter_mut()
-                    .zip(self.row(row))
-                    .zip(&model.resid_center)
-                    .zip(&model.resid_gain)
-                {
-                    *e = chart_next(*e, *r, *c, *g, lambda);
-                    peak = peak.max(e.abs());
-                }
+                let peak = step(&mut ewma, self.row(row));
                 if i < warmup {
                     continue;
                 }
@@ -282,12 +301,30 @@ impl Residuals<'_> {
     }
 }
 
-/// Sets `model.resid_center`, `resid_gain` and `resid_limit` from the
-/// held-out residuals (steps 1–4 above); `allowed` alarms on them.
-pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Result<ResidualCalib> {
+/// Each feature's centre, spread and scale (steps 1–3 above) for an EWMA
+/// constant `lambda`.
+pub struct Scales {
+    /// Per feature, in model order.
+    pub features: Vec<FeatureResidual>,
+    /// The quantile level of step 2.
+    pub tail_level: f64,
+    /// Held-out logs.
+    pub logs: usize,
+    /// Student's t quantile of the level bound (0 with fewer than two logs).
+    pub level_t: f64,
+}
+
+/// Steps 1–3 above with the EWMA constant `lambda`.
+pub fn scales(r: &Residuals<'_>, lambda: f64) -> Result<Scales> {
+    let mut all = scales_for(r, &[lambda])?;
+    Ok(all.remove(0))
+}
+
+/// [`scales`] for each constant of `lambdas`, in one pass over each
+/// feature's column for all of them (the same arithmetic per constant).
+pub fn scales_for(r: &Residuals<'_>, lambdas: &[f64]) -> Result<Vec<Scales>> {
     let d = r.d;
     let n = r.n();
-    let lambda = f64::from(model.monitor.ewma_lambda);
     // 1. Centre and spread.
     let mut moments = vec![Welford::<f64>::new(); d];
     for i in 0..n {
@@ -329,19 +366,29 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
             "no held-out row after the warm-up: cannot calibrate the residual chart",
         ));
     }
-    let mut tail = Vec::with_capacity(eligible);
-    let mut row_tail = |j: usize, level: f64| -> f64 {
-        tail.clear();
+    let mut tails: Vec<Vec<f32>> = lambdas
+        .iter()
+        .map(|_| Vec::with_capacity(eligible))
+        .collect();
+    // Each constant's tail quantile for feature `j`.
+    let mut row_tails = |j: usize, level: f64| -> Vec<f64> {
+        tails.iter_mut().for_each(Vec::clear);
+        let mut e = vec![0.0f64; lambdas.len()];
         for log in r.logs() {
-            let mut e = 0.0f64;
+            e.iter_mut().for_each(|e| *e = 0.0);
             for (i, row) in log.enumerate() {
-                e += lambda * (w(j, r.row(row)[j]) - e);
+                let x = w(j, r.row(row)[j]);
+                for (e, lambda) in e.iter_mut().zip(lambdas) {
+                    *e += lambda * (x - *e);
+                }
                 if i >= warmup {
-                    tail.push(e.abs() as f32);
+                    for (t, e) in tails.iter_mut().zip(&e) {
+                        t.push(e.abs() as f32);
+                    }
                 }
             }
         }
-        quantile_type1(&mut tail, level)
+        tails.iter_mut().map(|t| quantile_type1(t, level)).collect()
     };
     let tail_level = (1.0 - TAIL_ROWS / eligible as f64).max(0.5);
     let logs = levels.first().map_or(0, Vec::len);
@@ -359,10 +406,11 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
         let sd = (l.iter().map(|m| (m - mean).powi(2)).sum::<f64>() / (k - 1.0)).sqrt();
         mean.abs() + level_t * sd * (1.0 + 1.0 / k).sqrt()
     };
-    let features: Vec<FeatureResidual> = (0..d)
-        .map(|j| {
-            let row_tail = row_tail(j, tail_level);
-            let level_bound = level_bound(&levels[j]);
+    let mut features: Vec<Vec<FeatureResidual>> =
+        lambdas.iter().map(|_| Vec::with_capacity(d)).collect();
+    for j in 0..d {
+        let level_bound = level_bound(&levels[j]);
+        for (out, row_tail) in features.iter_mut().zip(row_tails(j, tail_level)) {
             let tail = row_tail.max(level_bound);
             let g = 1.0 / (spread[j] * tail);
             let gain = if g.is_finite() && g > 0.0 {
@@ -370,21 +418,41 @@ pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Res
             } else {
                 0.0
             };
-            FeatureResidual {
+            out.push(FeatureResidual {
                 center: center[j],
                 spread: spread[j],
                 tail,
                 row_tail,
                 level_bound,
                 gain,
-            }
+            });
+        }
+    }
+    Ok(features
+        .into_iter()
+        .map(|features| Scales {
+            features,
+            tail_level,
+            logs,
+            level_t,
         })
-        .collect();
+        .collect())
+}
+
+/// Sets `model.resid_center`, `resid_gain` and `resid_limit` from the
+/// held-out residuals (steps 1–4 above); `allowed` alarms on them.
+pub fn calibrate(model: &mut ModelOwned, r: &Residuals<'_>, allowed: u64) -> Result<ResidualCalib> {
+    let Scales {
+        features,
+        tail_level,
+        logs,
+        level_t,
+    } = scales(r, f64::from(model.monitor.ewma_lambda))?;
     let level_bound_features = features
         .iter()
         .filter(|f| f.level_bound > f.row_tail)
         .count();
-    model.resid_center = center.iter().map(|c| *c as f32).collect();
+    model.resid_center = features.iter().map(|f| f.center as f32).collect();
     model.resid_gain = features.iter().map(|f| f.gain).collect();
     model.resid_limit = LIMIT_FLOOR;
     let dev = model
@@ -553,6 +621,8 @@ mod tests {
             resid_gain: vec![0.0; d],
             resid_limit: 1.0,
             resid_whiten: Vec::new(),
+            slow_charts: Vec::new(),
+            slow_limit: 1.0,
         }
     }
 
@@ -767,7 +837,7 @@ mod bias_tests {
         let mut ewma = [0.0f32; MAX_FEATURES];
         for _ in 0..2000 {
             score(model, derived, x, &mut buf).expect("scored");
-            chart_step(model, &buf, &mut ewma);
+            chart_step(model, &buf, &mut ewma, &mut [0.0; plumb_model::MAX_SLOW]);
         }
         ewma
     }

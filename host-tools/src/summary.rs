@@ -169,6 +169,19 @@ pub struct SizeInfo {
     pub detector_ram_bytes: usize,
 }
 
+/// One slow chart (format 5).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct SlowRow {
+    /// Feature name.
+    pub feature: String,
+    /// EWMA constant.
+    pub lambda: f32,
+    /// Centre of its input.
+    pub center: f32,
+    /// Gain.
+    pub gain: f32,
+}
+
 /// Everything `fit` and `inspect` print.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Summary {
@@ -193,6 +206,10 @@ pub struct Summary {
     /// Whether the residual chart smooths whitened residuals (the model has
     /// a whitening matrix, format 4).
     pub resid_whitened: bool,
+    /// The SPE's slow charts (format 5, `plumb tailor`), in feature order.
+    pub slow_charts: Vec<SlowRow>,
+    /// Their limit on `|EWMA|`.
+    pub slow_limit: f32,
     /// Jackson–Mudholkar SPE limit at α = 0.001 from θ (None if θ1 = 0).
     pub spe_limit_jm: Option<f64>,
     /// Sizes.
@@ -341,6 +358,20 @@ impl Summary {
             },
             resid_limit: model.resid_limit,
             resid_whitened: !model.resid_whiten.is_empty(),
+            slow_charts: model
+                .slow_charts
+                .chunks_exact(plumb_model::SLOW_PARAMS)
+                .map(|c| SlowRow {
+                    feature: file
+                        .labels
+                        .get(c[0] as usize)
+                        .map_or_else(|| format!("#{}", c[0]), |l| l.name.clone()),
+                    lambda: c[1],
+                    center: c[2],
+                    gain: c[3],
+                })
+                .collect(),
+            slow_limit: model.slow_limit,
             limits: vec![
                 LimitRow {
                     score: "spe",
@@ -400,12 +431,13 @@ impl Summary {
                      residual chart off"
                 }
                 2 => "with the SPE's residual chart off",
-                _ => "with the SPE's residual chart on unwhitened residuals",
+                3 => "with the SPE's residual chart on unwhitened residuals",
+                _ => "without slow charts",
             };
             let _ = writeln!(
                 o,
                 "  format {} file: read {how} (it flags as it did); boards read format {} only: \
-                 refit it (plumb fit --base)",
+                 refit it (plumb fit --base) or write it again (plumb tailor)",
                 mi.format_version,
                 plumb_model::file::FORMAT_VERSION
             );
@@ -634,6 +666,27 @@ impl Summary {
                 } else {
                     "plain"
                 }
+            );
+        }
+        if self.slow_charts.is_empty() {
+            let _ = writeln!(o, "  spe slow charts: none (plumb tailor adds them)");
+        } else {
+            let list: Vec<String> = self
+                .slow_charts
+                .iter()
+                .map(|c| {
+                    format!(
+                        "{} (lambda {}, centre {:.4}, gain {:.4})",
+                        c.feature, c.lambda, c.center, c.gain
+                    )
+                })
+                .collect();
+            let _ = writeln!(
+                o,
+                "  spe slow charts: hot when any EWMA of (v - centre) x gain is beyond {:.4} in \
+                 absolute value: {}",
+                self.slow_limit,
+                list.join(", ")
             );
         }
         match self.spe_limit_jm {

@@ -923,14 +923,14 @@ fn spe_by_mode_is_the_held_out_moments_of_each_mode() {
     assert!(own >= 2, "at least two modes hold rows: {acc:?}");
 }
 
-/// Format 1, 2 and 3 files (FORMAT.md, history): the host reads them, says
-/// so, and replays each exactly as the same model written in the current
-/// format with the residual chart off (format 3: without a whitening matrix;
-/// format 1: every mode at the global SPE centre and spread too); `plumb
-/// upload` refuses them before sending, since boards read the current
-/// format only.
+/// Format 1–4 files (FORMAT.md, history): the host reads them, says so, and
+/// replays each exactly as the same model written in the current format
+/// with the residual chart off (format 3: without a whitening matrix;
+/// format 1: every mode at the global SPE centre and spread too; format 4:
+/// without slow charts); `plumb upload` refuses them before sending, since
+/// boards read the current format only.
 #[test]
-fn format_1_2_and_3_models_are_read_by_the_host_and_refused_for_a_board() {
+fn format_1_to_4_models_are_read_by_the_host_and_refused_for_a_board() {
     let dir = Scratch::new("format1");
     let a = dir.write("a.csv", &log_text(4, 1200, 1));
     let b = dir.write("b.csv", &log_text(4, 1200, 2));
@@ -941,8 +941,9 @@ fn format_1_2_and_3_models_are_read_by_the_host_and_refused_for_a_board() {
     let bytes = std::fs::read(&v3).unwrap();
     let word = |at: usize| u32::from_le_bytes(bytes[at..at + 4].try_into().unwrap()) as usize;
     let (payload, labels) = (word(8), word(12));
-    // Downgrade: drop field 33 (one log: the chart off, no matrix, a length
-    // byte) for version 3, fields 30–32 too (d = 4: two × (length byte + 4
+    // Downgrade: drop fields 34–35 (no slow charts: a length byte and the
+    // f32 limit) for version 4, field 33 too (one log: the chart off, no
+    // matrix, a length byte) for version 3, fields 30–32 too (d = 4: two × (length byte + 4
     // f32) and one f32) for version 2, and fields 28–29 too (k = 2: two ×
     // (length byte + 2 f32)) for version 1.
     let older = |version: u8, cut: usize| {
@@ -970,7 +971,7 @@ fn format_1_2_and_3_models_are_read_by_the_host_and_refused_for_a_board() {
         assert!(o.status.code() == Some(1), "{}", stderr(&o));
         String::from_utf8_lossy(&o.stdout).into_owned()
     };
-    for (version, cut) in [(1u8, 1 + 38 + 18), (2, 1 + 38), (3, 1)] {
+    for (version, cut) in [(1u8, 5 + 1 + 38 + 18), (2, 5 + 1 + 38), (3, 5 + 1), (4, 5)] {
         let old_bytes = older(version, cut);
         let old = dir.path(&format!("v{version}.plumb"));
         std::fs::write(&old, &old_bytes).unwrap();
@@ -990,13 +991,13 @@ fn format_1_2_and_3_models_are_read_by_the_host_and_refused_for_a_board() {
         let o = plumb_ok(&["inspect", s(&old)]);
         let text = String::from_utf8_lossy(&o.stdout);
         assert!(text.contains(&format!("format {version})")), "{text}");
-        let how = if version == 3 {
-            "residual chart on unwhitened residuals"
-        } else {
-            "residual chart off"
+        let how = match version {
+            3 => "residual chart on unwhitened residuals",
+            4 => "without slow charts",
+            _ => "residual chart off",
         };
         assert!(text.contains(how), "{text}");
-        assert!(text.contains("boards read format 4 only"), "{text}");
+        assert!(text.contains("boards read format 5 only"), "{text}");
 
         assert_eq!(replay(&old), replay(&same), "version {version}");
 

@@ -20,8 +20,18 @@ fn copy_demo(to: &Path) {
     std::fs::copy(demo("truth.csv"), to.join("truth.csv")).unwrap();
 }
 
-/// The JSON summary and what went to standard error.
-fn run_demo(logs: &Path, out: &Path, train_rows: &str) -> (Value, String) {
+/// The JSON summary and what went to standard error (40 000 nominal rows).
+fn run_demo(logs: &Path, out: &Path, train_rows: &str, robot_rows: &str) -> (Value, String) {
+    run_demo_with(logs, out, "40000", train_rows, robot_rows)
+}
+
+fn run_demo_with(
+    logs: &Path,
+    out: &Path,
+    nominal_rows: &str,
+    train_rows: &str,
+    robot_rows: &str,
+) -> (Value, String) {
     let o = plumb(&[
         "demo",
         "--logs",
@@ -29,9 +39,11 @@ fn run_demo(logs: &Path, out: &Path, train_rows: &str) -> (Value, String) {
         "--out",
         out.to_str().unwrap(),
         "--nominal-rows",
-        "40000",
+        nominal_rows,
         "--train-rows",
         train_rows,
+        "--robot-rows",
+        robot_rows,
         "--no-report",
         "--json",
     ]);
@@ -62,7 +74,7 @@ fn demo_fits_replays_and_reports_every_scenario() {
     let logs = dir.path("logs");
     copy_demo(&logs);
     let out = dir.path("out");
-    let (r, stderr) = run_demo(&logs, &out, "20000");
+    let (r, stderr) = run_demo(&logs, &out, "20000", "8000");
 
     // 40 000 held-out rows are far too few for ten charts at 10⁻⁵ (a budget
     // of 0.04 alarms each): the fit's warning is said, not swallowed.
@@ -154,6 +166,168 @@ fn demo_fits_replays_and_reports_every_scenario() {
         std::fs::read_to_string(&marker).unwrap(),
         "seed 3003 rows 20000 files 1\n"
     );
+
+    // 40 000 calibration rows are one log: the fleet model's residual chart
+    // is off, so there is nothing to tailor; the per-robot step says so and
+    // is skipped.
+    let skipped = "the per-robot step is skipped: the fleet model's residual chart is off";
+    assert!(
+        warnings
+            .iter()
+            .any(|w| w.as_str().unwrap().starts_with(skipped)),
+        "{warnings:?}"
+    );
+    assert!(
+        stderr.contains(&format!("demo: warning: {skipped}")),
+        "{stderr}"
+    );
+    assert_eq!(r["robot_rows"], 8000);
+    assert_eq!(r["robots"].as_array().unwrap().len(), 0);
+    assert!(!logs.join("generated/robot1").exists());
+}
+
+/// The per-robot step with `--robot-rows 40000` (calibration on two logs, so
+/// the residual chart is on): four days of 10 000 rows per robot, the 1st
+/// and 3rd to tailor on, the 2nd and 4th to count false alarms on.
+#[test]
+fn demo_tailors_the_model_to_each_robot_a_drift_log_comes_from() {
+    let dir = Scratch::new("demo-robots");
+    let logs = dir.path("logs");
+    copy_demo(&logs);
+    let out = dir.path("out");
+    let (r, _) = run_demo_with(&logs, &out, "125001", "0", "40000");
+    let (r, logs, out) = (&r, logs.as_path(), out.as_path());
+    assert_eq!(r["robot_rows"], 40000);
+    let robots = r["robots"].as_array().unwrap();
+    let ids: Vec<u64> = robots
+        .iter()
+        .map(|m| m["robot"].as_u64().unwrap())
+        .collect();
+    // One per robot a drift (not a fault) log comes from, as each scenario
+    // says; every scenario of those robots is listed under its robot.
+    let scenarios = r["scenarios"].as_array().unwrap();
+    let mut want: Vec<u64> = scenarios
+        .iter()
+        .filter(|s| s["kind"] == "drift")
+        .map(|s| s["robot"].as_u64().expect("robot of a drift log"))
+        .collect();
+    want.sort_unstable();
+    want.dedup();
+    assert_eq!(ids, want);
+    assert!(ids.len() >= 2, "{ids:?}");
+    for m in robots {
+        let robot = m["robot"].as_u64().unwrap();
+        let listed: Vec<&str> = m["scenarios"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|s| s.as_str().unwrap())
+            .collect();
+        let mine: Vec<&str> = scenarios
+            .iter()
+            .filter(|s| s["robot"] == robot)
+            .map(|s| s["scenario"].as_str().unwrap())
+            .collect();
+        assert_eq!(listed, mine, "robot {robot}");
+
+        // Its own logs: generated once under generated/robot<N>, one per day.
+        let dir = logs.join(format!("generated/robot{robot}"));
+        assert_eq!(
+            std::fs::read_to_string(dir.join("complete")).unwrap(),
+            format!("seed 424242 robot {robot} days 2000-2003 rows 40000\n")
+        );
+        for day in 2000..2004 {
+            let text =
+                std::fs::read_to_string(dir.join(format!("robot{robot}_day{day}.csv"))).unwrap();
+            assert_eq!(text.lines().count(), 1 + 10_000, "robot {robot} day {day}");
+        }
+        assert_eq!(m["tailor_days"], serde_json::json!([2000, 2002]));
+        assert_eq!(m["count_days"], serde_json::json!([2001, 2003]));
+
+        // The tailored model is written, reads back, and holds the slow
+        // charts and limit the summary reports.
+        let path = out.join(format!("robot{robot}.plumb"));
+        assert_eq!(m["model"].as_str().unwrap(), path.to_str().unwrap());
+        let o = plumb(&["inspect", path.to_str().unwrap()]);
+        assert_eq!(
+            o.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        let file =
+            plumb_model::file::ModelFile::from_bytes(&std::fs::read(&path).unwrap()).unwrap();
+        let t = &m["tailoring"];
+        assert_eq!(t["logs"], 2);
+        let rows = t["rows"].as_u64().unwrap();
+        assert!(rows > 0 && rows <= 20_000, "{t}");
+        let charts = t["charts"].as_array().unwrap();
+        assert_eq!(file.model.slow_charts.len(), 4 * charts.len(), "{t}");
+        // (An f32 in the JSON is its shortest text: it reads back as that f32.)
+        assert_eq!(file.model.slow_limit, t["limit"].as_f64().unwrap() as f32);
+        for (c, stored) in charts.iter().zip(file.model.slow_charts.chunks_exact(4)) {
+            assert_eq!(c["feature"].as_u64().unwrap(), stored[0] as u64, "{c}");
+            assert_eq!(c["lambda"].as_f64().unwrap() as f32, stored[1], "{c}");
+        }
+
+        // The robot's other days: every flag a false alarm, counted as the
+        // fleet model's nominal sets are.
+        let n = &m["nominal"];
+        assert_eq!(n["samples"], 20_000);
+        let flags = n["flags"].as_u64().unwrap();
+        assert_eq!(
+            n["per_1e5"].as_f64().unwrap(),
+            flags as f64 * 1e5 / 20_000.0
+        );
+        assert!(m["slow_flags"].as_u64().unwrap() <= flags);
+    }
+
+    // At this size some robot gets a slow chart (else the checks of the
+    // stored charts above check nothing).
+    assert!(
+        robots
+            .iter()
+            .any(|m| !m["tailoring"]["charts"].as_array().unwrap().is_empty()),
+        "no slow chart on any robot: {robots:?}"
+    );
+
+    // Every scenario of those robots went through its robot's model.
+    for s in scenarios {
+        let Some(robot) = s["robot"].as_u64().filter(|r| ids.contains(r)) else {
+            assert!(s["tailored"].is_null(), "{s}");
+            continue;
+        };
+        let t = &s["tailored"];
+        assert_eq!(
+            t["model"].as_str().unwrap(),
+            out.join(format!("robot{robot}.plumb")).to_str().unwrap()
+        );
+        for c in t["crossed"].as_array().unwrap() {
+            assert!(
+                c["value"].as_f64().unwrap() > c["limit"].as_f64().unwrap(),
+                "{c}"
+            );
+        }
+        if s["kind"] == "fault" {
+            // A fault stays a fault: faults counted as by the fleet model,
+            // no flag.
+            assert_eq!(t["faults"], s["faults"]);
+            assert!(t["first_flag"].is_null(), "{t}");
+            continue;
+        }
+        // The tailored model keeps every chart of the fleet model and adds
+        // slow ones: with no flag before the onset, it flags no later.
+        if let (Some(fleet), Some(0)) = (s["first_flag"].as_u64(), t["false_alarms"].as_u64()) {
+            let mine = t["first_flag"]
+                .as_u64()
+                .expect("flagged by the tailored model");
+            assert!(mine <= fleet, "{}: {mine} > {fleet}", s["scenario"]);
+            assert_eq!(
+                t["delay"].as_u64().unwrap(),
+                mine - s["onset"].as_u64().unwrap()
+            );
+        }
+    }
 }
 
 #[test]
@@ -162,7 +336,7 @@ fn demo_without_generated_training_rows_uses_the_committed_logs_alone() {
     let logs = dir.path("logs");
     copy_demo(&logs);
     let out = dir.path("out");
-    let (r, _) = run_demo(&logs, &out, "0");
+    let (r, _) = run_demo(&logs, &out, "0", "0");
     assert!(!logs.join("generated/training").exists());
     let file =
         plumb_model::file::ModelFile::from_bytes(&std::fs::read(out.join("tugger.plumb")).unwrap())
@@ -171,10 +345,20 @@ fn demo_without_generated_training_rows_uses_the_committed_logs_alone() {
     // its own generated set).
     assert_eq!(file.model.meta.train_rows, 36_000);
     assert_eq!(r["scenarios"].as_array().unwrap().len(), 5);
+    // --robot-rows 0: no per-robot step, nothing generated or written for it.
+    assert_eq!(r["robot_rows"], 0);
+    assert_eq!(r["robots"].as_array().unwrap().len(), 0);
+    for s in r["scenarios"].as_array().unwrap() {
+        assert!(s["tailored"].is_null(), "{s}");
+    }
+    for robot in 1..=4 {
+        assert!(!logs.join(format!("generated/robot{robot}")).exists());
+        assert!(!out.join(format!("robot{robot}.plumb")).exists());
+    }
 }
 
 #[test]
-fn too_few_nominal_rows_are_refused_before_the_cache_is_touched() {
+fn too_few_rows_are_refused_before_the_cache_is_touched() {
     let dir = Scratch::new("demo-rows");
     let logs = dir.path("logs");
     let cached = logs.join("generated/calibration");
@@ -197,6 +381,22 @@ fn too_few_nominal_rows_are_refused_before_the_cache_is_touched() {
             cached.join("complete").exists(),
             "{rows}: the cached set was removed"
         );
+        assert!(!dir.path("out").exists(), "{rows}: output folder made");
+        assert!(!logs.join("train").exists(), "{rows}: demo logs generated");
+    }
+    for rows in ["1", "3999", "-1", "many"] {
+        let rows_arg = format!("--robot-rows={rows}");
+        let o = plumb(&[
+            "demo",
+            "--logs",
+            logs.to_str().unwrap(),
+            "--out",
+            dir.path("out").to_str().unwrap(),
+            &rows_arg,
+        ]);
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{rows}: {err}");
+        assert!(err.contains("--robot-rows"), "{err}");
         assert!(!dir.path("out").exists(), "{rows}: output folder made");
         assert!(!logs.join("train").exists(), "{rows}: demo logs generated");
     }

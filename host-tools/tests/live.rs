@@ -169,6 +169,7 @@ fn state_with_model() -> LiveState {
             id: MODEL_ID,
             monitor: monitor(),
             resid_limit: Some(1.25),
+            slow_limit: None,
         }),
     );
     // 2024-01-01 10:00:00 UTC.
@@ -485,6 +486,7 @@ fn a_model_file_the_board_does_not_run_is_named_and_its_limits_unused() {
             id: 0xdead_0001,
             monitor: monitor(),
             resid_limit: Some(1.25),
+            slow_limit: None,
         }),
     );
     feed(&mut s, session(), 0);

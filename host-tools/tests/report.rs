@@ -4,7 +4,8 @@
 //! chart per log, flag spans, onset markers, latent ellipses, explained
 //! variance, labelled contributions, the residual chart's feature beside the
 //! flags it was hot for, checked against the detector's own), size, exit
-//! codes, and rendered by a headless browser.
+//! codes, and rendered by a headless browser. The same model with slow
+//! charts added by hand gets a panel of them beside the residual chart's.
 //!
 //! The browser check needs Debian's `chromium` (`scripts/setup.sh` installs
 //! it) and fails loudly without it; `PLUMB_NO_BROWSER=1` skips it on
@@ -46,36 +47,40 @@ fn model() -> &'static Path {
     .1
 }
 
-/// The report over two drift logs with truth and training rows: (folder,
-/// HTML text, path, replay JSON).
+/// The report of `model` over two drift logs with truth and training rows:
+/// (folder, HTML text, path, replay JSON). A flag rises in bearing_wear, so
+/// the command exits 1.
+fn report_of(model: &Path, tag: &str) -> (Scratch, String, PathBuf, serde_json::Value) {
+    let dir = Scratch::new(tag);
+    let out = dir.path("report.html");
+    let o = plumb(&[
+        "report",
+        s(model),
+        s(&demo("drift/bearing_wear.csv")),
+        s(&demo("drift/sensor_dropout.csv")),
+        "--out",
+        s(&out),
+        "--train",
+        s(&demo("train")),
+        "--truth",
+        s(&demo("truth.csv")),
+        "--json",
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(1),
+        "a flag rose in bearing_wear: exit 1; stderr: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON on stdout");
+    let html = std::fs::read_to_string(&out).expect("report written");
+    (dir, html, out, v)
+}
+
+/// The report of the fitted model ([`report_of`]).
 fn drift_report() -> &'static (Scratch, String, PathBuf, serde_json::Value) {
     static R: OnceLock<(Scratch, String, PathBuf, serde_json::Value)> = OnceLock::new();
-    R.get_or_init(|| {
-        let dir = Scratch::new("report");
-        let out = dir.path("report.html");
-        let o = plumb(&[
-            "report",
-            s(model()),
-            s(&demo("drift/bearing_wear.csv")),
-            s(&demo("drift/sensor_dropout.csv")),
-            "--out",
-            s(&out),
-            "--train",
-            s(&demo("train")),
-            "--truth",
-            s(&demo("truth.csv")),
-            "--json",
-        ]);
-        assert_eq!(
-            o.status.code(),
-            Some(1),
-            "a flag rose in bearing_wear: exit 1; stderr: {}",
-            String::from_utf8_lossy(&o.stderr)
-        );
-        let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("JSON on stdout");
-        let html = std::fs::read_to_string(&out).expect("report written");
-        (dir, html, out, v)
-    })
+    R.get_or_init(|| report_of(model(), "report"))
 }
 
 /// Checks that elements nest properly: every start tag is closed in order
@@ -263,14 +268,26 @@ fn flag_rows<'a>(html: &'a str, name: &str) -> Vec<&'a str> {
         .collect()
 }
 
-/// Replays a demo log through the detector, as `plumb replay` does: for
-/// each flag, the residual chart's feature when the chart was over its limit
-/// at the sample that raised it.
-fn resid_at_raises(file: &ModelFile, log: &Path) -> Vec<Option<usize>> {
+/// What the detector's residual chart ([0]) and slow charts ([1]) did in
+/// one log.
+struct Charts {
+    /// Per flag, per chart: its peak's feature when the chart was over its
+    /// limit at the sample that raised the flag.
+    at_raise: Vec<[Option<usize>; 2]>,
+    /// Per chart: scored samples on which it was over its limit.
+    over: [u64; 2],
+}
+
+/// Replays a demo log through the detector, as `plumb replay` does, and
+/// keeps what its residual and slow charts did.
+fn chart_replay(file: &ModelFile, log: &Path) -> Charts {
     let mut det = Detector::new(file.model.to_device().unwrap()).unwrap();
     let text = std::fs::read_to_string(log).unwrap();
     let cols = common::model_columns(&file.labels, text.lines().next().unwrap());
-    let mut out = Vec::new();
+    let mut out = Charts {
+        at_raise: Vec::new(),
+        over: [0; 2],
+    };
     for row in text.lines().skip(1) {
         let cells: Vec<&str> = row.split(',').collect();
         let x: Vec<f32> = cols
@@ -278,14 +295,32 @@ fn resid_at_raises(file: &ModelFile, log: &Path) -> Vec<Option<usize>> {
             .map(|&c| cells[c].parse::<f64>().map_or(f32::NAN, |v| v as f32))
             .collect();
         let o = det.update(&x);
+        let chart = det.residual_chart();
+        let m = det.model();
+        let hot = [
+            (chart.peak > m.resid_limit).then_some(usize::from(chart.peak_feature)),
+            (chart.slow_peak > m.slow_limit).then_some(usize::from(chart.slow_peak_feature)),
+        ];
+        if o.scores.is_some() {
+            for (n, h) in out.over.iter_mut().zip(hot) {
+                *n += u64::from(h.is_some());
+            }
+        }
         if let Some(Event::Raised { .. }) = o.event {
-            let chart = det.residual_chart();
-            out.push(
-                (chart.peak > det.model().resid_limit).then_some(usize::from(chart.peak_feature)),
-            );
+            out.at_raise.push(hot);
         }
     }
     out
+}
+
+/// For each flag of a demo log, the residual chart's feature when the chart
+/// was over its limit at the sample that raised it.
+fn resid_at_raises(file: &ModelFile, log: &Path) -> Vec<Option<usize>> {
+    chart_replay(file, log)
+        .at_raise
+        .iter()
+        .map(|h| h[0])
+        .collect()
 }
 
 #[test]
@@ -398,6 +433,200 @@ fn flags_the_residual_chart_raised_name_its_feature() {
             fi + 1
         );
     }
+}
+
+/// The test's model with slow charts added by hand, as `plumb tailor` would
+/// add them: on vib_band5 and vib_band6 (the features bearing wear acts on),
+/// λ 0.05, each with its residual chart's centre and gain, and a limit of
+/// half the residual chart's, low enough that they cross on bearing wear.
+fn slow_model() -> &'static (Scratch, PathBuf, ModelFile) {
+    static M: OnceLock<(Scratch, PathBuf, ModelFile)> = OnceLock::new();
+    M.get_or_init(|| {
+        let mut file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
+        assert!(file.model.slow_charts.is_empty(), "plumb fit adds none");
+        let m = &mut file.model;
+        m.slow_charts.clear();
+        for name in ["vib_band5", "vib_band6"] {
+            let f = file.labels.iter().position(|l| l.name == name).unwrap();
+            m.slow_charts
+                .extend([f as f32, 0.05, m.resid_center[f], m.resid_gain[f]]);
+        }
+        m.slow_limit = 0.5 * m.resid_limit;
+        let dir = Scratch::new("report-slow-model");
+        let out = dir.path("slow.plumb");
+        std::fs::write(&out, file.to_bytes().unwrap()).unwrap();
+        (dir, out, file)
+    })
+}
+
+/// The report of [`drift_report`] with the slow model ([`report_of`]).
+fn slow_report() -> &'static (Scratch, String, PathBuf, serde_json::Value) {
+    static R: OnceLock<(Scratch, String, PathBuf, serde_json::Value)> = OnceLock::new();
+    R.get_or_init(|| report_of(&slow_model().1, "report-slow"))
+}
+
+/// A count as the report writes it: narrow no-break spaces between
+/// thousands.
+fn grouped(n: u64) -> String {
+    let digits = n.to_string();
+    let mut out = String::new();
+    for (i, ch) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i) % 3 == 0 {
+            out.push('\u{202f}');
+        }
+        out.push(ch);
+    }
+    out
+}
+
+/// The `y` of the first `<path class="{class}" d="M.. y..">` line in `svg`.
+fn line_y(svg: &str, class: &str) -> f64 {
+    let d = svg
+        .split(&format!("<path class=\"{class}\" d=\"M"))
+        .nth(1)
+        .unwrap_or_else(|| panic!("no {class} line"));
+    let d = &d[..d.find('"').unwrap()];
+    d.split(|c: char| c == ' ' || c.is_ascii_alphabetic())
+        .nth(1)
+        .unwrap()
+        .parse()
+        .unwrap()
+}
+
+#[test]
+fn slow_charts_have_a_panel_beside_the_residual_chart() {
+    let (_dir, html, _out, v) = slow_report();
+    let (_, _, file) = slow_model();
+    assert_balanced(html);
+    let limit = f64::from(file.model.slow_limit);
+    let clear = f64::from(file.model.monitor.clear_fraction);
+    let logs = v["logs"].as_array().unwrap();
+    let names: Vec<&str> = ["vib_band5", "vib_band6"].into();
+    for (li, log) in ["drift/bearing_wear.csv", "drift/sensor_dropout.csv"]
+        .iter()
+        .enumerate()
+    {
+        let replay = chart_replay(file, &demo(log));
+        let flags = logs[li]["flags"].as_array().unwrap();
+        assert_eq!(replay.at_raise.len(), flags.len(), "{log}: the same flags");
+        // The panel follows the residual chart's, titled with its features
+        // and the detector's count of samples over the limit.
+        let resid = html
+            .find(&format!("<div class=\"panel\" id=\"resid-{li}\">"))
+            .expect("residual chart panel");
+        let at = html
+            .find(&format!("<div class=\"panel\" id=\"slow-{li}\">"))
+            .expect("slow charts panel");
+        assert!(at > resid);
+        assert!(
+            !html[resid + 1..at].contains("<div class=\"panel\""),
+            "right after the residual chart's"
+        );
+        let panel = &html[at..at + html[at..].find("</svg>").expect("its plot") + 6];
+        let over = replay.over[1];
+        assert!(
+            panel.contains(&format!(
+                "<b>SPE slow charts</b> · largest |EWMA| of a chosen feature's slower second EWMA \
+                 · on vib_band5, vib_band6 · {} sample{} over their limit</div>",
+                grouped(over),
+                if over == 1 { "" } else { "s" }
+            )),
+            "{}",
+            &panel[..400]
+        );
+        assert!(panel.contains(&format!(
+            "<svg class=\"timeline\" data-log=\"{li}\" data-score=\"slow\""
+        )));
+        // The limit, labelled with the model's, and the clear level at its
+        // fraction of it (heights above the plot's zero line).
+        let shown: f64 = panel
+            .split("slow limit = ")
+            .nth(1)
+            .and_then(|t| t.split('<').next())
+            .expect("limit label")
+            .parse()
+            .unwrap();
+        assert!((shown - limit).abs() <= 0.01 * limit, "{shown} vs {limit}");
+        let zero = 18.0 + 132.0;
+        let ratio = (zero - line_y(panel, "lim-c")) / (zero - line_y(panel, "lim-l"));
+        assert!((ratio - clear).abs() < 0.02, "clear level at {ratio} of L");
+        let peak = panel
+            .split("<path class=\"ewma\" d=\"")
+            .nth(1)
+            .expect("peak line");
+        assert!(peak.len() > 1000, "a drawn line, not an empty path");
+        // A flag span per flag, the onset, and the dropout log's faults.
+        assert_eq!(count(panel, "<rect class=\"flag\""), flags.len());
+        assert_eq!(count(panel, "<path class=\"onset\""), 1);
+        let faulted = logs[li]["faults"].as_u64().unwrap() > 0;
+        assert_eq!(count(panel, "<path class=\"fault\""), usize::from(faulted));
+        // Flags the slow charts were over at their raise name the feature
+        // of the largest slow EWMA (where there is room); no other feature
+        // is named.
+        let labels: Vec<&str> = replay
+            .at_raise
+            .iter()
+            .filter_map(|h| h[1])
+            .map(|f| file.labels[f].name.as_str())
+            .collect();
+        for name in &names {
+            if panel.contains(&format!(">{name}</text>")) {
+                assert!(labels.contains(name), "{log}: {name} named by no flag");
+            }
+        }
+        if li == 0 {
+            assert!(over > 0, "bearing wear crosses the slow limit");
+            assert!(
+                !labels.is_empty(),
+                "bearing wear: no flag raised while the slow charts were over"
+            );
+            assert!(
+                labels
+                    .iter()
+                    .any(|l| panel.contains(&format!(">{l}</text>"))),
+                "bearing wear: the panel names no flag's feature"
+            );
+        }
+    }
+    // Five panels per log, each with every flag's span.
+    let flags: usize = logs
+        .iter()
+        .map(|l| l["flags"].as_array().unwrap().len())
+        .sum();
+    let timelines = svgs(html, "<svg class=\"timeline\"");
+    assert_eq!(count(html, "<svg class=\"timeline\""), 10);
+    assert_eq!(count(&timelines, "<rect class=\"flag\""), 5 * flags);
+    // The reading section explains them and lists their constants.
+    let reading = &html[html.find("<section id=\"reading\">").unwrap()..];
+    let reading = &reading[..reading.find("</section>").unwrap()];
+    assert!(reading.contains("<code>plumb tailor</code>"));
+    let shown: f64 = reading
+        .split("<i>L<sub>s</sub></i> = ")
+        .nth(1)
+        .and_then(|t| t.split(' ').next())
+        .expect("the limit in the text")
+        .parse()
+        .unwrap();
+    assert!((shown - limit).abs() <= 0.01 * limit, "{shown} vs {limit}");
+    for name in &names {
+        assert!(
+            reading.contains(&format!(
+                "<tr><td>{name} [g^2]</td><td class=\"n\">0.05</td>"
+            )),
+            "{name} in the table"
+        );
+    }
+}
+
+#[test]
+fn a_model_without_slow_charts_has_no_slow_panel() {
+    let (_dir, html, _out, _) = drift_report();
+    let file = ModelFile::from_bytes(&std::fs::read(model()).unwrap()).unwrap();
+    assert!(file.model.slow_charts.is_empty());
+    assert!(!html.contains("id=\"slow-"), "no slow charts panel");
+    assert!(!html.contains("data-score=\"slow\""));
+    assert!(!html.contains("SPE slow charts"));
+    assert!(!html.contains("plumb tailor"));
 }
 
 #[test]
@@ -654,6 +883,49 @@ fn a_browser_renders_the_report() {
         2,
         "residual chart panels"
     );
+
+    // The model with slow charts: their panel of each log, drawn, with its
+    // flag spans.
+    let (_d, slow_html, slow_out, _) = slow_report();
+    let dom = run_with_deadline(
+        Command::new(&chrome)
+            .args(chromium_args(&dir.path("profile-slow")))
+            .arg("--dump-dom")
+            .arg(format!(
+                "file://{}",
+                slow_out.canonicalize().unwrap().display()
+            )),
+        Duration::from_secs(120),
+    );
+    assert!(
+        dom.status.success(),
+        "{}",
+        String::from_utf8_lossy(&dom.stderr)
+    );
+    let dom = String::from_utf8_lossy(&dom.stdout);
+    let slow = svgs(
+        &dom,
+        "<svg class=\"timeline\" data-log=\"0\" data-score=\"slow\"",
+    );
+    assert_eq!(
+        count(&slow, "<rect class=\"flag\""),
+        count(
+            &svgs(
+                slow_html,
+                "<svg class=\"timeline\" data-log=\"0\" data-score=\"slow\""
+            ),
+            "<rect class=\"flag\""
+        ),
+        "flag spans in the parsed slow charts panel"
+    );
+    for tag in ["data-score=\"slow\"", "id=\"slow-", "<table class=\"slow\""] {
+        assert_eq!(
+            count(&dom, tag),
+            count(slow_html, tag),
+            "{tag} in the parsed DOM"
+        );
+    }
+    assert_eq!(count(&dom, "data-score=\"slow\""), 2, "slow charts panels");
 
     // A screenshot: a blank page compresses to a few kilobytes. The
     // 60,000-byte floor is common practice, no source (a rendered report is

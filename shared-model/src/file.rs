@@ -21,7 +21,7 @@ use crate::{Capacity, Dims, Model, ModelMeta};
 /// The four bytes every model file starts with.
 pub const MAGIC: [u8; 4] = *b"PLMD";
 /// The model format version this crate reads and writes.
-pub const FORMAT_VERSION: u16 = 4;
+pub const FORMAT_VERSION: u16 = 5;
 /// Header length in bytes.
 pub const HEADER_LEN: usize = 16;
 /// CRC trailer length in bytes.
@@ -87,9 +87,9 @@ pub fn split(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
 
 /// Format versions the host reads ([`ModelFile::from_bytes`]; a version 1
 /// file gets the global SPE centre and spread for every mode, versions 1 and
-/// 2 the residual chart off, version 3 no whitening matrix). Devices read
-/// [`FORMAT_VERSION`] only.
-pub const HOST_VERSIONS: [u16; 4] = [1, 2, 3, FORMAT_VERSION];
+/// 2 the residual chart off, version 3 no whitening matrix, versions 1–4 no
+/// slow charts). Devices read [`FORMAT_VERSION`] only.
+pub const HOST_VERSIONS: [u16; 5] = [1, 2, 3, 4, FORMAT_VERSION];
 
 /// [`split`] for a host reader: any of [`HOST_VERSIONS`].
 pub fn split_host(bytes: &[u8]) -> Result<Sections<'_>, ModelError> {
@@ -192,6 +192,11 @@ pub fn decode_payload(payload: &[u8], cap: &Capacity) -> Result<Model, ModelErro
 /// [`Model::EMPTY`] (whatever it held before, and whatever part of the
 /// payload was read, is gone): it fails validation, so it cannot be run by
 /// mistake.
+//
+// Out of line: inlined into `Detector::decode_model` it was compiled with
+// the caller's crate settings (the boards build this crate at
+// `opt-level = "z"` and the firmware crate at "s"), 124 bytes more.
+#[inline(never)]
 pub fn decode_into(bytes: &[u8], cap: &Capacity, model: &mut Model) -> Result<(), ModelError> {
     match split(bytes) {
         Ok(sections) => decode_payload_into(sections.payload, cap, model),
@@ -330,6 +335,24 @@ mod owned {
         resid_limit: f32,
     }
 
+    /// The payload of format version 4: version 3 and the whitening matrix,
+    /// without the slow charts. Read by the host only.
+    #[derive(Deserialize)]
+    struct ModelV4 {
+        v3: ModelV3,
+        resid_whiten: Vec<f32>,
+    }
+
+    impl ModelV4 {
+        /// No slow chart: the model flags as a version 4 detector did.
+        fn upgrade(self) -> ModelOwned {
+            ModelOwned {
+                resid_whiten: self.resid_whiten,
+                ..self.v3.upgrade()
+            }
+        }
+    }
+
     impl ModelV3 {
         /// No whitening matrix (the identity): the chart smooths each raw
         /// residual, as a version 3 detector did, bit for bit.
@@ -384,6 +407,8 @@ mod owned {
                 resid_gain: alloc::vec![0.0; d],
                 resid_limit: 1.0,
                 resid_whiten: Vec::new(),
+                slow_charts: Vec::new(),
+                slow_limit: 1.0,
             }
         }
     }
@@ -418,10 +443,11 @@ mod owned {
         }
 
         /// Decodes and validates a model file without device capacity limits.
-        /// Version 1, 2 and 3 files are read too, a version 1 file with every
+        /// Version 1–4 files are read too, a version 1 file with every
         /// mode at the global SPE centre and spread, both with the residual
-        /// chart off, a version 3 file with the chart unwhitened (each then
-        /// flags as it did); devices read only [`FORMAT_VERSION`].
+        /// chart off, a version 3 file with the chart unwhitened, versions
+        /// 1–4 without slow charts (each then flags as it did); devices read
+        /// only [`FORMAT_VERSION`].
         pub fn from_bytes(bytes: &[u8]) -> Result<ModelFile, ModelError> {
             let sections = split_host(bytes)?;
             fn whole<T: serde::de::DeserializeOwned>(b: &[u8]) -> Result<T, ModelError> {
@@ -436,6 +462,8 @@ mod owned {
                 whole::<ModelV2>(sections.payload)?.upgrade()
             } else if sections.version == 3 {
                 whole::<ModelV3>(sections.payload)?.upgrade()
+            } else if sections.version == 4 {
+                whole::<ModelV4>(sections.payload)?.upgrade()
             } else {
                 whole::<ModelOwned>(sections.payload)?
             };

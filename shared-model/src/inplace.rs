@@ -49,6 +49,8 @@ const FIELDS: &[&str] = &[
     "resid_gain",
     "resid_limit",
     "resid_whiten",
+    "slow_charts",
+    "slow_limit",
 ];
 
 impl<'de> Visitor<'de> for ModelSeed<'_> {
@@ -79,6 +81,8 @@ impl<'de> Visitor<'de> for ModelSeed<'_> {
             resid_gain,
             resid_limit,
             resid_whiten,
+            slow_charts,
+            slow_limit,
         } = self.0;
         let mut at = 0usize;
         field(&mut seq, &mut at, Assign(meta))?;
@@ -98,6 +102,8 @@ impl<'de> Visitor<'de> for ModelSeed<'_> {
         field(&mut seq, &mut at, Fill::new(resid_gain))?;
         field(&mut seq, &mut at, Assign(resid_limit))?;
         field(&mut seq, &mut at, Fill::new(resid_whiten))?;
+        field(&mut seq, &mut at, Fill::new(slow_charts))?;
+        field(&mut seq, &mut at, Assign(slow_limit))?;
         Ok(())
     }
 }

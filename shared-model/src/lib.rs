@@ -47,6 +47,12 @@ pub const MAX_LOADINGS: usize = MAX_FEATURES * MAX_COMPONENTS;
 pub const MAX_MIX_PARAMS: usize = MAX_MIXTURE * MAX_COMPONENTS;
 /// Capacity of the residual chart's whitening matrix (`d × d`, row-major).
 pub const MAX_WHITEN: usize = MAX_FEATURES * MAX_FEATURES;
+/// Most slow charts (format 5: second EWMAs of chosen features' residual
+/// chart inputs) a device build accepts.
+pub const MAX_SLOW: usize = 16;
+/// Values per slow chart in a model's `slow_charts`: feature index, EWMA
+/// constant, centre, gain.
+pub const SLOW_PARAMS: usize = 4;
 
 /// The dimensions a reader can hold. A model over any of them is refused with
 /// [`ModelError::OverCapacity`].

@@ -7,7 +7,10 @@
 //! two give the same bytes. Validation is written once, on [`ModelView`].
 
 use crate::error::{Field, ModelError};
-use crate::{MAX_COMPONENTS, MAX_FEATURES, MAX_LOADINGS, MAX_MIXTURE, MAX_MIX_PARAMS, MAX_WHITEN};
+use crate::{
+    MAX_COMPONENTS, MAX_FEATURES, MAX_LOADINGS, MAX_MIXTURE, MAX_MIX_PARAMS, MAX_SLOW, MAX_WHITEN,
+    SLOW_PARAMS,
+};
 use serde::{Deserialize, Serialize};
 
 /// Identity and provenance of a model. Encoded first, so a reader can learn
@@ -139,6 +142,11 @@ pub struct ModelView<'a> {
     /// The residual chart's whitening matrix, `d × d` row-major, or empty
     /// (the identity).
     pub resid_whiten: &'a [f32],
+    /// The slow charts, [`SLOW_PARAMS`] values each (feature, λ, centre,
+    /// gain), or empty.
+    pub slow_charts: &'a [f32],
+    /// Limit of the slow charts.
+    pub slow_limit: f32,
 }
 
 /// Largest `|r_i|` of a feature's PCA residual in a sample the detector
@@ -305,23 +313,63 @@ impl ModelView<'_> {
         // times gain_i, stay within CHART_INPUT_MAX: then no sample can take
         // the chart out of the f32 range (a non-finite sum of |W_ij| fails
         // the comparison too).
-        let rows = self.resid_whiten.chunks_exact(d.max(1));
-        let identity = self.resid_whiten.is_empty();
-        let mut rows = rows.map(|row| row.iter().map(|w| w.abs()).sum::<f32>());
-        for (c, g) in self.resid_center.iter().zip(self.resid_gain) {
-            let reach = if identity {
+        //
+        // The slow charts (format 5) are checked in the same pass: whole
+        // quadruples (feature, λ, centre, gain), each met at its feature, so
+        // the features must be integers under d in ascending order (one that
+        // is not, a repeat or NaN is never met and is refused after the
+        // pass); λ in (0, 1], gain ≥ 0, and the same range check on the
+        // same input as that feature's residual chart.
+        check_positive(Field::ResidualChart, &[self.slow_limit])?;
+        let bad = Err(ModelError::OutOfRange {
+            field: Field::ResidualChart,
+        });
+        let mut slow = self.slow_charts.chunks_exact(SLOW_PARAMS);
+        if !slow.remainder().is_empty() {
+            return bad;
+        }
+        let mut next_slow = slow.next();
+        let mut rows = self
+            .resid_whiten
+            .chunks_exact(d.max(1))
+            .map(|row| row.iter().map(|w| w.abs()).sum::<f32>());
+        for (i, (c, g)) in self.resid_center.iter().zip(self.resid_gain).enumerate() {
+            let reach = if self.resid_whiten.is_empty() {
                 1.0
             } else {
                 rows.next().unwrap_or(f32::INFINITY)
             };
-            let v = reach * RESIDUAL_MAX + c.abs();
-            if !(v <= CHART_INPUT_MAX && v * g <= CHART_INPUT_MAX) {
-                return Err(ModelError::OutOfRange {
-                    field: Field::ResidualChart,
-                });
+            in_range(reach, *c, *g)?;
+            if let Some(&[f, l, sc, sg]) = next_slow {
+                if f == i as f32 {
+                    // Written so that NaN fails.
+                    let in_bounds = l > 0.0 && l <= 1.0 && sg >= 0.0;
+                    if !in_bounds {
+                        return bad;
+                    }
+                    in_range(reach, sc, sg)?;
+                    next_slow = slow.next();
+                }
             }
         }
+        if next_slow.is_some() {
+            return bad;
+        }
         Ok(())
+    }
+}
+
+/// The range check of one chart's input (see [`ModelView::validate`]):
+/// `reach · RESIDUAL_MAX + |center|`, and the same times `gain`, within
+/// [`CHART_INPUT_MAX`] (NaN fails).
+fn in_range(reach: f32, center: f32, gain: f32) -> Result<(), ModelError> {
+    let v = reach * RESIDUAL_MAX + center.abs();
+    if v <= CHART_INPUT_MAX && v * gain <= CHART_INPUT_MAX {
+        Ok(())
+    } else {
+        Err(ModelError::OutOfRange {
+            field: Field::ResidualChart,
+        })
     }
 }
 
@@ -330,7 +378,7 @@ macro_rules! model_type {
         $(#[$attr:meta])*
         $name:ident,
         feat = $feat:ty, load = $load:ty, comp = $comp:ty, mix = $mix:ty, mixp = $mixp:ty,
-        whiten = $whiten:ty
+        whiten = $whiten:ty, slow = $slow:ty
     ) => {
         $(#[$attr])*
         #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -390,6 +438,17 @@ macro_rules! model_type {
             /// residuals' nominal covariance, `v_i` is the standardised test
             /// statistic of a bias in sensor `i` alone (format 4).
             pub resid_whiten: $whiten,
+            /// The slow charts (format 5; empty: none), [`SLOW_PARAMS`]
+            /// values each: the feature `i` (an integer, ascending), the
+            /// EWMA constant λ in (0, 1], the centre `c` and the gain `g` ≥ 0.
+            /// A slow chart is a second EWMA of feature `i`'s residual chart
+            /// input `v_i`: it smooths `(v_i − c) · g` with its own λ, all set
+            /// by `plumb tailor` on one robot's own nominal logs. At most
+            /// [`crate::MAX_SLOW`] on a device. (Packed in one vector so a
+            /// device decodes and checks them with the code it has.)
+            pub slow_charts: $slow,
+            /// Limit on the absolute value of every slow chart's EWMA (> 0).
+            pub slow_limit: f32,
         }
 
         impl $name {
@@ -413,6 +472,8 @@ macro_rules! model_type {
                     resid_gain: &self.resid_gain,
                     resid_limit: self.resid_limit,
                     resid_whiten: &self.resid_whiten,
+                    slow_charts: &self.slow_charts,
+                    slow_limit: self.slow_limit,
                 }
             }
 
@@ -434,7 +495,8 @@ model_type!(
     comp = heapless::Vec<f32, MAX_COMPONENTS>,
     mix = heapless::Vec<f32, MAX_MIXTURE>,
     mixp = heapless::Vec<f32, MAX_MIX_PARAMS>,
-    whiten = heapless::Vec<f32, MAX_WHITEN>
+    whiten = heapless::Vec<f32, MAX_WHITEN>,
+    slow = heapless::Vec<f32, { SLOW_PARAMS * MAX_SLOW }>
 );
 
 impl ModelMeta {
@@ -510,6 +572,8 @@ impl Model {
         resid_gain: heapless::Vec::new(),
         resid_limit: 0.0,
         resid_whiten: heapless::Vec::new(),
+        slow_charts: heapless::Vec::new(),
+        slow_limit: 0.0,
     };
 
     /// Returns to [`Model::EMPTY`] in place (no 22 KiB value is built).
@@ -532,6 +596,8 @@ impl Model {
             resid_gain,
             resid_limit,
             resid_whiten,
+            slow_charts,
+            slow_limit,
         } = self;
         *meta = ModelMeta::ZERO;
         *dims = Dims::ZERO;
@@ -550,6 +616,8 @@ impl Model {
         resid_gain.clear();
         *resid_limit = 0.0;
         resid_whiten.clear();
+        slow_charts.clear();
+        *slow_limit = 0.0;
     }
 
     /// Whether this is [`Model::EMPTY`]'s state: no features.
@@ -568,7 +636,8 @@ model_type!(
     comp = alloc::vec::Vec<f32>,
     mix = alloc::vec::Vec<f32>,
     mixp = alloc::vec::Vec<f32>,
-    whiten = alloc::vec::Vec<f32>
+    whiten = alloc::vec::Vec<f32>,
+    slow = alloc::vec::Vec<f32>
 );
 
 #[cfg(feature = "alloc")]
@@ -578,6 +647,15 @@ impl ModelOwned {
     pub fn to_device(&self) -> Result<Model, ModelError> {
         crate::Capacity::DEVICE.admits(&self.dims)?;
         self.validate()?;
+        // More slow charts than a device holds (its decoder would refuse
+        // the vector as undecodable; named here).
+        if self.slow_charts.len() > SLOW_PARAMS * MAX_SLOW {
+            return Err(ModelError::Inconsistent {
+                field: Field::ResidualChart,
+                expected: (SLOW_PARAMS * MAX_SLOW) as u32,
+                found: self.slow_charts.len() as u32,
+            });
+        }
         fn copy<const N: usize>(src: &[f32]) -> heapless::Vec<f32, N> {
             // Lengths were checked by `admits` and `validate` above.
             src.iter().copied().take(N).collect()
@@ -600,6 +678,8 @@ impl ModelOwned {
             resid_gain: copy(&self.resid_gain),
             resid_limit: self.resid_limit,
             resid_whiten: copy(&self.resid_whiten),
+            slow_charts: copy(&self.slow_charts),
+            slow_limit: self.slow_limit,
         })
     }
 }
@@ -625,6 +705,8 @@ impl From<&Model> for ModelOwned {
             resid_gain: m.resid_gain.to_vec(),
             resid_limit: m.resid_limit,
             resid_whiten: m.resid_whiten.to_vec(),
+            slow_charts: m.slow_charts.to_vec(),
+            slow_limit: m.slow_limit,
         }
     }
 }

@@ -22,7 +22,10 @@ mod ser;
 
 #[cfg(feature = "alloc")]
 pub use frame::encode_frame_vec;
-pub use frame::{decode_frame, encode_frame, max_frame_len, EncodeError, FrameDecoder, FrameError};
+pub use frame::{
+    decode_frame, encode_device_frame, encode_frame, max_frame_len, EncodeError, FrameDecoder,
+    FrameError,
+};
 pub use message::*;
 pub use reason::{dim_code, dim_from_code, field_code, field_from_code, Reason, FIELDS};
 
@@ -30,7 +33,7 @@ use crate::MAX_FEATURES;
 
 /// Version of this protocol, sent in every [`Greeting`]. Bumped by any change
 /// that an older peer would misread (see `PROTOCOL.md`, "Stability").
-pub const PROTOCOL_VERSION: u16 = 4;
+pub const PROTOCOL_VERSION: u16 = 5;
 
 /// Bytes of CRC after each message.
 pub const CRC_LEN: usize = 4;

@@ -59,6 +59,8 @@ fn tiny() -> ModelOwned {
         resid_gain: vec![2.0, 0.0],
         resid_limit: 1.5,
         resid_whiten: vec![1.0, -0.5, -0.25, 2.0],
+        slow_charts: vec![1.0, 0.005, -0.125, 0.5],
+        slow_limit: 1.5,
     }
 }
 
@@ -89,9 +91,9 @@ fn tiny_model_exact_bytes() {
     }
     .to_bytes()
     .unwrap();
-    // Header (FORMAT.md): magic, version 4, flags 0, payload length, labels length 0.
+    // Header (FORMAT.md): magic, version 5, flags 0, payload length, labels length 0.
     assert_eq!(&bytes[0..4], b"PLMD");
-    assert_eq!(&bytes[4..8], &[4, 0, 0, 0]);
+    assert_eq!(&bytes[4..8], &[5, 0, 0, 0]);
     let payload_len = u32::from_le_bytes(bytes[8..12].try_into().unwrap()) as usize;
     assert_eq!(&bytes[12..16], &[0, 0, 0, 0]);
     assert_eq!(bytes.len(), HEADER_LEN + payload_len + 4);
@@ -141,14 +143,18 @@ fn tiny_model_exact_bytes() {
     f(&[1.5], false, &mut expect);
     // Its whitening matrix, 2 × 2 row-major (format 4).
     f(&[1.0, -0.5, -0.25, 2.0], true, &mut expect);
+    // The slow charts, one (feature 1, λ 0.005, centre −0.125, gain 0.5),
+    // then their limit (format 5).
+    f(&[1.0, 0.005, -0.125, 0.5], true, &mut expect);
+    f(&[1.5], false, &mut expect);
     assert_eq!(&bytes[HEADER_LEN..HEADER_LEN + payload_len], &expect[..]);
     // And the whole file, pinned: any change to the layout shows up here.
     let crc = u32::from_le_bytes(bytes[bytes.len() - 4..].try_into().unwrap());
     assert_eq!(crc, crc32(&bytes[..bytes.len() - 4]));
-    assert_eq!(payload_len, 208);
+    assert_eq!(payload_len, 229);
     // Also computed with Python's zlib.crc32 over the bytes written out by
     // hand from FORMAT.md (header, then the payload listed above).
-    assert_eq!(crc, 0xb1b6_e38d, "pinned CRC of the tiny model file");
+    assert_eq!(crc, 0x8a9c_be04, "pinned CRC of the tiny model file");
 }
 
 #[test]
@@ -215,11 +221,12 @@ fn each_framing_error_is_distinct() {
     assert_eq!(decode(&b), Err(ModelError::BadMagic));
 
     let mut b = good.clone();
-    b[4] = 5;
-    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 5 }));
-    // Versions 1 (before the SPE by mode), 2 (before the residual chart)
-    // and 3 (before its whitening matrix) are refused, not misread.
-    for old in [1u8, 2, 3] {
+    b[4] = 6;
+    assert_eq!(decode(&b), Err(ModelError::UnknownVersion { found: 6 }));
+    // Versions 1 (before the SPE by mode), 2 (before the residual chart),
+    // 3 (before its whitening matrix) and 4 (before the slow charts) are
+    // refused, not misread.
+    for old in [1u8, 2, 3, 4] {
         let mut b = good.clone();
         b[4] = old;
         assert_eq!(
@@ -783,10 +790,12 @@ fn older_file(current: &[u8], version: u16, cut: usize) -> Vec<u8> {
     out
 }
 
-/// Bytes of the tiny model's fields added by version 4 (d = 2: a length
+/// Bytes of the tiny model's fields added by version 5 (one slow chart: a
+/// length byte and four f32, and the f32 limit), by version 4 (d = 2: a length
 /// byte and four f32), by version 3 (two vectors of a length byte and two
 /// f32, and one f32) and by version 2 (k = 1: two vectors of a length byte
 /// and one f32).
+const V5_FIELDS: usize = 1 + 16 + 4;
 const V4_FIELDS: usize = 1 + 16;
 const V3_FIELDS: usize = 2 * (1 + 8) + 4;
 const V2_FIELDS: usize = 2 * (1 + 4);
@@ -799,7 +808,14 @@ fn tiny_chart_off() -> ModelOwned {
     want.resid_gain = vec![0.0, 0.0];
     want.resid_limit = 1.0;
     want.resid_whiten = vec![];
-    want
+    no_slow(want)
+}
+
+/// `m` without slow charts, as a host reads a version 1–4 file.
+fn no_slow(mut m: ModelOwned) -> ModelOwned {
+    m.slow_charts = vec![];
+    m.slow_limit = 1.0;
+    m
 }
 
 /// A version 1 file (the layout before fields 28–29, as FORMAT.md's
@@ -810,21 +826,21 @@ fn tiny_chart_off() -> ModelOwned {
 /// it.
 #[test]
 fn a_version_1_file_reads_on_the_host_with_the_global_spe() {
-    let v4 = ModelFile {
+    let v5 = ModelFile {
         model: tiny(),
         labels: vec![],
     }
     .to_bytes()
     .unwrap();
-    let v1 = older_file(&v4, 1, V4_FIELDS + V3_FIELDS + V2_FIELDS);
+    let v1 = older_file(&v5, 1, V5_FIELDS + V4_FIELDS + V3_FIELDS + V2_FIELDS);
     let read = ModelFile::from_bytes(&v1).unwrap().model;
     let mut want = tiny_chart_off();
     want.spe_center_by_mode = vec![want.monitor.spe.center];
     want.spe_spread_by_mode = vec![want.monitor.spe.spread];
     assert_eq!(read, want);
     assert_eq!(decode(&v1), Err(ModelError::UnknownVersion { found: 1 }));
-    // A version 1 header over a version 4 payload does not decode.
-    let mut wrong = v4.clone();
+    // A version 1 header over a version 5 payload does not decode.
+    let mut wrong = v5.clone();
     wrong[4] = 1;
     fix_crc(&mut wrong);
     assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
@@ -834,24 +850,24 @@ fn a_version_1_file_reads_on_the_host_with_the_global_spe() {
 /// residual chart off and everything else as stored; a device refuses it.
 #[test]
 fn a_version_2_file_reads_on_the_host_with_the_residual_chart_off() {
-    let v4 = ModelFile {
+    let v5 = ModelFile {
         model: tiny(),
         labels: vec![],
     }
     .to_bytes()
     .unwrap();
-    let v2 = older_file(&v4, 2, V4_FIELDS + V3_FIELDS);
+    let v2 = older_file(&v5, 2, V5_FIELDS + V4_FIELDS + V3_FIELDS);
     assert_eq!(ModelFile::from_bytes(&v2).unwrap().model, tiny_chart_off());
     assert_eq!(decode(&v2), Err(ModelError::UnknownVersion { found: 2 }));
     // Off means off: a chart with every gain 0 validates.
     tiny_chart_off().validate().unwrap();
     // Version headers over the wrong payloads do not decode.
-    let mut wrong = v4.clone();
+    let mut wrong = v5.clone();
     wrong[4] = 2;
     fix_crc(&mut wrong);
     assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
     let mut wrong = v2.clone();
-    wrong[4] = 4;
+    wrong[4] = 5;
     fix_crc(&mut wrong);
     assert_eq!(decode(&wrong), Err(ModelError::Undecodable));
 }
@@ -861,27 +877,104 @@ fn a_version_2_file_reads_on_the_host_with_the_residual_chart_off() {
 /// did; a device refuses it.
 #[test]
 fn a_version_3_file_reads_on_the_host_without_whitening() {
-    let v4 = ModelFile {
+    let v5 = ModelFile {
         model: tiny(),
         labels: vec![],
     }
     .to_bytes()
     .unwrap();
-    let v3 = older_file(&v4, 3, V4_FIELDS);
-    let mut want = tiny();
+    let v3 = older_file(&v5, 3, V5_FIELDS + V4_FIELDS);
+    let mut want = no_slow(tiny());
     want.resid_whiten = vec![];
     assert_eq!(ModelFile::from_bytes(&v3).unwrap().model, want);
     assert_eq!(decode(&v3), Err(ModelError::UnknownVersion { found: 3 }));
-    // A version 3 header over a version 4 payload leaves bytes over; a
-    // version 4 header over a version 3 payload lacks the matrix.
-    let mut wrong = v4.clone();
+    // A version 3 header over a version 5 payload leaves bytes over; a
+    // version 5 header over a version 3 payload lacks the matrix.
+    let mut wrong = v5.clone();
     wrong[4] = 3;
     fix_crc(&mut wrong);
     assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
     let mut wrong = v3.clone();
-    wrong[4] = 4;
+    wrong[4] = 5;
     fix_crc(&mut wrong);
     assert_eq!(decode(&wrong), Err(ModelError::Undecodable));
+}
+
+/// A version 4 file (before fields 34–35) is read by the host without slow
+/// charts, so it flags as a version 4 detector did; a device refuses it.
+#[test]
+fn a_version_4_file_reads_on_the_host_without_slow_charts() {
+    let v5 = ModelFile {
+        model: tiny(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .unwrap();
+    let v4 = older_file(&v5, 4, V5_FIELDS);
+    assert_eq!(ModelFile::from_bytes(&v4).unwrap().model, no_slow(tiny()));
+    assert_eq!(decode(&v4), Err(ModelError::UnknownVersion { found: 4 }));
+    // A version 4 header over a version 5 payload leaves bytes over; a
+    // version 5 header over a version 4 payload lacks the slow charts.
+    let mut wrong = v5.clone();
+    wrong[4] = 4;
+    fix_crc(&mut wrong);
+    assert_eq!(ModelFile::from_bytes(&wrong), Err(ModelError::Undecodable));
+    let mut wrong = v4.clone();
+    wrong[4] = 5;
+    fix_crc(&mut wrong);
+    assert_eq!(decode(&wrong), Err(ModelError::Undecodable));
+}
+
+/// Fields 34–35's checks (FORMAT.md): whole quadruples; features integers
+/// under d, ascending, no repeat; λ in (0, 1]; gain ≥ 0; the range check on
+/// centre and gain; a positive finite limit. Each refusal is the residual
+/// chart's out-of-range error (or not positive for the limit), and the
+/// model without the fault validates.
+#[test]
+fn the_slow_charts_are_checked() {
+    let check = |charts: &[f32], limit: f32| {
+        let mut m = tiny();
+        m.slow_charts = charts.to_vec();
+        m.slow_limit = limit;
+        m.validate()
+    };
+    let field = Field::ResidualChart;
+    let out = Err(ModelError::OutOfRange { field });
+    assert_eq!(check(&[], 1.5), Ok(()));
+    assert_eq!(check(&[1.0, 0.005, -0.125, 0.5], 1.5), Ok(()));
+    assert_eq!(
+        check(&[0.0, 1.0, 0.0, 0.0, 1.0, 0.002, 3.0, 2.0], 1.5),
+        Ok(())
+    );
+    // Not whole quadruples.
+    assert_eq!(check(&[1.0, 0.005, -0.125], 1.5), out);
+    // Features: out of range, not an integer, negative, NaN, a repeat, out
+    // of order.
+    for bad in [2.0, 0.5, -1.0, f32::NAN, 64.0] {
+        assert_eq!(check(&[bad, 0.005, 0.0, 1.0], 1.5), out, "feature {bad}");
+    }
+    assert_eq!(check(&[1.0, 0.1, 0.0, 1.0, 1.0, 0.1, 0.0, 1.0], 1.5), out);
+    assert_eq!(check(&[1.0, 0.1, 0.0, 1.0, 0.0, 0.1, 0.0, 1.0], 1.5), out);
+    // λ outside (0, 1] or NaN; a negative or NaN gain.
+    for bad in [0.0, -0.1, 1.5, f32::NAN] {
+        assert_eq!(check(&[1.0, bad, 0.0, 1.0], 1.5), out, "lambda {bad}");
+    }
+    assert_eq!(check(&[1.0, 1.0, 0.0, 1.0], 1.5), Ok(()));
+    for bad in [-0.5, f32::NAN] {
+        assert_eq!(check(&[1.0, 0.1, 0.0, bad], 1.5), out, "gain {bad}");
+    }
+    // The range check: feature 1's input reaches (0.25 + 2) · RESIDUAL_MAX
+    // with the tiny model's matrix (row [−0.25, 2]), about 4.2e19; a gain
+    // that takes that beyond CHART_INPUT_MAX (1e37) is refused, one inside
+    // it is not; so is an infinite or NaN centre.
+    assert_eq!(check(&[1.0, 0.1, 0.0, 2.5e17], 1.5), out);
+    assert_eq!(check(&[1.0, 0.1, 0.0, 2.0e17], 1.5), Ok(()));
+    assert_eq!(check(&[1.0, 0.1, f32::INFINITY, 1.0], 1.5), out);
+    assert_eq!(check(&[1.0, 0.1, f32::NAN, 1.0], 1.5), out);
+    // The limit.
+    for bad in [0.0, -1.0, f32::NAN, f32::INFINITY] {
+        assert!(check(&[1.0, 0.1, 0.0, 1.0], bad).is_err(), "limit {bad}");
+    }
 }
 
 /// Field 33's checks: its length (0 or d²), finite values, and the chart's

@@ -455,9 +455,16 @@ mod exact_bytes {
             postcard::to_allocvec(&Statistic::Residual { feature: 17 }).unwrap(),
             vec![3, 17]
         );
+        // The slow charts (appended with model format 5, protocol 5):
+        // variant 4, then the feature index as one byte.
+        assert_eq!(
+            postcard::to_allocvec(&Statistic::Slow { feature: 17 }).unwrap(),
+            vec![4, 17]
+        );
         // An index past the last chart is refused, not misread.
-        assert!(postcard::from_bytes::<Statistic>(&[4]).is_err());
+        assert!(postcard::from_bytes::<Statistic>(&[5]).is_err());
         assert!(postcard::from_bytes::<Statistic>(&[3]).is_err());
+        assert!(postcard::from_bytes::<Statistic>(&[4]).is_err());
     }
 
     #[test]
@@ -948,7 +955,7 @@ mod messages {
     #[test]
     fn documented_sizes() {
         // PROTOCOL.md, "Framing".
-        assert_eq!(wire::PROTOCOL_VERSION, 4);
+        assert_eq!(wire::PROTOCOL_VERSION, 5);
         assert_eq!(MAX_HOST_MESSAGE, 263);
         assert_eq!(MAX_HOST_FRAME, 270);
         assert_eq!(MAX_DEVICE_MESSAGE, 146);

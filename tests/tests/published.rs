@@ -77,6 +77,8 @@ fn raw_pca_model(rows: &[f64], d: usize, m: usize) -> (ModelOwned, Vec<f64>) {
         resid_gain: vec![0.0; d],
         resid_limit: 1.0,
         resid_whiten: Vec::new(),
+        slow_charts: Vec::new(),
+        slow_limit: 1.0,
     };
     (model, values)
 }

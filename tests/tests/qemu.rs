@@ -272,7 +272,9 @@ fn default_model() -> Vec<u8> {
 
 /// A second model: the default with every CUSUM and EWMA limit and the
 /// residual chart's halved, the SPE's and T²'s per-sample limits halved too,
-/// and its own id, so it flags earlier and the greeting tells them apart.
+/// slow charts (model format 5) on the features `new_floor` moves, and its
+/// own id, so it flags earlier, through the slow charts too, and the
+/// greeting tells them apart.
 fn second_model() -> Vec<u8> {
     let mut f = ModelFile::from_bytes(&default_model()).expect("default model");
     f.model.meta.id ^= 0x5a5a_5a5a;
@@ -285,6 +287,23 @@ fn second_model() -> Vec<u8> {
         lim.sample_limit *= 0.5;
     }
     f.model.resid_limit *= 0.5;
+    // Slow charts on three of the features `new_floor` moves (its truth
+    // row), each at its residual chart's centre and gain, with constants of
+    // 0.2, 0.1 and 0.05 and half the (halved) residual limit, so they cross
+    // before the residual chart does.
+    let index = |name: &str| f.labels.iter().position(|l| l.name == name).unwrap() as f32;
+    let mut slow: Vec<(f32, f32)> = vec![
+        (index("vib_band1"), 0.2),
+        (index("vib_band2"), 0.1),
+        (index("jerk_rms"), 0.05),
+    ];
+    slow.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let m = &mut f.model;
+    m.slow_charts = slow
+        .iter()
+        .flat_map(|&(i, l)| [i, l, m.resid_center[i as usize], m.resid_gain[i as usize]])
+        .collect();
+    m.slow_limit = 0.5 * m.resid_limit;
     f.to_bytes().expect("encode the second model")
 }
 
@@ -793,6 +812,14 @@ fn uploads_switch_only_after_every_check() {
     assert_ne!(
         after.events, before.events,
         "the second model should flag differently"
+    );
+    assert!(
+        after
+            .events
+            .iter()
+            .any(|(k, _, d)| *k == "raised" && d.contains("Spe/Slow {")),
+        "the second model's slow charts should raise a flag: {:?}",
+        after.events
     );
     let (frames, sum) = feed(&mut board, &samples, 2000);
     let got = observed(&frames, sum.base, samples.len());

@@ -29,13 +29,13 @@ echo "== instructions per sample (QEMU -icount shift=0; 1 tick = 40 instructions
 out=$(PLUMB_QEMU_ICOUNT=1 timeout 300 "$here/run-qemu.sh" "$elf_dir/plumb-board-mps2-bench" </dev/null)
 echo "$out"
 echo
-echo "| model | d | m | k | multiply-adds 2dm+3km | instructions per update | per multiply-add | instructions per scoring alone | per multiply-add |"
-echo "|---|---|---|---|---|---|---|---|---|"
+echo "| model | d | m | k | whitened | slow charts | multiply-adds 2dm+3km (whitened: + d² + d per slow chart) | instructions per update | per multiply-add | instructions per scoring alone | per multiply-add |"
+echo "|---|---|---|---|---|---|---|---|---|---|---|"
 grep '^bench model=' <<<"$out" | while read -r line; do
     f() { sed -n "s/.* $1=\([0-9]*\).*/\1/p" <<<"$line"; }
     name=$(sed -n 's/^bench model=\([a-z]*\).*/\1/p' <<<"$line")
     macs=$(f macs) up=$(f update_instructions_per_sample) sc=$(f score_instructions_per_sample)
-    printf '| %s | %s | %s | %s | %s | %s | %s | %s | %s |\n' "$name" "$(f d)" "$(f m)" "$(f k)" "$macs" \
+    printf '| %s | %s | %s | %s | %s | %s | %s | %s | %s | %s | %s |\n' "$name" "$(f d)" "$(f m)" "$(f k)" "$(f whitened)" "$(f slow)" "$macs" \
         "$up" "$(awk -v a="$up" -v b="$macs" 'BEGIN{printf "%.1f", a/b}')" \
         "$sc" "$(awk -v a="$sc" -v b="$macs" 'BEGIN{printf "%.1f", a/b}')"
 done

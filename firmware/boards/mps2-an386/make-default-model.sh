@@ -6,7 +6,7 @@
 # default is now 2 x 10^6 rows, and the built-in model stays the one the
 # board figures in BENCHMARKS.md were measured with):
 #
-#   plumb demo --no-report --quiet --nominal-rows 1000000
+#   plumb demo --no-report --quiet --nominal-rows 1000000 --robot-rows 0
 #   plumb fit demo-logs/train --holdout demo-logs/generated/calibration \
 #       --out firmware/boards/mps2-an386/default.plumb --quiet
 #
@@ -17,7 +17,7 @@ set -euo pipefail
 root=$(cd "$(dirname "${BASH_SOURCE[0]}")/../../.." && pwd)
 cd "$root"
 cargo build --release --quiet -p plumb
-target/release/plumb demo --no-report --quiet --nominal-rows 1000000
+target/release/plumb demo --no-report --quiet --nominal-rows 1000000 --robot-rows 0
 target/release/plumb fit demo-logs/train --holdout demo-logs/generated/calibration \
     --out firmware/boards/mps2-an386/default.plumb --quiet
 echo "wrote firmware/boards/mps2-an386/default.plumb ($(stat -c %s firmware/boards/mps2-an386/default.plumb) bytes)"

@@ -106,7 +106,9 @@ impl<F: Flash> FlashSlots<F> {
         }
         let start = self.offset(slot, at).ok_or(SlotError::OutOfBounds)?;
         self.flash.program(start, data)?;
-        if self.bytes(slot, at, data.len()) != data {
+        // Compared a byte at a time (the same answer as `!=` on the slices,
+        // without linking `memcmp` for this one comparison).
+        if !self.bytes(slot, at, data.len()).iter().eq(data) {
             return Err(SlotError::Device);
         }
         Ok(())

@@ -11,4 +11,5 @@ pub mod listen;
 pub mod replay;
 pub mod report;
 pub mod sign;
+pub mod tailor;
 pub mod upload;

@@ -6,11 +6,11 @@
 //! run; a sink keeps, in memory that does not grow with the number of rows:
 //!
 //! - per log, a min/max reduction of each score's `u`, EWMA and CUSUM, and of
-//!   the SPE's residual chart (its largest `|EWMA|`), into at most
-//!   `2 · PLOT_COLUMNS` buckets of equal length (pairs merge when the list
-//!   fills), so spikes survive the reduction;
-//! - per flag, whether the residual chart was over its limit at the sample
-//!   that raised it, and for which feature;
+//!   the SPE's residual chart and slow charts (each its largest `|EWMA|`),
+//!   into at most `2 · PLOT_COLUMNS` buckets of equal length (pairs merge when
+//!   the list fills), so spikes survive the reduction;
+//! - per flag, whether the residual chart, and the slow charts, were over
+//!   their limits at the sample that raised it, and for which feature;
 //! - per flag, the mean squared residual `r_i²` of every feature over the first
 //!   [`CONTRIB_SAMPLES`] scored samples from the sample that raised it;
 //! - fixed-size uniform samples (reservoir sampling, seeded) of the latent
@@ -29,9 +29,9 @@ use crate::logs::{expand_paths, ReadOptions};
 use crate::progress::Progress;
 use crate::replay::{self, LogReplay, Step};
 use crate::rng::Rng;
-use plumb_firmware::{DriftState, Event, Score};
+use plumb_firmware::{DriftState, Event, ResidualChart, Score};
 use plumb_model::file::ModelFile;
-use plumb_model::ModelOwned;
+use plumb_model::{ModelOwned, SLOW_PARAMS};
 use std::path::{Path, PathBuf};
 
 /// Scored samples, from the one that raised a flag, over which the feature
@@ -132,8 +132,9 @@ pub(crate) struct Bucket {
     pub ewma: [Span; 3],
     /// The detector's CUSUM of `u` over its limit `h`.
     pub cusum: [Span; 3],
-    /// The SPE's residual chart: its largest `|EWMA|` over the features.
-    pub resid: Span,
+    /// The SPE's feature charts, in [`Chart::ALL`] order: each one's
+    /// largest `|EWMA|`.
+    pub charts: [Span; 2],
 }
 
 impl Bucket {
@@ -146,7 +147,9 @@ impl Bucket {
             self.ewma[s].merge(o.ewma[s]);
             self.cusum[s].merge(o.cusum[s]);
         }
-        self.resid.merge(o.resid);
+        for (a, b) in self.charts.iter_mut().zip(o.charts) {
+            a.merge(b);
+        }
     }
 }
 
@@ -166,8 +169,9 @@ pub(crate) struct Sample {
     pub raw: Option<[f32; 3]>,
     pub ewma: [f32; 3],
     pub cusum: [f32; 3],
-    /// The residual chart's largest `|EWMA|` ([`plumb_firmware::ResidualChart::peak`]).
-    pub resid: f32,
+    /// The largest `|EWMA|` of each feature chart, in [`Chart::ALL`] order
+    /// ([`Chart::peak`]).
+    pub charts: [f32; 2],
     pub drifting: bool,
 }
 
@@ -204,7 +208,7 @@ impl Reducer {
                 raw: [Span::EMPTY; 3],
                 ewma: [Span::EMPTY; 3],
                 cusum: [Span::EMPTY; 3],
-                resid: Span::EMPTY,
+                charts: [Span::EMPTY; 2],
             });
         }
         let Some(b) = self.buckets.last_mut() else {
@@ -226,7 +230,9 @@ impl Reducer {
             b.ewma[i].add(s.ewma[i]);
             b.cusum[i].add(s.cusum[i]);
         }
-        b.resid.add(s.resid);
+        for (span, v) in b.charts.iter_mut().zip(s.charts) {
+            span.add(v);
+        }
     }
 }
 
@@ -240,14 +246,86 @@ pub(crate) struct FlagContrib {
     pub mean: Vec<f64>,
 }
 
-/// The SPE's residual chart at the sample that raised a flag, when it was
-/// over its limit there (so it is one of the reasons the SPE drove the flag).
+/// The SPE's charts of single features, each drawn in a panel of its own.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Chart {
+    /// The residual chart: one EWMA per feature.
+    Residual,
+    /// The slow charts (model format 5, `plumb tailor`): a second, slower
+    /// EWMA of the same input for each of some features.
+    Slow,
+}
+
+impl Chart {
+    pub const ALL: [Chart; 2] = [Chart::Residual, Chart::Slow];
+
+    /// Position in [`Chart::ALL`] (and in every array kept per chart).
+    pub fn index(self) -> usize {
+        self as usize
+    }
+
+    /// The limit on the chart's `|EWMA|`.
+    pub fn limit(self, m: &ModelOwned) -> f32 {
+        match self {
+            Chart::Residual => m.resid_limit,
+            Chart::Slow => m.slow_limit,
+        }
+    }
+
+    /// Whether the model has the chart: a residual chart with a gain that is
+    /// not 0, or at least one slow chart.
+    pub fn on(self, m: &ModelOwned) -> bool {
+        match self {
+            Chart::Residual => m.resid_gain.iter().any(|g| *g != 0.0),
+            Chart::Slow => !m.slow_charts.is_empty(),
+        }
+    }
+
+    /// The largest `|EWMA|` after the detector's last sample, its feature
+    /// (model order) and that EWMA (signed).
+    fn peak(self, m: &ModelOwned, chart: &ResidualChart) -> (f32, usize, f32) {
+        match self {
+            Chart::Residual => {
+                let f = usize::from(chart.peak_feature);
+                (
+                    chart.peak,
+                    f,
+                    chart.ewma.get(f).copied().unwrap_or(chart.peak),
+                )
+            }
+            Chart::Slow => {
+                let f = usize::from(chart.slow_peak_feature);
+                // The slow charts are kept in feature order; find its slot.
+                let ewma = m
+                    .slow_charts
+                    .chunks_exact(SLOW_PARAMS)
+                    .position(|p| p[0] == f as f32)
+                    .and_then(|s| chart.slow.get(s).copied())
+                    .unwrap_or(chart.slow_peak);
+                (chart.slow_peak, f, ewma)
+            }
+        }
+    }
+}
+
+/// One of the SPE's feature charts at the sample that raised a flag, when it
+/// was over its limit there (so it is one of the reasons the SPE drove the
+/// flag).
 #[derive(Debug, Clone, Copy, PartialEq)]
-pub(crate) struct ResidualAtRaise {
+pub(crate) struct ChartAtRaise {
     /// The feature whose EWMA was the largest in absolute value (model order).
     pub feature: usize,
     /// That EWMA (signed).
     pub ewma: f32,
+}
+
+/// What the sink kept of one feature chart in one log.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub(crate) struct ChartLog {
+    /// Per flag: the chart, when it was over its limit as the flag rose.
+    pub at_raise: Vec<Option<ChartAtRaise>>,
+    /// Scored samples on which the chart was over its limit.
+    pub over: u64,
 }
 
 /// Where a field row stood.
@@ -349,11 +427,8 @@ pub(crate) struct Collected<'a> {
 pub(crate) struct LogData {
     pub buckets: Vec<Bucket>,
     pub contribs: Vec<FlagContrib>,
-    /// Per flag: the residual chart, when it was over its limit as the flag
-    /// rose.
-    pub resid_at_raise: Vec<Option<ResidualAtRaise>>,
-    /// Scored samples on which the residual chart was over its limit.
-    pub resid_over: u64,
+    /// The SPE's feature charts, in [`Chart::ALL`] order.
+    pub charts: [ChartLog; 2],
     pub truth: Option<TruthRow>,
     /// Whether the log has a time column.
     pub timed: bool,
@@ -374,8 +449,7 @@ struct ContribState {
     sums: Vec<Vec<f64>>,
     counts: Vec<u32>,
     active: Option<usize>,
-    resid_at_raise: Vec<Option<ResidualAtRaise>>,
-    resid_over: u64,
+    charts: [ChartLog; 2],
 }
 
 /// Replays `logs` (files or folders of `*.csv`) through the firmware detector
@@ -460,8 +534,7 @@ pub fn write_report(
                 sums: Vec::new(),
                 counts: Vec::new(),
                 active: None,
-                resid_at_raise: Vec::new(),
-                resid_over: 0,
+                charts: Default::default(),
             });
             timed.push(false);
             fault_at.push((None, None));
@@ -494,32 +567,35 @@ pub fn write_report(
             ewma[i] = tr.ewma.value();
             cusum[i] = tr.cusum.value() / limits[i].cusum_limit;
         }
-        // The residual chart (its peak stays 0 when every gain is 0).
+        // The feature charts (the residual chart's peak stays 0 when every
+        // gain is 0, the slow charts' without any).
         let chart = det.residual_chart();
-        let resid_hot = chart.peak > det.model().resid_limit;
+        let peaks = Chart::ALL.map(|ch| ch.peak(model, chart));
+        let hot = Chart::ALL.map(|ch| peaks[ch.index()].0 > ch.limit(model));
         reducers[step.log].push(&Sample {
             index: o.index,
             t: step.t,
             raw,
             ewma,
             cusum,
-            resid: chart.peak,
+            charts: peaks.map(|p| p.0),
             drifting: o.state == DriftState::Drifting,
         });
 
         let cs = &mut contribs[step.log];
-        if o.scores.is_some() && resid_hot {
-            cs.resid_over += 1;
+        for ((log, (_, feature, ewma)), hot) in cs.charts.iter_mut().zip(peaks).zip(hot) {
+            if o.scores.is_some() && hot {
+                log.over += 1;
+            }
+            if let Some(Event::Raised { .. }) = o.event {
+                log.at_raise
+                    .push(hot.then_some(ChartAtRaise { feature, ewma }));
+            }
         }
         if let Some(Event::Raised { .. }) = o.event {
             cs.sums.push(vec![0.0; d]);
             cs.counts.push(0);
             cs.active = Some(cs.sums.len() - 1);
-            let feature = usize::from(chart.peak_feature);
-            cs.resid_at_raise.push(resid_hot.then(|| ResidualAtRaise {
-                feature,
-                ewma: chart.ewma.get(feature).copied().unwrap_or(chart.peak),
-            }));
         }
         if matches!(o.event, Some(Event::Cleared)) {
             cs.active = None;
@@ -562,28 +638,25 @@ pub fn write_report(
 
     let mut data = Vec::with_capacity(reps.len());
     for (i, rep) in reps.iter().enumerate() {
-        let (buckets, contrib, resid_at_raise, resid_over) =
-            match (reducers.get(i), contribs.get(i)) {
-                (Some(r), Some(c)) => (
-                    r.buckets.clone(),
-                    c.sums
-                        .iter()
-                        .zip(&c.counts)
-                        .map(|(s, n)| FlagContrib {
-                            samples: *n,
-                            mean: s.iter().map(|v| v / f64::from((*n).max(1))).collect(),
-                        })
-                        .collect(),
-                    c.resid_at_raise.clone(),
-                    c.resid_over,
-                ),
-                _ => (Vec::new(), Vec::new(), Vec::new(), 0),
-            };
+        let (buckets, contrib, charts) = match (reducers.get(i), contribs.get(i)) {
+            (Some(r), Some(c)) => (
+                r.buckets.clone(),
+                c.sums
+                    .iter()
+                    .zip(&c.counts)
+                    .map(|(s, n)| FlagContrib {
+                        samples: *n,
+                        mean: s.iter().map(|v| v / f64::from((*n).max(1))).collect(),
+                    })
+                    .collect(),
+                c.charts.clone(),
+            ),
+            _ => (Vec::new(), Vec::new(), Default::default()),
+        };
         data.push(LogData {
             buckets,
             contribs: contrib,
-            resid_at_raise,
-            resid_over,
+            charts,
             truth: truth_for(&rep.path, truth).cloned(),
             timed: timed.get(i).copied().unwrap_or(false),
             first_fault: fault_at.get(i).and_then(|f| f.0),
@@ -619,7 +692,7 @@ mod tests {
             raw: Some([v, -v, v * 2.0]),
             ewma: [v; 3],
             cusum: [0.0; 3],
-            resid: v,
+            charts: [v, 0.0],
             drifting: false,
         }
     }

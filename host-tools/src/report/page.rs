@@ -3,13 +3,13 @@
 
 use super::plot::{count, esc, line, nice_ticks, pt, rect, sig, text, tick, vtext, Scale};
 use super::{
-    Bucket, Collected, FlagContrib, LatentPoint, LogData, PointClass, Span, TruthKind,
+    Bucket, Chart, Collected, FlagContrib, LatentPoint, LogData, PointClass, Span, TruthKind,
     CONTRIB_SAMPLES, LATENT_FIELD_POINTS, LATENT_TRAIN_POINTS, PLOT_COLUMNS,
 };
 use crate::replay::{Flag, LogReplay};
 use crate::summary::utc_string;
 use plumb_firmware::Score;
-use plumb_model::ScoreLimits;
+use plumb_model::{ScoreLimits, SLOW_PARAMS};
 use std::fmt::Write as _;
 
 /// Display names of the scores, in [`Score::ALL`] order.
@@ -26,6 +26,48 @@ const SCORE_WHAT: [&str; 3] = [
 const RESID_NAME: &str = "SPE residual chart";
 /// One line on what the residual chart follows.
 const RESID_WHAT: &str = "largest |EWMA| of a feature's scaled residual";
+/// Display name of the SPE's slow charts (model format 5).
+const SLOW_NAME: &str = "SPE slow charts";
+/// One line on what the slow charts follow.
+const SLOW_WHAT: &str = "largest |EWMA| of a chosen feature's slower second EWMA";
+
+/// How the panel of one of the SPE's feature charts is labelled.
+struct ChartText {
+    /// Title (panel, plot's label).
+    name: &'static str,
+    /// What its line follows.
+    what: &'static str,
+    /// The panel's id prefix and the plot's `data-score`.
+    key: &'static str,
+    /// After the count of samples over the limit.
+    over: &'static str,
+    /// The limit line's label, before its value.
+    limit: &'static str,
+    /// The right axis' label.
+    axis: &'static str,
+}
+
+/// The labels of `ch`'s panel.
+fn chart_text(ch: Chart) -> ChartText {
+    match ch {
+        Chart::Residual => ChartText {
+            name: RESID_NAME,
+            what: RESID_WHAT,
+            key: "resid",
+            over: "over its limit",
+            limit: "limit L",
+            axis: "residual",
+        },
+        Chart::Slow => ChartText {
+            name: SLOW_NAME,
+            what: SLOW_WHAT,
+            key: "slow",
+            over: "over their limit",
+            limit: "slow limit",
+            axis: "slow",
+        },
+    }
+}
 
 const STYLE: &str = r#"
 :root{--ink:#1d2731;--muted:#5a6672;--rule:#d9dee3;--panel:#ffffff;--ground:#f2f0eb}
@@ -155,14 +197,33 @@ fn feature_label(c: &Collected<'_>, i: usize) -> String {
 
 /// Whether the model's residual chart is on (some feature's gain is not 0).
 fn resid_on(c: &Collected<'_>) -> bool {
-    c.file.model.resid_gain.iter().any(|g| *g != 0.0)
+    Chart::Residual.on(&c.file.model)
+}
+
+/// Whether the model has slow charts (format 5, `plumb tailor`).
+fn slow_on(c: &Collected<'_>) -> bool {
+    Chart::Slow.on(&c.file.model)
+}
+
+/// The model's slow charts: (feature, λ, centre, gain), in feature order.
+fn slow_charts<'a>(c: &'a Collected<'_>) -> impl Iterator<Item = (usize, f32, f32, f32)> + 'a {
+    c.file
+        .model
+        .slow_charts
+        .chunks_exact(SLOW_PARAMS)
+        .map(|p| (p[0] as usize, p[1], p[2], p[3]))
 }
 
 /// Beside flag `fi` of log `li`: the residual chart and the feature of its
 /// largest EWMA, when the chart was over its limit as the flag rose; empty
 /// otherwise.
 fn resid_note(c: &Collected<'_>, li: usize, fi: usize) -> String {
-    match c.logs[li].resid_at_raise.get(fi).copied().flatten() {
+    match c.logs[li].charts[Chart::Residual.index()]
+        .at_raise
+        .get(fi)
+        .copied()
+        .flatten()
+    {
         Some(r) => format!(
             " <span class=\"resid-at\"><span class=\"chip up\">{RESID_NAME}</span> {} \
              <span class=\"muted\">(EWMA {}; limit ±{})</span></span>",
@@ -366,6 +427,37 @@ fn overview(o: &mut String, c: &Collected<'_>) {
     o.push_str("</tbody></table></div>\n</section>\n");
 }
 
+/// The reading section's paragraph on the slow charts, and their constants.
+fn slow_explained(o: &mut String, c: &Collected<'_>) {
+    let _ = writeln!(
+        o,
+        "<p>Below it, the {SLOW_NAME}, which <code>plumb tailor</code> set on this robot's own \
+         nominal logs: for each feature in the table, a second, slower EWMA of the same input as \
+         that feature's residual chart, with a λ, centre and gain of its own. Averaging more \
+         samples, it shows a small lasting shift in that feature sooner against the robot's own, \
+         narrower nominal band. The line is the largest |EWMA| over them; above the limit \
+         <i>L<sub>s</sub></i> = {} they are hot and make the SPE a driver, and a flag clears only \
+         when they too are calm. A flag raised while they were hot is labelled in their panel with \
+         the feature of the largest EWMA.</p>",
+        sig(f64::from(c.file.model.slow_limit))
+    );
+    o.push_str(
+        "<div class=\"scroll\"><table class=\"slow\"><thead><tr><th>slow chart of</th>\
+         <th class=\"n\">λ</th><th class=\"n\">centre</th><th class=\"n\">gain</th></tr></thead><tbody>\n",
+    );
+    for (f, lambda, centre, gain) in slow_charts(c) {
+        let _ = writeln!(
+            o,
+            "<tr><td>{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
+            esc(&feature_label(c, f)),
+            lambda,
+            sig(f64::from(centre)),
+            sig(f64::from(gain))
+        );
+    }
+    o.push_str("</tbody></table></div>\n");
+}
+
 /// A tiny SVG swatch for the legend.
 fn key(o: &mut String, body: &str, label: &str) {
     let _ = write!(
@@ -417,6 +509,9 @@ fn legend(o: &mut String, c: &Collected<'_>) {
             "<p>The model's SPE residual chart (one EWMA per feature of its scaled PCA residual) \
              is off: every feature's gain is 0.</p>\n",
         );
+    }
+    if slow_on(c) {
+        slow_explained(o, c);
     }
     o.push_str("<div class=\"keys\">");
     key(
@@ -508,22 +603,18 @@ fn log_section(o: &mut String, c: &Collected<'_>, li: usize) {
         o.push_str("</div>\n");
     }
     if resid_on(c) {
-        let _ = writeln!(
-            o,
-            "<div class=\"panel\" id=\"resid-{li}\"><div class=\"ptitle\"><b>{RESID_NAME}</b> · {RESID_WHAT} · \
-             {} sample{} over its limit</div>",
-            count(data.resid_over),
-            if data.resid_over == 1 { "" } else { "s" }
-        );
-        resid_timeline(o, c, li);
+        chart_panel(o, c, li, Chart::Residual);
     } else {
         let _ = writeln!(
             o,
             "<div class=\"panel\" id=\"resid-{li}\"><div class=\"ptitle\"><b>{RESID_NAME}</b> · {RESID_WHAT}</div>\n\
              <p class=\"pnote\">Off in this model (every feature's gain is 0), so it raises no flag.</p>"
         );
+        o.push_str("</div>\n");
     }
-    o.push_str("</div>\n");
+    if slow_on(c) {
+        chart_panel(o, c, li, Chart::Slow);
+    }
     if !rep.flags.is_empty() {
         let _ = write!(
             o,
@@ -902,27 +993,56 @@ fn sample_axis(
     }
 }
 
-/// Height of the residual chart's panel: the plot area and the sample axis.
+/// Height of a feature chart's panel: the plot area and the sample axis.
 const RH: f64 = MT + MH + 32.0;
 
-/// The SPE's residual chart of log `li`: per column the smallest and largest
-/// peak `|EWMA|`, the limit and the clear level, flag spans (named with the
-/// chart's feature where the chart was over its limit as the flag rose),
-/// ground truth and faulted samples.
-fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
+/// The panel of one of the SPE's feature charts of log `li` (the model has
+/// the chart): its title, with the samples over the limit, and its plot.
+fn chart_panel(o: &mut String, c: &Collected<'_>, li: usize, ch: Chart) {
+    let t = chart_text(ch);
+    let over = c.logs[li].charts[ch.index()].over;
+    let _ = write!(
+        o,
+        "<div class=\"panel\" id=\"{}-{li}\"><div class=\"ptitle\"><b>{}</b> · {}",
+        t.key, t.name, t.what
+    );
+    if ch == Chart::Slow {
+        let on: Vec<String> = slow_charts(c)
+            .map(|(f, ..)| esc(&feature_name(c, f)))
+            .collect();
+        let _ = write!(o, " · on {}", on.join(", "));
+    }
+    let _ = writeln!(
+        o,
+        " · {} sample{} {}</div>",
+        count(over),
+        if over == 1 { "" } else { "s" },
+        t.over
+    );
+    chart_timeline(o, c, li, ch);
+    o.push_str("</div>\n");
+}
+
+/// One of the SPE's feature charts of log `li`: per column the smallest and
+/// largest peak `|EWMA|`, the limit and the clear level, flag spans (named
+/// with the chart's feature where the chart was over its limit as the flag
+/// rose), ground truth and faulted samples.
+fn chart_timeline(o: &mut String, c: &Collected<'_>, li: usize, ch: Chart) {
     let rep = &c.reps[li];
     let data = &c.logs[li];
     let mp = &c.file.model.monitor;
+    let t = chart_text(ch);
+    let at_raise = &data.charts[ch.index()].at_raise;
     let n = rep.samples.max(1);
     let (cols, ncol) = columns(&data.buckets, rep.samples);
     let colw = PW / ncol as f64;
     let xc = |ci: usize| ML + colw * (ci as f64 + 0.5);
     let xs = Scale::new(0.0, n as f64, ML, ML + PW);
-    let big_l = f64::from(c.file.model.resid_limit);
+    let big_l = f64::from(ch.limit(&c.file.model));
 
     let mut peak = Span::EMPTY;
     for b in cols.iter().flatten() {
-        peak.merge(b.resid);
+        peak.merge(b.charts[ch.index()]);
     }
     let hi = (big_l * 1.25).max(if peak.is_empty() {
         0.0
@@ -933,10 +1053,12 @@ fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
 
     let _ = write!(
         o,
-        "<svg class=\"timeline\" data-log=\"{li}\" data-score=\"resid\" viewBox=\"0 0 {} {}\" \
-         role=\"img\" aria-label=\"{RESID_NAME} of {}\">",
+        "<svg class=\"timeline\" data-log=\"{li}\" data-score=\"{}\" viewBox=\"0 0 {} {}\" \
+         role=\"img\" aria-label=\"{} of {}\">",
+        t.key,
         pt(TW),
         pt(RH),
+        t.name,
         esc(&log_name(rep))
     );
     let (yticks, ystep) = nice_ticks(0.0, hi, 5);
@@ -954,7 +1076,7 @@ fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
 
     // Flags; one the chart was hot for names its feature on a second line.
     flag_spans(o, rep, &xs, MT + MH, |fi, span, room| {
-        let named = data.resid_at_raise.get(fi).is_some_and(Option::is_some);
+        let named = at_raise.get(fi).is_some_and(Option::is_some);
         if named || span > 30.0 {
             fitted(room, [format!("flag {}", fi + 1), (fi + 1).to_string()])
         } else {
@@ -962,7 +1084,7 @@ fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
         }
     });
     for (fi, f) in rep.flags.iter().enumerate() {
-        let Some(r) = data.resid_at_raise.get(fi).copied().flatten() else {
+        let Some(r) = at_raise.get(fi).copied().flatten() else {
             continue;
         };
         let x0 = xs.at(f.raised_at as f64);
@@ -985,11 +1107,11 @@ fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
         ys.at(big_l) - 3.5,
         "s lim-l-t lbl",
         "end",
-        &format!("limit L = {}", sig(big_l)),
+        &format!("{} = {}", t.limit, sig(big_l)),
     );
 
     // The peak: through each column's extremes.
-    let pts = extremes_path(&cols, xc, |v| ys.at(v), |b| b.resid);
+    let pts = extremes_path(&cols, xc, |v| ys.at(v), |b| b.charts[ch.index()]);
     let mut faults = String::new();
     for (ci, b) in cols.iter().enumerate() {
         if b.as_ref().is_some_and(|b| b.faults > 0) {
@@ -1003,7 +1125,7 @@ fn resid_timeline(o: &mut String, c: &Collected<'_>, li: usize) {
 
     onset_marker(o, data, &xs, n, MT + MH);
     rect(o, ML, MT, PW, MH, "frame");
-    vtext(o, TW - 12.0, MT + MH / 2.0, "", "residual");
+    vtext(o, TW - 12.0, MT + MH / 2.0, "", t.axis);
     sample_axis(o, rep, data, &xs, (&xticks, xstep), MT + MH);
     o.push_str("</svg>\n");
 }
@@ -1686,7 +1808,7 @@ fn notes(o: &mut String, c: &Collected<'_>) {
          <li>Timelines: one drawn column per pixel; each column shows the smallest and largest \
          per-sample <i>u</i>, EWMA and CUSUM of the samples it covers. Marks along the top of a \
          panel are columns whose per-sample <i>u</i> goes above the drawn scale.</li>\n\
-         <li>{}</li>\n\
+         <li>{}</li>\n{}\
          <li>Contributions: <i>r<sub>i</sub></i>² recomputed from the model in double precision; \
          their sum is the SPE the detector reported, to rounding.</li>\n\
          <li>Latent plane: reservoir samples (fixed seed), so the same inputs give the same picture.</li>\n\
@@ -1699,6 +1821,7 @@ fn notes(o: &mut String, c: &Collected<'_>) {
         sig(f64::from(lim[2].spread)),
         sig(f64::from(c.nll_floor)),
         resid_sentence(c),
+        slow_sentence(c),
     );
 }
 
@@ -1716,5 +1839,21 @@ fn resid_sentence(c: &Collected<'_>) -> String {
          at the sample that raised it, named only when that EWMA was beyond <i>L</i>.",
         m.resid_gain.len(),
         sig(f64::from(m.resid_limit))
+    )
+}
+
+/// The notes' item on the slow charts (empty without them).
+fn slow_sentence(c: &Collected<'_>) -> String {
+    if !slow_on(c) {
+        return String::new();
+    }
+    format!(
+        "<li>{SLOW_NAME}: the detector's own {} slower EWMAs (their constants are listed under \
+         “Reading the timelines”); each panel column shows the smallest and largest of their peak \
+         |EWMA| over its samples, \
+         against their limit <i>L<sub>s</sub></i> = {}. A flag's feature is named as for the \
+         residual chart.</li>\n",
+        slow_charts(c).count(),
+        sig(f64::from(c.file.model.slow_limit))
     )
 }

@@ -56,6 +56,18 @@ pub fn encode_frame<M: Serialize + ?Sized>(msg: &M, out: &mut [u8]) -> Result<us
     Ok(len + 1)
 }
 
+/// [`encode_frame`] of a device frame `(seq, msg)` (encoded exactly like
+/// `DeviceFrame { seq, msg }`). Not generic, so it is compiled once, with
+/// this crate's settings, whichever crate calls it.
+#[inline(never)]
+pub fn encode_device_frame(
+    seq: u32,
+    msg: &super::DeviceMsg,
+    out: &mut [u8],
+) -> Result<usize, EncodeError> {
+    encode_frame(&(seq, msg), out)
+}
+
 /// Encodes a frame into a new vector (host convenience).
 #[cfg(feature = "alloc")]
 pub fn encode_frame_vec<M: Serialize + ?Sized>(msg: &M) -> alloc::vec::Vec<u8> {

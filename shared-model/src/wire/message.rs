@@ -89,6 +89,14 @@ pub enum Statistic {
         /// Feature index in model order.
         feature: u8,
     },
+    /// The SPE's slow charts (variant 4, model format 5): the second EWMA of
+    /// one feature's residual chart input, with that chart's constant,
+    /// centre and gain from the model's `slow_charts`, in absolute value,
+    /// against `slow_limit`. A crossing names the feature furthest over the limit.
+    Slow {
+        /// Feature index in model order.
+        feature: u8,
+    },
 }
 
 impl Statistic {

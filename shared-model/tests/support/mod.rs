@@ -116,5 +116,7 @@ pub fn example_model(d: usize, m: usize, k: usize, seed: u64) -> ModelOwned {
             .collect(),
         resid_limit: 1.75,
         resid_whiten: Vec::new(),
+        slow_charts: Vec::new(),
+        slow_limit: 1.0,
     }
 }

@@ -323,3 +323,23 @@ pub static __INTERRUPTS: [unsafe extern "C" fn(); 1] = {
 unsafe fn DefaultHandler(_irqn: i16) {
     crate::uart::Uart0::clear_all_interrupts();
 }
+
+extern "C" {
+    fn __aeabi_memclr4(dest: *mut u8, n: usize);
+}
+
+/// The run-time ABI's "clear `n` bytes at an 8-aligned address", as a jump
+/// to its 4-aligned twin: an 8-aligned address is 4-aligned, so the twin
+/// clears the same bytes. The library's own copy is 174 bytes of code that
+/// would do the same work.
+///
+/// # Safety
+///
+/// As for `__aeabi_memclr8`: `dest` is valid for `n` bytes of writes and
+/// 8-aligned.
+#[no_mangle]
+pub unsafe extern "C" fn __aeabi_memclr8(dest: *mut u8, n: usize) {
+    // SAFETY: the caller's contract (valid for `n` bytes of writes, aligned
+    // to 8 and so to 4) is the contract of `__aeabi_memclr4`.
+    unsafe { __aeabi_memclr4(dest, n) }
+}

@@ -22,7 +22,8 @@ pub fn write_dec<W: Write>(w: &mut W, value: u64) -> Result<(), W::Error> {
         }
         *slot = b'0' + rem as u8;
         digits += 1;
-        if pieces == [0; 4] {
+        // (Not `pieces == [0; 4]`, which calls `memcmp`.)
+        if pieces.iter().all(|&p| p == 0) {
             break;
         }
     }

@@ -62,7 +62,14 @@ fn limits() -> ScoreLimits {
 /// the stack should carry by value) with a valid dense model of the given
 /// size: every loading, mean and variance non-trivial, so no arithmetic is
 /// skipped.
-fn synthetic(model: &mut Model, d: usize, m: usize, k: usize, whiten: bool) -> Option<()> {
+fn synthetic(
+    model: &mut Model,
+    d: usize,
+    m: usize,
+    k: usize,
+    whiten: bool,
+    slow: usize,
+) -> Option<()> {
     let mut rng = Lcg(0x5eed ^ (d * 1000 + m * 10 + k) as u64);
     *model = Model {
         meta: ModelMeta {
@@ -104,6 +111,8 @@ fn synthetic(model: &mut Model, d: usize, m: usize, k: usize, whiten: bool) -> O
         resid_gain: heapless::Vec::new(),
         resid_limit: 3.0,
         resid_whiten: heapless::Vec::new(),
+        slow_charts: heapless::Vec::new(),
+        slow_limit: 1.0,
     };
     for _ in 0..d {
         model.mean.push(rng.next() * 0.1).ok()?;
@@ -139,6 +148,14 @@ fn synthetic(model: &mut Model, d: usize, m: usize, k: usize, whiten: bool) -> O
                 let w = if i == j { 1.0 } else { 0.1 * rng.next() };
                 model.resid_whiten.push(w).ok()?;
             }
+        }
+    }
+    // Slow charts (format 5, as `plumb tailor` adds them) on `slow`
+    // features spread over the model.
+    for s in 0..slow {
+        let i = s * d / slow.max(1);
+        for v in [i as f32, 0.005, 0.01, 2.0] {
+            model.slow_charts.push(v).ok()?;
         }
     }
     Some(())
@@ -192,6 +209,8 @@ fn report(uart: &mut Uart0, name: &str, det: &mut Detector, ticks: &Ticks) {
         usize::from(dims.mixture),
     );
     let (update, score) = measure(ticks, det, d);
+    let slow = det.model().slow_charts.len() / plumb_firmware::plumb_model::SLOW_PARAMS;
+    let whitened = usize::from(!det.model().resid_whiten.is_empty());
     let per = |t: u64| t * u64::from(INSTRUCTIONS_PER_TICK) / u64::from(SAMPLES);
     let _ = uart.write_all(b"bench model=");
     let _ = uart.write_all(name.as_bytes());
@@ -199,8 +218,14 @@ fn report(uart: &mut Uart0, name: &str, det: &mut Detector, ticks: &Ticks) {
         ("d", d as u64),
         ("m", m as u64),
         ("k", k as u64),
-        ("whitened", u64::from(!det.model().resid_whiten.is_empty())),
-        ("macs", (2 * d * m + 3 * k * m + det.model().resid_whiten.len()) as u64),
+        ("whitened", whitened as u64),
+        ("slow", slow as u64),
+        // With a whitening matrix each slow chart's input is a sum of d more
+        // multiply-adds (`score::chart_step`).
+        (
+            "macs",
+            (2 * d * m + 3 * k * m + det.model().resid_whiten.len() + whitened * slow * d) as u64,
+        ),
         ("samples", u64::from(SAMPLES)),
         ("update_ticks", update),
         ("update_instructions_per_sample", per(update)),
@@ -220,14 +245,16 @@ fn main() -> ! {
     let Some(det) = cortex_m::singleton!(: Detector = Detector::EMPTY) else {
         semihost::exit_failure()
     };
-    for (d, m, k, whiten) in [
-        (32, 8, 4, false),
-        (64, 16, 8, false),
-        (32, 8, 4, true),
-        (64, 16, 8, true),
+    for (d, m, k, whiten, slow) in [
+        (32, 8, 4, false, 0),
+        (64, 16, 8, false, 0),
+        (32, 8, 4, true, 0),
+        (64, 16, 8, true, 0),
+        (32, 8, 4, true, 8),
+        (64, 16, 8, true, 16),
     ] {
         let mut built = Some(());
-        match det.load_with(|model| built = synthetic(model, d, m, k, whiten)) {
+        match det.load_with(|model| built = synthetic(model, d, m, k, whiten, slow)) {
             Ok(()) if built.is_some() => report(&mut uart, "synthetic", det, &ticks),
             _ => {
                 let _ = uart.write_all(b"bench synthetic model refused\n");
