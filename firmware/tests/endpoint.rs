@@ -765,13 +765,11 @@ mod scoring {
         }
     }
 
-    #[test]
-    fn the_residual_chart_crossing_follows_the_spe_charts_and_names_its_feature() {
-        // As above, SPE's per-sample limit crossed by the spike, and the
-        // residual chart on (limit 0.2; feature 2 with twice the gain of the
-        // others): one spike sample moves each feature's chart to λ·w =
-        // 0.2 × 1.5 × gain, over the limit, so it is listed right after the
-        // SPE's own charts (before T²'s), with its peak and that feature.
+    /// The SPE's per-sample limit low enough for the spike of
+    /// `Lcg(5).drifted()` to cross it, its CUSUM and EWMA out of reach, and
+    /// the residual chart on (limit 0.2; feature 2 with twice the gain of
+    /// the others).
+    fn residual_spike_model() -> ModelOwned {
         let spe = ScoreLimits {
             sample_limit: 3.0,
             cusum_limit: 40.0,
@@ -781,6 +779,17 @@ mod scoring {
         let mut m = chart_model(spe, 50.0);
         m.resid_gain = vec![1.0, 1.0, 2.0, 1.0];
         m.resid_limit = 0.2;
+        m
+    }
+
+    #[test]
+    fn the_residual_chart_crossing_follows_the_spe_charts_and_names_its_feature() {
+        // As above, SPE's per-sample limit crossed by the spike, and the
+        // residual chart on (limit 0.2; feature 2 with twice the gain of the
+        // others): one spike sample moves each feature's chart to λ·w =
+        // 0.2 × 1.5 × gain, over the limit, so it is listed right after the
+        // SPE's own charts (before T²'s), with its peak and that feature.
+        let m = residual_spike_model();
         let spike = Lcg(5).drifted();
         let (r, reference) = raise_with(&m, &spike);
         assert_eq!(r.drivers, 0b001, "{r:?}");
@@ -813,15 +822,7 @@ mod scoring {
         // so one spike sample moves each to its full scaled input; feature
         // 3's gain larger) and their limit 0.2: listed after the residual
         // chart, with the slow peak and its feature.
-        let spe = ScoreLimits {
-            sample_limit: 3.0,
-            cusum_limit: 40.0,
-            ewma_limit: 40.0,
-            ..limits(0.2, 0.1)
-        };
-        let mut m = chart_model(spe, 50.0);
-        m.resid_gain = vec![1.0, 1.0, 2.0, 1.0];
-        m.resid_limit = 0.2;
+        let mut m = residual_spike_model();
         m.slow_charts = vec![1.0, 1.0, 0.0, 1.0, 3.0, 1.0, 0.0, 3.0];
         m.slow_limit = 0.2;
         let spike = Lcg(5).drifted();

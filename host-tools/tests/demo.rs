@@ -364,40 +364,32 @@ fn too_few_rows_are_refused_before_the_cache_is_touched() {
     let cached = logs.join("generated/calibration");
     std::fs::create_dir_all(&cached).unwrap();
     std::fs::write(cached.join("complete"), "seed 1001 rows 1000000 files 8\n").unwrap();
-    for rows in ["10", "0", "-5", "many"] {
-        let rows_arg = format!("--nominal-rows={rows}");
-        let o = plumb(&[
-            "demo",
-            "--logs",
-            logs.to_str().unwrap(),
-            "--out",
-            dir.path("out").to_str().unwrap(),
-            &rows_arg,
-        ]);
-        let err = String::from_utf8_lossy(&o.stderr);
-        assert_eq!(o.status.code(), Some(2), "{rows}: {err}");
-        assert!(err.contains("--nominal-rows"), "{err}");
-        assert!(
-            cached.join("complete").exists(),
-            "{rows}: the cached set was removed"
-        );
-        assert!(!dir.path("out").exists(), "{rows}: output folder made");
-        assert!(!logs.join("train").exists(), "{rows}: demo logs generated");
-    }
-    for rows in ["1", "3999", "-1", "many"] {
-        let rows_arg = format!("--robot-rows={rows}");
-        let o = plumb(&[
-            "demo",
-            "--logs",
-            logs.to_str().unwrap(),
-            "--out",
-            dir.path("out").to_str().unwrap(),
-            &rows_arg,
-        ]);
-        let err = String::from_utf8_lossy(&o.stderr);
-        assert_eq!(o.status.code(), Some(2), "{rows}: {err}");
-        assert!(err.contains("--robot-rows"), "{err}");
-        assert!(!dir.path("out").exists(), "{rows}: output folder made");
-        assert!(!logs.join("train").exists(), "{rows}: demo logs generated");
+    for (option, values) in [
+        ("--nominal-rows", ["10", "0", "-5", "many"]),
+        ("--robot-rows", ["1", "3999", "-1", "many"]),
+    ] {
+        for rows in values {
+            let rows_arg = format!("{option}={rows}");
+            let o = plumb(&[
+                "demo",
+                "--logs",
+                logs.to_str().unwrap(),
+                "--out",
+                dir.path("out").to_str().unwrap(),
+                &rows_arg,
+            ]);
+            let err = String::from_utf8_lossy(&o.stderr);
+            assert_eq!(o.status.code(), Some(2), "{rows_arg}: {err}");
+            assert!(err.contains(option), "{err}");
+            assert!(
+                cached.join("complete").exists(),
+                "{rows_arg}: the cached set was removed"
+            );
+            assert!(!dir.path("out").exists(), "{rows_arg}: output folder made");
+            assert!(
+                !logs.join("train").exists(),
+                "{rows_arg}: demo logs generated"
+            );
+        }
     }
 }
