@@ -174,7 +174,8 @@ pub fn tailor(
     let mut starts: Vec<usize> = Vec::new();
     let mut resid = [0.0f32; MAX_FEATURES];
     let reps = crate::replay::replay(file, paths, read, stage, |step| {
-        if starts.len() <= step.log {
+        // A log with no sample gets an empty range.
+        while starts.len() <= step.log {
             starts.push(rows.len() / d.max(1));
         }
         if step.outcome.scores.is_some()
