@@ -260,14 +260,13 @@ pub fn tailor(
         .collect();
     // 4. The limit.
     let (budget, allowed) = chart_allowance(cfg.rate, n);
-    let floor = LIMIT_FLOOR;
     let (limit, alarms, at_floor) = if charts.is_empty() {
         (1.0, 0, true)
     } else {
         let s = smallest_limit_with(
             |l| slow_alarms(&r, &charts, l).0,
             || slow_alarms(&r, &charts, f32::INFINITY).1,
-            floor,
+            LIMIT_FLOOR,
             allowed,
         );
         (s.limit, s.alarms, s.at_floor)
