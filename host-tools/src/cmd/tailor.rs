@@ -22,9 +22,12 @@ shift of --design-shift spreads is shorter than at the model's own constant (up 
 features). One limit for all of them is set on the robot's rows for --false-alarm-rate
 (the same budget rule as `plumb fit`). Everything else in the model is kept.
 
-The logs must be the robot's own, nominal, and long: on the demo, 500,000 rows in 16 logs
-held the false-alarm rate on the robot's other logs and 250,000 did not (BENCHMARKS.md,
-Detection, attempt 14). The output is written atomically.";
+The constant each feature takes is the one whose EWMA crosses soonest for that shift against
+a limit equal to the model's residual chart limit; rows the model faults (bad cells, out of
+range) are left out, as in calibration. The logs must be the robot's own, nominal, and long:
+on the demo, 10^6 rows of a robot (32 days) held the false-alarm rate on its other days and
+500,000 did not; with fewer rows than that the budget is under one false alarm and tailor
+warns (BENCHMARKS.md, Detection, attempt 15). The output is written atomically.";
 
 /// Arguments of `plumb tailor`.
 #[derive(Debug, Args)]
@@ -86,7 +89,7 @@ pub fn run(args: TailorArgs) -> Result<u8> {
     let report = tailor::tailor(
         &mut file,
         &paths,
-        args.read.options(BadCells::SkipRow)?,
+        args.read.options(BadCells::PassAsNan)?,
         &cfg,
         &stage,
     )?;
