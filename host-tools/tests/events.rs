@@ -155,3 +155,21 @@ fn the_residual_chart_crossing_names_its_feature() {
     let v = json_line(&raised(&three()), &names());
     assert!(v["crossed"][0].get("feature").is_none(), "{v}");
 }
+
+/// A slow chart's crossing (protocol 5) names its feature as the residual
+/// chart's does, under its own chart name.
+#[test]
+fn the_slow_chart_crossing_names_its_feature() {
+    let c = [
+        crossing(ScoreKind::Spe, Statistic::Residual { feature: 0 }, 2.5, 2.0),
+        crossing(ScoreKind::Spe, Statistic::Slow { feature: 1 }, 1.5, 1.25),
+    ];
+    let line = text_line(&raised(&c), &names());
+    assert!(line.ends_with(",spe/slow(motor_amps):1.5>1.25"), "{line}");
+    let v = json_line(&raised(&c), &names());
+    let x = &v["crossed"][1];
+    assert_eq!(x["statistic"], "slow");
+    assert_eq!(x["feature"], "motor_amps");
+    assert_eq!(x["index"], 1);
+    assert_eq!(x["limit"], 1.25);
+}
