@@ -977,6 +977,37 @@ fn the_slow_charts_are_checked() {
     }
 }
 
+/// More slow charts than a device holds (`MAX_SLOW`): the host reads the
+/// file, `to_device` refuses it naming the field, and a device decoder
+/// refuses the bytes (its vector is full) without misreading them.
+#[test]
+fn more_slow_charts_than_a_device_holds_are_refused_on_the_device() {
+    let mut m = support::example_model(24, 3, 2, 5);
+    m.slow_charts = (0..=plumb_model::MAX_SLOW)
+        .flat_map(|i| [i as f32, 0.01, 0.0, 1.0])
+        .collect();
+    m.validate().unwrap();
+    let bytes = ModelFile {
+        model: m.clone(),
+        labels: vec![],
+    }
+    .to_bytes()
+    .unwrap();
+    assert_eq!(ModelFile::from_bytes(&bytes).unwrap().model, m);
+    assert_eq!(
+        m.to_device(),
+        Err(ModelError::Inconsistent {
+            field: Field::ResidualChart,
+            expected: 64,
+            found: 68
+        })
+    );
+    assert_eq!(decode(&bytes), Err(ModelError::Undecodable));
+    // Sixteen fit.
+    m.slow_charts.truncate(4 * plumb_model::MAX_SLOW);
+    assert!(m.to_device().is_ok());
+}
+
 /// Field 33's checks: its length (0 or d²), finite values, and the chart's
 /// range check on the matrix and on the gains (FORMAT.md).
 #[test]
