@@ -465,6 +465,16 @@ fn slow_report() -> &'static (Scratch, String, PathBuf, serde_json::Value) {
     R.get_or_init(|| report_of(&slow_model().1, "report-slow"))
 }
 
+/// The number written after the first `marker` in `text`, up to `end`.
+fn number_after(text: &str, marker: &str, end: char) -> f64 {
+    text.split(marker)
+        .nth(1)
+        .and_then(|t| t.split(end).next())
+        .unwrap_or_else(|| panic!("no number after {marker:?}"))
+        .parse()
+        .unwrap()
+}
+
 /// A count as the report writes it: narrow no-break spaces between
 /// thousands.
 fn grouped(n: u64) -> String {
@@ -539,13 +549,7 @@ fn slow_charts_have_a_panel_beside_the_residual_chart() {
         )));
         // The limit, labelled with the model's, and the clear level at its
         // fraction of it (heights above the plot's zero line).
-        let shown: f64 = panel
-            .split("slow limit = ")
-            .nth(1)
-            .and_then(|t| t.split('<').next())
-            .expect("limit label")
-            .parse()
-            .unwrap();
+        let shown = number_after(panel, "slow limit = ", '<');
         assert!((shown - limit).abs() <= 0.01 * limit, "{shown} vs {limit}");
         let zero = 18.0 + 132.0;
         let ratio = (zero - line_y(panel, "lim-c")) / (zero - line_y(panel, "lim-l"));
@@ -600,13 +604,7 @@ fn slow_charts_have_a_panel_beside_the_residual_chart() {
     let reading = &html[html.find("<section id=\"reading\">").unwrap()..];
     let reading = &reading[..reading.find("</section>").unwrap()];
     assert!(reading.contains("<code>plumb tailor</code>"));
-    let shown: f64 = reading
-        .split("<i>L<sub>s</sub></i> = ")
-        .nth(1)
-        .and_then(|t| t.split(' ').next())
-        .expect("the limit in the text")
-        .parse()
-        .unwrap();
+    let shown = number_after(reading, "<i>L<sub>s</sub></i> = ", ' ');
     assert!((shown - limit).abs() <= 0.01 * limit, "{shown} vs {limit}");
     for name in &names {
         assert!(
