@@ -833,19 +833,23 @@ fn a_browser_renders_the_report() {
     let url = format!("file://{}", out.canonicalize().unwrap().display());
 
     // The parsed DOM keeps every SVG element (none dropped as invalid).
-    let dom = run_with_deadline(
-        Command::new(&chrome)
-            .args(chromium_args(&dir.path("profile-dom")))
-            .arg("--dump-dom")
-            .arg(&url),
-        Duration::from_secs(120),
-    );
-    assert!(
-        dom.status.success(),
-        "{}",
-        String::from_utf8_lossy(&dom.stderr)
-    );
-    let dom = String::from_utf8_lossy(&dom.stdout);
+    // The page as Chromium parsed it, with a profile of its own.
+    let dump_dom = |profile: &str, url: &str| -> String {
+        let out = run_with_deadline(
+            Command::new(&chrome)
+                .args(chromium_args(&dir.path(profile)))
+                .arg("--dump-dom")
+                .arg(url),
+            Duration::from_secs(120),
+        );
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    };
+    let dom = dump_dom("profile-dom", &url);
     for tag in [
         "<svg",
         "<ellipse",
@@ -871,22 +875,10 @@ fn a_browser_renders_the_report() {
     // The model with slow charts: their panel of each log, drawn, with its
     // flag spans.
     let (_d, slow_html, slow_out, _) = slow_report();
-    let dom = run_with_deadline(
-        Command::new(&chrome)
-            .args(chromium_args(&dir.path("profile-slow")))
-            .arg("--dump-dom")
-            .arg(format!(
-                "file://{}",
-                slow_out.canonicalize().unwrap().display()
-            )),
-        Duration::from_secs(120),
+    let dom = dump_dom(
+        "profile-slow",
+        &format!("file://{}", slow_out.canonicalize().unwrap().display()),
     );
-    assert!(
-        dom.status.success(),
-        "{}",
-        String::from_utf8_lossy(&dom.stderr)
-    );
-    let dom = String::from_utf8_lossy(&dom.stdout);
     let slow = svgs(
         &dom,
         "<svg class=\"timeline\" data-log=\"0\" data-score=\"slow\"",
