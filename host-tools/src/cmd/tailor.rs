@@ -3,7 +3,7 @@
 use crate::cli::{LogArgs, OutputArgs};
 use crate::cmd::inspect::read_model;
 use crate::error::{Error, Result, EXIT_CLEAN};
-use crate::files::{self, Input, Output};
+use crate::files::{self, Output};
 use crate::logs::{self, BadCells};
 use crate::progress::Progress;
 use crate::tailor::{self, TailorConfig, CANDIDATES};
@@ -61,17 +61,8 @@ pub struct TailorArgs {
 /// Runs `plumb tailor`.
 pub fn run(args: TailorArgs) -> Result<u8> {
     let paths = logs::expand_paths(&args.logs)?;
-    let mut inputs: Vec<Input<'_>> = paths
-        .iter()
-        .map(|p| Input {
-            what: "log",
-            path: p,
-        })
-        .collect();
-    inputs.push(Input {
-        what: "model",
-        path: &args.model,
-    });
+    // The model, the logs and the units sidecar, as replay lists them.
+    let inputs = crate::cmd::replay::inputs(&args.model, &paths, &args.read);
     files::check_outputs(
         &[Output {
             option: "--out",
