@@ -234,10 +234,17 @@ pub struct ChartStep {
 /// chart `slow[s]` (model format 5: the model's `slow_charts`, in feature
 /// order) becomes [`chart_next`] of the same input
 /// with its own constant, centre and gain. Call it only for a scored sample
-/// (every `r_i` finite and `r_i²` within `f32::MAX`): the model's validation
-/// then keeps every input and every EWMA value finite
+/// (every `r_i` finite and `r_i²` within `f32::MAX`) of a validated model:
+/// the validation then keeps every input and every EWMA value finite
 /// ([`plumb_model::CHART_INPUT_MAX`]), which is why the step needs no check
-/// and no second buffer.
+/// and no second buffer, and its slow charts' features ascend, so each is
+/// met where the walk over the features reaches it.
+///
+/// With a whitening matrix the inputs are summed four rows at a time: each
+/// `r_j` is loaded once for the four rows, and each row's sum still runs
+/// over `j` in index order, so every input has [`chart_input`]'s bits. A
+/// slow chart takes its feature's input as the walk passes it (not a second
+/// sum).
 ///
 /// The peaks are found on the bit patterns of the absolute values, whose
 /// integer order is the order of the values for every non-negative float:
@@ -251,41 +258,97 @@ pub fn chart_step(
 ) -> ChartStep {
     let d = usize::from(model.dims.features).min(r.len());
     let r = r.get(..d).unwrap_or(&[]);
+    let ewma = ewma.get_mut(..d).unwrap_or_default();
+    let (center, gain) = (&model.resid_center[..], &model.resid_gain[..]);
     let lambda = model.monitor.ewma_lambda;
+    let params = &model.slow_charts[..];
     let (mut peak, mut at, mut slow_peak, mut slow_at) = (0u32, 0usize, 0u32, 0usize);
-    for (i, ((e, center), gain)) in ewma
-        .iter_mut()
-        .zip(model.resid_center.iter())
-        .zip(model.resid_gain.iter())
-        .enumerate()
-    {
-        *e = chart_next(
-            *e,
-            chart_input(&model.resid_whiten, r, i),
-            *center,
-            *gain,
-            lambda,
-        );
+    // The next slow chart to meet, and its feature.
+    let mut next = 0;
+    let mut next_feature = slow_feature(params, next);
+    let mut step = |i: usize, e: &mut f32, v: f32, c: f32, g: f32| {
+        *e = chart_next(*e, v, c, g, lambda);
         keep_peak(&mut peak, &mut at, *e, i);
-    }
-    // The slow charts (feature, λ, centre, gain), after: each input is
-    // computed again, the same sum in the same order, so the same bits, and
-    // a model without slow charts pays nothing per feature.
-    for (e, p) in slow
-        .iter_mut()
-        .zip(model.slow_charts.chunks_exact(SLOW_PARAMS))
-    {
-        if let &[f, l, c, g] = p {
-            let i = f as usize;
-            *e = chart_next(*e, chart_input(&model.resid_whiten, r, i), c, g, l);
-            keep_peak(&mut slow_peak, &mut slow_at, *e, i);
+        while i == next_feature {
+            keep_peak(
+                &mut slow_peak,
+                &mut slow_at,
+                slow_next(slow, params, next, v),
+                i,
+            );
+            next += 1;
+            next_feature = slow_feature(params, next);
         }
+    };
+    let w = &model.resid_whiten[..];
+    let whitened = !w.is_empty();
+    let mut four = [0.0f32; 4];
+    for (i, (((e, c), g), ri)) in ewma.iter_mut().zip(center).zip(gain).zip(r).enumerate() {
+        let v = if whitened {
+            if i % 4 == 0 {
+                four = four_rows(w, r, i);
+            }
+            four[i % 4]
+        } else {
+            *ri
+        };
+        step(i, e, v, *c, *g);
     }
     ChartStep {
         peak: f32::from_bits(peak),
         feature: at as u8,
         slow_peak: f32::from_bits(slow_peak),
         slow_feature: slow_at as u8,
+    }
+}
+
+/// The whitened inputs of rows `i..i + 4` ([`chart_input`]'s, 0 past the
+/// last row). Each is summed over `j` in index order as [`chart_input`]
+/// sums, so it has its bits; four whole rows go together, each `r_j` loaded
+/// once for the four. Out of line, so that the loop has the registers to
+/// itself.
+#[inline(never)]
+fn four_rows(w: &[f32], r: &[f32], i: usize) -> [f32; 4] {
+    let d = r.len();
+    let Some(block) = w.get(i * d..(i + 4) * d) else {
+        return [0, 1, 2, 3].map(|k| chart_input(w, r, i + k));
+    };
+    let (r0, rest) = block.split_at(d);
+    let (r1, rest) = rest.split_at(d);
+    let (r2, r3) = rest.split_at(d);
+    let (mut a0, mut a1, mut a2, mut a3) = (0.0f32, 0.0f32, 0.0f32, 0.0f32);
+    for ((((w0, w1), w2), w3), rj) in r0.iter().zip(r1).zip(r2).zip(r3).zip(r) {
+        a0 += w0 * rj;
+        a1 += w1 * rj;
+        a2 += w2 * rj;
+        a3 += w3 * rj;
+    }
+    [a0, a1, a2, a3]
+}
+
+/// The feature of slow chart `s` (`usize::MAX` past the last one).
+#[inline(always)]
+fn slow_feature(params: &[f32], s: usize) -> usize {
+    match params.get(SLOW_PARAMS * s..SLOW_PARAMS * (s + 1)) {
+        Some(&[f, ..]) if s < MAX_SLOW => f as usize,
+        _ => usize::MAX,
+    }
+}
+
+/// Steps slow chart `s` on input `v` and returns its new value (0 for a
+/// chart that is not there).
+#[cold]
+#[inline(never)]
+fn slow_next(slow: &mut [f32; MAX_SLOW], params: &[f32], s: usize, v: f32) -> f32 {
+    match (
+        slow.get_mut(s),
+        params.get(SLOW_PARAMS * s..SLOW_PARAMS * (s + 1)),
+    ) {
+        (Some(e), Some(&[_, l, c, g])) => {
+            *e = chart_next(*e, v, c, g, l);
+            *e
+        }
+        _ => 0.0,
     }
 }
 

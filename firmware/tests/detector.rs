@@ -826,6 +826,101 @@ fn residual_chart_is_an_ewma_of_each_scaled_residual() {
     println!("residual chart: worst error / bound {worst:.2e}");
 }
 
+/// `score::chart_step` sums the whitened inputs four rows at a time and
+/// steps each slow chart as its walk over the features meets it. Its values
+/// must have the bits of the plain computation, one row at a time through
+/// `score::chart_input` and `score::chart_next` (what the host calibration
+/// and `plumb tailor` compute), and its peaks those values' largest
+/// magnitudes (first of equal ones): for every `d` from 1 to 9 (groups of
+/// four and the rows left over) and 24, 64, with and without a matrix, slow
+/// charts on the first, a middle and the last feature. Exact equality (no
+/// tolerance): both sums run over the same terms in the same order. A sum
+/// in another order, or a slow chart given another feature's input, fails.
+#[test]
+fn chart_step_has_the_bits_of_one_row_at_a_time() {
+    use plumb_firmware::score::{chart_input, chart_next, chart_step};
+    use plumb_model::{MAX_FEATURES, MAX_SLOW};
+    let mut rng = Rng(4711);
+    for d in (1..=9).chain([24, 64]) {
+        for whiten in [false, true] {
+            let mut model = example_model(d, 1, 1, d as u64);
+            if whiten {
+                model.resid_whiten = (0..d * d).map(|_| rng.normal() as f32).collect();
+            }
+            let mut features = vec![0, d / 2, d - 1];
+            features.dedup();
+            model.slow_charts = features
+                .iter()
+                .enumerate()
+                .flat_map(|(s, &f)| {
+                    [
+                        f as f32,
+                        [0.01, 0.2, 1.0][s],
+                        0.1 * s as f32,
+                        1.0 + s as f32,
+                    ]
+                })
+                .collect();
+            let dev = model.to_device().expect("fits");
+            let lambda = dev.monitor.ewma_lambda;
+            let (mut ewma, mut slow) = ([0.0f32; MAX_FEATURES], [0.0f32; MAX_SLOW]);
+            let (mut want, mut want_slow) = (vec![0.0f32; d], vec![0.0f32; features.len()]);
+            for n in 0..60 {
+                let r: Vec<f32> = (0..d).map(|_| (3.0 * rng.normal()) as f32).collect();
+                let step = chart_step(&dev, &r, &mut ewma, &mut slow);
+                let v: Vec<f32> = (0..d)
+                    .map(|i| chart_input(&dev.resid_whiten, &r, i))
+                    .collect();
+                for i in 0..d {
+                    want[i] = chart_next(
+                        want[i],
+                        v[i],
+                        dev.resid_center[i],
+                        dev.resid_gain[i],
+                        lambda,
+                    );
+                }
+                for (s, c) in dev.slow_charts.chunks_exact(4).enumerate() {
+                    want_slow[s] = chart_next(want_slow[s], v[c[0] as usize], c[2], c[3], c[1]);
+                }
+                let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+                let case = format!("d {d}, whitened {whiten}, sample {n}");
+                assert_eq!(bits(&ewma[..d]), bits(&want), "{case}: the charts");
+                assert_eq!(
+                    bits(&slow[..want_slow.len()]),
+                    bits(&want_slow),
+                    "{case}: the slow charts"
+                );
+                assert!(ewma[d..]
+                    .iter()
+                    .chain(&slow[want_slow.len()..])
+                    .all(|v| *v == 0.0));
+                let first_max = |v: &[f32]| {
+                    v.iter().enumerate().fold((0.0f32, 0), |(a, at), (i, x)| {
+                        if x.abs() > a {
+                            (x.abs(), i)
+                        } else {
+                            (a, at)
+                        }
+                    })
+                };
+                let (peak, at) = first_max(&want);
+                assert_eq!(
+                    (step.peak, usize::from(step.feature)),
+                    (peak, at),
+                    "{case}: peak"
+                );
+                let (slow_peak, s) = first_max(&want_slow);
+                assert_eq!(
+                    (step.slow_peak, usize::from(step.slow_feature)),
+                    (slow_peak, if slow_peak > 0.0 { features[s] } else { 0 }),
+                    "{case}: slow peak"
+                );
+            }
+        }
+    }
+}
+
 /// A drift that keeps to the model's subspace except in one feature: only
 /// that feature's residual moves. Its chart rises, a flag is raised by the
 /// SPE with the residual chart over its limit (the peak naming that

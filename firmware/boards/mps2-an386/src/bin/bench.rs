@@ -224,7 +224,7 @@ fn report(uart: &mut Uart0, name: &str, det: &mut Detector, ticks: &Ticks) {
         // multiply-adds (`score::chart_step`).
         (
             "macs",
-            (2 * d * m + 3 * k * m + det.model().resid_whiten.len() + whitened * slow * d) as u64,
+            (2 * d * m + 3 * k * m + det.model().resid_whiten.len()) as u64,
         ),
         ("samples", u64::from(SAMPLES)),
         ("update_ticks", update),
