@@ -29,7 +29,7 @@ echo "== instructions per sample (QEMU -icount shift=0; 1 tick = 40 instructions
 out=$(PLUMB_QEMU_ICOUNT=1 timeout 300 "$here/run-qemu.sh" "$elf_dir/plumb-board-mps2-bench" </dev/null)
 echo "$out"
 echo
-echo "| model | d | m | k | whitened | slow charts | multiply-adds 2dm+3km (whitened: + d² + d per slow chart) | instructions per update | per multiply-add | instructions per scoring alone | per multiply-add |"
+echo "| model | d | m | k | whitened | slow charts | multiply-adds 2dm+3km (whitened: + d²) | instructions per update | per multiply-add | instructions per scoring alone | per multiply-add |"
 echo "|---|---|---|---|---|---|---|---|---|---|---|"
 grep '^bench model=' <<<"$out" | while read -r line; do
     f() { sed -n "s/.* $1=\([0-9]*\).*/\1/p" <<<"$line"; }

@@ -220,8 +220,9 @@ fn report(uart: &mut Uart0, name: &str, det: &mut Detector, ticks: &Ticks) {
         ("k", k as u64),
         ("whitened", whitened as u64),
         ("slow", slow as u64),
-        // With a whitening matrix each slow chart's input is a sum of d more
-        // multiply-adds (`score::chart_step`).
+        // A whitening matrix adds d² multiply-adds; a slow chart adds none
+        // (it takes its feature's input from the residual chart's walk,
+        // `score::chart_step`).
         (
             "macs",
             (2 * d * m + 3 * k * m + det.model().resid_whiten.len()) as u64,
