@@ -6,7 +6,7 @@ Runs the bench program (`plumb-board-mps2-bench`, see bench.sh) under QEMU with
 and every execution of a block, so instructions per function are exact
 (blocks × their length), not sampled. The log is read as a stream (several
 gigabytes would not fit on disk) and cut into one part per model at each entry
-of `Detector::check` (once per model load).
+of `Detector::reset` (once per model load).
 
 For each model: per function, the instructions executed, the entries (calls:
 executions of the function's first block) and instructions per entry; and
@@ -145,11 +145,15 @@ def bench(elf):
          "-d", "in_asm,exec,nochain", "-D", "/dev/stdout", "-kernel", elf],
         stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, errors="replace",
         bufsize=1 << 20)
-    # One part per model: Detector::check runs once per model load.
-    parts, tb_len, tb_sym = read_log(qemu.stdout, split_pc(entry, "8Detector5check"))
+    # One part per model: Detector::reset runs once per model load.
+    parts, tb_len, tb_sym = read_log(qemu.stdout, split_pc(entry, "8Detector5reset"))
     qemu.wait()
     names = demangle(sorted({s for s in tb_sym.values() if s}))
-    models = ["synthetic (32, 8, 4)", "synthetic (64, 16, 8)", "built-in (24, 6, 8)"]
+    # In the order bench.rs loads them.
+    models = ["synthetic (32, 8, 4)", "synthetic (64, 16, 8)",
+              "synthetic (32, 8, 4), whitened", "synthetic (64, 16, 8), whitened",
+              "synthetic (32, 8, 4), whitened, 8 slow charts",
+              "synthetic (64, 16, 8), whitened, 16 slow charts", "built-in (24, 6, 8)"]
     calls = WARMUP + 2 * SAMPLES
     for name, ex in zip(models, parts):
         print(f"\n## {name}: {WARMUP + SAMPLES} updates and {SAMPLES} scorings\n")
