@@ -316,12 +316,22 @@ fn four_rows(w: &[f32], r: &[f32], i: usize) -> [f32; 4] {
     let (r0, rest) = block.split_at(d);
     let (r1, rest) = rest.split_at(d);
     let (r2, r3) = rest.split_at(d);
+    dot4([r0, r1, r2, r3], r)
+}
+
+/// Four dot products `rows[k] · x`, each summed over `j` in index order
+/// (`rows[k][j] * x[j]` added to a sum that starts at 0), with each `x_j`
+/// loaded once for the four. The reconstruction and the residual chart's
+/// whitening both sum through it.
+#[inline(always)]
+fn dot4(rows: [&[f32]; 4], x: &[f32]) -> [f32; 4] {
+    let [r0, r1, r2, r3] = rows;
     let (mut a0, mut a1, mut a2, mut a3) = (0.0f32, 0.0f32, 0.0f32, 0.0f32);
-    for ((((w0, w1), w2), w3), rj) in r0.iter().zip(r1).zip(r2).zip(r3).zip(r) {
-        a0 += w0 * rj;
-        a1 += w1 * rj;
-        a2 += w2 * rj;
-        a3 += w3 * rj;
+    for ((((p0, p1), p2), p3), xj) in r0.iter().zip(r1).zip(r2).zip(r3).zip(x) {
+        a0 += p0 * xj;
+        a1 += p1 * xj;
+        a2 += p2 * xj;
+        a3 += p3 * xj;
     }
     [a0, a1, a2, a3]
 }
@@ -491,14 +501,7 @@ pub fn score(
         ) else {
             continue;
         };
-        let (mut a0, mut a1, mut a2, mut a3) = (0.0f32, 0.0f32, 0.0f32, 0.0f32);
-        for ((((p0, p1), p2), p3), tj) in r0.iter().zip(r1).zip(r2).zip(r3).zip(t) {
-            a0 += p0 * tj;
-            a1 += p1 * tj;
-            a2 += p2 * tj;
-            a3 += p3 * tj;
-        }
-        for (k, (zi, a)) in zs.iter_mut().zip([a0, a1, a2, a3]).enumerate() {
+        for (k, (zi, a)) in zs.iter_mut().zip(dot4([r0, r1, r2, r3], t)).enumerate() {
             residual(4 * b + k, zi, a);
         }
     }
