@@ -25,6 +25,11 @@ slow=(
     cusum_run_lengths_match_lucas_crosier
     one_sided_cusum_matches_brook_evans
     ewma_run_lengths_match_lucas_saccucci
+    # firmware/tests/detector.rs: a 1500-case property (the detector fuzz
+    # target checks the same natively), and the residual and slow charts
+    # against an f64 recursion through three model sizes, twice each
+    any_input_never_panics_and_faults_leave_stats
+    residual_chart_is_an_ewma_of_each_scaled_residual
     # firmware/tests/fast_math.rs: 200 001 to 400 001 points each
     micromath_error_against_libm_is_as_documented
     cube_root_within_two_ulp_of_libm
@@ -38,7 +43,11 @@ slow=(
     # shared-model/tests/format.rs: 2000-case properties
     arbitrary_bytes_never_panic
     mutated_payload_with_fixed_crc_gives_model_or_error
-    # firmware/tests/endpoint.rs: every bit flip of every frame, 256-case properties
+    arbitrary_payloads_decode_alike_in_place
+    # firmware/tests/endpoint.rs: every bit flip of every frame, 256-case
+    # properties, and a power cut at each of 343 steps of an upload, each
+    # followed by a boot
+    power_cut_at_every_step_of_an_upload_boots_a_whole_model
     no_single_bit_flip_is_accepted
     garbage_is_never_accepted
     requests_inside_garbage_are_handled
